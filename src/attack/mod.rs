@@ -1,0 +1,1 @@
+//! Attacks (FGSM, PGD) that search for validated counterexamples: an upper bound on robust accuracy.

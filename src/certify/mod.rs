@@ -1,0 +1,1 @@
+//! The certification pipeline: per-sample verdicts, the requirement's verdict, the report.

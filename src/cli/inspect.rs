@@ -1,0 +1,64 @@
+//! `ballast inspect MODEL`: layers, parameter count, input range and classes of a model.
+
+use std::path::PathBuf;
+
+use crate::model::{Layer, Model};
+
+/// Arguments of `ballast inspect`.
+#[derive(Debug, clap::Args)]
+#[command(after_help = "Example: ballast inspect models/pump-mlp.json")]
+pub struct Args {
+    /// The model file.
+    pub model: PathBuf,
+    /// Accept models above the size limits.
+    #[arg(long)]
+    pub allow_large: bool,
+}
+
+/// Runs `ballast inspect`.
+pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
+    let model = super::common::load_model(&args.model, args.allow_large)?;
+    print!("{}", describe(&model));
+    Ok(super::Outcome::Finished)
+}
+
+/// A plain-text description of a model.
+pub fn describe(model: &Model) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    let _ = writeln!(s, "model: {}", model.name.as_deref().unwrap_or("(unnamed)"));
+    let _ = writeln!(s, "inputs: {}", model.input.dim);
+    let mut width = model.input.dim;
+    for (i, layer) in model.layers.iter().enumerate() {
+        match layer {
+            Layer::Normalize { .. } => {
+                let _ = writeln!(s, "  layers[{i}] normalize ({width})");
+            }
+            Layer::Dense { weights, .. } => {
+                let _ = writeln!(s, "  layers[{i}] dense {} -> {}", weights.ncols(), weights.nrows());
+                width = weights.nrows();
+            }
+            Layer::Relu => {
+                let _ = writeln!(s, "  layers[{i}] relu ({width})");
+            }
+        }
+    }
+    let network = model.network();
+    let _ = writeln!(s, "parameters: {}", model.parameter_count());
+    let _ = writeln!(s, "relu units: {}", network.relu_count());
+    let kind = if model.output_dim() == 1 { " (binary: class 1 iff logit > 0)" } else { "" };
+    let _ = writeln!(s, "outputs: {}{kind}", model.output_dim());
+    let classes: Vec<String> = (0..model.class_count()).map(|c| model.class_name(c)).collect();
+    let _ = writeln!(s, "classes: {}", classes.join(", "));
+    let _ = writeln!(s, "input range:");
+    for i in 0..model.input.dim {
+        let _ = writeln!(
+            s,
+            "  {:<24} [{}, {}]",
+            model.feature_name(i),
+            model.input.lower[i],
+            model.input.upper[i]
+        );
+    }
+    s
+}

@@ -1,0 +1,252 @@
+//! Labelled data from CSV (header row, a label column, feature columns in model input order).
+//!
+//! When the model names its inputs, columns are matched by name (extra columns are an error); otherwise
+//! every non-label column is a feature, in order. Labels are class indices or class names. Every error
+//! names the file, the row (1-based, the header is row 1) and the column.
+
+use std::path::Path;
+
+use nalgebra::DMatrix;
+
+use crate::model::Model;
+
+/// Why a data file could not be read.
+#[derive(Debug, thiserror::Error)]
+pub enum DataError {
+    /// The file could not be read.
+    #[error("{path}: {source}")]
+    Io {
+        /// The file.
+        path: String,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// The content is not what the model needs.
+    #[error("{path}: {place}: {message}")]
+    Invalid {
+        /// The file.
+        path: String,
+        /// Row and/or column.
+        place: String,
+        /// What is wrong and what was expected.
+        message: String,
+    },
+}
+
+/// Labelled samples matched to a model's inputs.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Dataset {
+    /// Features, **one column per sample** (input dim × samples), in model input order, raw units.
+    pub features: DMatrix<f64>,
+    /// Class index of each sample.
+    pub labels: Vec<usize>,
+}
+
+impl Dataset {
+    /// Number of samples.
+    pub fn len(&self) -> usize {
+        self.labels.len()
+    }
+
+    /// True when there are no samples.
+    pub fn is_empty(&self) -> bool {
+        self.labels.is_empty()
+    }
+
+    /// Features of sample `i`.
+    pub fn sample(&self, i: usize) -> &[f64] {
+        let dim = self.features.nrows();
+        &self.features.as_slice()[i * dim..(i + 1) * dim]
+    }
+
+    /// The samples at `indices`, in that order.
+    pub fn subset(&self, indices: &[usize]) -> Dataset {
+        let dim = self.features.nrows();
+        let mut features = DMatrix::zeros(dim, indices.len());
+        for (k, &i) in indices.iter().enumerate() {
+            features.column_mut(k).copy_from_slice(self.sample(i));
+        }
+        Dataset {
+            features,
+            labels: indices.iter().map(|&i| self.labels[i]).collect(),
+        }
+    }
+}
+
+/// How to read a data file.
+#[derive(Debug, Clone)]
+pub struct DataOptions {
+    /// Name of the label column.
+    pub label_column: String,
+    /// Accept values outside the model's input range (they are an error otherwise).
+    pub allow_out_of_range: bool,
+    /// Largest file size in bytes.
+    pub max_bytes: u64,
+}
+
+impl Default for DataOptions {
+    fn default() -> Self {
+        DataOptions {
+            label_column: "label".into(),
+            allow_out_of_range: false,
+            max_bytes: crate::limits::MAX_DATA_FILE_BYTES,
+        }
+    }
+}
+
+/// Reads a CSV file for `model`.
+pub fn load_csv(path: &Path, model: &Model, options: &DataOptions) -> Result<Dataset, DataError> {
+    let text = crate::limits::read_text_file(path, options.max_bytes).map_err(|source| DataError::Io {
+        path: path.display().to_string(),
+        source,
+    })?;
+    parse_csv(&text, model, options).map_err(|(place, message)| DataError::Invalid {
+        path: path.display().to_string(),
+        place,
+        message,
+    })
+}
+
+/// Parses CSV text for `model`; errors are `(place, message)`.
+pub fn parse_csv(
+    text: &str,
+    model: &Model,
+    options: &DataOptions,
+) -> Result<Dataset, (String, String)> {
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(true)
+        .trim(csv::Trim::All)
+        .from_reader(text.as_bytes());
+    let headers = reader
+        .headers()
+        .map_err(|e| ("row 1 (header)".to_string(), e.to_string()))?
+        .clone();
+    if headers.is_empty() || (headers.len() == 1 && headers[0].is_empty()) {
+        return Err(("row 1 (header)".into(), "empty file, expected a header row".into()));
+    }
+    let mut seen = std::collections::HashMap::new();
+    for (i, h) in headers.iter().enumerate() {
+        if let Some(first) = seen.insert(h.to_string(), i) {
+            return Err((
+                format!("row 1 (header), column {}", i + 1),
+                format!("column name \"{h}\" appears twice (also column {})", first + 1),
+            ));
+        }
+    }
+    let label_index = headers
+        .iter()
+        .position(|h| h == options.label_column)
+        .ok_or_else(|| {
+            (
+                "row 1 (header)".to_string(),
+                format!("no label column \"{}\" (use --label-column to name it)", options.label_column),
+            )
+        })?;
+    let dim = model.input.dim;
+    // feature_columns[k] = CSV column of model input k
+    let feature_columns: Vec<usize> = match &model.input.names {
+        Some(names) => {
+            let mut columns = Vec::with_capacity(dim);
+            for name in names {
+                let c = headers.iter().position(|h| h == name).ok_or_else(|| {
+                    ("row 1 (header)".to_string(), format!("missing feature column \"{name}\""))
+                })?;
+                columns.push(c);
+            }
+            if let Some((c, extra)) = headers
+                .iter()
+                .enumerate()
+                .find(|(c, h)| *c != label_index && !names.iter().any(|n| n == h))
+            {
+                return Err((
+                    format!("row 1 (header), column {}", c + 1),
+                    format!("column \"{extra}\" is not an input of the model"),
+                ));
+            }
+            columns
+        }
+        None => {
+            let columns: Vec<usize> = (0..headers.len()).filter(|c| *c != label_index).collect();
+            if columns.len() != dim {
+                return Err((
+                    "row 1 (header)".into(),
+                    format!("{} feature columns, expected {dim} (the model's input.dim)", columns.len()),
+                ));
+            }
+            columns
+        }
+    };
+    let classes = model.class_count();
+    let mut values: Vec<f64> = Vec::new();
+    let mut labels = Vec::new();
+    for (r, record) in reader.records().enumerate() {
+        let row = r + 2;
+        let record = record.map_err(|e| (format!("row {row}"), e.to_string()))?;
+        if record.len() == 1 && record[0].is_empty() {
+            continue; // blank line
+        }
+        if record.len() != headers.len() {
+            return Err((
+                format!("row {row}"),
+                format!("has {} fields, expected {} (as in the header)", record.len(), headers.len()),
+            ));
+        }
+        let label_text = &record[label_index];
+        let label = parse_label(label_text, model, classes).map_err(|m| {
+            (format!("row {row}, column \"{}\"", options.label_column), m)
+        })?;
+        labels.push(label);
+        for (k, &c) in feature_columns.iter().enumerate() {
+            let field = &record[c];
+            let v: f64 = field.parse().map_err(|_| {
+                (
+                    format!("row {row}, column \"{}\"", &headers[c]),
+                    format!("\"{field}\" is not a number"),
+                )
+            })?;
+            if !v.is_finite() {
+                return Err((
+                    format!("row {row}, column \"{}\"", &headers[c]),
+                    format!("\"{field}\" is not a finite number"),
+                ));
+            }
+            if !options.allow_out_of_range && (v < model.input.lower[k] || v > model.input.upper[k]) {
+                return Err((
+                    format!("row {row}, column \"{}\"", &headers[c]),
+                    format!(
+                        "{v} lies outside the model's input range [{}, {}]",
+                        model.input.lower[k], model.input.upper[k]
+                    ),
+                ));
+            }
+            values.push(v);
+        }
+    }
+    if labels.is_empty() {
+        return Err(("file".into(), "no data rows after the header".into()));
+    }
+    Ok(Dataset {
+        features: DMatrix::from_vec(dim, labels.len(), values),
+        labels,
+    })
+}
+
+fn parse_label(text: &str, model: &Model, classes: usize) -> Result<usize, String> {
+    if let Some(names) = &model.classes {
+        if let Some(i) = names.iter().position(|n| n == text) {
+            return Ok(i);
+        }
+    }
+    match text.parse::<usize>() {
+        Ok(i) if i < classes => Ok(i),
+        Ok(i) => Err(format!("class index {i} is out of range, expected 0..{}", classes - 1)),
+        Err(_) => Err(match &model.classes {
+            Some(names) => format!(
+                "\"{text}\" is neither a class index nor one of the classes {}",
+                names.join(", ")
+            ),
+            None => format!("\"{text}\" is not a class index (the model names no classes)"),
+        }),
+    }
+}

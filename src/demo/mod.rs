@@ -1,0 +1,1 @@
+//! The bundled demo scenario: an invented pump-fleet condition-monitoring data set and its models.

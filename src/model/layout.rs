@@ -1,0 +1,454 @@
+//! The `ballast.model/1` JSON layout: parsing, validation and saving.
+//!
+//! Parsing never trusts a size written in the file: every matrix is checked against the sizes actually
+//! present before anything is allocated from it. Every validation error names the layer index and the
+//! field (`layers[2].weights: row 5 has 31 values, expected 32`); JSON syntax errors give line and column.
+
+use std::path::Path;
+
+use nalgebra::{DMatrix, DVector};
+use serde::{Deserialize, Serialize};
+use serde_json::Value;
+
+use super::ModelError;
+
+/// The format tag every model file carries.
+pub const MODEL_FORMAT: &str = "ballast.model/1";
+
+/// Largest parameter count accepted without `--allow-large` (weights and biases together).
+pub const DEFAULT_MAX_PARAMETERS: usize = 20_000_000;
+
+/// The valid input range and naming of a model's input features (raw units, before any normalize layer).
+#[derive(Debug, Clone, PartialEq)]
+pub struct InputSpec {
+    /// Number of input features.
+    pub dim: usize,
+    /// Optional feature names, one per feature, used to match data columns.
+    pub names: Option<Vec<String>>,
+    /// Lower end of the valid range per feature (−∞ when unbounded).
+    pub lower: Vec<f64>,
+    /// Upper end of the valid range per feature (+∞ when unbounded).
+    pub upper: Vec<f64>,
+}
+
+/// One layer of the layout, validated.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Layer {
+    /// Elementwise `(x − mean) / std`, std > 0.
+    Normalize {
+        /// Per-feature mean.
+        mean: DVector<f64>,
+        /// Per-feature standard deviation, all > 0.
+        std: DVector<f64>,
+    },
+    /// Affine map `W x + b`, `W` of shape out × in.
+    Dense {
+        /// Weights, one row per output unit.
+        weights: DMatrix<f64>,
+        /// Bias, one entry per output unit.
+        bias: DVector<f64>,
+    },
+    /// Elementwise `max(0, x)`.
+    Relu,
+}
+
+/// A validated model in the `ballast.model/1` layout, kept layer by layer for saving.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Model {
+    /// Optional model name.
+    pub name: Option<String>,
+    /// Input size, names and valid range.
+    pub input: InputSpec,
+    /// Optional class names; when present, one per output class.
+    pub classes: Option<Vec<String>>,
+    /// The layers as written in the file.
+    pub layers: Vec<Layer>,
+    /// Free-form provenance (never validated beyond being JSON).
+    pub provenance: Option<Value>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawModel {
+    format: String,
+    #[serde(default)]
+    name: Option<String>,
+    input: RawInput,
+    #[serde(default)]
+    classes: Option<Vec<String>>,
+    layers: Vec<Value>,
+    #[serde(default)]
+    provenance: Option<Value>,
+}
+
+#[derive(Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+struct RawInput {
+    dim: usize,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    names: Option<Vec<String>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    lower: Option<RawRange>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    upper: Option<RawRange>,
+}
+
+#[derive(Deserialize, Serialize, Clone)]
+#[serde(untagged)]
+enum RawRange {
+    All(f64),
+    Each(Vec<f64>),
+}
+
+#[derive(Deserialize, Serialize)]
+#[serde(tag = "kind", rename_all = "lowercase", deny_unknown_fields)]
+enum RawLayer {
+    Normalize { mean: Vec<f64>, std: Vec<f64> },
+    Dense { weights: Vec<Vec<f64>>, bias: Vec<f64> },
+    Relu,
+}
+
+impl Model {
+    /// Reads and validates a model file.
+    pub fn load(path: &Path) -> Result<Model, ModelError> {
+        let text = crate::limits::read_text_file(path, crate::limits::MAX_MODEL_FILE_BYTES).map_err(
+            |source| ModelError::Io {
+                path: path.display().to_string(),
+                source,
+            },
+        )?;
+        Model::from_json_str(&text).map_err(|e| e.in_file(path))
+    }
+
+    /// Parses and validates a model from JSON text.
+    pub fn from_json_str(text: &str) -> Result<Model, ModelError> {
+        if text.trim().is_empty() {
+            return Err(ModelError::Invalid {
+                place: "file".into(),
+                message: "empty file, expected a JSON object".into(),
+            });
+        }
+        let value: Value = serde_json::from_str(text).map_err(|e| ModelError::Syntax {
+            line: e.line(),
+            column: e.column(),
+            message: e.to_string(),
+        })?;
+        if !value.is_object() {
+            return Err(ModelError::Invalid {
+                place: "top level".into(),
+                message: format!("expected a JSON object, found {}", json_kind(&value)),
+            });
+        }
+        let raw: RawModel = serde_json::from_value(value).map_err(|e| ModelError::Invalid {
+            place: "top level".into(),
+            message: e.to_string(),
+        })?;
+        Model::from_raw(raw)
+    }
+
+    fn from_raw(raw: RawModel) -> Result<Model, ModelError> {
+        if raw.format != MODEL_FORMAT {
+            return Err(invalid(
+                "format",
+                format!("is \"{}\", expected \"{MODEL_FORMAT}\"", raw.format),
+            ));
+        }
+        let dim = raw.input.dim;
+        if dim == 0 {
+            return Err(invalid("input.dim", "must be at least 1".into()));
+        }
+        if let Some(names) = &raw.input.names {
+            if names.len() != dim {
+                return Err(invalid(
+                    "input.names",
+                    format!("has {} names, expected {dim} (input.dim)", names.len()),
+                ));
+            }
+            let mut seen = std::collections::HashSet::new();
+            for (i, n) in names.iter().enumerate() {
+                if !seen.insert(n.as_str()) {
+                    return Err(invalid(
+                        &format!("input.names[{i}]"),
+                        format!("\"{n}\" appears twice"),
+                    ));
+                }
+            }
+        }
+        let lower = expand_range(raw.input.lower.as_ref(), dim, f64::NEG_INFINITY, "input.lower")?;
+        let upper = expand_range(raw.input.upper.as_ref(), dim, f64::INFINITY, "input.upper")?;
+        for i in 0..dim {
+            if lower[i] > upper[i] {
+                return Err(invalid(
+                    "input",
+                    format!(
+                        "feature {i}: lower {} is above upper {}",
+                        lower[i], upper[i]
+                    ),
+                ));
+            }
+        }
+        if raw.layers.is_empty() {
+            return Err(invalid("layers", "is empty, expected at least one layer".into()));
+        }
+        let mut layers = Vec::with_capacity(raw.layers.len().min(1024));
+        let mut width = dim;
+        for (index, value) in raw.layers.into_iter().enumerate() {
+            let place = format!("layers[{index}]");
+            let kind = value.get("kind").and_then(Value::as_str).map(str::to_owned);
+            let raw_layer: RawLayer = serde_json::from_value(value).map_err(|e| {
+                invalid(
+                    &place,
+                    match kind {
+                        None => format!("{e} (expected an object with \"kind\": dense, relu or normalize)"),
+                        Some(_) => e.to_string(),
+                    },
+                )
+            })?;
+            let layer = match raw_layer {
+                RawLayer::Normalize { mean, std } => {
+                    check_vector(&mean, width, &format!("{place}.mean"))?;
+                    check_vector(&std, width, &format!("{place}.std"))?;
+                    if let Some(i) = std.iter().position(|s| *s <= 0.0) {
+                        return Err(invalid(
+                            &format!("{place}.std"),
+                            format!("entry {i} is {}, expected > 0", std[i]),
+                        ));
+                    }
+                    Layer::Normalize {
+                        mean: DVector::from_vec(mean),
+                        std: DVector::from_vec(std),
+                    }
+                }
+                RawLayer::Dense { weights, bias } => {
+                    let out = weights.len();
+                    if out == 0 {
+                        return Err(invalid(
+                            &format!("{place}.weights"),
+                            "has no rows, expected at least one".into(),
+                        ));
+                    }
+                    for (r, row) in weights.iter().enumerate() {
+                        if row.len() != width {
+                            return Err(invalid(
+                                &format!("{place}.weights"),
+                                format!("row {r} has {} values, expected {width}", row.len()),
+                            ));
+                        }
+                        if let Some(c) = row.iter().position(|v| !v.is_finite()) {
+                            return Err(invalid(
+                                &format!("{place}.weights"),
+                                format!("row {r} column {c} is not a finite number"),
+                            ));
+                        }
+                    }
+                    check_vector(&bias, out, &format!("{place}.bias"))?;
+                    let weights = DMatrix::from_fn(out, width, |r, c| weights[r][c]);
+                    width = out;
+                    Layer::Dense {
+                        weights,
+                        bias: DVector::from_vec(bias),
+                    }
+                }
+                RawLayer::Relu => Layer::Relu,
+            };
+            layers.push(layer);
+        }
+        if let Some(classes) = &raw.classes {
+            let expected = if width == 1 { 2 } else { width };
+            if classes.len() != expected {
+                return Err(invalid(
+                    "classes",
+                    format!(
+                        "has {} names, expected {expected} (the model has {width} output{})",
+                        classes.len(),
+                        if width == 1 { ", a binary classifier" } else { "s" }
+                    ),
+                ));
+            }
+        }
+        Ok(Model {
+            name: raw.name,
+            input: InputSpec {
+                dim,
+                names: raw.input.names,
+                lower,
+                upper,
+            },
+            classes: raw.classes,
+            layers,
+            provenance: raw.provenance,
+        })
+    }
+
+    /// Number of weights and biases in all dense layers.
+    pub fn parameter_count(&self) -> usize {
+        self.layers
+            .iter()
+            .map(|l| match l {
+                Layer::Dense { weights, bias } => weights.len() + bias.len(),
+                _ => 0,
+            })
+            .sum()
+    }
+
+    /// Size of the output layer (1 means a binary classifier on the sign of the logit).
+    pub fn output_dim(&self) -> usize {
+        self.layers
+            .iter()
+            .rev()
+            .find_map(|l| match l {
+                Layer::Dense { weights, .. } => Some(weights.nrows()),
+                _ => None,
+            })
+            .unwrap_or(self.input.dim)
+    }
+
+    /// Number of classes the model decides between (2 for a 1-output model).
+    pub fn class_count(&self) -> usize {
+        let out = self.output_dim();
+        if out == 1 {
+            2
+        } else {
+            out
+        }
+    }
+
+    /// Name of class `index`: from `classes` when present, otherwise the index itself.
+    pub fn class_name(&self, index: usize) -> String {
+        match &self.classes {
+            Some(c) if index < c.len() => c[index].clone(),
+            _ => index.to_string(),
+        }
+    }
+
+    /// Name of input feature `index`: from `input.names` when present, otherwise `x{index}`.
+    pub fn feature_name(&self, index: usize) -> String {
+        match &self.input.names {
+            Some(n) if index < n.len() => n[index].clone(),
+            _ => format!("x{index}"),
+        }
+    }
+
+    /// The model in the JSON layout, as a `serde_json::Value`.
+    pub fn to_json_value(&self) -> Value {
+        let mut layers = Vec::with_capacity(self.layers.len());
+        for layer in &self.layers {
+            let raw = match layer {
+                Layer::Normalize { mean, std } => RawLayer::Normalize {
+                    mean: mean.iter().copied().collect(),
+                    std: std.iter().copied().collect(),
+                },
+                Layer::Dense { weights, bias } => RawLayer::Dense {
+                    weights: (0..weights.nrows())
+                        .map(|r| weights.row(r).iter().copied().collect())
+                        .collect(),
+                    bias: bias.iter().copied().collect(),
+                },
+                Layer::Relu => RawLayer::Relu,
+            };
+            layers.push(serde_json::to_value(raw).expect("layers serialise"));
+        }
+        let input = RawInput {
+            dim: self.input.dim,
+            names: self.input.names.clone(),
+            lower: compact_range(&self.input.lower),
+            upper: compact_range(&self.input.upper),
+        };
+        let mut object = serde_json::Map::new();
+        object.insert("format".into(), Value::from(MODEL_FORMAT));
+        if let Some(name) = &self.name {
+            object.insert("name".into(), Value::from(name.clone()));
+        }
+        object.insert("input".into(), serde_json::to_value(input).expect("input serialises"));
+        if let Some(classes) = &self.classes {
+            object.insert("classes".into(), Value::from(classes.clone()));
+        }
+        object.insert("layers".into(), Value::Array(layers));
+        if let Some(p) = &self.provenance {
+            object.insert("provenance".into(), p.clone());
+        }
+        Value::Object(object)
+    }
+
+    /// The model as pretty-printed JSON text in the layout.
+    pub fn to_json_string(&self) -> String {
+        let mut text = serde_json::to_string_pretty(&self.to_json_value()).expect("model serialises");
+        text.push('\n');
+        text
+    }
+
+    /// Writes the model atomically (temporary file in the same folder, fsync, rename).
+    pub fn save(&self, path: &Path) -> Result<(), ModelError> {
+        crate::atomic::write_file(path, self.to_json_string().as_bytes()).map_err(|source| {
+            ModelError::Io {
+                path: path.display().to_string(),
+                source,
+            }
+        })
+    }
+}
+
+fn invalid(place: &str, message: String) -> ModelError {
+    ModelError::Invalid {
+        place: place.to_owned(),
+        message,
+    }
+}
+
+fn json_kind(value: &Value) -> &'static str {
+    match value {
+        Value::Null => "null",
+        Value::Bool(_) => "a boolean",
+        Value::Number(_) => "a number",
+        Value::String(_) => "a string",
+        Value::Array(_) => "an array",
+        Value::Object(_) => "an object",
+    }
+}
+
+fn check_vector(values: &[f64], expected: usize, place: &str) -> Result<(), ModelError> {
+    if values.len() != expected {
+        return Err(invalid(
+            place,
+            format!("has {} values, expected {expected}", values.len()),
+        ));
+    }
+    if let Some(i) = values.iter().position(|v| !v.is_finite()) {
+        return Err(invalid(place, format!("entry {i} is not a finite number")));
+    }
+    Ok(())
+}
+
+fn expand_range(
+    range: Option<&RawRange>,
+    dim: usize,
+    default: f64,
+    place: &str,
+) -> Result<Vec<f64>, ModelError> {
+    match range {
+        None => Ok(vec![default; dim]),
+        Some(RawRange::All(v)) => {
+            if !v.is_finite() {
+                return Err(invalid(place, "is not a finite number".into()));
+            }
+            Ok(vec![*v; dim])
+        }
+        Some(RawRange::Each(values)) => {
+            check_vector(values, dim, place)?;
+            Ok(values.clone())
+        }
+    }
+}
+
+fn compact_range(values: &[f64]) -> Option<RawRange> {
+    let first = *values.first()?;
+    if values.iter().all(|v| *v == first) {
+        if first.is_finite() {
+            Some(RawRange::All(first))
+        } else {
+            None
+        }
+    } else {
+        Some(RawRange::Each(values.to_vec()))
+    }
+}

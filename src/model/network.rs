@@ -1,0 +1,294 @@
+//! The internal network: a stack of affine maps with a ReLU between each consecutive pair.
+//!
+//! Every model in the layout folds into this canonical form: `normalize` layers become affine maps and
+//! are composed into their neighbours, runs of affine maps are multiplied out, and a ReLU at either end gets
+//! an identity map beside it. All later stages (attack, bounds, search, training) work on this form.
+//! Batches are matrices with **one column per sample**.
+
+use nalgebra::{DMatrix, DVector};
+
+use super::layout::{Layer, Model};
+
+/// An affine map `x ↦ W x + b` with `W` of shape out × in.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Dense {
+    /// Weights, one row per output unit.
+    pub weights: DMatrix<f64>,
+    /// Bias, one entry per output unit.
+    pub bias: DVector<f64>,
+}
+
+impl Dense {
+    /// The identity map on `dim` features.
+    pub fn identity(dim: usize) -> Dense {
+        Dense {
+            weights: DMatrix::identity(dim, dim),
+            bias: DVector::zeros(dim),
+        }
+    }
+
+    /// Input size.
+    pub fn input_dim(&self) -> usize {
+        self.weights.ncols()
+    }
+
+    /// Output size.
+    pub fn output_dim(&self) -> usize {
+        self.weights.nrows()
+    }
+
+    /// `self ∘ inner`: first `inner`, then `self`.
+    pub fn after(&self, inner: &Dense) -> Dense {
+        Dense {
+            weights: &self.weights * &inner.weights,
+            bias: &self.weights * &inner.bias + &self.bias,
+        }
+    }
+
+    /// Applies the map to one input.
+    pub fn apply(&self, x: &DVector<f64>) -> DVector<f64> {
+        &self.weights * x + &self.bias
+    }
+
+    /// Applies the map to a batch (one column per sample).
+    pub fn apply_batch(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
+        let mut out = &self.weights * xs;
+        for mut column in out.column_iter_mut() {
+            column += &self.bias;
+        }
+        out
+    }
+}
+
+/// A ReLU network in canonical form: `layers[0]`, ReLU, `layers[1]`, ReLU, …, `layers[last]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Network {
+    /// The affine maps; a ReLU sits between every consecutive pair, none after the last.
+    pub layers: Vec<Dense>,
+}
+
+impl Network {
+    /// Builds a network, checking that consecutive sizes agree.
+    pub fn new(layers: Vec<Dense>) -> Network {
+        assert!(!layers.is_empty(), "a network needs at least one affine map");
+        for pair in layers.windows(2) {
+            assert_eq!(pair[0].output_dim(), pair[1].input_dim(), "layer sizes must chain");
+        }
+        Network { layers }
+    }
+
+    /// Input size.
+    pub fn input_dim(&self) -> usize {
+        self.layers[0].input_dim()
+    }
+
+    /// Output size (number of logits).
+    pub fn output_dim(&self) -> usize {
+        self.layers[self.layers.len() - 1].output_dim()
+    }
+
+    /// Sizes of the hidden (ReLU) layers, in order.
+    pub fn hidden_sizes(&self) -> Vec<usize> {
+        self.layers[..self.layers.len() - 1]
+            .iter()
+            .map(Dense::output_dim)
+            .collect()
+    }
+
+    /// Total number of ReLU units.
+    pub fn relu_count(&self) -> usize {
+        self.hidden_sizes().iter().sum()
+    }
+
+    /// Number of weights and biases.
+    pub fn parameter_count(&self) -> usize {
+        self.layers
+            .iter()
+            .map(|l| l.weights.len() + l.bias.len())
+            .sum()
+    }
+
+    /// Logits for one input.
+    pub fn forward(&self, x: &[f64]) -> DVector<f64> {
+        let mut h = DVector::from_column_slice(x);
+        let last = self.layers.len() - 1;
+        for (i, layer) in self.layers.iter().enumerate() {
+            h = layer.apply(&h);
+            if i < last {
+                h.apply(|v| *v = v.max(0.0));
+            }
+        }
+        h
+    }
+
+    /// Logits for a batch (one column per sample in, one column per sample out).
+    pub fn forward_batch(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
+        let last = self.layers.len() - 1;
+        let mut h = xs.clone();
+        for (i, layer) in self.layers.iter().enumerate() {
+            h = layer.apply_batch(&h);
+            if i < last {
+                h.apply(|v| *v = v.max(0.0));
+            }
+        }
+        h
+    }
+
+    /// Pre-activations of every layer for one input (`result[k]` is the output of `layers[k]`).
+    pub fn pre_activations(&self, x: &[f64]) -> Vec<DVector<f64>> {
+        let mut out = Vec::with_capacity(self.layers.len());
+        let mut h = DVector::from_column_slice(x);
+        for layer in &self.layers {
+            let z = layer.apply(&h);
+            h = z.map(|v| v.max(0.0));
+            out.push(z);
+        }
+        out
+    }
+
+    /// The same classifier with at least two logits: a 1-logit binary model `z` becomes `[0, z]`, so the
+    /// usual argmax rule gives class 1 exactly when `z > 0` (ties go to the lower index).
+    pub fn as_classifier(&self) -> Network {
+        if self.output_dim() != 1 {
+            return self.clone();
+        }
+        let mut layers = self.layers.clone();
+        let last = layers.last_mut().expect("non-empty");
+        let inputs = last.input_dim();
+        let mut weights = DMatrix::zeros(2, inputs);
+        weights.row_mut(1).copy_from(&last.weights.row(0));
+        let mut bias = DVector::zeros(2);
+        bias[1] = last.bias[0];
+        *last = Dense { weights, bias };
+        Network { layers }
+    }
+}
+
+/// Index of the largest logit; ties go to the lowest index. This is the decision rule everywhere.
+pub fn predicted_class(logits: &[f64]) -> usize {
+    let mut best = 0;
+    for (i, v) in logits.iter().enumerate() {
+        if *v > logits[best] {
+            best = i;
+        }
+    }
+    best
+}
+
+/// Input normalisation `(x − mean) / std` kept apart from a network (used by training).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Normalization {
+    /// Per-feature mean.
+    pub mean: DVector<f64>,
+    /// Per-feature standard deviation (> 0).
+    pub std: DVector<f64>,
+}
+
+impl Normalization {
+    /// The normalisation as an affine map.
+    pub fn as_dense(&self) -> Dense {
+        Dense {
+            weights: DMatrix::from_diagonal(&self.std.map(|s| 1.0 / s)),
+            bias: -self.mean.component_div(&self.std),
+        }
+    }
+}
+
+impl Model {
+    /// The folded canonical network with the model's raw output size (1 for binary models).
+    pub fn network(&self) -> Network {
+        fold_layers(self.input.dim, &self.layers)
+    }
+
+    /// The folded network with at least two logits (see [`Network::as_classifier`]): what attacks, bounds
+    /// and search work on.
+    pub fn classifier(&self) -> Network {
+        self.network().as_classifier()
+    }
+
+    /// Splits off a leading `normalize` layer (kept as is) and folds the rest; used by training so the
+    /// optimiser works in normalised units. Without a leading normalize layer the first part is `None`.
+    pub fn split_normalization(&self) -> (Option<Normalization>, Network) {
+        match self.layers.first() {
+            Some(Layer::Normalize { mean, std }) if self.layers.len() > 1 => {
+                let norm = Normalization {
+                    mean: mean.clone(),
+                    std: std.clone(),
+                };
+                (Some(norm), fold_layers(self.input.dim, &self.layers[1..]))
+            }
+            _ => (None, self.network()),
+        }
+    }
+
+    /// A copy of this model (same name, input, classes, provenance) whose layers are `normalization`
+    /// (if any) followed by `network` written as dense / relu layers.
+    pub fn with_network(&self, normalization: Option<&Normalization>, network: &Network) -> Model {
+        let mut layers = Vec::new();
+        if let Some(n) = normalization {
+            layers.push(Layer::Normalize {
+                mean: n.mean.clone(),
+                std: n.std.clone(),
+            });
+        }
+        let last = network.layers.len() - 1;
+        for (i, d) in network.layers.iter().enumerate() {
+            layers.push(Layer::Dense {
+                weights: d.weights.clone(),
+                bias: d.bias.clone(),
+            });
+            if i < last {
+                layers.push(Layer::Relu);
+            }
+        }
+        Model {
+            layers,
+            ..self.clone()
+        }
+    }
+}
+
+fn fold_layers(input_dim: usize, layers: &[Layer]) -> Network {
+    let mut done: Vec<Dense> = Vec::new();
+    let mut pending: Option<Dense> = None;
+    let mut width = input_dim;
+    let mut last_was_relu = false;
+    for layer in layers {
+        match layer {
+            Layer::Normalize { mean, std } => {
+                let map = Normalization {
+                    mean: mean.clone(),
+                    std: std.clone(),
+                }
+                .as_dense();
+                pending = Some(compose(pending, map));
+                last_was_relu = false;
+            }
+            Layer::Dense { weights, bias } => {
+                let map = Dense {
+                    weights: weights.clone(),
+                    bias: bias.clone(),
+                };
+                width = map.output_dim();
+                pending = Some(compose(pending, map));
+                last_was_relu = false;
+            }
+            Layer::Relu => {
+                if last_was_relu {
+                    continue; // relu ∘ relu = relu
+                }
+                done.push(pending.take().unwrap_or_else(|| Dense::identity(width)));
+                last_was_relu = true;
+            }
+        }
+    }
+    done.push(pending.unwrap_or_else(|| Dense::identity(width)));
+    Network::new(done)
+}
+
+fn compose(pending: Option<Dense>, next: Dense) -> Dense {
+    match pending {
+        None => next,
+        Some(inner) => next.after(&inner),
+    }
+}

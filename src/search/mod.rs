@@ -1,0 +1,1 @@
+//! Complete verification by branch and bound over ReLU activation states.

@@ -1,0 +1,1 @@
+//! The release sheet: Markdown and self-contained HTML rendered from a report.

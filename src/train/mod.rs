@@ -1,0 +1,1 @@
+//! Training: gradients, optimisers, plain and robust losses, the primal-dual loop.
