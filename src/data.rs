@@ -215,7 +215,7 @@ pub fn parse_csv(
                 return Err((
                     format!("row {row}, column \"{}\"", &headers[c]),
                     format!(
-                        "{v} lies outside the model's input range [{}, {}]",
+                        "{field} lies outside the model's input range [{}, {}]",
                         model.input.lower[k], model.input.upper[k]
                     ),
                 ));

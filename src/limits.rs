@@ -26,7 +26,8 @@ pub fn read_text_file(path: &Path, max_bytes: u64) -> std::io::Result<String> {
         ));
     }
     let mut bytes = Vec::with_capacity(size as usize);
-    file.take(max_bytes + 1).read_to_end(&mut bytes)?;
+    // `saturating_add`: `--allow-large` passes `u64::MAX`, and special files report a size of 0.
+    file.take(max_bytes.saturating_add(1)).read_to_end(&mut bytes)?;
     if bytes.len() as u64 > max_bytes {
         return Err(std::io::Error::new(
             std::io::ErrorKind::InvalidData,

@@ -1,10 +1,269 @@
-//! `ballast certify` (not built yet).
+//! `ballast certify`: decide every sample, check the requirement's floor, write the report, the
+//! counterexamples, the journal and optionally the sheet; exit with the verdict's code.
+//!
+//! Every argument is validated before any work starts, so a usage error writes nothing. SIGINT and
+//! SIGTERM stop the run after the samples in progress: the journal keeps every finished sample, a
+//! partial report marked `"complete": false` is written, and the exit code is 128 + the signal.
+
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::Arc;
+
+use anyhow::{bail, Context};
+
+use super::common::{load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument};
+use super::Outcome;
+use crate::certify::journal::journal_path;
+use crate::certify::progress::TerminalProgress;
+use crate::certify::{
+    certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report, Shard, Sources, Verdict,
+};
+use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 
 /// Arguments of `ballast certify`.
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+#[command(after_help = "Examples:\n  ballast certify --model m.json --data acceptance.csv --eps 0.05 --floor 0.9 --report r.json --sheet sheet/\n  ballast certify --model m.json --data d.csv --eps tolerances.csv --forbid-into normal --floor 0.95\n  ballast certify --model m.json --data d.csv --eps 0.01,0.02,0.05 --radius --report sweep.json\n\nExit codes: 0 requirement met (or no floor and finished), 1 not met, 2 usage or input error, 3 undecided, 130/143 interrupted.")]
+pub struct Args {
+    /// The model file (ballast.model/1 JSON).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// The acceptance set (CSV with a label column).
+    #[arg(long)]
+    pub data: PathBuf,
+    /// The budget: a number, a sweep `0.01,0.02,0.05` or `start:stop:step`, or a per-feature tolerance
+    /// file (JSON or CSV; radius = scale × tolerance, scale 1).
+    #[arg(long)]
+    pub eps: Option<String>,
+    /// Per-feature tolerance file; `--eps` then gives the scale (default 1).
+    #[arg(long)]
+    pub tolerances: Option<PathBuf>,
+    /// A requirement file (TOML or JSON); flags override its values.
+    #[arg(long)]
+    pub requirement: Option<PathBuf>,
+    /// The norm of the ball: linf or l2 (default linf).
+    #[arg(long)]
+    pub norm: Option<String>,
+    /// Required robust fraction in [0, 1].
+    #[arg(long)]
+    pub floor: Option<f64>,
+    /// Required clean accuracy in [0, 1].
+    #[arg(long)]
+    pub min_clean_accuracy: Option<f64>,
+    /// Judge the floor by the one-sided Clopper–Pearson lower bound at this level (e.g. 0.95).
+    #[arg(long)]
+    pub confidence: Option<f64>,
+    /// Only changes into these classes count (comma-separated names or indices).
+    #[arg(long)]
+    pub forbid_into: Option<String>,
+    /// Apply --forbid-into only to samples of these true classes (others: any change counts).
+    #[arg(long)]
+    pub forbid_from: Option<String>,
+    /// Seconds of branch and bound per sample and epsilon (0 = bounds only).
+    #[arg(long, default_value_t = 0.0)]
+    pub budget: f64,
+    /// Write the report here (JSON); the journal and counterexamples go beside it.
+    #[arg(long)]
+    pub report: Option<PathBuf>,
+    /// Also render the sheet (Markdown + HTML) into this folder.
+    #[arg(long)]
+    pub sheet: Option<PathBuf>,
+    /// Certify only the K-th of N disjoint slices of the samples (round robin by row index).
+    #[arg(long)]
+    pub shard: Option<String>,
+    /// Continue from the journal beside --report.
+    #[arg(long)]
+    pub resume: bool,
+    /// Also compute each sample's certified radius (bisection with the sound bounds).
+    #[arg(long)]
+    pub radius: bool,
+    /// Seed of the attacks.
+    #[arg(long, default_value_t = 0)]
+    pub seed: u64,
+    /// Skip the quick attack.
+    #[arg(long)]
+    pub no_attack: bool,
+    /// Name of the label column.
+    #[arg(long, default_value = "label")]
+    pub label_column: String,
+    /// Accept inputs above the size limits.
+    #[arg(long)]
+    pub allow_large: bool,
+}
+
+/// Parses `--shard K/N`.
+pub fn parse_shard(text: &str) -> anyhow::Result<Shard> {
+    let parts: Vec<&str> = text.split('/').collect();
+    let parsed = if parts.len() == 2 {
+        parts[0].trim().parse::<usize>().ok().zip(parts[1].trim().parse::<usize>().ok())
+    } else {
+        None
+    };
+    match parsed {
+        Some((index, count)) if count >= 1 && (1..=count).contains(&index) => Ok(Shard { index, count }),
+        _ => bail!("--shard: \"{text}\" is not allowed, expected K/N with 1 ≤ K ≤ N (e.g. 2/4)"),
+    }
+}
+
+fn flags_spec(args: &Args) -> anyhow::Result<RequirementSpec> {
+    let mut spec = RequirementSpec::default();
+    if let Some(e) = &args.eps {
+        match parse_epsilon_argument(e)? {
+            EpsilonArgument::Values(v) => spec.epsilons = Some((v, "--eps".into())),
+            EpsilonArgument::ToleranceFile(p) => {
+                if args.tolerances.is_some() {
+                    bail!("--eps names a tolerance file and --tolerances is given too; give the file once and the scale with --eps");
+                }
+                spec.tolerances = Some((ToleranceSource::File(p), "--eps".into()));
+            }
+        }
+    }
+    if let Some(t) = &args.tolerances {
+        spec.tolerances = Some((ToleranceSource::File(t.clone()), "--tolerances".into()));
+    }
+    if let Some(n) = &args.norm {
+        spec.norm = Some((parse_norm(n)?, "--norm".into()));
+    }
+    spec.floor = args.floor.map(|v| (v, "--floor".to_string()));
+    spec.min_clean_accuracy = args.min_clean_accuracy.map(|v| (v, "--min-clean-accuracy".to_string()));
+    spec.confidence = args.confidence.map(|v| (v, "--confidence".to_string()));
+    if let Some(f) = &args.forbid_into {
+        spec.forbid_into = Some((parse_class_list(f, "--forbid-into")?, "--forbid-into".into()));
+    }
+    if let Some(f) = &args.forbid_from {
+        spec.forbid_from = Some((parse_class_list(f, "--forbid-from")?, "--forbid-from".into()));
+    }
+    Ok(spec)
+}
+
+/// The exit outcome of a verdict.
+pub fn outcome_of(verdict: Verdict) -> Outcome {
+    match verdict {
+        Verdict::Pass => Outcome::Met,
+        Verdict::Fail => Outcome::NotMet,
+        Verdict::Undecided => Outcome::Undecided,
+        Verdict::None => Outcome::Finished,
+    }
+}
+
+/// The counterexample CSV beside a report: `R.json` → `R.counterexamples.csv`.
+pub fn counterexample_path(report: &Path) -> PathBuf {
+    let stem = report
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "report".into());
+    report.with_file_name(format!("{stem}.counterexamples.csv"))
+}
 
 /// Runs `ballast certify`.
-pub fn run(_args: Args) -> anyhow::Result<super::Outcome> {
-    anyhow::bail!("`ballast certify` is not built yet")
+pub fn run(args: Args) -> anyhow::Result<Outcome> {
+    // Validate everything before any work or output.
+    if !(args.budget.is_finite() && args.budget >= 0.0) {
+        bail!("--budget: {} is not allowed, expected seconds ≥ 0", args.budget);
+    }
+    if args.resume && args.report.is_none() {
+        bail!("--resume needs --report (the journal lives beside the report)");
+    }
+    let shard = args.shard.as_deref().map(parse_shard).transpose()?;
+    let model = load_model(&args.model, args.allow_large)?;
+    let data = load_data(&args.data, &model, &args.label_column, args.allow_large)?;
+    let file_spec = match &args.requirement {
+        Some(p) => RequirementSpec::from_file(p)?,
+        None => RequirementSpec::default(),
+    };
+    let requirement = file_spec.overridden_by(flags_spec(&args)?).resolve(&model)?;
+    if let Some(report) = &args.report {
+        check_writable_folder(report)?;
+        if args.resume && !journal_path(report).is_file() {
+            bail!("--resume: no journal at {} to continue from", journal_path(report).display());
+        }
+    }
+    let sources = Sources::from_files(&args.model, &args.data).context("reading inputs for their digests")?;
+    let options = CertifyOptions {
+        pipeline: PipelineOptions {
+            budget_seconds: args.budget,
+            seed: args.seed,
+            radius: args.radius,
+            attack: !args.no_attack,
+            ..PipelineOptions::default()
+        },
+        shard,
+        label_column: args.label_column.clone(),
+        command_line: std::env::args().collect(),
+    };
+    let journal = args.report.as_ref().map(|r| JournalOptions {
+        path: journal_path(r),
+        resume: args.resume,
+    });
+
+    let cancel = Arc::new(AtomicBool::new(false));
+    let signal = Arc::new(AtomicUsize::new(0));
+    for s in [signal_hook::consts::SIGINT, signal_hook::consts::SIGTERM] {
+        // A second signal while stopping ends the process at once.
+        signal_hook::flag::register_conditional_shutdown(s, 128 + s, Arc::clone(&cancel))?;
+        signal_hook::flag::register(s, Arc::clone(&cancel))?;
+        signal_hook::flag::register_usize(s, Arc::clone(&signal), s as usize)?;
+    }
+    let progress = TerminalProgress::new();
+    let mut report = certify_run(&model, &data, &requirement, &sources, &options, journal.as_ref(), &progress, &cancel)?;
+    let interrupted = signal.load(Ordering::SeqCst);
+
+    if let Some(path) = &args.report {
+        if report.summary.counterexample > 0 || report.samples.iter().any(|s| s.sweep.iter().any(|o| o.counterexample.is_some())) {
+            let csv = counterexample_path(path);
+            write_counterexamples(&report, &csv)?;
+            report.counterexamples = csv.file_name().map(|n| n.to_string_lossy().into_owned());
+        }
+        crate::atomic::write_file(path, report.to_json_string().as_bytes())
+            .with_context(|| format!("writing {}", path.display()))?;
+    }
+    if let Some(folder) = &args.sheet {
+        crate::sheet::write_sheet(&report, folder)?;
+    }
+    print_summary(&report);
+    if interrupted != 0 || !report.complete {
+        let s = if interrupted != 0 { interrupted as i32 } else { signal_hook::consts::SIGINT };
+        eprintln!(
+            "interrupted: {} of {} samples finished; continue with --resume",
+            report.samples.len(),
+            report.data.samples
+        );
+        return Ok(Outcome::Interrupted(s));
+    }
+    Ok(outcome_of(report.summary.verdict))
+}
+
+fn check_writable_folder(path: &Path) -> anyhow::Result<()> {
+    let folder = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    if !folder.is_dir() {
+        bail!("--report: the folder {} does not exist", folder.display());
+    }
+    Ok(())
+}
+
+/// Prints the summary lines of a report on standard output.
+pub fn print_summary(report: &Report) {
+    let s = &report.summary;
+    println!("samples: {}", s.samples);
+    println!("clean accuracy: {:.4}", s.clean_accuracy);
+    println!("certified accuracy (lower bound): {:.4}", s.certified_accuracy);
+    println!("empirical robust accuracy (upper bound): {:.4}", s.empirical_robust_accuracy);
+    if let Some(l) = s.certified_lower_bound {
+        println!("certified lower confidence bound: {l:.4}");
+    }
+    println!(
+        "certified {}, counterexample {}, misclassified {}, unresolved {}",
+        s.certified, s.counterexample, s.misclassified, s.unresolved
+    );
+    if report.sweep.len() > 1 {
+        for p in &report.sweep {
+            println!(
+                "  eps {}: certified {:.4}, empirical {:.4}, unresolved {}",
+                p.epsilon, p.summary.certified_accuracy, p.summary.empirical_robust_accuracy, p.summary.unresolved
+            );
+        }
+    }
+    println!("verdict: {}", s.verdict.name());
 }

@@ -9,10 +9,16 @@ use crate::data::{load_csv, DataOptions, Dataset};
 use crate::model::Model;
 use crate::threat::{Budget, Norm};
 
-/// Loads a model file (the JSON layout), refusing models above the parameter limit unless allowed.
+/// Loads a model file (the JSON layout, or ONNX when the name ends in `.onnx`), refusing models above the parameter limit unless allowed.
 pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
-    let model = Model::load(path)?;
-    let parameters = model.parameter_count();
+    let model = if crate::model::onnx::is_onnx_path(path) {
+        // ONNX is converted in memory; its input range is unbounded unless the file's metadata says so.
+        let max_bytes = if allow_large { u64::MAX } else { crate::limits::MAX_MODEL_FILE_BYTES };
+        crate::model::onnx::load_onnx(path, max_bytes, &Default::default())?
+    } else {
+        Model::load(path)?
+    };
+    let parameters = model.parameter_count().max(model.network_parameter_count());
     if !allow_large && parameters > crate::limits::MAX_PARAMETERS {
         bail!(
             "{}: the model has {parameters} parameters, above the limit of {} (use --allow-large)",
@@ -63,4 +69,45 @@ pub fn check_floor(floor: Option<f64>) -> anyhow::Result<Option<f64>> {
         }
     }
     Ok(floor)
+}
+
+/// What a `--eps` value names: epsilon values (one number, a comma list or a `start:stop:step` range)
+/// or a per-feature tolerance file (JSON or CSV; an existing path or a name ending in `.json`/`.csv`).
+#[derive(Debug, Clone, PartialEq)]
+pub enum EpsilonArgument {
+    /// One or more epsilon values (several = a sweep).
+    Values(Vec<f64>),
+    /// A per-feature tolerance file; the scale defaults to 1.
+    ToleranceFile(std::path::PathBuf),
+}
+
+/// Parses `--eps`: a number, a list `0.01,0.02,0.05`, a range `0.01:0.05:0.01`, or a tolerance file.
+pub fn parse_epsilon_argument(text: &str) -> anyhow::Result<EpsilonArgument> {
+    let trimmed = text.trim();
+    let looks_like_file = {
+        let lower = trimmed.to_ascii_lowercase();
+        lower.ends_with(".json") || lower.ends_with(".csv") || Path::new(trimmed).is_file()
+    };
+    if looks_like_file {
+        if !Path::new(trimmed).is_file() {
+            bail!("--eps: the tolerance file \"{trimmed}\" does not exist");
+        }
+        return Ok(EpsilonArgument::ToleranceFile(trimmed.into()));
+    }
+    Ok(EpsilonArgument::Values(crate::threat::requirement::parse_epsilon_list(
+        trimmed, "--eps",
+    )?))
+}
+
+/// Parses a comma-separated list of class names or indices (for `--forbid-into` / `--forbid-from`).
+pub fn parse_class_list(text: &str, flag: &str) -> anyhow::Result<Vec<String>> {
+    let list: Vec<String> = text
+        .split(',')
+        .map(|s| s.trim().to_string())
+        .filter(|s| !s.is_empty())
+        .collect();
+    if list.is_empty() {
+        bail!("{flag}: \"{text}\" names no class, expected a comma-separated list of class names or indices");
+    }
+    Ok(list)
 }

@@ -6,7 +6,11 @@ pub mod certify;
 pub mod common;
 pub mod demo;
 pub mod evaluate;
+pub mod export;
+pub mod generate_demo;
+pub mod import;
 pub mod inspect;
+pub mod merge;
 pub mod retrain;
 pub mod sheet;
 
@@ -57,6 +61,8 @@ pub struct Cli {
 pub enum Command {
     /// Run the whole job on the bundled pump-fleet demo.
     Demo(demo::Args),
+    /// Regenerate the bundled demo's data, files and models.
+    GenerateDemo(generate_demo::Args),
     /// Decide every sample and check the requirement's floor.
     Certify(certify::Args),
     /// Attacks only: search for counterexamples.
@@ -65,21 +71,31 @@ pub enum Command {
     Retrain(retrain::Args),
     /// Render Markdown and HTML from a saved report.
     Sheet(sheet::Args),
+    /// Combine the reports of `--shard K/N` runs into one report.
+    Merge(merge::Args),
     /// Show a model's layers, parameter count, input range and classes.
     Inspect(inspect::Args),
     /// Clean accuracy and confusion matrix of a model on a data set.
     Evaluate(evaluate::Args),
+    /// Convert an ONNX graph of fully connected layers into the model layout.
+    Import(import::Args),
+    /// Write a model as a plain ONNX graph.
+    Export(export::Args),
 }
 
 /// Runs a parsed command line.
 pub fn run(cli: Cli) -> anyhow::Result<Outcome> {
     match cli.command {
         Command::Demo(a) => demo::run(a),
+        Command::GenerateDemo(a) => generate_demo::run(a),
         Command::Certify(a) => certify::run(a),
         Command::Attack(a) => attack::run(a),
         Command::Retrain(a) => retrain::run(a),
         Command::Sheet(a) => sheet::run(a),
+        Command::Merge(a) => merge::run(a),
         Command::Inspect(a) => inspect::run(a),
         Command::Evaluate(a) => evaluate::run(a),
+        Command::Import(a) => import::run(a),
+        Command::Export(a) => export::run(a),
     }
 }

@@ -1,1 +1,23 @@
-//! The bundled demo scenario: an invented pump-fleet condition-monitoring data set and its models.
+//! The bundled demo scenario: an invented pump-fleet condition-monitoring data set, its seeded
+//! generator, its files and its models.
+//!
+//! [`scenario`] holds the tables (features, units, ranges, tolerances, classes), [`generator`] makes
+//! the data deterministically from a seed, [`files`] writes the data, tolerance and requirement files.
+//! Everything here is invented for the demo only; nothing here decides robustness itself.
+
+pub mod files;
+pub mod generator;
+pub mod scenario;
+
+/// Why a demo step failed.
+#[derive(Debug, thiserror::Error)]
+pub enum DemoError {
+    /// A file or folder could not be written or read.
+    #[error("{path}: {source}")]
+    Io {
+        /// The file or folder.
+        path: String,
+        /// What the system said.
+        source: std::io::Error,
+    },
+}

@@ -131,7 +131,7 @@ impl Model {
         let value: Value = serde_json::from_str(text).map_err(|e| ModelError::Syntax {
             line: e.line(),
             column: e.column(),
-            message: e.to_string(),
+            message: without_position(&e.to_string()),
         })?;
         if !value.is_object() {
             return Err(ModelError::Invalid {
@@ -172,19 +172,6 @@ impl Model {
                         format!("\"{n}\" appears twice"),
                     ));
                 }
-            }
-        }
-        let lower = expand_range(raw.input.lower.as_ref(), dim, f64::NEG_INFINITY, "input.lower")?;
-        let upper = expand_range(raw.input.upper.as_ref(), dim, f64::INFINITY, "input.upper")?;
-        for i in 0..dim {
-            if lower[i] > upper[i] {
-                return Err(invalid(
-                    "input",
-                    format!(
-                        "feature {i}: lower {} is above upper {}",
-                        lower[i], upper[i]
-                    ),
-                ));
             }
         }
         if raw.layers.is_empty() {
@@ -253,6 +240,27 @@ impl Model {
             };
             layers.push(layer);
         }
+        // `input.dim` is trusted only once a layer's actual size has confirmed it: the ranges below are
+        // allocated from it, so a relu-only model could otherwise claim any size in a tiny file.
+        if !layers.iter().any(|l| matches!(l, Layer::Dense { .. })) {
+            return Err(invalid(
+                "layers",
+                "has no dense layer, expected at least one".into(),
+            ));
+        }
+        let lower = expand_range(raw.input.lower.as_ref(), dim, f64::NEG_INFINITY, "input.lower")?;
+        let upper = expand_range(raw.input.upper.as_ref(), dim, f64::INFINITY, "input.upper")?;
+        for i in 0..dim {
+            if lower[i] > upper[i] {
+                return Err(invalid(
+                    "input",
+                    format!(
+                        "feature {i}: lower {} is above upper {}",
+                        lower[i], upper[i]
+                    ),
+                ));
+            }
+        }
         if let Some(classes) = &raw.classes {
             let expected = if width == 1 { 2 } else { width };
             if classes.len() != expected {
@@ -289,6 +297,49 @@ impl Model {
                 _ => 0,
             })
             .sum()
+    }
+
+    /// Number of weights and biases the folded canonical network holds (see
+    /// [`Model::network`](crate::model::Model::network)), counting also the intermediate maps built while
+    /// folding (a `normalize` layer of width `w` folds through a `w × w` map). Computed from the layer
+    /// shapes without building anything, so it can be checked against a limit first: a chain of dense
+    /// layers without a ReLU between them multiplies out and may hold far more numbers than the file.
+    /// Saturates at `usize::MAX`.
+    pub fn network_parameter_count(&self) -> usize {
+        let size = |out: usize, input: usize| out.saturating_mul(input).saturating_add(out);
+        let mut total = 0usize;
+        // (outputs, inputs) of the affine map being composed since the last ReLU
+        let mut pending: Option<(usize, usize)> = None;
+        let mut width = self.input.dim;
+        let mut last_was_relu = false;
+        for layer in &self.layers {
+            match layer {
+                Layer::Normalize { .. } => {
+                    total = total.saturating_add(size(width, width));
+                    let input = pending.map_or(width, |(_, input)| input);
+                    total = total.saturating_add(size(width, input));
+                    pending = Some((width, input));
+                    last_was_relu = false;
+                }
+                Layer::Dense { weights, .. } => {
+                    let input = pending.map_or(width, |(_, input)| input);
+                    width = weights.nrows();
+                    total = total.saturating_add(size(width, input));
+                    pending = Some((width, input));
+                    last_was_relu = false;
+                }
+                Layer::Relu => {
+                    if !last_was_relu && pending.take().is_none() {
+                        total = total.saturating_add(size(width, width));
+                    }
+                    last_was_relu = true;
+                }
+            }
+        }
+        if pending.is_none() {
+            total = total.saturating_add(size(width, width));
+        }
+        total
     }
 
     /// Size of the output layer (1 means a binary classifier on the sign of the logit).
@@ -392,6 +443,14 @@ fn invalid(place: &str, message: String) -> ModelError {
     ModelError::Invalid {
         place: place.to_owned(),
         message,
+    }
+}
+
+/// serde_json appends " at line L column C"; the error already carries those separately.
+fn without_position(message: &str) -> String {
+    match message.rfind(" at line ") {
+        Some(i) => message[..i].to_owned(),
+        None => message.to_owned(),
     }
 }
 

@@ -3,6 +3,7 @@
 
 pub mod layout;
 pub mod network;
+pub mod onnx;
 
 pub use layout::{InputSpec, Layer, Model, MODEL_FORMAT};
 pub use network::{predicted_class, Dense, Network, Normalization};

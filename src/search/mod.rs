@@ -1,1 +1,199 @@
-//! Complete verification by branch and bound over ReLU activation states.
+//! Complete verification by branch and bound over ReLU activation states (Bunel et al., 2018 and 2020).
+//!
+//! For a sample of class `y` and its forbidden classes, [`verify_sample`] decides whether some input of
+//! the region (ball ∩ input range) moves the answer into a forbidden class. It first bounds every margin
+//! `logit_y − logit_j` with [`crate::bound`] and runs the attack of [`crate::attack`]; each margin not
+//! proved then gets its own best-first tree ([`tree`]) that splits unstable ReLUs into active / inactive
+//! sub-domains, bounds each with the split constraints enforced, tries short attacks from the bound's
+//! minimiser, and solves fully fixed sub-domains as LPs ([`leaf`]). One tree per forbidden class keeps
+//! each tree's bound a single number and gives per-class exact minima in the optimality mode; the most
+//! dangerous class (lowest root bound) goes first, so a counterexample ends the search early.
+//!
+//! Guarantees: [`Verdict::Proved`] only when every margin has a sound lower bound above
+//! [`crate::bound::CERTIFY_TOLERANCE`] on every sub-domain; [`Verdict::Counterexample`] only with a point
+//! that [`crate::attack::validate`] accepted (plain forward pass, inside the region, predicted class
+//! forbidden). A search stopped by its deadline or node limit, or left with a sub-domain it can neither
+//! prove nor refute, says [`Verdict::Unresolved`] with the best sound lower bound found — never a guess.
+//! With restricted targets a point may beat the label with a forbidden class's logit while an allowed
+//! class wins: that is neither a proof nor a counterexample, and the search says unresolved. L2 regions
+//! are searched with the same trees but their leaves are bounded by a Lagrangian (sound, possibly
+//! loose), so they can end unresolved where an L-inf search would finish.
+//!
+//! [`milp`] encodes the same question as a big-M mixed-integer program for cross-checks; the search never
+//! relies on it.
+
+mod branching;
+mod leaf;
+pub mod milp;
+mod runner;
+mod solver;
+mod tree;
+
+use std::time::Instant;
+
+pub use runner::{verify_batch, verify_sample};
+
+use crate::attack::{AttackError, AttackSettings, Counterexample};
+use crate::bound::{BoundError, Method};
+use crate::threat::Region;
+
+/// How to search one sample.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SearchSettings {
+    /// Give up (unresolved) at this instant.
+    pub deadline: Option<Instant>,
+    /// Give up (unresolved) after bounding this many sub-domains for one sample.
+    pub node_limit: usize,
+    /// Run every tree to optimality and report the exact minimum margin per class instead of stopping at
+    /// the first proof or counterexample.
+    pub optimality: bool,
+    /// Seed of the attacks (per sample in [`verify_batch`], see [`crate::attack::sample_seed`]).
+    pub seed: u64,
+    /// Bounding method for the sub-domains (see [`crate::bound::Method`]).
+    pub bound_method: Method,
+    /// The attack run before any tree (`None` to skip); its deadline is replaced by [`Self::deadline`].
+    pub root_attack: Option<AttackSettings>,
+    /// PGD steps from each processed node's bound minimiser (0 = no attacks inside the trees).
+    pub node_attack_steps: usize,
+    /// Units whose children are bounded before choosing one to split (1 = the best-scored unit).
+    pub branching_candidates: usize,
+    /// In the optimality mode, a sub-domain is dropped once its bound is within this of the best margin
+    /// achieved (absolute, logit units).
+    pub optimality_gap: f64,
+}
+
+impl Default for SearchSettings {
+    /// No deadline, 20 000 sub-domains, decision mode, seed 0, linear bounds, the default attack first,
+    /// 10 PGD steps per node, plain best-scored branching, optimality gap 1e-9.
+    fn default() -> Self {
+        SearchSettings {
+            deadline: None,
+            node_limit: 20_000,
+            optimality: false,
+            seed: 0,
+            bound_method: Method::Linear,
+            root_attack: Some(AttackSettings::default()),
+            node_attack_steps: 10,
+            branching_candidates: 1,
+            optimality_gap: 1e-9,
+        }
+    }
+}
+
+/// Why a search ended without a verdict.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum UnresolvedReason {
+    /// The deadline passed.
+    Deadline,
+    /// The node limit was reached.
+    NodeLimit,
+    /// A sub-domain's bound stayed at or below the tolerance and its minimiser is not a counterexample
+    /// (a margin within the tolerance of zero, a tie, an allowed class winning, or a loose L2 leaf).
+    Undecided {
+        /// The forbidden class of that sub-domain.
+        target: usize,
+    },
+}
+
+/// The answer for one sample.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Verdict {
+    /// No input of the region moves the answer into a forbidden class.
+    Proved {
+        /// Sound lower bound on the smallest margin over the forbidden classes (> the tolerance).
+        min_margin_lower: f64,
+    },
+    /// A validated input of the region that moves the answer into a forbidden class.
+    Counterexample(Counterexample),
+    /// Neither within the budget.
+    Unresolved {
+        /// Best sound lower bound on the smallest margin found.
+        best_lower: f64,
+        /// Why the search stopped.
+        reason: UnresolvedReason,
+    },
+}
+
+/// What the search learnt about one forbidden class.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TargetSummary {
+    /// The forbidden class `j`.
+    pub target: usize,
+    /// Sound lower bound on `min (logit_label − logit_j)` over the region.
+    pub lower: f64,
+    /// Smallest `logit_label − logit_j` reached at a region point seen (an upper bound on the minimum;
+    /// `+∞` when no point was evaluated).
+    pub upper: f64,
+    /// Where `upper` was reached.
+    pub upper_point: Option<Vec<f64>>,
+    /// True when the tree closed every sub-domain (in the optimality mode: `upper` is the minimum, up to
+    /// the optimality gap and the LP's rounding).
+    pub finished: bool,
+    /// Sub-domains bounded for this class (the root counts once).
+    pub nodes: usize,
+    /// Sub-domains solved as LPs.
+    pub leaves: usize,
+}
+
+/// The result of searching one sample.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SearchOutcome {
+    /// The verdict.
+    pub verdict: Verdict,
+    /// Per forbidden class, in the order given (classes proved at the root have `nodes == 1`).
+    pub targets: Vec<TargetSummary>,
+    /// Sub-domains bounded in total.
+    pub nodes: usize,
+    /// Wall time in seconds.
+    pub seconds: f64,
+}
+
+impl SearchOutcome {
+    /// The exact minimum of `logit_label − logit_target` when an optimality search finished for that
+    /// class (within the optimality gap; `None` otherwise).
+    pub fn minimum_margin(&self, target: usize) -> Option<f64> {
+        self.targets
+            .iter()
+            .find(|t| t.target == target && t.finished && t.upper.is_finite())
+            .map(|t| t.upper)
+    }
+}
+
+/// One sample for [`verify_batch`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct SearchProblem {
+    /// The sample's index in its data set (its attack seed is derived from it).
+    pub index: usize,
+    /// Ball ∩ input range around the sample.
+    pub region: Region,
+    /// The sample's class (the model must predict it at the centre for the search to be meaningful).
+    pub label: usize,
+    /// Forbidden classes (e.g. from [`crate::threat::Targets::forbidden_for`]).
+    pub targets: Vec<usize>,
+}
+
+/// Why a search could not run (bad input or a solver failure; outcomes are never errors).
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum SearchError {
+    /// The bound module rejected the problem.
+    #[error("bounds: {0}")]
+    Bound(#[from] BoundError),
+    /// The attack module rejected the problem.
+    #[error("attack: {0}")]
+    Attack(#[from] AttackError),
+    /// The LP / MILP solver failed.
+    #[error("LP solver failed: {message}")]
+    Solver {
+        /// What the solver said.
+        message: String,
+    },
+    /// The settings are not usable.
+    #[error("search settings: {0}")]
+    Settings(String),
+    /// The region's norm is not supported by this entry point.
+    #[error("{0}")]
+    Unsupported(String),
+    /// An internal consistency check failed (a bug; the search refuses to guess).
+    #[error("internal error in the search: {0}")]
+    Internal(String),
+}

@@ -1,0 +1,421 @@
+//! The attack runner: owns the schedule of starts and runs, the step-size schedule, seeds, the time
+//! limit and the stop on the first validated counterexample, for one sample ([`attack_sample`]) or many
+//! in parallel ([`attack_batch`]).
+//!
+//! Schedule per sample (each PGD run is `steps` gradient steps of [`super::step::descent_step`] on the
+//! margin loss of Carlini & Wagner, 2017):
+//! 1. the clean point itself (already in a forbidden class → a counterexample at distance 0);
+//! 2. the FGSM point (Goodfellow et al., 2015), when `fgsm_first`;
+//! 3. one untargeted PGD run (Madry et al., 2018) from each caller-given extra start;
+//! 4. `restarts` untargeted PGD runs: the first from the centre, the others from random points;
+//! 5. when `targeted` and more than one class is forbidden: one PGD run from the centre against each
+//!    forbidden class, most dangerous (largest clean logit) first.
+//!
+//! Within a run the step starts at `step_fraction` of the radius and is halved, returning to the best
+//! point of the run, after `patience` steps without progress. Everything is deterministic for a given
+//! `sample_seed` (ChaCha8). Guarantee: a [`AttackOutcome::Found`] always holds a point that
+//! [`validate`] accepted; a search that ends without one says [`AttackOutcome::NotFound`] and why it
+//! stopped — it never claims the sample is robust.
+
+use std::time::Instant;
+
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+
+use super::counterexample::{forbidden_margin, validate, Counterexample};
+use super::gradient::MarginGradient;
+use super::step::{descent_step, fgsm_point, random_start};
+use super::AttackError;
+use crate::model::{predicted_class, Network};
+use crate::threat::Region;
+
+/// How hard and how to search.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AttackSettings {
+    /// Gradient steps per PGD run.
+    pub steps: usize,
+    /// Untargeted PGD runs (the first from the centre, the others from random starts).
+    pub restarts: usize,
+    /// First step size as a fraction of the ball's radius (in the region's metric), in (0, 1].
+    pub step_fraction: f64,
+    /// Steps without progress after which the step size is halved (≥ 1).
+    pub patience: usize,
+    /// Seed from which every sample's own seed is derived ([`sample_seed`]).
+    pub seed: u64,
+    /// Stop searching (and report [`StopReason::DeadlineReached`]) at this instant.
+    pub deadline: Option<Instant>,
+    /// Try the FGSM point before the PGD runs.
+    pub fgsm_first: bool,
+    /// After the untargeted runs, run PGD against each forbidden class in turn.
+    pub targeted: bool,
+    /// Stop at the first validated counterexample (off only to time full budgets).
+    pub stop_at_first: bool,
+}
+
+impl Default for AttackSettings {
+    /// 100 steps, 5 restarts, first step a quarter of the radius, halved after 10 steps without
+    /// progress, FGSM first, targeted runs, stop at the first counterexample, no time limit, seed 0.
+    fn default() -> Self {
+        AttackSettings {
+            steps: 100,
+            restarts: 5,
+            step_fraction: 0.25,
+            patience: 10,
+            seed: 0,
+            deadline: None,
+            fgsm_first: true,
+            targeted: true,
+            stop_at_first: true,
+        }
+    }
+}
+
+impl AttackSettings {
+    /// Checks the settings (`step_fraction` in (0, 1], `patience` ≥ 1).
+    pub fn check(&self) -> Result<(), AttackError> {
+        if !(self.step_fraction > 0.0 && self.step_fraction <= 1.0) {
+            return Err(AttackError::Settings(format!(
+                "step fraction {} is not allowed, expected a number in (0, 1]",
+                self.step_fraction
+            )));
+        }
+        if self.patience == 0 {
+            return Err(AttackError::Settings("patience must be at least 1 step".into()));
+        }
+        Ok(())
+    }
+}
+
+/// Why a search ended without a counterexample.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum StopReason {
+    /// Every planned run finished.
+    BudgetSpent,
+    /// The deadline passed first.
+    DeadlineReached,
+}
+
+/// What the attack found for one sample.
+#[derive(Debug, Clone, PartialEq)]
+pub enum AttackOutcome {
+    /// A validated counterexample.
+    Found(Counterexample),
+    /// No counterexample was found (which proves nothing about robustness).
+    NotFound {
+        /// Smallest forbidden margin (`logit[label] − best forbidden logit`) seen at any point tried;
+        /// +∞ when no class is forbidden.
+        best_margin: f64,
+        /// The point where it was seen (inside the region).
+        best_input: Vec<f64>,
+        /// Why the search ended.
+        stop: StopReason,
+    },
+}
+
+impl AttackOutcome {
+    /// The counterexample, if one was found.
+    pub fn counterexample(&self) -> Option<&Counterexample> {
+        match self {
+            AttackOutcome::Found(c) => Some(c),
+            AttackOutcome::NotFound { .. } => None,
+        }
+    }
+}
+
+/// One sample to attack in a batch.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AttackProblem {
+    /// The sample's index in its data set (its seed is derived from it).
+    pub index: usize,
+    /// Ball ∩ input range around the sample.
+    pub region: Region,
+    /// The sample's class.
+    pub label: usize,
+    /// Classes the answer must not move into (e.g. from [`crate::threat::Targets::forbidden_for`]).
+    pub forbidden: Vec<usize>,
+    /// Extra starting points (projected into the region before use).
+    pub extra_starts: Vec<Vec<f64>>,
+}
+
+/// The seed of sample `index` under the run seed `seed` (SplitMix64 mixing, so neighbouring indices
+/// get unrelated streams).
+pub fn sample_seed(seed: u64, index: usize) -> u64 {
+    split_mix(seed ^ split_mix(index as u64 ^ 0x5851_f42d_4c95_7f2d))
+}
+
+fn split_mix(value: u64) -> u64 {
+    let mut z = value.wrapping_add(0x9e37_79b9_7f4a_7c15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+    z ^ (z >> 31)
+}
+
+fn check_problem(
+    network: &Network,
+    region: &Region,
+    label: usize,
+    forbidden: &[usize],
+    extra_starts: &[Vec<f64>],
+) -> Result<(), AttackError> {
+    let dim = network.input_dim();
+    let classes = network.output_dim();
+    if region.dim() != dim || region.radii.len() != dim {
+        return Err(AttackError::Dimension {
+            what: "region".into(),
+            found: region.dim(),
+            expected: dim,
+        });
+    }
+    if let Some(start) = extra_starts.iter().find(|s| s.len() != dim) {
+        return Err(AttackError::Dimension {
+            what: "extra starting point".into(),
+            found: start.len(),
+            expected: dim,
+        });
+    }
+    if label >= classes {
+        return Err(AttackError::Class { class: label, classes });
+    }
+    if let Some(&class) = forbidden.iter().find(|&&j| j >= classes) {
+        return Err(AttackError::Class { class, classes });
+    }
+    Ok(())
+}
+
+/// Attacks one sample of class `label` inside `region`, counting only moves into `forbidden` classes.
+/// `network` must have at least two logits (use [`crate::model::Model::classifier`]).
+pub fn attack_sample(
+    network: &Network,
+    region: &Region,
+    label: usize,
+    forbidden: &[usize],
+    settings: &AttackSettings,
+    sample_seed: u64,
+    extra_starts: &[Vec<f64>],
+) -> Result<AttackOutcome, AttackError> {
+    settings.check()?;
+    check_problem(network, region, label, forbidden, extra_starts)?;
+    Ok(SampleSearch::new(network, region, label, forbidden, settings).run(sample_seed, extra_starts))
+}
+
+/// Attacks every problem, in parallel over samples (rayon); sample `p` uses
+/// `sample_seed(settings.seed, p.index)`, so results do not depend on the order or the thread count.
+pub fn attack_batch(
+    network: &Network,
+    problems: &[AttackProblem],
+    settings: &AttackSettings,
+) -> Result<Vec<AttackOutcome>, AttackError> {
+    settings.check()?;
+    for p in problems {
+        check_problem(network, &p.region, p.label, &p.forbidden, &p.extra_starts)?;
+    }
+    Ok(problems
+        .par_iter()
+        .map(|p| {
+            SampleSearch::new(network, &p.region, p.label, &p.forbidden, settings)
+                .run(sample_seed(settings.seed, p.index), &p.extra_starts)
+        })
+        .collect())
+}
+
+/// Which margin a run descends.
+#[derive(Debug, Clone, Copy)]
+enum Loss {
+    /// Against the currently strongest forbidden class.
+    Untargeted,
+    /// Against one forbidden class.
+    Targeted(usize),
+}
+
+/// Whether the schedule goes on.
+enum Control {
+    Continue,
+    Stop,
+}
+
+struct SampleSearch<'a> {
+    network: &'a Network,
+    region: &'a Region,
+    label: usize,
+    forbidden: &'a [usize],
+    settings: &'a AttackSettings,
+    buffers: MarginGradient<'a>,
+    gradient: Vec<f64>,
+    best_margin: f64,
+    best_input: Vec<f64>,
+    found: Option<Counterexample>,
+    deadline_hit: bool,
+}
+
+impl<'a> SampleSearch<'a> {
+    fn new(
+        network: &'a Network,
+        region: &'a Region,
+        label: usize,
+        forbidden: &'a [usize],
+        settings: &'a AttackSettings,
+    ) -> SampleSearch<'a> {
+        SampleSearch {
+            network,
+            region,
+            label,
+            forbidden,
+            settings,
+            buffers: MarginGradient::new(network),
+            gradient: vec![0.0; network.input_dim()],
+            best_margin: f64::INFINITY,
+            best_input: region.center.clone(),
+            found: None,
+            deadline_hit: false,
+        }
+    }
+
+    fn run(mut self, sample_seed: u64, extra_starts: &[Vec<f64>]) -> AttackOutcome {
+        if !self.forbidden.is_empty() {
+            let _ = self.schedule(sample_seed, extra_starts);
+        }
+        match self.found {
+            Some(c) => AttackOutcome::Found(c),
+            None => AttackOutcome::NotFound {
+                best_margin: self.best_margin,
+                best_input: self.best_input,
+                stop: if self.deadline_hit {
+                    StopReason::DeadlineReached
+                } else {
+                    StopReason::BudgetSpent
+                },
+            },
+        }
+    }
+
+    fn schedule(&mut self, sample_seed: u64, extra_starts: &[Vec<f64>]) -> Control {
+        let center = self.region.center.clone();
+        if self.past_deadline() {
+            return Control::Stop;
+        }
+        self.observe(&center, Loss::Untargeted);
+        if self.found.is_some() {
+            return Control::Stop; // already in a forbidden class without any change
+        }
+        let clean_logits: Vec<f64> = self.network.forward(&center).iter().copied().collect();
+        if self.settings.fgsm_first {
+            let mut x = vec![0.0; center.len()];
+            fgsm_point(self.region, &self.gradient, &mut x);
+            self.observe(&x, Loss::Untargeted);
+            if let Control::Stop = self.after_point() {
+                return Control::Stop;
+            }
+        }
+        for start in extra_starts {
+            if let Control::Stop = self.pgd_run(start, Loss::Untargeted) {
+                return Control::Stop;
+            }
+        }
+        let mut rng = ChaCha8Rng::seed_from_u64(sample_seed);
+        let mut start = center.clone();
+        for restart in 0..self.settings.restarts {
+            if restart > 0 {
+                random_start(self.region, &mut rng, &mut start);
+            }
+            if let Control::Stop = self.pgd_run(&start, Loss::Untargeted) {
+                return Control::Stop;
+            }
+        }
+        if self.settings.targeted && self.forbidden.len() > 1 {
+            let mut order = self.forbidden.to_vec();
+            order.sort_by(|a, b| clean_logits[*b].total_cmp(&clean_logits[*a]).then(a.cmp(b)));
+            for target in order {
+                if let Control::Stop = self.pgd_run(&center, Loss::Targeted(target)) {
+                    return Control::Stop;
+                }
+            }
+        }
+        Control::Continue
+    }
+
+    fn past_deadline(&mut self) -> bool {
+        if let Some(deadline) = self.settings.deadline {
+            if Instant::now() >= deadline {
+                self.deadline_hit = true;
+            }
+        }
+        self.deadline_hit
+    }
+
+    /// Stop after a point when a counterexample is in hand (and early exit is on) or time is up.
+    fn after_point(&mut self) -> Control {
+        if (self.found.is_some() && self.settings.stop_at_first) || self.past_deadline() {
+            Control::Stop
+        } else {
+            Control::Continue
+        }
+    }
+
+    /// Forward pass at `x` (which must lie in the region): keeps the best margin, validates a candidate
+    /// with a plain forward pass, and leaves the gradient of the run's loss in `self.gradient`. Returns
+    /// the loss margin.
+    fn observe(&mut self, x: &[f64], loss: Loss) -> f64 {
+        let logits = self.buffers.logits(x);
+        let margin = forbidden_margin(logits, self.label, self.forbidden);
+        let predicted = predicted_class(logits);
+        let target = match loss {
+            Loss::Targeted(t) => t,
+            Loss::Untargeted => {
+                let mut best = self.forbidden[0];
+                for &j in self.forbidden {
+                    if logits[j] > logits[best] {
+                        best = j;
+                    }
+                }
+                best
+            }
+        };
+        if margin < self.best_margin {
+            self.best_margin = margin;
+            self.best_input.copy_from_slice(x);
+        }
+        if self.found.is_none() && predicted != self.label && self.forbidden.contains(&predicted) {
+            self.found = validate(self.network, self.region, self.label, self.forbidden, x);
+        }
+        self.buffers.gradient_at_last(self.label, target, &mut self.gradient)
+    }
+
+    fn pgd_run(&mut self, start: &[f64], loss: Loss) -> Control {
+        let mut x = start.to_vec();
+        self.region.project(&mut x);
+        let mut step = self.settings.step_fraction;
+        let mut best_loss = f64::INFINITY;
+        let mut best_x = x.clone();
+        let mut best_gradient = vec![0.0; x.len()];
+        let mut stalled = 0;
+        for _ in 0..self.settings.steps {
+            if self.past_deadline() {
+                return Control::Stop;
+            }
+            let loss_margin = self.observe(&x, loss);
+            if let Control::Stop = self.after_point() {
+                return Control::Stop;
+            }
+            if loss_margin < best_loss {
+                best_loss = loss_margin;
+                best_x.copy_from_slice(&x);
+                best_gradient.copy_from_slice(&self.gradient);
+                stalled = 0;
+            } else {
+                stalled += 1;
+                if stalled >= self.settings.patience {
+                    step *= 0.5;
+                    x.copy_from_slice(&best_x);
+                    self.gradient.copy_from_slice(&best_gradient);
+                    stalled = 0;
+                }
+            }
+            descent_step(self.region, &mut x, &self.gradient, step);
+        }
+        if self.settings.steps > 0 {
+            self.observe(&x, loss);
+        }
+        self.after_point()
+    }
+}

@@ -1,0 +1,49 @@
+//! The seam between the pipeline and complete verification (branch and bound, [`crate::search`]).
+//!
+//! It turns the search's outcome into three cases and never more: a completed proof, a candidate
+//! counterexample (which the pipeline re-validates before recording it), or still open. A search that
+//! stops on its deadline is open, never robust.
+
+use std::time::Instant;
+
+use super::CertifyError;
+use crate::search::{self, SearchSettings, Verdict};
+use crate::model::Network;
+use crate::threat::Region;
+
+/// What the search established within its deadline.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Found {
+    /// Every branch was closed by a sound bound: no forbidden class is reachable.
+    Proved,
+    /// A candidate counterexample (to be re-validated by the caller).
+    Counterexample(Vec<f64>),
+    /// The deadline or node limit came first, or a sub-domain stayed undecided.
+    Open,
+}
+
+/// Runs branch and bound on one sample until `deadline`; `seed` is the sample's own attack seed.
+pub fn run(
+    network: &Network,
+    region: &Region,
+    label: usize,
+    forbidden: &[usize],
+    deadline: Instant,
+    seed: u64,
+    index: usize,
+) -> Result<Found, CertifyError> {
+    let settings = SearchSettings {
+        deadline: Some(deadline),
+        seed,
+        ..SearchSettings::default()
+    };
+    let outcome = search::verify_sample(network, region, label, forbidden, &settings).map_err(|e| CertifyError::Search {
+        index,
+        message: e.to_string(),
+    })?;
+    Ok(match outcome.verdict {
+        Verdict::Proved { .. } => Found::Proved,
+        Verdict::Counterexample(c) => Found::Counterexample(c.input),
+        Verdict::Unresolved { .. } => Found::Open,
+    })
+}

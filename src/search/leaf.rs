@@ -1,0 +1,299 @@
+//! Leaves of the branch and bound: sub-domains on which every hidden ReLU has a known state.
+//!
+//! With every unit fixed (by a split or because its sound bounds do not straddle zero) the network is an
+//! affine map on the sub-domain, and the sub-domain is the region cut by one half-space per split unit
+//! (`z_i(x) ≥ 0` for active, `≤ 0` for inactive). The minimum margin there is a linear program.
+//!
+//! Soundness does not rest on the LP solver's objective value. The solver computes the Lagrange
+//! multipliers `λ ≥ 0` of the split rows (the dual LP over the region's bounding box); the bound returned
+//! is the Lagrangian `min_{x ∈ region} (g − Sᵀλ)·x + tᵀλ + g₀`, evaluated by
+//! [`crate::bound::concretise::minimum`]. By weak duality it is a lower bound on the margin over the
+//! sub-domain for **every** `λ ≥ 0`, so a solver inaccuracy can only loosen it. For an L-inf region the
+//! dual LP is exact and the bound equals the minimum (up to rounding); for L2 it is sound but may be
+//! loose. The primal LP gives the minimising input, used to look for counterexamples and, in the
+//! optimality mode, as an achieved margin. Nothing here reports a counterexample: callers validate the
+//! point with a plain forward pass.
+
+use nalgebra::{DMatrix, DVector};
+
+use super::solver::{minimise, LinearProgram, LpOutcome, Row};
+use super::SearchError;
+use crate::bound::{concretise, LayerBounds, ReluSplit, SplitState};
+use crate::model::Network;
+use crate::threat::Region;
+
+/// Upper limit on each Lagrange multiplier (keeps the dual LP bounded when the sub-domain is empty; any
+/// cap keeps the bound sound, a cap that binds only makes it looser).
+const MULTIPLIER_CAP: f64 = 1e6;
+
+/// The margin `logit_label − logit_target` as an affine function on a fixed activation pattern,
+/// together with the half-spaces `S x ≥ t` that define the pattern's sub-domain.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct AffinePiece {
+    /// Margin coefficients `g` (one per input feature).
+    pub gradient: Vec<f64>,
+    /// Margin constant `g₀`.
+    pub constant: f64,
+    /// Rows of `S` (one per constrained unit).
+    pub rows: Vec<Vec<f64>>,
+    /// Right-hand sides `t`.
+    pub right_hand_sides: Vec<f64>,
+}
+
+/// The state of every hidden unit when it is determined: by the split, else by the sound bounds.
+/// `None` when some free unit is unstable (not a leaf).
+pub(crate) fn fixed_pattern(splits: &SplitState, bounds: &[LayerBounds]) -> Option<Vec<Vec<bool>>> {
+    let mut pattern = Vec::with_capacity(splits.layers.len());
+    for (layer_splits, layer_bounds) in splits.layers.iter().zip(bounds) {
+        let mut active = Vec::with_capacity(layer_splits.len());
+        for (i, split) in layer_splits.iter().enumerate() {
+            active.push(match split {
+                ReluSplit::Active => true,
+                ReluSplit::Inactive => false,
+                ReluSplit::Free if layer_bounds.lower[i] >= 0.0 => true,
+                ReluSplit::Free if layer_bounds.upper[i] <= 0.0 => false,
+                ReluSplit::Free => return None,
+            });
+        }
+        pattern.push(active);
+    }
+    Some(pattern)
+}
+
+/// The affine piece of `network` for the activation `pattern`; a half-space is added for every unit
+/// with `constrained[k][i]` (the split units; units fixed by their bounds need none).
+pub(crate) fn affine_piece(
+    network: &Network,
+    pattern: &[Vec<bool>],
+    constrained: &dyn Fn(usize, usize) -> bool,
+    label: usize,
+    target: usize,
+) -> AffinePiece {
+    let last = network.layers.len() - 1;
+    let mut linear: DMatrix<f64> = network.layers[0].weights.clone();
+    let mut offset: DVector<f64> = network.layers[0].bias.clone();
+    let mut rows = Vec::new();
+    let mut right_hand_sides = Vec::new();
+    for k in 0..last {
+        for i in 0..linear.nrows() {
+            if constrained(k, i) {
+                // active: z_i = A_i x + a_i ≥ 0  ⇔  A_i x ≥ −a_i; inactive: −A_i x ≥ a_i.
+                let sign = if pattern[k][i] { 1.0 } else { -1.0 };
+                rows.push(linear.row(i).iter().map(|v| sign * v).collect());
+                right_hand_sides.push(-sign * offset[i]);
+            }
+            if !pattern[k][i] {
+                linear.row_mut(i).fill(0.0);
+                offset[i] = 0.0;
+            }
+        }
+        let next = &network.layers[k + 1];
+        linear = &next.weights * &linear;
+        offset = &next.weights * &offset + &next.bias;
+    }
+    let gradient = (0..linear.ncols())
+        .map(|c| linear[(label, c)] - linear[(target, c)])
+        .collect();
+    AffinePiece {
+        gradient,
+        constant: offset[label] - offset[target],
+        rows,
+        right_hand_sides,
+    }
+}
+
+/// The leaf piece for a node: its pattern and one half-space per split unit.
+pub(crate) fn leaf_piece(
+    network: &Network,
+    splits: &SplitState,
+    bounds: &[LayerBounds],
+    label: usize,
+    target: usize,
+) -> Option<AffinePiece> {
+    let pattern = fixed_pattern(splits, bounds)?;
+    let constrained = |k: usize, i: usize| splits.layers[k][i] != ReluSplit::Free;
+    Some(affine_piece(network, &pattern, &constrained, label, target))
+}
+
+/// What solving a leaf gave.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct LeafSolution {
+    /// Sound lower bound on the margin over the sub-domain (`+∞` when the Lagrangian proves it empty
+    /// beyond any margin of interest).
+    pub lower: f64,
+    /// The primal minimiser moved into the region, when requested and the sub-domain is not empty.
+    pub point: Option<Vec<f64>>,
+}
+
+/// The sound Lagrangian bound `min_{x ∈ region} (g − Sᵀλ)·x + tᵀλ + g₀` for the given multipliers
+/// (clamped to `[0, cap]` first, so any input is safe).
+pub(crate) fn lagrangian_bound(region: &Region, piece: &AffinePiece, multipliers: &[f64]) -> f64 {
+    let mut coefficients = piece.gradient.clone();
+    let mut constant = piece.constant;
+    for ((row, t), lambda) in piece
+        .rows
+        .iter()
+        .zip(&piece.right_hand_sides)
+        .zip(multipliers)
+    {
+        let lambda = lambda.clamp(0.0, MULTIPLIER_CAP);
+        if lambda == 0.0 {
+            continue;
+        }
+        for (c, s) in coefficients.iter_mut().zip(row) {
+            *c -= lambda * s;
+        }
+        constant += lambda * t;
+    }
+    concretise::minimum(region, &coefficients) + constant
+}
+
+/// Multipliers of the split rows from the dual LP over the region's bounding box:
+/// `max tᵀλ + Σ (lᵢ μᵢ − uᵢ νᵢ)` s.t. `Sᵀλ + μ − ν = g`, `0 ≤ λ ≤ cap`, `μ, ν ≥ 0`.
+fn dual_multipliers(region: &Region, piece: &AffinePiece) -> Result<Vec<f64>, SearchError> {
+    let rows = piece.rows.len();
+    if rows == 0 {
+        return Ok(Vec::new());
+    }
+    let n = piece.gradient.len();
+    let mut program = LinearProgram::default();
+    // maximise ⇔ minimise the negation
+    for t in &piece.right_hand_sides {
+        program.add_variable(-t, 0.0, MULTIPLIER_CAP);
+    }
+    let mut mu = Vec::with_capacity(n);
+    let mut nu = Vec::with_capacity(n);
+    for i in 0..n {
+        mu.push(program.add_variable(-region.lower[i], 0.0, f64::INFINITY));
+        nu.push(program.add_variable(region.upper[i], 0.0, f64::INFINITY));
+    }
+    for i in 0..n {
+        let mut coefficients: Vec<(usize, f64)> = (0..rows)
+            .filter(|r| piece.rows[*r][i] != 0.0)
+            .map(|r| (r, piece.rows[r][i]))
+            .collect();
+        coefficients.push((mu[i], 1.0));
+        coefficients.push((nu[i], -1.0));
+        program.rows.push(Row {
+            coefficients,
+            lower: piece.gradient[i],
+            upper: piece.gradient[i],
+        });
+    }
+    match minimise(&program, None)? {
+        LpOutcome::Optimal { point, .. } => Ok(point[..rows].to_vec()),
+        // The dual is feasible (λ = 0 with μ − ν = g) and bounded by the cap; fall back to λ = 0.
+        LpOutcome::Infeasible | LpOutcome::Unbounded => Ok(vec![0.0; rows]),
+    }
+}
+
+/// The primal LP `min g·x` s.t. `S x ≥ t` over the region's bounding box; the minimiser is moved into
+/// the region. `None` when the solver finds the sub-domain empty.
+pub(crate) fn primal_point(
+    region: &Region,
+    piece: &AffinePiece,
+) -> Result<Option<Vec<f64>>, SearchError> {
+    let n = piece.gradient.len();
+    let mut program = LinearProgram::default();
+    for i in 0..n {
+        program.add_variable(piece.gradient[i], region.lower[i], region.upper[i]);
+    }
+    for (row, t) in piece.rows.iter().zip(&piece.right_hand_sides) {
+        program.rows.push(Row {
+            coefficients: row
+                .iter()
+                .enumerate()
+                .filter(|(_, v)| **v != 0.0)
+                .map(|(i, v)| (i, *v))
+                .collect(),
+            lower: *t,
+            upper: f64::INFINITY,
+        });
+    }
+    match minimise(&program, None)? {
+        LpOutcome::Optimal { mut point, .. } => {
+            region.project(&mut point);
+            Ok(Some(point))
+        }
+        LpOutcome::Infeasible | LpOutcome::Unbounded => Ok(None),
+    }
+}
+
+/// Solves a leaf: the sound Lagrangian bound, and the primal minimiser when `want_point` is true or
+/// the bound does not exceed `point_threshold` (a point is only worth computing where it could matter).
+pub(crate) fn solve_leaf(
+    region: &Region,
+    piece: &AffinePiece,
+    point_threshold: f64,
+) -> Result<LeafSolution, SearchError> {
+    let multipliers = dual_multipliers(region, piece)?;
+    let lower = lagrangian_bound(region, piece, &multipliers);
+    let point = if lower <= point_threshold {
+        primal_point(region, piece)?
+    } else {
+        None
+    };
+    Ok(LeafSolution { lower, point })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::Dense;
+    use crate::threat::{Budget, Norm};
+
+    fn tiny() -> Network {
+        // 2 inputs, 2 hidden units, 2 logits.
+        Network::new(vec![
+            Dense {
+                weights: DMatrix::from_row_slice(2, 2, &[1.0, -1.0, 0.5, 1.0]),
+                bias: DVector::from_vec(vec![0.1, -0.2]),
+            },
+            Dense {
+                weights: DMatrix::from_row_slice(2, 2, &[1.0, -2.0, -1.0, 1.0]),
+                bias: DVector::from_vec(vec![0.3, 0.0]),
+            },
+        ])
+    }
+
+    #[test]
+    fn affine_piece_matches_the_forward_pass_where_the_pattern_holds() {
+        let network = tiny();
+        for x in [[0.3, -0.4], [-0.5, 0.2], [0.9, 0.9], [-0.2, -0.9]] {
+            let z = network.pre_activations(&x);
+            let pattern = vec![z[0].iter().map(|v| *v >= 0.0).collect::<Vec<_>>()];
+            let piece = affine_piece(&network, &pattern, &|_, _| true, 0, 1);
+            let logits = network.forward(&x);
+            let margin: f64 = piece.gradient.iter().zip(&x).map(|(g, v)| g * v).sum::<f64>()
+                + piece.constant;
+            assert!((margin - (logits[0] - logits[1])).abs() < 1e-12);
+            // the point satisfies its own pattern's half-spaces
+            for (row, t) in piece.rows.iter().zip(&piece.right_hand_sides) {
+                let s: f64 = row.iter().zip(&x).map(|(a, b)| a * b).sum();
+                assert!(s >= t - 1e-12);
+            }
+        }
+    }
+
+    #[test]
+    fn leaf_bound_equals_the_primal_minimum_on_a_box() {
+        let network = tiny();
+        let budget = Budget::uniform(Norm::Linf, 1.0, 2);
+        let region = budget.region(&[0.0, 0.0], &[-10.0; 2], &[10.0; 2]);
+        for pattern in [[true, true], [true, false], [false, true], [false, false]] {
+            let pattern = vec![pattern.to_vec()];
+            let piece = affine_piece(&network, &pattern, &|_, _| true, 0, 1);
+            let solution = solve_leaf(&region, &piece, f64::INFINITY).unwrap();
+            if let Some(point) = solution.point {
+                let value: f64 = piece.gradient.iter().zip(&point).map(|(g, v)| g * v).sum::<f64>()
+                    + piece.constant;
+                // weak duality: bound ≤ primal value; strong duality for LPs: equal.
+                assert!(solution.lower <= value + 1e-7);
+                assert!((solution.lower - value).abs() < 1e-6);
+            } else {
+                // empty sub-domain: the bound must not be a small number
+                assert!(solution.lower > 1.0);
+            }
+        }
+    }
+}

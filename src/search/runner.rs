@@ -1,0 +1,248 @@
+//! The loop that runs the trees of one sample ([`verify_sample`]) or of many in parallel
+//! ([`verify_batch`]): it owns the deadline, the node limit, the root bound and attack, the order of
+//! the forbidden classes and the final verdict. The trees themselves only take steps
+//! ([`super::tree::TargetTree::step`]).
+//!
+//! Parallelism is over samples only (rayon); one sample's search is sequential, so a batch never
+//! oversubscribes the machine.
+
+use std::time::Instant;
+
+use rayon::prelude::*;
+
+use super::tree::{Node, Problem, Step, TargetTree};
+use super::{
+    SearchError, SearchOutcome, SearchProblem, SearchSettings, TargetSummary, UnresolvedReason,
+    Verdict,
+};
+use crate::attack::{attack_sample, sample_seed, AttackOutcome, Counterexample};
+use crate::bound::{margin_lower_bounds, Domain, CERTIFY_TOLERANCE};
+use crate::model::Network;
+use crate::threat::Region;
+
+fn check_settings(settings: &SearchSettings) -> Result<(), SearchError> {
+    if settings.node_limit == 0 {
+        return Err(SearchError::Settings(
+            "node limit must be at least 1".into(),
+        ));
+    }
+    if !(settings.optimality_gap >= 0.0 && settings.optimality_gap.is_finite()) {
+        return Err(SearchError::Settings(format!(
+            "optimality gap {} is not allowed, expected a finite number ≥ 0",
+            settings.optimality_gap
+        )));
+    }
+    if let Some(attack) = &settings.root_attack {
+        attack.check()?;
+    }
+    Ok(())
+}
+
+/// Decides whether any input of `region` moves `network`'s answer for a sample of class `label` into
+/// one of `targets` (see the module docs of [`crate::search`] for the guarantees). A 1-logit binary
+/// network is searched in its two-logit classifier form. The sample's attack seed is `settings.seed`.
+pub fn verify_sample(
+    network: &Network,
+    region: &Region,
+    label: usize,
+    targets: &[usize],
+    settings: &SearchSettings,
+) -> Result<SearchOutcome, SearchError> {
+    check_settings(settings)?;
+    search(network, region, label, targets, settings, settings.seed)
+}
+
+/// [`verify_sample`] for every problem, in parallel over samples; problem `p` uses the attack seed
+/// [`sample_seed`]`(settings.seed, p.index)`, so results do not depend on order or thread count (up to
+/// the deadline).
+pub fn verify_batch(
+    network: &Network,
+    problems: &[SearchProblem],
+    settings: &SearchSettings,
+) -> Vec<Result<SearchOutcome, SearchError>> {
+    if let Err(error) = check_settings(settings) {
+        return problems.iter().map(|_| Err(error.clone())).collect();
+    }
+    problems
+        .par_iter()
+        .map(|p| {
+            search(
+                network,
+                &p.region,
+                p.label,
+                &p.targets,
+                settings,
+                sample_seed(settings.seed, p.index),
+            )
+        })
+        .collect()
+}
+
+fn past(deadline: Option<Instant>) -> bool {
+    deadline.is_some_and(|d| Instant::now() >= d)
+}
+
+fn search(
+    network: &Network,
+    region: &Region,
+    label: usize,
+    targets: &[usize],
+    settings: &SearchSettings,
+    seed: u64,
+) -> Result<SearchOutcome, SearchError> {
+    let start = Instant::now();
+    let network = network.as_classifier();
+    let root = margin_lower_bounds(
+        &network,
+        region,
+        label,
+        targets,
+        settings.bound_method,
+        None,
+    )?;
+    let mut summaries: Vec<TargetSummary> = targets
+        .iter()
+        .enumerate()
+        .map(|(t, &target)| TargetSummary {
+            target,
+            lower: root.lower[t],
+            upper: f64::INFINITY,
+            upper_point: None,
+            finished: false,
+            nodes: 1,
+            leaves: 0,
+        })
+        .collect();
+    let mut nodes = 1;
+    let finish = |verdict: Verdict, summaries: Vec<TargetSummary>, nodes: usize| SearchOutcome {
+        verdict,
+        targets: summaries,
+        nodes,
+        seconds: start.elapsed().as_secs_f64(),
+    };
+    if targets.is_empty() || matches!(root.domain, Domain::Empty { .. }) {
+        // Nothing forbidden, or no input at all: nothing can change the answer.
+        for s in &mut summaries {
+            s.lower = f64::INFINITY;
+            s.finished = true;
+        }
+        let verdict = Verdict::Proved {
+            min_margin_lower: f64::INFINITY,
+        };
+        return Ok(finish(verdict, summaries, nodes));
+    }
+    let mut found: Option<Counterexample> = None;
+    let mut best_attack_point: Option<Vec<f64>> = None;
+    if let Some(attack) = &settings.root_attack {
+        let mut attack = attack.clone();
+        attack.deadline = settings.deadline;
+        let starts: Vec<Vec<f64>> = root.minimisers.iter().flatten().cloned().collect();
+        match attack_sample(&network, region, label, targets, &attack, seed, &starts)? {
+            AttackOutcome::Found(c) => {
+                best_attack_point = Some(c.input.clone());
+                found = Some(c);
+            }
+            AttackOutcome::NotFound { best_input, .. } => best_attack_point = Some(best_input),
+        }
+    }
+    if found.is_some() && !settings.optimality {
+        let verdict = Verdict::Counterexample(found.expect("checked"));
+        return Ok(finish(verdict, summaries, nodes));
+    }
+    let problem = Problem {
+        network: &network,
+        region,
+        label,
+        forbidden: targets,
+        settings,
+        seed,
+    };
+    // Most dangerous class first.
+    let mut order: Vec<usize> = (0..targets.len()).collect();
+    order.sort_by(|a, b| root.lower[*a].total_cmp(&root.lower[*b]));
+    let mut stopped: Option<UnresolvedReason> = None;
+    let mut undecided: Option<usize> = None;
+    for t in order {
+        let target = targets[t];
+        if !settings.optimality && root.lower[t] > CERTIFY_TOLERANCE {
+            summaries[t].finished = true;
+            continue;
+        }
+        if stopped.is_some() {
+            continue;
+        }
+        let root_node = Node {
+            splits: crate::bound::SplitState::free(&network),
+            bounds: root.pre_activation.clone(),
+            lower: root.lower[t],
+            minimiser: root.minimisers[t].clone(),
+        };
+        let mut tree = TargetTree::new(problem, target, root_node);
+        if let Some(point) = &best_attack_point {
+            tree.consider(point);
+        }
+        if let Some(c) = &found {
+            tree.consider(&c.input.clone());
+        }
+        let mut finished = !tree.has_open_nodes();
+        while !finished {
+            if tree.found.is_some() && !settings.optimality {
+                break;
+            }
+            if past(settings.deadline) {
+                stopped = Some(UnresolvedReason::Deadline);
+                break;
+            }
+            if nodes + tree.nodes >= settings.node_limit {
+                stopped = Some(UnresolvedReason::NodeLimit);
+                break;
+            }
+            finished = tree.step()? == Step::Finished;
+        }
+        nodes += tree.nodes - 1;
+        let summary = &mut summaries[t];
+        summary.lower = tree.lower();
+        summary.upper = tree.incumbent;
+        summary.upper_point = tree.incumbent_point.clone();
+        summary.finished = finished;
+        summary.nodes = tree.nodes;
+        summary.leaves = tree.leaves;
+        if tree.undecided && finished && undecided.is_none() {
+            undecided = Some(target);
+        }
+        if found.is_none() {
+            found = tree.found.take();
+        }
+        if found.is_some() && !settings.optimality {
+            break;
+        }
+    }
+    let best_lower = summaries
+        .iter()
+        .map(|s| s.lower)
+        .fold(f64::INFINITY, f64::min);
+    let verdict = if let Some(c) = found {
+        Verdict::Counterexample(c)
+    } else if let Some(reason) = stopped {
+        Verdict::Unresolved {
+            best_lower,
+            reason,
+        }
+    } else if best_lower > CERTIFY_TOLERANCE {
+        Verdict::Proved {
+            min_margin_lower: best_lower,
+        }
+    } else {
+        let target = undecided.unwrap_or_else(|| {
+            summaries
+                .iter()
+                .min_by(|a, b| a.lower.total_cmp(&b.lower))
+                .map_or(targets[0], |s| s.target)
+        });
+        Verdict::Unresolved {
+            best_lower,
+            reason: UnresolvedReason::Undecided { target },
+        }
+    };
+    Ok(finish(verdict, summaries, nodes))
+}

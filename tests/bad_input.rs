@@ -1,0 +1,271 @@
+//! The bad-input corpus (tests/bad-input/manifest.txt): every malformed or hostile file must make the
+//! built binary exit 2 with one line `error: ...` on stderr that names the file and the place, write
+//! nothing to stdout, never panic, and finish within a time and memory bound.
+//!
+//! The corpus is written by tests/bad-input/make_corpus.py (standard library only); this test only reads
+//! the committed files. A few hostile files are made here instead of committed: sparse files that claim
+//! gigabytes on disk while holding nothing.
+
+use std::io::Read;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+/// Wall-clock bound per run.
+const TIME_LIMIT: Duration = Duration::from_secs(10);
+/// Address-space bound per run (KiB, for `ulimit -v`): far below what any claim in the corpus would need.
+const MEMORY_LIMIT_KIB: u64 = 1024 * 1024;
+
+fn corpus() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/bad-input")
+}
+
+struct Run {
+    code: Option<i32>,
+    stdout: String,
+    stderr: String,
+    timed_out: bool,
+}
+
+/// Runs the binary under a memory limit and a timeout.
+fn run_ballast(args: &[String]) -> Run {
+    let mut child = Command::new("sh")
+        .arg("-c")
+        .arg(format!("ulimit -v {MEMORY_LIMIT_KIB} && exec \"$0\" \"$@\""))
+        .arg(env!("CARGO_BIN_EXE_ballast"))
+        .args(args)
+        .env("RUST_BACKTRACE", "1")
+        .stdin(Stdio::null())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("the shell starts");
+    let mut out = child.stdout.take().expect("piped stdout");
+    let mut err = child.stderr.take().expect("piped stderr");
+    let out_reader = std::thread::spawn(move || {
+        let mut s = Vec::new();
+        let _ = out.read_to_end(&mut s);
+        String::from_utf8_lossy(&s).into_owned()
+    });
+    let err_reader = std::thread::spawn(move || {
+        let mut s = Vec::new();
+        let _ = err.read_to_end(&mut s);
+        String::from_utf8_lossy(&s).into_owned()
+    });
+    let start = Instant::now();
+    let mut timed_out = false;
+    let status = loop {
+        if let Some(status) = child.try_wait().expect("wait works") {
+            break status;
+        }
+        if start.elapsed() > TIME_LIMIT {
+            timed_out = true;
+            let _ = child.kill();
+            break child.wait().expect("wait works");
+        }
+        std::thread::sleep(Duration::from_millis(5));
+    };
+    Run {
+        code: status.code(),
+        stdout: out_reader.join().expect("reader"),
+        stderr: err_reader.join().expect("reader"),
+        timed_out,
+    }
+}
+
+/// Checks one run against the corpus contract; returns what is wrong, if anything.
+fn check(run: &Run, file: &str, expected: &str) -> Option<String> {
+    let mut problems = Vec::new();
+    if run.timed_out {
+        problems.push(format!("did not finish within {TIME_LIMIT:?}"));
+    }
+    if run.code != Some(2) {
+        problems.push(format!("exit code {:?}, expected 2", run.code));
+    }
+    if run.stderr.contains("panicked") || run.stderr.contains("backtrace") {
+        problems.push("panicked".into());
+    }
+    let lines: Vec<&str> = run.stderr.lines().collect();
+    if lines.len() != 1 || !lines[0].starts_with("error: ") {
+        problems.push(format!("stderr is not one `error: ` line ({} lines)", lines.len()));
+    }
+    if !run.stderr.contains(file) {
+        problems.push(format!("message does not name the file {file}"));
+    }
+    if !run.stderr.contains(expected) {
+        problems.push(format!("message does not contain {expected:?}"));
+    }
+    if !run.stdout.is_empty() {
+        problems.push(format!("wrote to stdout: {:?}", run.stdout));
+    }
+    if problems.is_empty() {
+        None
+    } else {
+        Some(format!("{}\n    stderr: {}", problems.join("; "), run.stderr.trim_end()))
+    }
+}
+
+struct Case {
+    file: String,
+    command: String,
+    expected: String,
+}
+
+fn manifest() -> Vec<Case> {
+    let text = std::fs::read_to_string(corpus().join("manifest.txt")).expect("manifest.txt is readable");
+    text.lines()
+        .filter(|l| !l.trim().is_empty() && !l.starts_with('#'))
+        .map(|line| {
+            let parts: Vec<&str> = line.split(" | ").collect();
+            assert_eq!(parts.len(), 3, "manifest line is `file | command | expected`: {line}");
+            Case {
+                file: parts[0].trim().to_owned(),
+                command: parts[1].trim().to_owned(),
+                expected: parts[2].trim().to_owned(),
+            }
+        })
+        .collect()
+}
+
+/// The command of a case with its placeholders filled in.
+fn arguments(command: &str, bad: &Path, out: &Path) -> Vec<String> {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    command
+        .split_whitespace()
+        .map(|word| {
+            let path = match word {
+                "{bad}" => bad.to_path_buf(),
+                "{digits}" => root.join("tests/data/digits_mlp.model.json"),
+                "{digits_data}" => root.join("tests/data/digits_test.csv"),
+                "{plain}" => corpus().join("good/plain3.model.json"),
+                "{named}" => corpus().join("good/two_sensor.model.json"),
+                "{out}" => out.to_path_buf(),
+                other => {
+                    assert!(!other.starts_with('{'), "unknown placeholder {other}");
+                    return other.to_owned();
+                }
+            };
+            path.display().to_string()
+        })
+        .collect()
+}
+
+#[test]
+fn every_corpus_file_fails_cleanly() {
+    let cases = manifest();
+    assert!(cases.len() >= 40, "the corpus has only {} cases", cases.len());
+    let mut failures = Vec::new();
+    for case in &cases {
+        let bad = corpus().join(&case.file);
+        assert!(bad.is_file(), "manifest names a missing file {}", case.file);
+        let out = tempfile::tempdir().expect("temporary folder");
+        let run = run_ballast(&arguments(&case.command, &bad, out.path()));
+        if let Some(problem) = check(&run, &bad.display().to_string(), &case.expected) {
+            failures.push(format!("{} ({}): {problem}", case.file, case.command));
+        }
+        let written: Vec<_> = std::fs::read_dir(out.path()).expect("readable").collect();
+        if !written.is_empty() {
+            failures.push(format!("{}: wrote {} file(s) into the output folder", case.file, written.len()));
+        }
+    }
+    assert!(failures.is_empty(), "{} of {} cases failed:\n{}", failures.len(), cases.len(), failures.join("\n"));
+}
+
+#[test]
+fn every_corpus_file_is_in_the_manifest() {
+    // No case may sit in the corpus unrun: each file under model/, data/ (and any other case folder)
+    // must be listed. good/ holds the valid models the commands pair with the bad files.
+    let listed: std::collections::HashSet<String> = manifest().into_iter().map(|c| c.file).collect();
+    let mut unlisted = Vec::new();
+    for folder in std::fs::read_dir(corpus()).expect("corpus folder") {
+        let folder = folder.expect("entry").path();
+        if !folder.is_dir() || folder.file_name().is_some_and(|n| n == "good") {
+            continue;
+        }
+        for file in std::fs::read_dir(&folder).expect("case folder") {
+            let file = file.expect("entry").path();
+            let relative = file.strip_prefix(corpus()).expect("inside corpus").display().to_string();
+            if !listed.contains(&relative) {
+                unlisted.push(relative);
+            }
+        }
+    }
+    assert!(unlisted.is_empty(), "corpus files missing from manifest.txt: {unlisted:?}");
+}
+
+#[test]
+fn the_good_partners_are_accepted() {
+    // The bad data files are only meaningful if the models they are paired with load: a broken partner
+    // would make every data case pass for the wrong reason.
+    for model in ["good/plain3.model.json", "good/two_sensor.model.json"] {
+        let run = run_ballast(&["inspect".into(), corpus().join(model).display().to_string()]);
+        assert_eq!(run.code, Some(0), "{model}: {}", run.stderr);
+        assert!(run.stdout.contains("parameters:"), "{model}: {}", run.stdout);
+    }
+}
+
+/// A sparse file of `bytes` bytes that occupies almost nothing on disk.
+fn sparse_file(folder: &Path, name: &str, bytes: u64, head: &[u8]) -> PathBuf {
+    let path = folder.join(name);
+    let mut file = std::fs::File::create(&path).expect("create");
+    std::io::Write::write_all(&mut file, head).expect("write");
+    file.set_len(bytes).expect("set_len");
+    path
+}
+
+#[test]
+fn files_claiming_gigabytes_are_refused_before_reading() {
+    let folder = tempfile::tempdir().expect("temporary folder");
+    let limits = [
+        (
+            "huge.model.json",
+            ballast::limits::MAX_MODEL_FILE_BYTES + 1,
+            vec!["inspect".to_string()],
+        ),
+        (
+            "huge.csv",
+            ballast::limits::MAX_DATA_FILE_BYTES + 1,
+            vec![
+                "evaluate".to_string(),
+                "--model".into(),
+                corpus().join("good/plain3.model.json").display().to_string(),
+                "--data".into(),
+            ],
+        ),
+    ];
+    for (name, bytes, mut args) in limits {
+        let path = sparse_file(folder.path(), name, bytes, b"label,x0,x1,x2\n");
+        args.push(path.display().to_string());
+        let run = run_ballast(&args);
+        let problem = check(&run, &path.display().to_string(), "above the limit of");
+        assert!(problem.is_none(), "{name}: {}", problem.unwrap_or_default());
+    }
+}
+
+#[test]
+fn missing_files_and_folders_are_input_errors() {
+    let folder = tempfile::tempdir().expect("temporary folder");
+    let missing = folder.path().join("no-such.model.json").display().to_string();
+    let run = run_ballast(&["inspect".into(), missing.clone()]);
+    assert!(check(&run, &missing, "No such file").is_none(), "{}", run.stderr);
+    let dir = folder.path().display().to_string();
+    let run = run_ballast(&["inspect".into(), dir.clone()]);
+    assert!(check(&run, &dir, "directory").is_none(), "{}", run.stderr);
+}
+
+#[test]
+fn allow_large_lifts_the_data_limit_without_overflow() {
+    // `--allow-large` reads with no byte limit; the limit arithmetic must not overflow (a panic in
+    // debug builds) and a good file must still load.
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let run = run_ballast(&[
+        "evaluate".into(),
+        "--model".into(),
+        root.join("tests/data/digits_mlp.model.json").display().to_string(),
+        "--data".into(),
+        root.join("tests/data/digits_test.csv").display().to_string(),
+        "--allow-large".into(),
+    ]);
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    assert!(run.stdout.contains("samples: 540"), "{}", run.stdout);
+}
