@@ -27,7 +27,8 @@ pub fn read_text_file(path: &Path, max_bytes: u64) -> std::io::Result<String> {
     }
     let mut bytes = Vec::with_capacity(size as usize);
     // `saturating_add`: `--allow-large` passes `u64::MAX`, and special files report a size of 0.
-    file.take(max_bytes.saturating_add(1)).read_to_end(&mut bytes)?;
+    file.take(max_bytes.saturating_add(1))
+        .read_to_end(&mut bytes)?;
     if bytes.len() as u64 > max_bytes {
         return Err(std::io::Error::new(
             std::io::ErrorKind::InvalidData,
@@ -37,8 +38,14 @@ pub fn read_text_file(path: &Path, max_bytes: u64) -> std::io::Result<String> {
     let text = String::from_utf8(bytes).map_err(|e| {
         std::io::Error::new(
             std::io::ErrorKind::InvalidData,
-            format!("not valid UTF-8 text (first bad byte at offset {})", e.utf8_error().valid_up_to()),
+            format!(
+                "not valid UTF-8 text (first bad byte at offset {})",
+                e.utf8_error().valid_up_to()
+            ),
         )
     })?;
-    Ok(text.strip_prefix('\u{feff}').map(str::to_owned).unwrap_or(text))
+    Ok(text
+        .strip_prefix('\u{feff}')
+        .map(str::to_owned)
+        .unwrap_or(text))
 }

@@ -31,7 +31,9 @@ struct Run {
 fn run_ballast(args: &[String]) -> Run {
     let mut child = Command::new("sh")
         .arg("-c")
-        .arg(format!("ulimit -v {MEMORY_LIMIT_KIB} && exec \"$0\" \"$@\""))
+        .arg(format!(
+            "ulimit -v {MEMORY_LIMIT_KIB} && exec \"$0\" \"$@\""
+        ))
         .arg(env!("CARGO_BIN_EXE_ballast"))
         .args(args)
         .env("RUST_BACKTRACE", "1")
@@ -87,7 +89,10 @@ fn check(run: &Run, file: &str, expected: &str) -> Option<String> {
     }
     let lines: Vec<&str> = run.stderr.lines().collect();
     if lines.len() != 1 || !lines[0].starts_with("error: ") {
-        problems.push(format!("stderr is not one `error: ` line ({} lines)", lines.len()));
+        problems.push(format!(
+            "stderr is not one `error: ` line ({} lines)",
+            lines.len()
+        ));
     }
     if !run.stderr.contains(file) {
         problems.push(format!("message does not name the file {file}"));
@@ -101,7 +106,11 @@ fn check(run: &Run, file: &str, expected: &str) -> Option<String> {
     if problems.is_empty() {
         None
     } else {
-        Some(format!("{}\n    stderr: {}", problems.join("; "), run.stderr.trim_end()))
+        Some(format!(
+            "{}\n    stderr: {}",
+            problems.join("; "),
+            run.stderr.trim_end()
+        ))
     }
 }
 
@@ -112,12 +121,17 @@ struct Case {
 }
 
 fn manifest() -> Vec<Case> {
-    let text = std::fs::read_to_string(corpus().join("manifest.txt")).expect("manifest.txt is readable");
+    let text =
+        std::fs::read_to_string(corpus().join("manifest.txt")).expect("manifest.txt is readable");
     text.lines()
         .filter(|l| !l.trim().is_empty() && !l.starts_with('#'))
         .map(|line| {
             let parts: Vec<&str> = line.split(" | ").collect();
-            assert_eq!(parts.len(), 3, "manifest line is `file | command | expected`: {line}");
+            assert_eq!(
+                parts.len(),
+                3,
+                "manifest line is `file | command | expected`: {line}"
+            );
             Case {
                 file: parts[0].trim().to_owned(),
                 command: parts[1].trim().to_owned(),
@@ -153,7 +167,11 @@ fn arguments(command: &str, bad: &Path, out: &Path) -> Vec<String> {
 #[test]
 fn every_corpus_file_fails_cleanly() {
     let cases = manifest();
-    assert!(cases.len() >= 40, "the corpus has only {} cases", cases.len());
+    assert!(
+        cases.len() >= 40,
+        "the corpus has only {} cases",
+        cases.len()
+    );
     let mut failures = Vec::new();
     for case in &cases {
         let bad = corpus().join(&case.file);
@@ -165,17 +183,28 @@ fn every_corpus_file_fails_cleanly() {
         }
         let written: Vec<_> = std::fs::read_dir(out.path()).expect("readable").collect();
         if !written.is_empty() {
-            failures.push(format!("{}: wrote {} file(s) into the output folder", case.file, written.len()));
+            failures.push(format!(
+                "{}: wrote {} file(s) into the output folder",
+                case.file,
+                written.len()
+            ));
         }
     }
-    assert!(failures.is_empty(), "{} of {} cases failed:\n{}", failures.len(), cases.len(), failures.join("\n"));
+    assert!(
+        failures.is_empty(),
+        "{} of {} cases failed:\n{}",
+        failures.len(),
+        cases.len(),
+        failures.join("\n")
+    );
 }
 
 #[test]
 fn every_corpus_file_is_in_the_manifest() {
     // No case may sit in the corpus unrun: each file under model/, data/ (and any other case folder)
     // must be listed. good/ holds the valid models the commands pair with the bad files.
-    let listed: std::collections::HashSet<String> = manifest().into_iter().map(|c| c.file).collect();
+    let listed: std::collections::HashSet<String> =
+        manifest().into_iter().map(|c| c.file).collect();
     let mut unlisted = Vec::new();
     for folder in std::fs::read_dir(corpus()).expect("corpus folder") {
         let folder = folder.expect("entry").path();
@@ -184,13 +213,20 @@ fn every_corpus_file_is_in_the_manifest() {
         }
         for file in std::fs::read_dir(&folder).expect("case folder") {
             let file = file.expect("entry").path();
-            let relative = file.strip_prefix(corpus()).expect("inside corpus").display().to_string();
+            let relative = file
+                .strip_prefix(corpus())
+                .expect("inside corpus")
+                .display()
+                .to_string();
             if !listed.contains(&relative) {
                 unlisted.push(relative);
             }
         }
     }
-    assert!(unlisted.is_empty(), "corpus files missing from manifest.txt: {unlisted:?}");
+    assert!(
+        unlisted.is_empty(),
+        "corpus files missing from manifest.txt: {unlisted:?}"
+    );
 }
 
 #[test]
@@ -200,7 +236,11 @@ fn the_good_partners_are_accepted() {
     for model in ["good/plain3.model.json", "good/two_sensor.model.json"] {
         let run = run_ballast(&["inspect".into(), corpus().join(model).display().to_string()]);
         assert_eq!(run.code, Some(0), "{model}: {}", run.stderr);
-        assert!(run.stdout.contains("parameters:"), "{model}: {}", run.stdout);
+        assert!(
+            run.stdout.contains("parameters:"),
+            "{model}: {}",
+            run.stdout
+        );
     }
 }
 
@@ -228,7 +268,10 @@ fn files_claiming_gigabytes_are_refused_before_reading() {
             vec![
                 "evaluate".to_string(),
                 "--model".into(),
-                corpus().join("good/plain3.model.json").display().to_string(),
+                corpus()
+                    .join("good/plain3.model.json")
+                    .display()
+                    .to_string(),
                 "--data".into(),
             ],
         ),
@@ -245,9 +288,17 @@ fn files_claiming_gigabytes_are_refused_before_reading() {
 #[test]
 fn missing_files_and_folders_are_input_errors() {
     let folder = tempfile::tempdir().expect("temporary folder");
-    let missing = folder.path().join("no-such.model.json").display().to_string();
+    let missing = folder
+        .path()
+        .join("no-such.model.json")
+        .display()
+        .to_string();
     let run = run_ballast(&["inspect".into(), missing.clone()]);
-    assert!(check(&run, &missing, "No such file").is_none(), "{}", run.stderr);
+    assert!(
+        check(&run, &missing, "No such file").is_none(),
+        "{}",
+        run.stderr
+    );
     let dir = folder.path().display().to_string();
     let run = run_ballast(&["inspect".into(), dir.clone()]);
     assert!(check(&run, &dir, "directory").is_none(), "{}", run.stderr);
@@ -261,9 +312,13 @@ fn allow_large_lifts_the_data_limit_without_overflow() {
     let run = run_ballast(&[
         "evaluate".into(),
         "--model".into(),
-        root.join("tests/data/digits_mlp.model.json").display().to_string(),
+        root.join("tests/data/digits_mlp.model.json")
+            .display()
+            .to_string(),
         "--data".into(),
-        root.join("tests/data/digits_test.csv").display().to_string(),
+        root.join("tests/data/digits_test.csv")
+            .display()
+            .to_string(),
         "--allow-large".into(),
     ]);
     assert_eq!(run.code, Some(0), "{}", run.stderr);

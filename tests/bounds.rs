@@ -2,6 +2,9 @@
 //! methods, the dual-norm closed form for linear classifiers, batch versus single-sample agreement, and
 //! the LP against scipy's HiGHS on the digits fixture.
 
+// Index loops mirror the formulas (units i, targets t) and read more plainly than zipped iterators.
+#![allow(clippy::needless_range_loop)]
+
 use std::path::Path;
 
 use ballast::bound::{
@@ -33,9 +36,7 @@ fn random_network(rng: &mut ChaCha8Rng, depth: usize, input: usize, classes: usi
         .windows(2)
         .map(|pair| {
             let scale = (2.0 / pair[0] as f64).sqrt();
-            let weights = DMatrix::from_fn(pair[1], pair[0], |_, _| {
-                scale * gaussian(rng)
-            });
+            let weights = DMatrix::from_fn(pair[1], pair[0], |_, _| scale * gaussian(rng));
             let bias = DVector::from_fn(pair[1], |_, _| 0.3 * gaussian(rng));
             Dense { weights, bias }
         })
@@ -91,8 +92,17 @@ fn sample_points(rng: &mut ChaCha8Rng, region: &Region, count: usize) -> Vec<Vec
                 .collect(),
             Norm::L2 => {
                 let direction: Vec<f64> = (0..n).map(|_| gaussian(rng)).collect();
-                let length = direction.iter().map(|d| d * d).sum::<f64>().sqrt().max(1e-300);
-                let scale = if k % 2 == 0 { 1.0 } else { rng.gen_range(0.0..1.0) };
+                let length = direction
+                    .iter()
+                    .map(|d| d * d)
+                    .sum::<f64>()
+                    .sqrt()
+                    .max(1e-300);
+                let scale = if k % 2 == 0 {
+                    1.0
+                } else {
+                    rng.gen_range(0.0..1.0)
+                };
                 (0..n)
                     .map(|i| region.center[i] + region.radii[i] * scale * direction[i] / length)
                     .collect()
@@ -194,7 +204,8 @@ fn check_sound(
             for i in 0..layer.len() {
                 let z = pre[k][i];
                 assert!(
-                    z >= layer.lower[i] - CERTIFY_TOLERANCE && z <= layer.upper[i] + CERTIFY_TOLERANCE,
+                    z >= layer.lower[i] - CERTIFY_TOLERANCE
+                        && z <= layer.upper[i] + CERTIFY_TOLERANCE,
                     "{context}: pre-activation {k}/{i} = {z} outside [{}, {}]",
                     layer.lower[i],
                     layer.upper[i]
@@ -258,7 +269,12 @@ fn bounds_are_sound_and_ordered_on_random_networks() {
         let label = ballast::model::predicted_class(network.forward(&region.center).as_slice());
         let targets: Vec<usize> = (0..classes).filter(|j| *j != label).collect();
         let mut results = Vec::new();
-        for method in [Method::Interval, Method::Linear, Method::OptimisedLinear, Method::Lp] {
+        for method in [
+            Method::Interval,
+            Method::Linear,
+            Method::OptimisedLinear,
+            Method::Lp,
+        ] {
             let options = optimised::SlopeOptions {
                 stop_when_certified: false,
                 ..Default::default()
@@ -302,8 +318,14 @@ fn bounds_are_sound_and_ordered_on_random_networks() {
             }
         }
     }
-    assert!(checked_points > 10_000, "only {checked_points} points checked");
-    assert!(positive_bounds > 5, "too few informative bounds ({positive_bounds})");
+    assert!(
+        checked_points > 10_000,
+        "only {checked_points} points checked"
+    );
+    assert!(
+        positive_bounds > 5,
+        "too few informative bounds ({positive_bounds})"
+    );
 }
 
 /// Random split constraints taken from the activation pattern of a region point (so the domain is not
@@ -345,7 +367,14 @@ fn bounds_are_sound_under_split_constraints() {
                 };
             }
         }
-        let mut points = all_points(&mut rng, &network, &region, label, &targets, &[anchor.clone()]);
+        let mut points = all_points(
+            &mut rng,
+            &network,
+            &region,
+            label,
+            &targets,
+            std::slice::from_ref(&anchor),
+        );
         // More points near the anchor, where the split constraints hold.
         for _ in 0..200 {
             let mut x: Vec<f64> = anchor
@@ -356,10 +385,21 @@ fn bounds_are_sound_under_split_constraints() {
             region.project(&mut x);
             points.push(x);
         }
-        for method in [Method::Interval, Method::Linear, Method::OptimisedLinear, Method::Lp] {
-            let constrained =
-                bound::margin_lower_bounds(&network, &region, label, &targets, method, Some(&splits))
-                    .unwrap();
+        for method in [
+            Method::Interval,
+            Method::Linear,
+            Method::OptimisedLinear,
+            Method::Lp,
+        ] {
+            let constrained = bound::margin_lower_bounds(
+                &network,
+                &region,
+                label,
+                &targets,
+                method,
+                Some(&splits),
+            )
+            .unwrap();
             let context = format!("case {case} {method:?} with splits");
             let (_, admitted) = check_sound(
                 &network,
@@ -377,7 +417,10 @@ fn bounds_are_sound_under_split_constraints() {
             }
         }
     }
-    assert!(admitted_total > 5_000, "only {admitted_total} admitted points");
+    assert!(
+        admitted_total > 5_000,
+        "only {admitted_total} admitted points"
+    );
     assert!(empty_domains > 0, "no empty domain exercised");
 }
 
@@ -400,12 +443,18 @@ fn splits_clip_bounds_and_detect_empty_domains() {
     let active = free.with(0, 0, ReluSplit::Active);
     let inactive = free.with(0, 0, ReluSplit::Inactive);
     let impossible = free.with(0, 1, ReluSplit::Inactive); // unit 1 is in [4, 6]
-    for method in [Method::Interval, Method::Linear, Method::OptimisedLinear, Method::Lp] {
-        let a = bound::margin_lower_bounds(&network, &region, 0, &[1], method, Some(&active)).unwrap();
+    for method in [
+        Method::Interval,
+        Method::Linear,
+        Method::OptimisedLinear,
+        Method::Lp,
+    ] {
+        let a =
+            bound::margin_lower_bounds(&network, &region, 0, &[1], method, Some(&active)).unwrap();
         assert!(a.pre_activation[0].lower[0] >= 0.0);
         assert!((a.pre_activation[0].upper[0] - 1.0).abs() < 1e-12);
-        let i =
-            bound::margin_lower_bounds(&network, &region, 0, &[1], method, Some(&inactive)).unwrap();
+        let i = bound::margin_lower_bounds(&network, &region, 0, &[1], method, Some(&inactive))
+            .unwrap();
         assert!(i.pre_activation[0].upper[0] <= 0.0);
         assert!((i.pre_activation[0].lower[0] + 1.0).abs() < 1e-12);
         let e = bound::margin_lower_bounds(&network, &region, 0, &[1], method, Some(&impossible))
@@ -434,7 +483,13 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
         let network = random_network(&mut rng, 1, dim, classes);
         let center: Vec<f64> = (0..dim).map(|_| rng.gen_range(-2.0..2.0)).collect();
         let radii: Vec<f64> = (0..dim)
-            .map(|i| if i % 5 == 4 { 0.0 } else { rng.gen_range(0.0..0.5) })
+            .map(|i| {
+                if i % 5 == 4 {
+                    0.0
+                } else {
+                    rng.gen_range(0.0..0.5)
+                }
+            })
             .collect();
         let unbounded = (vec![f64::NEG_INFINITY; dim], vec![f64::INFINITY; dim]);
         let label = rng.gen_range(0..classes);
@@ -451,12 +506,18 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
                         .unwrap();
                 for (t, &j) in targets.iter().enumerate() {
                     let w: Vec<f64> = (0..dim)
-                        .map(|i| network.layers[0].weights[(label, i)] - network.layers[0].weights[(j, i)])
+                        .map(|i| {
+                            network.layers[0].weights[(label, i)]
+                                - network.layers[0].weights[(j, i)]
+                        })
                         .collect();
                     let at_center = margin(&network, &center, label, j);
                     let penalty = match norm {
                         Norm::Linf => (0..dim).map(|i| radii[i] * w[i].abs()).sum::<f64>(),
-                        Norm::L2 => (0..dim).map(|i| (radii[i] * w[i]).powi(2)).sum::<f64>().sqrt(),
+                        Norm::L2 => (0..dim)
+                            .map(|i| (radii[i] * w[i]).powi(2))
+                            .sum::<f64>()
+                            .sqrt(),
                     };
                     let expected = at_center - penalty;
                     let tolerance = if method == Method::Lp { 1e-7 } else { 1e-9 };
@@ -469,18 +530,30 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
                     let x = result.minimisers[t].as_ref().unwrap();
                     assert!(region.contains(x));
                     if method != Method::Lp {
-                        assert!((margin(&network, x, label, j) - expected).abs() < 1e-8 * (1.0 + expected.abs()));
+                        assert!(
+                            (margin(&network, x, label, j) - expected).abs()
+                                < 1e-8 * (1.0 + expected.abs())
+                        );
                     }
                 }
             }
             if norm == Norm::Linf {
                 // Interval propagation is exact for an affine map over a box too.
-                let result =
-                    bound::margin_lower_bounds(&network, &region, label, &targets, Method::Interval, None)
-                        .unwrap();
+                let result = bound::margin_lower_bounds(
+                    &network,
+                    &region,
+                    label,
+                    &targets,
+                    Method::Interval,
+                    None,
+                )
+                .unwrap();
                 for (t, &j) in targets.iter().enumerate() {
                     let w: Vec<f64> = (0..dim)
-                        .map(|i| network.layers[0].weights[(label, i)] - network.layers[0].weights[(j, i)])
+                        .map(|i| {
+                            network.layers[0].weights[(label, i)]
+                                - network.layers[0].weights[(j, i)]
+                        })
                         .collect();
                     let expected = margin(&network, &center, label, j)
                         - (0..dim).map(|i| radii[i] * w[i].abs()).sum::<f64>();
@@ -501,12 +574,23 @@ fn binary_single_logit_models_use_the_classifier_form() {
     }]);
     let region = Budget::uniform(Norm::Linf, 0.1, 2).region(&[1.0, 1.0], &[0.0, 0.0], &[1.05, 1.0]);
     // z at centre = 1.5; box: x0 ∈ [0.9, 1.05], x1 ∈ [0.9, 1.0]: min z = 1.8 − 1.0 + 0.5 = 1.3.
-    for method in [Method::Interval, Method::Linear, Method::OptimisedLinear, Method::Lp] {
-        let class_one = bound::margin_lower_bounds(&network, &region, 1, &[0], method, None).unwrap();
-        assert!((class_one.lower[0] - 1.3).abs() < 1e-9, "{method:?}: {}", class_one.lower[0]);
+    for method in [
+        Method::Interval,
+        Method::Linear,
+        Method::OptimisedLinear,
+        Method::Lp,
+    ] {
+        let class_one =
+            bound::margin_lower_bounds(&network, &region, 1, &[0], method, None).unwrap();
+        assert!(
+            (class_one.lower[0] - 1.3).abs() < 1e-9,
+            "{method:?}: {}",
+            class_one.lower[0]
+        );
         assert!(class_one.certified());
         // max z = 2.1 − 0.9 + 0.5 = 1.7, so the margin of class 0 is at least −1.7.
-        let class_zero = bound::margin_lower_bounds(&network, &region, 0, &[1], method, None).unwrap();
+        let class_zero =
+            bound::margin_lower_bounds(&network, &region, 0, &[1], method, None).unwrap();
         assert!((class_zero.lower[0] + 1.7).abs() < 1e-9);
         assert!(!class_zero.certified());
     }
@@ -519,23 +603,48 @@ fn bad_arguments_are_errors() {
     let network = random_network(&mut rng, 2, 3, 3);
     let region = random_region(&mut rng, 3, Norm::Linf);
     let wrong = random_region(&mut rng, 4, Norm::Linf);
-    for method in [Method::Interval, Method::Linear, Method::OptimisedLinear, Method::Lp] {
+    for method in [
+        Method::Interval,
+        Method::Linear,
+        Method::OptimisedLinear,
+        Method::Lp,
+    ] {
         let call = |r: &Region, label: usize, targets: &[usize], s: Option<&SplitState>| {
             bound::margin_lower_bounds(&network, r, label, targets, method, s)
         };
-        assert!(matches!(call(&wrong, 0, &[1], None), Err(bound::BoundError::DimensionMismatch { .. })));
-        assert!(matches!(call(&region, 3, &[1], None), Err(bound::BoundError::LabelOutOfRange { .. })));
-        assert!(matches!(call(&region, 0, &[0], None), Err(bound::BoundError::InvalidTarget { .. })));
-        assert!(matches!(call(&region, 0, &[5], None), Err(bound::BoundError::InvalidTarget { .. })));
-        let bad_splits = SplitState { layers: vec![vec![ReluSplit::Free; 1]] };
+        assert!(matches!(
+            call(&wrong, 0, &[1], None),
+            Err(bound::BoundError::DimensionMismatch { .. })
+        ));
+        assert!(matches!(
+            call(&region, 3, &[1], None),
+            Err(bound::BoundError::LabelOutOfRange { .. })
+        ));
+        assert!(matches!(
+            call(&region, 0, &[0], None),
+            Err(bound::BoundError::InvalidTarget { .. })
+        ));
+        assert!(matches!(
+            call(&region, 0, &[5], None),
+            Err(bound::BoundError::InvalidTarget { .. })
+        ));
+        let bad_splits = SplitState {
+            layers: vec![vec![ReluSplit::Free; 1]],
+        };
         assert!(call(&region, 0, &[1], Some(&bad_splits)).is_err());
         let mut nan = region.clone();
         nan.upper[0] = f64::NAN;
-        assert!(matches!(call(&nan, 0, &[1], None), Err(bound::BoundError::NonFinite { .. })));
+        assert!(matches!(
+            call(&nan, 0, &[1], None),
+            Err(bound::BoundError::NonFinite { .. })
+        ));
         let empty = call(&region, 0, &[], None).unwrap();
         assert!(empty.lower.is_empty() && empty.certified());
     }
-    let given = vec![LayerBounds { lower: vec![0.0], upper: vec![1.0] }];
+    let given = vec![LayerBounds {
+        lower: vec![0.0],
+        upper: vec![1.0],
+    }];
     assert!(lp::margin_lower_bounds_from(&network, &region, 0, &[1], &given, None).is_err());
     assert!(linear::margin_lower_bounds_from(&network, &region, 0, &[1], &given, None).is_err());
 }
@@ -545,12 +654,21 @@ fn bad_arguments_are_errors() {
 
 fn digits() -> (Model, ballast::data::Dataset) {
     let model = Model::load(Path::new("tests/data/digits_mlp.model.json")).unwrap();
-    let data = load_csv(Path::new("tests/data/digits_test.csv"), &model, &DataOptions::default()).unwrap();
+    let data = load_csv(
+        Path::new("tests/data/digits_test.csv"),
+        &model,
+        &DataOptions::default(),
+    )
+    .unwrap();
     (model, data)
 }
 
 fn digits_region(model: &Model, x: &[f64], norm: Norm, epsilon: f64) -> Region {
-    Budget::uniform(norm, epsilon, model.input.dim).region(x, &model.input.lower, &model.input.upper)
+    Budget::uniform(norm, epsilon, model.input.dim).region(
+        x,
+        &model.input.lower,
+        &model.input.upper,
+    )
 }
 
 /// The batch interval and linear functions agree with the single-sample ones, and per-layer bounds hold
@@ -567,19 +685,29 @@ fn batch_bounds_agree_with_single_sample_bounds() {
             .map(|&r| digits_region(&model, data.sample(r), norm, epsilon))
             .collect();
         let labels: Vec<usize> = rows.iter().map(|&r| data.labels[r]).collect();
-        let targets: Vec<Vec<usize>> = labels.iter().map(|&y| (0..10).filter(|j| *j != y).collect()).collect();
-        let batch_interval = interval::batch_margin_lower_bounds(&network, &regions, &labels, &targets).unwrap();
-        let batch_linear = linear::batch_margin_lower_bounds(&network, &regions, &labels, &targets).unwrap();
+        let targets: Vec<Vec<usize>> = labels
+            .iter()
+            .map(|&y| (0..10).filter(|j| *j != y).collect())
+            .collect();
+        let batch_interval =
+            interval::batch_margin_lower_bounds(&network, &regions, &labels, &targets).unwrap();
+        let batch_linear =
+            linear::batch_margin_lower_bounds(&network, &regions, &labels, &targets).unwrap();
         assert!(batch_linear.multiply_adds > 0);
         for s in 0..rows.len() {
             let single_interval =
-                interval::margin_lower_bounds(&network, &regions[s], labels[s], &targets[s], None).unwrap();
+                interval::margin_lower_bounds(&network, &regions[s], labels[s], &targets[s], None)
+                    .unwrap();
             let single_linear =
-                linear::margin_lower_bounds(&network, &regions[s], labels[s], &targets[s], None).unwrap();
+                linear::margin_lower_bounds(&network, &regions[s], labels[s], &targets[s], None)
+                    .unwrap();
             for t in 0..9 {
                 let a = batch_interval.margins[s][t];
                 let b = single_interval.lower[t];
-                assert!((a - b).abs() <= 1e-9 * (1.0 + b.abs()), "interval batch {a} vs single {b}");
+                assert!(
+                    (a - b).abs() <= 1e-9 * (1.0 + b.abs()),
+                    "interval batch {a} vs single {b}"
+                );
                 let c = batch_linear.samples[s].lower[t];
                 let d = single_linear.lower[t];
                 assert!((c - d).abs() <= 1e-12 * (1.0 + d.abs()));
@@ -587,7 +715,10 @@ fn batch_bounds_agree_with_single_sample_bounds() {
             }
             let z = network.pre_activations(data.sample(rows[s]));
             for i in 0..32 {
-                let (lo, hi) = (batch_interval.lower[0][(i, s)], batch_interval.upper[0][(i, s)]);
+                let (lo, hi) = (
+                    batch_interval.lower[0][(i, s)],
+                    batch_interval.upper[0][(i, s)],
+                );
                 assert!(lo <= z[0][i] + 1e-9 && z[0][i] <= hi + 1e-9);
                 let lb = &batch_linear.samples[s].pre_activation[0];
                 assert!(lb.lower[i] >= lo - 1e-9 && lb.upper[i] <= hi + 1e-9);
@@ -641,16 +772,28 @@ fn lp_matches_scipy_highs_on_digits() {
             let (ours, domain) = interval::pre_activation_bounds(&network, &region, None).unwrap();
             assert_eq!(domain, Domain::Feasible);
             for i in 0..ours[0].len() {
-                assert!((ours[0].lower[i] - sample.lower[i]).abs() <= 1e-9 * (1.0 + sample.lower[i].abs()));
-                assert!((ours[0].upper[i] - sample.upper[i]).abs() <= 1e-9 * (1.0 + sample.upper[i].abs()));
+                assert!(
+                    (ours[0].lower[i] - sample.lower[i]).abs()
+                        <= 1e-9 * (1.0 + sample.lower[i].abs())
+                );
+                assert!(
+                    (ours[0].upper[i] - sample.upper[i]).abs()
+                        <= 1e-9 * (1.0 + sample.upper[i].abs())
+                );
             }
             let given = vec![LayerBounds {
                 lower: sample.lower.clone(),
                 upper: sample.upper.clone(),
             }];
-            let result =
-                lp::margin_lower_bounds_from(&network, &region, sample.label, &sample.targets, &given, None)
-                    .unwrap();
+            let result = lp::margin_lower_bounds_from(
+                &network,
+                &region,
+                sample.label,
+                &sample.targets,
+                &given,
+                None,
+            )
+            .unwrap();
             for (t, expected) in sample.values.iter().enumerate() {
                 let got = result.lower[t];
                 assert!(
@@ -665,7 +808,11 @@ fn lp_matches_scipy_highs_on_digits() {
                 certified += 1;
             }
         }
-        assert_eq!(certified, case.certified, "certified count at eps {}", case.epsilon);
+        assert_eq!(
+            certified, case.certified,
+            "certified count at eps {}",
+            case.epsilon
+        );
     }
 }
 
@@ -682,16 +829,28 @@ fn optimised_linear_certifies_at_least_the_interval_lp_count() {
         let mut counts = [0usize; 3];
         for sample in &case.samples {
             let region = digits_region(&model, data.sample(sample.row), Norm::Linf, case.epsilon);
-            for (m, method) in [Method::Interval, Method::Linear, Method::OptimisedLinear].iter().enumerate() {
-                let result =
-                    bound::margin_lower_bounds(&network, &region, sample.label, &sample.targets, *method, None)
-                        .unwrap();
+            for (m, method) in [Method::Interval, Method::Linear, Method::OptimisedLinear]
+                .iter()
+                .enumerate()
+            {
+                let result = bound::margin_lower_bounds(
+                    &network,
+                    &region,
+                    sample.label,
+                    &sample.targets,
+                    *method,
+                    None,
+                )
+                .unwrap();
                 if result.certified() {
                     counts[m] += 1;
                 }
             }
         }
-        assert!(counts[0] <= counts[1] && counts[1] <= counts[2], "{counts:?}");
+        assert!(
+            counts[0] <= counts[1] && counts[1] <= counts[2],
+            "{counts:?}"
+        );
         assert!(
             counts[2] >= case.certified,
             "eps {}: optimised linear {} < interval LP {}",

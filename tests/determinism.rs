@@ -34,7 +34,11 @@ fn evaluate_is_byte_identical_across_runs_and_thread_counts() {
         data.to_str().expect("utf-8 path"),
     ];
     let first = ballast(&args, 2);
-    assert!(first.status.success(), "{}", String::from_utf8_lossy(&first.stderr));
+    assert!(
+        first.status.success(),
+        "{}",
+        String::from_utf8_lossy(&first.stderr)
+    );
     let text = String::from_utf8_lossy(&first.stdout);
     assert!(text.contains("samples: 540"), "{text}");
     let second = ballast(&args, 2);
@@ -49,7 +53,11 @@ fn inspect_is_byte_identical_across_runs() {
     let model = fixture("digits_mlp.model.json");
     let args = ["inspect", model.to_str().expect("utf-8 path")];
     let first = ballast(&args, 2);
-    assert!(first.status.success(), "{}", String::from_utf8_lossy(&first.stderr));
+    assert!(
+        first.status.success(),
+        "{}",
+        String::from_utf8_lossy(&first.stderr)
+    );
     assert!(String::from_utf8_lossy(&first.stdout).contains("inputs: 64"));
     assert_eq!(first.stdout, ballast(&args, 1).stdout);
 }

@@ -36,7 +36,13 @@ fn matrix(value: &Value) -> Vec<Vec<f64>> {
         .as_array()
         .expect("rows")
         .iter()
-        .map(|r| r.as_array().expect("row").iter().map(|v| v.as_f64().expect("number")).collect())
+        .map(|r| {
+            r.as_array()
+                .expect("row")
+                .iter()
+                .map(|v| v.as_f64().expect("number"))
+                .collect()
+        })
         .collect()
 }
 
@@ -58,14 +64,20 @@ fn sigmoid(z: f64) -> f64 {
 fn assert_close(what: &str, ours: &[f64], theirs: &[f64], tolerance: f64) {
     assert_eq!(ours.len(), theirs.len(), "{what}: length");
     for (k, (a, b)) in ours.iter().zip(theirs).enumerate() {
-        assert!((a - b).abs() <= tolerance, "{what}[{k}]: ballast {a}, onnxruntime {b}");
+        assert!(
+            (a - b).abs() <= tolerance,
+            "{what}[{k}]: ballast {a}, onnxruntime {b}"
+        );
     }
 }
 
 /// Logits of the imported model for each reference input.
 fn logits(model: &Model, inputs: &[Vec<f64>]) -> Vec<Vec<f64>> {
     let network = model.network();
-    inputs.iter().map(|x| network.forward(x).iter().copied().collect()).collect()
+    inputs
+        .iter()
+        .map(|x| network.forward(x).iter().copied().collect())
+        .collect()
 }
 
 /// The class ballast predicts, by name.
@@ -88,14 +100,27 @@ fn sklearn_mlp_matches_onnxruntime_probabilities_and_labels() {
     let f = fixture("sklearn_digits_mlp");
     let model = import(f["file"].as_str().unwrap(), &ImportOptions::default());
     let expected: Vec<String> = (0..10).map(|c| c.to_string()).collect();
-    assert_eq!(model.classes.as_ref(), Some(&expected), "labels from the ZipMap");
+    assert_eq!(
+        model.classes.as_ref(),
+        Some(&expected),
+        "labels from the ZipMap"
+    );
     assert!(matches!(model.layers[1], Layer::Relu));
     let inputs = matrix(&f["inputs"]);
     let probabilities = matrix(&f["ort"]["output_probability"]);
     let labels = f["ort"]["output_label"].as_array().unwrap();
     for (i, z) in logits(&model, &inputs).iter().enumerate() {
-        assert_close(&format!("row {i} probabilities"), &softmax(z), &probabilities[i], TOLERANCE);
-        assert_eq!(predicted_name(&model, &inputs[i]), label_text(&labels[i]), "row {i} label");
+        assert_close(
+            &format!("row {i} probabilities"),
+            &softmax(z),
+            &probabilities[i],
+            TOLERANCE,
+        );
+        assert_eq!(
+            predicted_name(&model, &inputs[i]),
+            label_text(&labels[i]),
+            "row {i} label"
+        );
     }
 }
 
@@ -103,11 +128,24 @@ fn sklearn_mlp_matches_onnxruntime_probabilities_and_labels() {
 // stored (as float32) must be the JSON fixture's weights rounded to float32, in the same orientation.
 #[test]
 fn sklearn_mlp_weights_equal_the_json_fixture_of_the_same_recipe() {
-    let onnx = import("tests/data/onnx/sklearn_digits_mlp.onnx", &ImportOptions::default());
+    let onnx = import(
+        "tests/data/onnx/sklearn_digits_mlp.onnx",
+        &ImportOptions::default(),
+    );
     let json = Model::load(Path::new("tests/data/digits_mlp.model.json")).unwrap();
     assert_eq!(onnx.layers.len(), json.layers.len());
     for (a, b) in onnx.layers.iter().zip(&json.layers) {
-        if let (Layer::Dense { weights: wa, bias: ba }, Layer::Dense { weights: wb, bias: bb }) = (a, b) {
+        if let (
+            Layer::Dense {
+                weights: wa,
+                bias: ba,
+            },
+            Layer::Dense {
+                weights: wb,
+                bias: bb,
+            },
+        ) = (a, b)
+        {
             assert_eq!(wa.shape(), wb.shape());
             for (x, y) in wa.iter().chain(ba.iter()).zip(wb.iter().chain(bb.iter())) {
                 assert!((x - y).abs() <= 1e-6 * (1.0 + y.abs()), "{x} vs {y}");
@@ -124,13 +162,25 @@ fn sklearn_multiclass_logistic_regression_matches_onnxruntime() {
     let model = import(f["file"].as_str().unwrap(), &ImportOptions::default());
     assert_eq!(model.output_dim(), 10);
     let dropped = model.provenance.as_ref().unwrap()["dropped_final_steps"].to_string();
-    assert!(dropped.contains("SOFTMAX") && dropped.contains("Normalizer"), "{dropped}");
+    assert!(
+        dropped.contains("SOFTMAX") && dropped.contains("Normalizer"),
+        "{dropped}"
+    );
     let inputs = matrix(&f["inputs"]);
     let probabilities = matrix(&f["ort"]["probabilities"]);
     let labels = f["ort"]["label"].as_array().unwrap();
     for (i, z) in logits(&model, &inputs).iter().enumerate() {
-        assert_close(&format!("row {i}"), &softmax(z), &probabilities[i], TOLERANCE);
-        assert_eq!(predicted_name(&model, &inputs[i]), label_text(&labels[i]), "row {i} label");
+        assert_close(
+            &format!("row {i}"),
+            &softmax(z),
+            &probabilities[i],
+            TOLERANCE,
+        );
+        assert_eq!(
+            predicted_name(&model, &inputs[i]),
+            label_text(&labels[i]),
+            "row {i} label"
+        );
     }
 }
 
@@ -140,8 +190,14 @@ fn sklearn_multiclass_logistic_regression_matches_onnxruntime() {
 fn sklearn_binary_pipeline_with_string_labels_matches_onnxruntime() {
     let f = fixture("sklearn_breast_cancer_logreg");
     let model = import(f["file"].as_str().unwrap(), &ImportOptions::default());
-    assert_eq!(model.classes, Some(vec!["benign".to_string(), "malignant".to_string()]));
-    assert!(matches!(model.layers[0], Layer::Normalize { .. }), "the Scaler stays a normalize layer");
+    assert_eq!(
+        model.classes,
+        Some(vec!["benign".to_string(), "malignant".to_string()])
+    );
+    assert!(
+        matches!(model.layers[0], Layer::Normalize { .. }),
+        "the Scaler stays a normalize layer"
+    );
     let inputs = matrix(&f["inputs"]);
     let probabilities = matrix(&f["ort"]["probabilities"]);
     let labels = f["ort"]["label"].as_array().unwrap();
@@ -151,7 +207,11 @@ fn sklearn_binary_pipeline_with_string_labels_matches_onnxruntime() {
         assert_close(&format!("row {i}"), &ours, &probabilities[i], TOLERANCE);
         let name = predicted_name(&model, &inputs[i]);
         assert_eq!(name, label_text(&labels[i]), "row {i} label (onnxruntime)");
-        assert_eq!(name, label_text(&sklearn[i]), "row {i} label (scikit-learn)");
+        assert_eq!(
+            name,
+            label_text(&sklearn[i]),
+            "row {i} label (scikit-learn)"
+        );
     }
 }
 
@@ -170,12 +230,24 @@ fn hand_built_graph_matches_onnxruntime_logits_and_probabilities() {
         };
         let model = import(file, &options);
         assert_eq!(model.input.dim, 6, "{name}: [N, 2, 3] flattened");
-        assert!(matches!(model.layers[0], Layer::Normalize { .. }), "{name}: Sub/Div stay a normalize layer");
-        let relus = model.layers.iter().filter(|l| matches!(l, Layer::Relu)).count();
+        assert!(
+            matches!(model.layers[0], Layer::Normalize { .. }),
+            "{name}: Sub/Div stay a normalize layer"
+        );
+        let relus = model
+            .layers
+            .iter()
+            .filter(|l| matches!(l, Layer::Relu))
+            .count();
         assert_eq!(relus, 2, "{name}");
         let ort_logits = matrix(&f["ort"]["logits"]);
         for (i, z) in logits(&model, &inputs).iter().enumerate() {
-            assert_close(&format!("{name} row {i} logits"), z, &ort_logits[i], tolerance);
+            assert_close(
+                &format!("{name} row {i} logits"),
+                z,
+                &ort_logits[i],
+                tolerance,
+            );
         }
         let options = ImportOptions {
             score_output: Some("probs".into()),
@@ -186,14 +258,22 @@ fn hand_built_graph_matches_onnxruntime_logits_and_probabilities() {
         assert!(dropped.contains("Softmax 'softmax'"), "{dropped}");
         let ort_probs = matrix(&f["ort"]["probs"]);
         for (i, z) in logits(&model, &inputs).iter().enumerate() {
-            assert_close(&format!("{name} row {i} probs"), &softmax(z), &ort_probs[i], tolerance);
+            assert_close(
+                &format!("{name} row {i} probs"),
+                &softmax(z),
+                &ort_probs[i],
+                tolerance,
+            );
             let ours = predicted_class(z);
             let theirs = predicted_class(&ort_probs[i]);
             assert_eq!(ours, theirs, "{name} row {i} argmax");
         }
         let e = load_onnx(Path::new(file), u64::MAX, &ImportOptions::default()).unwrap_err();
         let message = e.to_string();
-        assert!(message.contains("logits") && message.contains("probs") && message.contains("--output"), "{message}");
+        assert!(
+            message.contains("logits") && message.contains("probs") && message.contains("--output"),
+            "{message}"
+        );
     }
 }
 
@@ -202,7 +282,10 @@ fn hand_built_graph_matches_onnxruntime_logits_and_probabilities() {
 // (LOGISTIC) and the label 7 exactly when s > 0: ballast's 1-logit binary rule.
 #[test]
 fn one_row_binary_linear_classifier_becomes_a_one_logit_model() {
-    for (name, logistic) in [("binary_linear_none", false), ("binary_linear_logistic", true)] {
+    for (name, logistic) in [
+        ("binary_linear_none", false),
+        ("binary_linear_logistic", true),
+    ] {
         let f = fixture(name);
         let model = import(f["file"].as_str().unwrap(), &ImportOptions::default());
         assert_eq!(model.output_dim(), 1, "{name}");
@@ -213,11 +296,23 @@ fn one_row_binary_linear_classifier_becomes_a_one_logit_model() {
         let mut positives = 0;
         for (i, z) in logits(&model, &inputs).iter().enumerate() {
             let s = if logistic { sigmoid(z[0]) } else { z[0] };
-            assert_close(&format!("{name} row {i}"), &[1.0 - s, s], &scores[i], TOLERANCE);
-            assert_eq!(predicted_name(&model, &inputs[i]), label_text(&labels[i]), "{name} row {i}");
+            assert_close(
+                &format!("{name} row {i}"),
+                &[1.0 - s, s],
+                &scores[i],
+                TOLERANCE,
+            );
+            assert_eq!(
+                predicted_name(&model, &inputs[i]),
+                label_text(&labels[i]),
+                "{name} row {i}"
+            );
             positives += usize::from(z[0] > 0.0);
         }
-        assert!(positives > 0 && positives < inputs.len(), "{name}: both classes occur");
+        assert!(
+            positives > 0 && positives < inputs.len(),
+            "{name}: both classes occur"
+        );
     }
 }
 
@@ -226,7 +321,11 @@ fn one_row_binary_linear_classifier_becomes_a_one_logit_model() {
 fn exported_files_match_onnxruntime_and_are_reproduced_byte_for_byte() {
     for (name, precision, tolerance) in [
         ("exported_digits_mlp", FloatPrecision::Float32, TOLERANCE),
-        ("exported_digits_mlp_deep_f64", FloatPrecision::Float64, 1e-10),
+        (
+            "exported_digits_mlp_deep_f64",
+            FloatPrecision::Float64,
+            1e-10,
+        ),
     ] {
         let f = fixture(name);
         let source = Model::load(Path::new(f["model"].as_str().unwrap())).unwrap();
@@ -235,7 +334,11 @@ fn exported_files_match_onnxruntime_and_are_reproduced_byte_for_byte() {
         let mut largest = 0.0f64;
         for (i, z) in logits(&source, &inputs).iter().enumerate() {
             assert_close(&format!("{name} row {i}"), z, &ort_logits[i], tolerance);
-            assert_eq!(predicted_class(z), predicted_class(&ort_logits[i]), "{name} row {i} argmax");
+            assert_eq!(
+                predicted_class(z),
+                predicted_class(&ort_logits[i]),
+                "{name} row {i} argmax"
+            );
             for (a, b) in z.iter().zip(&ort_logits[i]) {
                 largest = largest.max((a - b).abs());
             }
@@ -254,7 +357,12 @@ fn exported_files_match_onnxruntime_and_are_reproduced_byte_for_byte() {
         assert_eq!(back.input.lower, source.input.lower);
         assert_eq!(back.input.upper, source.input.upper);
         for (i, z) in logits(&back, &inputs).iter().enumerate() {
-            assert_close(&format!("{name} re-imported row {i}"), z, &ort_logits[i], tolerance);
+            assert_close(
+                &format!("{name} re-imported row {i}"),
+                z,
+                &ort_logits[i],
+                tolerance,
+            );
         }
     }
 }
@@ -262,8 +370,15 @@ fn exported_files_match_onnxruntime_and_are_reproduced_byte_for_byte() {
 // Source: tests/reference/out/digits_forward.json (scikit-learn test accuracy of the same recipe).
 #[test]
 fn onnx_models_load_wherever_a_model_path_is_accepted() {
-    let model = ballast::cli::common::load_model(Path::new("tests/data/onnx/sklearn_digits_mlp.onnx"), false).unwrap();
-    assert!(model.input.lower.iter().all(|v| v.is_infinite()), "no range info: unbounded");
+    let model = ballast::cli::common::load_model(
+        Path::new("tests/data/onnx/sklearn_digits_mlp.onnx"),
+        false,
+    )
+    .unwrap();
+    assert!(
+        model.input.lower.iter().all(|v| v.is_infinite()),
+        "no range info: unbounded"
+    );
     let data = ballast::data::load_csv(
         Path::new("tests/data/digits_test.csv"),
         &model,
@@ -278,15 +393,24 @@ fn onnx_models_load_wherever_a_model_path_is_accepted() {
     let accuracy = correct as f64 / data.len() as f64;
     let text = std::fs::read_to_string("tests/reference/out/digits_forward.json").unwrap();
     let forward: Value = serde_json::from_str(&text).unwrap();
-    let sklearn = forward["models"]["digits_mlp"]["test_accuracy"].as_f64().unwrap();
-    assert!((accuracy - sklearn).abs() <= 1.0 / 540.0 + 1e-12, "{accuracy} vs {sklearn}");
+    let sklearn = forward["models"]["digits_mlp"]["test_accuracy"]
+        .as_f64()
+        .unwrap();
+    assert!(
+        (accuracy - sklearn).abs() <= 1.0 / 540.0 + 1e-12,
+        "{accuracy} vs {sklearn}"
+    );
 }
 
 #[test]
 fn unsupported_nodes_exit_2_naming_the_node() {
     let dir = tempfile::tempdir().unwrap();
     for (file, node, op) in [
-        ("tests/data/onnx/unsupported_sigmoid.onnx", "hidden_sigmoid", "Sigmoid"),
+        (
+            "tests/data/onnx/unsupported_sigmoid.onnx",
+            "hidden_sigmoid",
+            "Sigmoid",
+        ),
         ("tests/data/onnx/unsupported_conv.onnx", "conv1", "Conv"),
     ] {
         let out = dir.path().join("model.json");
@@ -297,10 +421,16 @@ fn unsupported_nodes_exit_2_naming_the_node() {
             .unwrap();
         let stderr = String::from_utf8_lossy(&run.stderr);
         assert_eq!(run.status.code(), Some(2), "{file}: {stderr}");
-        assert!(stderr.contains(&format!("node '{node}' ({op})")), "{file}: {stderr}");
+        assert!(
+            stderr.contains(&format!("node '{node}' ({op})")),
+            "{file}: {stderr}"
+        );
         assert!(!out.exists(), "nothing written on error");
         let e = load_onnx(Path::new(file), u64::MAX, &ImportOptions::default()).unwrap_err();
-        assert!(matches!(e, OnnxError::InFile { ref inner, .. } if matches!(**inner, OnnxError::Unsupported { .. })), "{e}");
+        assert!(
+            matches!(e, OnnxError::InFile { ref inner, .. } if matches!(**inner, OnnxError::Unsupported { .. })),
+            "{e}"
+        );
     }
 }
 
@@ -324,7 +454,12 @@ fn import_command_writes_a_model_with_range_classes_and_name() {
         .arg(&out)
         .output()
         .unwrap();
-    assert_eq!(run.status.code(), Some(0), "{}", String::from_utf8_lossy(&run.stderr));
+    assert_eq!(
+        run.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
     let model = Model::load(&out).unwrap();
     assert_eq!(model.name.as_deref(), Some("cancer-screen"));
     assert_eq!(model.classes, Some(vec!["b".to_string(), "m".to_string()]));
@@ -335,19 +470,34 @@ fn import_command_writes_a_model_with_range_classes_and_name() {
     std::fs::write(&range, r#"{"lower": 0, "upper": [1, 2, 3, 4]}"#).unwrap();
     let out = dir.path().join("binary.json");
     let run = Command::new(binary())
-        .args(["import", "--onnx", "tests/data/onnx/binary_linear_none.onnx", "--input-range-file"])
+        .args([
+            "import",
+            "--onnx",
+            "tests/data/onnx/binary_linear_none.onnx",
+            "--input-range-file",
+        ])
         .arg(&range)
         .arg("--out")
         .arg(&out)
         .output()
         .unwrap();
-    assert_eq!(run.status.code(), Some(0), "{}", String::from_utf8_lossy(&run.stderr));
+    assert_eq!(
+        run.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
     let model = Model::load(&out).unwrap();
     assert_eq!(model.input.upper, vec![1.0, 2.0, 3.0, 4.0]);
 
     std::fs::write(&range, r#"{"lower": 0, "upper": [1, 2]}"#).unwrap();
     let run = Command::new(binary())
-        .args(["import", "--onnx", "tests/data/onnx/binary_linear_none.onnx", "--input-range-file"])
+        .args([
+            "import",
+            "--onnx",
+            "tests/data/onnx/binary_linear_none.onnx",
+            "--input-range-file",
+        ])
         .arg(&range)
         .arg("--out")
         .arg(dir.path().join("bad.json"))
@@ -362,23 +512,42 @@ fn export_command_round_trips_through_import() {
     let dir = tempfile::tempdir().unwrap();
     let onnx = dir.path().join("m.onnx");
     let run = Command::new(binary())
-        .args(["export", "--model", "tests/data/digits_mlp.model.json", "--onnx"])
+        .args([
+            "export",
+            "--model",
+            "tests/data/digits_mlp.model.json",
+            "--onnx",
+        ])
         .arg(&onnx)
         .output()
         .unwrap();
-    assert_eq!(run.status.code(), Some(0), "{}", String::from_utf8_lossy(&run.stderr));
+    assert_eq!(
+        run.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
     let committed = std::fs::read("tests/data/onnx/exported_digits_mlp.onnx").unwrap();
-    assert!(std::fs::read(&onnx).unwrap() == committed, "CLI and library export agree");
+    assert!(
+        std::fs::read(&onnx).unwrap() == committed,
+        "CLI and library export agree"
+    );
     let back = ballast::cli::common::load_model(&onnx, false).unwrap();
     let source = Model::load(Path::new("tests/data/digits_mlp.model.json")).unwrap();
-    assert_eq!(back.input.upper, source.input.upper, "range carried in metadata");
+    assert_eq!(
+        back.input.upper, source.input.upper,
+        "range carried in metadata"
+    );
 }
 
 #[test]
 fn damaged_files_give_errors_not_panics() {
     let bytes = std::fs::read("tests/data/onnx/sklearn_digits_mlp.onnx").unwrap();
     for cut in [1, 7, 100, bytes.len() / 2, bytes.len() - 1] {
-        assert!(import_model(&bytes[..cut], &ImportOptions::default()).is_err(), "cut at {cut}");
+        assert!(
+            import_model(&bytes[..cut], &ImportOptions::default()).is_err(),
+            "cut at {cut}"
+        );
     }
     let mut flipped = bytes.clone();
     for i in (0..flipped.len()).step_by(97) {
@@ -389,6 +558,11 @@ fn damaged_files_give_errors_not_panics() {
     let claim = [0x3a, 0x80, 0x80, 0x80, 0x80, 0x80, 0x20];
     let e = import_model(&claim, &ImportOptions::default()).unwrap_err();
     assert!(matches!(e, OnnxError::Decode { .. }), "{e}");
-    let e = load_onnx(Path::new("tests/data/onnx/sklearn_digits_mlp.onnx"), 100, &ImportOptions::default()).unwrap_err();
+    let e = load_onnx(
+        Path::new("tests/data/onnx/sklearn_digits_mlp.onnx"),
+        100,
+        &ImportOptions::default(),
+    )
+    .unwrap_err();
     assert!(e.to_string().contains("--allow-large"), "{e}");
 }

@@ -40,8 +40,8 @@ pub fn minimum_of_rows(region: &Region, a: &DMatrix<f64>, constant: &DVector<f64
             let mut value: Vec<f64> = constant.iter().copied().collect();
             for (i, column) in a.column_iter().enumerate() {
                 let (lo, hi) = (region.lower[i], region.upper[i]);
-                for (v, w) in value.iter_mut().zip(column.iter()) {
-                    *v += if *w > 0.0 { w * lo } else { w * hi };
+                for (v, w) in value.iter_mut().zip(column.as_slice()) {
+                    *v += w.max(0.0) * lo + w.min(0.0) * hi;
                 }
             }
             value
@@ -127,7 +127,14 @@ impl L2Problem<'_> {
     fn point(&self, center: &[f64], multiplier: f64) -> Vec<f64> {
         (0..self.a.len())
             .map(|i| {
-                center[i] + coordinate(self.a[i], self.radii[i], self.low[i], self.high[i], multiplier)
+                center[i]
+                    + coordinate(
+                        self.a[i],
+                        self.radii[i],
+                        self.low[i],
+                        self.high[i],
+                        multiplier,
+                    )
             })
             .collect()
     }

@@ -14,7 +14,8 @@ use nalgebra::DMatrix;
 use rayon::prelude::*;
 
 use super::{
-    clip_to_splits, validate, validate_network, validate_sample, BoundError, Domain, LayerBounds, MarginBounds, Method, SplitState,
+    clip_to_splits, validate, validate_network, validate_sample, BoundError, Domain, LayerBounds,
+    MarginBounds, Method, SplitState,
 };
 use crate::model::{Dense, Network};
 use crate::threat::Region;
@@ -38,20 +39,18 @@ pub(crate) fn box_minimum(a: impl Iterator<Item = f64>, lower: &[f64], upper: &[
         .sum()
 }
 
-/// The box image of `[lower, upper]` under `dense` (exact per coordinate).
+/// The box image of `[lower, upper]` under `dense` (exact per coordinate: each weight takes the end
+/// of its input interval that minimises, resp. maximises, its term).
 pub(crate) fn affine_box(dense: &Dense, lower: &[f64], upper: &[f64]) -> LayerBounds {
     let mut lo: Vec<f64> = dense.bias.iter().copied().collect();
     let mut hi = lo.clone();
     for (j, column) in dense.weights.column_iter().enumerate() {
         let (l, u) = (lower[j], upper[j]);
-        for (i, w) in column.iter().enumerate() {
-            if *w > 0.0 {
-                lo[i] += w * l;
-                hi[i] += w * u;
-            } else {
-                lo[i] += w * u;
-                hi[i] += w * l;
-            }
+        let column = column.as_slice();
+        for ((w, a), b) in column.iter().zip(lo.iter_mut()).zip(hi.iter_mut()) {
+            let (positive, negative) = (w.max(0.0), w.min(0.0));
+            *a += positive * l + negative * u;
+            *b += positive * u + negative * l;
         }
     }
     LayerBounds {

@@ -18,7 +18,9 @@
 
 use nalgebra::DVector;
 
-use super::linear::{backward, checked_layer_bounds, intermediate_bounds, margin_rows, relax_given};
+use super::linear::{
+    backward, checked_layer_bounds, intermediate_bounds, margin_rows, relax_given,
+};
 use super::linear::{Relaxation, Unit};
 use super::solver::{self, LinearProgram, Outcome, Sense};
 use super::{
@@ -40,7 +42,13 @@ pub fn margin_lower_bounds(
     let network = validate(network, region, label, targets, splits)?;
     let (bounds, relaxations, domain, _) = intermediate_bounds(&network, region, splits);
     if let Domain::Empty { layer, unit } = domain {
-        return Ok(MarginBounds::empty(Method::Lp, targets, bounds, layer, unit));
+        return Ok(MarginBounds::empty(
+            Method::Lp,
+            targets,
+            bounds,
+            layer,
+            unit,
+        ));
     }
     let linear = super::linear::final_pass(
         &network,
@@ -51,7 +59,15 @@ pub fn margin_lower_bounds(
         &relaxations,
     )
     .0;
-    let mut result = solve(&network, region, label, targets, bounds, &relaxations, splits)?;
+    let mut result = solve(
+        &network,
+        region,
+        label,
+        targets,
+        bounds,
+        &relaxations,
+        splits,
+    )?;
     for t in 0..targets.len() {
         if linear.lower[t] > result.lower[t] {
             result.lower[t] = linear.lower[t];
@@ -74,9 +90,23 @@ pub fn margin_lower_bounds_from(
     let bounds = checked_layer_bounds(&network, pre_activation)?;
     let (bounds, relaxations, domain) = relax_given(bounds, splits);
     if let Domain::Empty { layer, unit } = domain {
-        return Ok(MarginBounds::empty(Method::Lp, targets, bounds, layer, unit));
+        return Ok(MarginBounds::empty(
+            Method::Lp,
+            targets,
+            bounds,
+            layer,
+            unit,
+        ));
     }
-    solve(&network, region, label, targets, bounds, &relaxations, splits)
+    solve(
+        &network,
+        region,
+        label,
+        targets,
+        bounds,
+        &relaxations,
+        splits,
+    )
 }
 
 /// The triangle-relaxation LP without objective, with the variable index (if any) of each unit of the

@@ -26,6 +26,8 @@ pub mod lp;
 pub mod optimised;
 mod solver;
 
+use std::borrow::Cow;
+
 use crate::model::Network;
 use crate::threat::Region;
 
@@ -328,14 +330,18 @@ pub fn margin_lower_bounds(
 }
 
 /// Checks the arguments shared by every method and returns the classifier form of the network.
-pub(crate) fn validate(
-    network: &Network,
+pub(crate) fn validate<'a>(
+    network: &'a Network,
     region: &Region,
     label: usize,
     targets: &[usize],
     splits: Option<&SplitState>,
-) -> Result<Network, BoundError> {
-    let network = network.as_classifier();
+) -> Result<Cow<'a, Network>, BoundError> {
+    let network = if network.output_dim() == 1 {
+        Cow::Owned(network.as_classifier())
+    } else {
+        Cow::Borrowed(network)
+    };
     validate_network(&network)?;
     validate_sample(&network, region, label, targets, splits)?;
     Ok(network)
@@ -470,4 +476,3 @@ pub(crate) fn clip_to_splits(
     }
     None
 }
-

@@ -68,14 +68,9 @@ pub fn margin_lower_bounds(
             continue;
         }
         let row: DVector<f64> = rows.row(t).transpose();
-        if let Some((value, point)) = optimise_target(
-            &network,
-            region,
-            &relaxations,
-            &row,
-            constants[t],
-            options,
-        ) {
+        if let Some((value, point)) =
+            optimise_target(&network, region, &relaxations, &row, constants[t], options)
+        {
             if value > result.lower[t] {
                 result.lower[t] = value;
                 result.minimisers[t] = Some(point);
@@ -137,7 +132,10 @@ fn evaluate(
     let input: Vec<f64> = a.iter().copied().collect();
     let (minimum, point) = concretise::minimum_with_point(region, &input);
     // Forward pass of the relaxed network at the minimising input: the adjoint of the backward pass.
-    let mut gradient: Slopes = relaxations.iter().map(|r| vec![0.0; r.units.len()]).collect();
+    let mut gradient: Slopes = relaxations
+        .iter()
+        .map(|r| vec![0.0; r.units.len()])
+        .collect();
     let mut adjoint = DVector::from_column_slice(&point);
     for k in 0..top {
         let layer = &network.layers[k];
@@ -198,7 +196,11 @@ fn optimise_target(
     let mut best: Option<(f64, Vec<f64>)> = None;
     for step in 1..=options.iterations.max(1) {
         let evaluation = evaluate(network, region, relaxations, &slopes, row, constant);
-        if best.as_ref().map(|b| evaluation.value > b.0).unwrap_or(true) {
+        if best
+            .as_ref()
+            .map(|b| evaluation.value > b.0)
+            .unwrap_or(true)
+        {
             best = Some((evaluation.value, evaluation.point.clone()));
         }
         if options.stop_when_certified && evaluation.value > CERTIFY_TOLERANCE {
@@ -216,7 +218,8 @@ fn optimise_target(
                 second[k][i] = beta2 * second[k][i] + (1.0 - beta2) * g * g;
                 let m = first[k][i] / correction1;
                 let v = second[k][i] / correction2;
-                slopes[k][i] = (slopes[k][i] + options.step * m / (v.sqrt() + epsilon)).clamp(0.0, 1.0);
+                slopes[k][i] =
+                    (slopes[k][i] + options.step * m / (v.sqrt() + epsilon)).clamp(0.0, 1.0);
             }
         }
     }

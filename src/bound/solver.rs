@@ -47,7 +47,12 @@ impl LinearProgram {
     }
 
     /// Adds a constraint.
-    pub(crate) fn constrain(&mut self, terms: Vec<(usize, f64)>, sense: Sense, right_hand_side: f64) {
+    pub(crate) fn constrain(
+        &mut self,
+        terms: Vec<(usize, f64)>,
+        sense: Sense,
+        right_hand_side: f64,
+    ) {
         self.constraints.push(Constraint {
             terms,
             sense,
@@ -144,6 +149,9 @@ mod tests {
         let mut program = LinearProgram::default();
         let x = program.variable(0.0, 1.0);
         program.constrain(vec![(x, 1.0)], Sense::AtLeast, 2.0);
-        assert_eq!(minimise(&program, &[(x, 1.0)], 0.0).unwrap(), Outcome::Infeasible);
+        assert_eq!(
+            minimise(&program, &[(x, 1.0)], 0.0).unwrap(),
+            Outcome::Infeasible
+        );
     }
 }

@@ -26,7 +26,11 @@ pub struct Args {
 /// Runs `ballast export`.
 pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     let model = super::common::load_model(&args.model, args.allow_large)?;
-    let precision = if args.float64 { FloatPrecision::Float64 } else { FloatPrecision::Float32 };
+    let precision = if args.float64 {
+        FloatPrecision::Float64
+    } else {
+        FloatPrecision::Float32
+    };
     save_onnx(&model, &args.onnx, &ExportOptions { precision })?;
     println!(
         "exported {} -> {} ({} tensors)",

@@ -1,20 +1,25 @@
-//! `ballast generate-demo --out DIR [--seed S]`: regenerate the bundled pump-fleet demo (data,
-//! tolerance and requirement files under `DIR/demo-data/`).
+//! `ballast generate-demo --out DIR [--seed S]`: regenerate the bundled pump-fleet demo: data,
+//! tolerance and requirement files under `DIR/demo-data/`, and the two models, retrained by the plain
+//! cross-entropy trainer, under `DIR/models/`.
 
 use std::path::PathBuf;
 
-use crate::demo::{files, generator, scenario};
+use crate::cli::evaluate::evaluate;
+use crate::demo::{files, generator, models, scenario};
 
 /// Arguments of `ballast generate-demo`.
 #[derive(Debug, clap::Args)]
 #[command(after_help = "Example (regenerates the committed files): ballast generate-demo --out .")]
 pub struct Args {
-    /// Folder that receives `demo-data/`.
+    /// Folder that receives `demo-data/` and `models/`.
     #[arg(long)]
     pub out: PathBuf,
-    /// Seed of the data generator.
+    /// Seed of the data generator (and of the trainer).
     #[arg(long, default_value_t = scenario::DEFAULT_SEED)]
     pub seed: u64,
+    /// Write the data files only; do not train the models.
+    #[arg(long)]
+    pub data_only: bool,
 }
 
 /// Runs `ballast generate-demo`.
@@ -23,6 +28,26 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     let written = files::write_data_files(&args.out.join("demo-data"), &data)?;
     for path in written {
         println!("wrote {}", path.display());
+    }
+    if args.data_only {
+        return Ok(super::Outcome::Finished);
+    }
+    let folder = args.out.join("models");
+    std::fs::create_dir_all(&folder)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", folder.display()))?;
+    let (linear, mlp) = models::train_demo_models(&data.train, args.seed)?;
+    let acceptance = data.acceptance.to_dataset();
+    for (file, trained) in [(models::LINEAR_FILE, &linear), (models::MLP_FILE, &mlp)] {
+        let path = folder.join(file);
+        trained.model.save(&path)?;
+        let accuracy = evaluate(&trained.model, &acceptance).accuracy;
+        println!(
+            "wrote {} ({} epochs, best {}, clean accuracy on acceptance.csv {:.4})",
+            path.display(),
+            trained.log.epochs.len(),
+            trained.log.best_epoch,
+            accuracy
+        );
     }
     Ok(super::Outcome::Finished)
 }

@@ -9,7 +9,9 @@ use crate::model::onnx::{load_onnx, ImportOptions};
 
 /// Arguments of `ballast import`.
 #[derive(Debug, clap::Args)]
-#[command(after_help = "Example: ballast import --onnx mlp.onnx --out mlp.json --input-range 0,1 --classes normal,worn")]
+#[command(
+    after_help = "Example: ballast import --onnx mlp.onnx --out mlp.json --input-range 0,1 --classes normal,worn"
+)]
 pub struct Args {
     /// The ONNX file to convert.
     #[arg(long)]
@@ -18,7 +20,12 @@ pub struct Args {
     #[arg(long)]
     pub out: PathBuf,
     /// Valid input range for every feature, as `LOWER,UPPER` (raw input units).
-    #[arg(long, value_name = "L,U", allow_hyphen_values = true, conflicts_with = "input_range_file")]
+    #[arg(
+        long,
+        value_name = "L,U",
+        allow_hyphen_values = true,
+        conflicts_with = "input_range_file"
+    )]
     pub input_range: Option<String>,
     /// JSON file with `lower` and `upper` (a number or one per feature) and optional feature `names`.
     #[arg(long, value_name = "FILE")]
@@ -53,7 +60,11 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
         (None, None) => None,
     };
     // Import once without the range to learn the input size, then expand the range to it.
-    let max_bytes = if args.allow_large { u64::MAX } else { crate::limits::MAX_MODEL_FILE_BYTES };
+    let max_bytes = if args.allow_large {
+        u64::MAX
+    } else {
+        crate::limits::MAX_MODEL_FILE_BYTES
+    };
     let probe = load_onnx(&args.onnx, max_bytes, &options)?;
     if let Some(range) = range {
         let dim = probe.input.dim;
@@ -61,7 +72,10 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
         options.upper = Some(range.upper.expand(dim, "upper")?);
         if let Some(names) = range.names {
             if names.len() != dim {
-                bail!("input range file: names has {} entries, the model has {dim} features", names.len());
+                bail!(
+                    "input range file: names has {} entries, the model has {dim} features",
+                    names.len()
+                );
             }
             options.feature_names = Some(names);
         }
@@ -100,7 +114,10 @@ impl Bound {
         match self {
             Bound::All(v) => Ok(vec![v; dim]),
             Bound::Each(v) if v.len() == dim => Ok(v),
-            Bound::Each(v) => bail!("input range: {what} has {} values, the model has {dim} features", v.len()),
+            Bound::Each(v) => bail!(
+                "input range: {what} has {} values, the model has {dim} features",
+                v.len()
+            ),
         }
     }
 }
@@ -139,14 +156,20 @@ fn parse_range(text: &str) -> anyhow::Result<Range> {
 fn read_range_file(path: &Path) -> anyhow::Result<Range> {
     let text = crate::limits::read_text_file(path, crate::limits::MAX_SMALL_FILE_BYTES)
         .with_context(|| format!("reading {}", path.display()))?;
-    let value: serde_json::Value =
-        serde_json::from_str(&text).with_context(|| format!("{}: not valid JSON", path.display()))?;
-    let object = value
-        .as_object()
-        .ok_or_else(|| anyhow::anyhow!("{}: expected a JSON object with lower and upper", path.display()))?;
+    let value: serde_json::Value = serde_json::from_str(&text)
+        .with_context(|| format!("{}: not valid JSON", path.display()))?;
+    let object = value.as_object().ok_or_else(|| {
+        anyhow::anyhow!(
+            "{}: expected a JSON object with lower and upper",
+            path.display()
+        )
+    })?;
     for key in object.keys() {
         if !matches!(key.as_str(), "lower" | "upper" | "names") {
-            bail!("{}: unknown key \"{key}\" (expected lower, upper, names)", path.display());
+            bail!(
+                "{}: unknown key \"{key}\" (expected lower, upper, names)",
+                path.display()
+            );
         }
     }
     let bound = |key: &str| -> anyhow::Result<Bound> {
@@ -157,7 +180,10 @@ fn read_range_file(path: &Path) -> anyhow::Result<Range> {
             Some(serde_json::Value::Array(items)) => items
                 .iter()
                 .enumerate()
-                .map(|(i, v)| v.as_f64().ok_or_else(|| anyhow::anyhow!("{place}[{i}] is not a number")))
+                .map(|(i, v)| {
+                    v.as_f64()
+                        .ok_or_else(|| anyhow::anyhow!("{place}[{i}] is not a number"))
+                })
                 .collect::<anyhow::Result<Vec<f64>>>()
                 .map(Bound::Each),
             Some(_) => bail!("{place}: expected a number or a list of numbers"),

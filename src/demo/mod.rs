@@ -2,11 +2,13 @@
 //! generator, its files and its models.
 //!
 //! [`scenario`] holds the tables (features, units, ranges, tolerances, classes), [`generator`] makes
-//! the data deterministically from a seed, [`files`] writes the data, tolerance and requirement files.
+//! the data deterministically from a seed, [`files`] writes the data, tolerance and requirement files,
+//! [`models`] trains the two demo models.
 //! Everything here is invented for the demo only; nothing here decides robustness itself.
 
 pub mod files;
 pub mod generator;
+pub mod models;
 pub mod scenario;
 
 /// Why a demo step failed.
@@ -20,4 +22,10 @@ pub enum DemoError {
         /// What the system said.
         source: std::io::Error,
     },
+    /// Training a demo model failed.
+    #[error("training the demo model: {0}")]
+    Train(#[from] crate::train::TrainError),
+    /// A demo model could not be saved.
+    #[error(transparent)]
+    Model(#[from] crate::model::ModelError),
 }

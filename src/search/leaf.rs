@@ -121,7 +121,7 @@ pub(crate) struct LeafSolution {
     /// Sound lower bound on the margin over the sub-domain (`+∞` when the Lagrangian proves it empty
     /// beyond any margin of interest).
     pub lower: f64,
-    /// The primal minimiser moved into the region, when requested and the sub-domain is not empty.
+    /// The primal minimiser moved into the region (`None` when the solver finds the sub-domain empty).
     pub point: Option<Vec<f64>>,
 }
 
@@ -219,20 +219,62 @@ pub(crate) fn primal_point(
     }
 }
 
-/// Solves a leaf: the sound Lagrangian bound, and the primal minimiser when `want_point` is true or
-/// the bound does not exceed `point_threshold` (a point is only worth computing where it could matter).
+/// Multipliers from the KKT conditions at a primal optimum `x`: on the coordinates strictly inside the
+/// box the reduced cost `g − Sᵀλ` must vanish, using only the rows active at `x`; solved by least
+/// squares and clipped to `λ ≥ 0`. Cheap, and exact at a non-degenerate optimum; callers check the
+/// resulting bound and fall back to the dual LP when it is not tight.
+fn kkt_multipliers(region: &Region, piece: &AffinePiece, x: &[f64]) -> Vec<f64> {
+    let rows = piece.rows.len();
+    let mut multipliers = vec![0.0; rows];
+    let scale = 1e-7;
+    let active: Vec<usize> = (0..rows)
+        .filter(|&r| {
+            let value: f64 = piece.rows[r].iter().zip(x).map(|(a, b)| a * b).sum();
+            value - piece.right_hand_sides[r] <= scale * (1.0 + piece.right_hand_sides[r].abs())
+        })
+        .collect();
+    let free: Vec<usize> = (0..x.len())
+        .filter(|&i| {
+            let width = region.upper[i] - region.lower[i];
+            x[i] > region.lower[i] + scale * (1.0 + width) && x[i] < region.upper[i] - scale * (1.0 + width)
+        })
+        .collect();
+    if active.is_empty() || free.is_empty() {
+        return multipliers;
+    }
+    // (S_{A,F})ᵀ λ_A = g_F in the least-squares sense.
+    let matrix = DMatrix::from_fn(free.len(), active.len(), |i, r| piece.rows[active[r]][free[i]]);
+    let target = DVector::from_fn(free.len(), |i, _| piece.gradient[free[i]]);
+    let Ok(solution) = matrix.svd(true, true).solve(&target, 1e-12) else {
+        return multipliers;
+    };
+    for (r, value) in active.iter().zip(solution.iter()) {
+        multipliers[*r] = value.max(0.0);
+    }
+    multipliers
+}
+
+/// Solves a leaf: the primal LP for the minimiser and value, then a sound Lagrangian bound from the KKT
+/// multipliers at the optimum; when that bound is not within `1e-7` of the LP value (degenerate optimum,
+/// solver noise, an L2 region) and does not exceed `threshold`, the multipliers of the dual LP are tried
+/// as well and the larger bound kept. The point is the primal minimiser moved into the region.
 pub(crate) fn solve_leaf(
     region: &Region,
     piece: &AffinePiece,
-    point_threshold: f64,
+    threshold: f64,
 ) -> Result<LeafSolution, SearchError> {
-    let multipliers = dual_multipliers(region, piece)?;
-    let lower = lagrangian_bound(region, piece, &multipliers);
-    let point = if lower <= point_threshold {
-        primal_point(region, piece)?
-    } else {
-        None
-    };
+    let point = primal_point(region, piece)?;
+    let mut lower = f64::NEG_INFINITY;
+    let mut value = f64::NEG_INFINITY;
+    if let Some(x) = &point {
+        value = piece.gradient.iter().zip(x).map(|(g, v)| g * v).sum::<f64>() + piece.constant;
+        lower = lagrangian_bound(region, piece, &kkt_multipliers(region, piece, x));
+    }
+    let tight = lower >= value - 1e-7 * (1.0 + value.abs());
+    if !(tight || lower > threshold) {
+        let multipliers = dual_multipliers(region, piece)?;
+        lower = lower.max(lagrangian_bound(region, piece, &multipliers));
+    }
     Ok(LeafSolution { lower, point })
 }
 

@@ -25,9 +25,12 @@
 //! needed; the trainer keeps them.
 
 pub mod backprop;
+pub mod bound_gradient;
+pub mod constrained;
 pub mod init;
 pub mod optimizer;
 pub mod plain;
+pub mod robust;
 
 pub use init::{fit_normalization, he_network, new_mlp};
 pub use optimizer::{Optimizer, OptimizerKind};

@@ -11,9 +11,9 @@ use prost::Message;
 
 use super::import::{META_CLASSES, META_LOWER, META_NAMES, META_UPPER};
 use super::schema::{
-    tensor_proto::DataType, tensor_shape_proto::dimension, tensor_shape_proto::Dimension, type_proto,
-    AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, StringStringEntryProto,
-    TensorProto, TensorShapeProto, TypeProto, ValueInfoProto,
+    tensor_proto::DataType, tensor_shape_proto::dimension, tensor_shape_proto::Dimension,
+    type_proto, AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto,
+    StringStringEntryProto, TensorProto, TensorShapeProto, TypeProto, ValueInfoProto,
 };
 use super::OnnxError;
 use crate::model::{Layer, Model};
@@ -69,12 +69,26 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
                 initializers.push(tensor(&mean_name, &[mean.len()], mean.as_slice(), element));
                 initializers.push(tensor(&std_name, &[std.len()], std.as_slice(), element));
                 let centred = format!("layer{i}.centred");
-                nodes.push(node("Sub", &format!("layer{i}_sub"), &[&current, &mean_name], &centred, vec![]));
-                nodes.push(node("Div", &format!("layer{i}_div"), &[&centred, &std_name], &output, vec![]));
+                nodes.push(node(
+                    "Sub",
+                    &format!("layer{i}_sub"),
+                    &[&current, &mean_name],
+                    &centred,
+                    vec![],
+                ));
+                nodes.push(node(
+                    "Div",
+                    &format!("layer{i}_div"),
+                    &[&centred, &std_name],
+                    &output,
+                    vec![],
+                ));
             }
             Layer::Dense { weights, bias } => {
                 let (rows, cols) = weights.shape();
-                let row_major: Vec<f64> = (0..rows).flat_map(|r| weights.row(r).iter().copied().collect::<Vec<_>>()).collect();
+                let row_major: Vec<f64> = (0..rows)
+                    .flat_map(|r| weights.row(r).iter().copied().collect::<Vec<_>>())
+                    .collect();
                 let w_name = format!("layer{i}.weights");
                 let b_name = format!("layer{i}.bias");
                 initializers.push(tensor(&w_name, &[rows, cols], &row_major, element));
@@ -85,11 +99,23 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
                     i: Some(1),
                     ..Default::default()
                 };
-                nodes.push(node("Gemm", &format!("layer{i}_gemm"), &[&current, &w_name, &b_name], &output, vec![trans_b]));
+                nodes.push(node(
+                    "Gemm",
+                    &format!("layer{i}_gemm"),
+                    &[&current, &w_name, &b_name],
+                    &output,
+                    vec![trans_b],
+                ));
                 width = rows;
             }
             Layer::Relu => {
-                nodes.push(node("Relu", &format!("layer{i}_relu"), &[&current], &output, vec![]));
+                nodes.push(node(
+                    "Relu",
+                    &format!("layer{i}_relu"),
+                    &[&current],
+                    &output,
+                    vec![],
+                ));
             }
         }
         current = output;
@@ -111,7 +137,10 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
         if v.iter().all(|x| x.is_infinite()) {
             None
         } else {
-            Some(serde_json::json!(v.iter().map(|x| if x.is_finite() { Some(*x) } else { None }).collect::<Vec<_>>()))
+            Some(serde_json::json!(v
+                .iter()
+                .map(|x| if x.is_finite() { Some(*x) } else { None })
+                .collect::<Vec<_>>()))
         }
     };
     if let Some(v) = finite(&model.input.lower) {
@@ -148,7 +177,13 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
     Ok(proto.encode_to_vec())
 }
 
-fn node(op: &str, name: &str, inputs: &[&str], output: &str, attribute: Vec<AttributeProto>) -> NodeProto {
+fn node(
+    op: &str,
+    name: &str,
+    inputs: &[&str],
+    output: &str,
+    attribute: Vec<AttributeProto>,
+) -> NodeProto {
     NodeProto {
         input: inputs.iter().map(|s| (*s).to_owned()).collect(),
         output: vec![output.to_owned()],
@@ -162,7 +197,10 @@ fn node(op: &str, name: &str, inputs: &[&str], output: &str, attribute: Vec<Attr
 fn tensor(name: &str, dims: &[usize], values: &[f64], element: DataType) -> TensorProto {
     let raw: Vec<u8> = match element {
         DataType::Double => values.iter().flat_map(|v| v.to_le_bytes()).collect(),
-        _ => values.iter().flat_map(|v| (*v as f32).to_le_bytes()).collect(),
+        _ => values
+            .iter()
+            .flat_map(|v| (*v as f32).to_le_bytes())
+            .collect(),
     };
     TensorProto {
         dims: dims.iter().map(|d| *d as i64).collect(),
@@ -213,7 +251,13 @@ mod tests {
     #[test]
     fn float64_export_imports_back_to_the_same_model() {
         let model = Model::from_json_str(SMALL).unwrap();
-        let bytes = export_model(&model, &ExportOptions { precision: FloatPrecision::Float64 }).unwrap();
+        let bytes = export_model(
+            &model,
+            &ExportOptions {
+                precision: FloatPrecision::Float64,
+            },
+        )
+        .unwrap();
         let back = import_model(&bytes, &ImportOptions::default()).unwrap();
         assert_eq!(back.classes, model.classes);
         assert_eq!(back.input.names, model.input.names);

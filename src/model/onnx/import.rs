@@ -15,7 +15,8 @@ use prost::Message;
 use serde_json::json;
 
 use super::schema::{
-    tensor_proto::DataType, tensor_shape_proto::dimension, type_proto, GraphProto, ModelProto, NodeProto,
+    tensor_proto::DataType, tensor_shape_proto::dimension, type_proto, GraphProto, ModelProto,
+    NodeProto,
 };
 use super::tensor::{
     attribute, decode_tensor, float_attribute, floats_attribute, int_attribute, ints_attribute,
@@ -49,8 +50,13 @@ pub(crate) const META_UPPER: &str = "ballast.input.upper";
 
 /// Decodes ONNX bytes and converts the score path into a validated [`Model`].
 pub fn import_model(bytes: &[u8], options: &ImportOptions) -> Result<Model, OnnxError> {
-    let proto = ModelProto::decode(bytes).map_err(|e| OnnxError::Decode { message: e.to_string() })?;
-    let graph = proto.graph.as_ref().ok_or_else(|| graph_error("the file holds no graph".into()))?;
+    let proto = ModelProto::decode(bytes).map_err(|e| OnnxError::Decode {
+        message: e.to_string(),
+    })?;
+    let graph = proto
+        .graph
+        .as_ref()
+        .ok_or_else(|| graph_error("the file holds no graph".into()))?;
     let opset = proto
         .opset_import
         .iter()
@@ -141,10 +147,16 @@ impl DataPath {
                     for (c, mut column) in w.column_iter_mut().enumerate() {
                         column *= scale[c];
                     }
-                    Pending::Full { weights: w, bias: b }
+                    Pending::Full {
+                        weights: w,
+                        bias: b,
+                    }
                 }
             }
-            Pending::Full { weights: w0, bias: b0 } => Pending::Full {
+            Pending::Full {
+                weights: w0,
+                bias: b0,
+            } => Pending::Full {
                 bias: &weights * &b0 + bias,
                 weights: weights * w0,
             },
@@ -164,7 +176,8 @@ impl DataPath {
         match std::mem::replace(&mut self.pending, Pending::None) {
             Pending::None => {}
             Pending::Diagonal { scale, shift } => {
-                if scale.iter().all(|s| (*s - 1.0).abs() == 0.0) && shift.iter().all(|t| *t == 0.0) {
+                if scale.iter().all(|s| (*s - 1.0).abs() == 0.0) && shift.iter().all(|t| *t == 0.0)
+                {
                     return;
                 }
                 if scale.iter().all(|s| *s > 0.0) {
@@ -217,11 +230,17 @@ impl<'a> Converter<'a> {
         for (i, node) in graph.node.iter().enumerate() {
             for out in &node.output {
                 if !out.is_empty() && producer.insert(out.as_str(), i).is_some() {
-                    return Err(graph_error(format!("tensor '{out}' is produced by more than one node")));
+                    return Err(graph_error(format!(
+                        "tensor '{out}' is produced by more than one node"
+                    )));
                 }
             }
         }
-        Ok(Converter { graph, opset, producer })
+        Ok(Converter {
+            graph,
+            opset,
+            producer,
+        })
     }
 
     fn node_label(&self, index: usize) -> String {
@@ -252,7 +271,10 @@ impl<'a> Converter<'a> {
     }
 
     /// Chooses the score tensor: returns (tensor name, graph output name, labels from a ZipMap).
-    fn score_tensor(&self, wanted: Option<&str>) -> Result<(String, String, Option<Vec<String>>), OnnxError> {
+    fn score_tensor(
+        &self,
+        wanted: Option<&str>,
+    ) -> Result<(String, String, Option<Vec<String>>), OnnxError> {
         let mut candidates = Vec::new();
         for output in &self.graph.output {
             let name = output.name.clone().unwrap_or_default();
@@ -278,8 +300,12 @@ impl<'a> Converter<'a> {
                 .into_iter()
                 .find(|(tensor, output, _)| output == w || tensor == w)
                 .ok_or_else(|| {
-                    let names: Vec<String> =
-                        self.graph.output.iter().map(|o| o.name.clone().unwrap_or_default()).collect();
+                    let names: Vec<String> = self
+                        .graph
+                        .output
+                        .iter()
+                        .map(|o| o.name.clone().unwrap_or_default())
+                        .collect();
                     graph_error(format!(
                         "no floating-point output named '{w}' (graph outputs: {})",
                         names.join(", ")
@@ -352,7 +378,13 @@ impl<'a> Converter<'a> {
             }
             if let Some(&i) = self.producer.get(name.as_str()) {
                 needed[i] = true;
-                stack.extend(graph.node[i].input.iter().filter(|n| !n.is_empty()).cloned());
+                stack.extend(
+                    graph.node[i]
+                        .input
+                        .iter()
+                        .filter(|n| !n.is_empty())
+                        .cloned(),
+                );
             }
         }
 
@@ -395,7 +427,11 @@ impl<'a> Converter<'a> {
             }
             None => return Err(graph_error(format!("no node produces the score output '{score_output}'"))),
         };
-        let graph_labels = path.labels.clone().or(zipmap_labels).or_else(|| self.argmax_labels(&data_names));
+        let graph_labels = path
+            .labels
+            .clone()
+            .or(zipmap_labels)
+            .or_else(|| self.argmax_labels(&data_names));
         Ok(Converted {
             path,
             input_dim,
@@ -413,14 +449,22 @@ impl<'a> Converter<'a> {
             if node.op_type.as_deref() != Some("ArrayFeatureExtractor") || node.input.len() != 2 {
                 continue;
             }
-            let argmax = self.producer.get(node.input[1].as_str()).map(|&i| &self.graph.node[i]);
+            let argmax = self
+                .producer
+                .get(node.input[1].as_str())
+                .map(|&i| &self.graph.node[i]);
             let from_path = argmax.is_some_and(|a| {
-                a.op_type.as_deref() == Some("ArgMax") && a.input.first().is_some_and(|t| data.contains(t.as_str()))
+                a.op_type.as_deref() == Some("ArgMax")
+                    && a.input.first().is_some_and(|t| data.contains(t.as_str()))
             });
             if !from_path {
                 continue;
             }
-            let classes = self.graph.initializer.iter().find(|t| t.name.as_deref() == Some(node.input[0].as_str()))?;
+            let classes = self
+                .graph
+                .initializer
+                .iter()
+                .find(|t| t.name.as_deref() == Some(node.input[0].as_str()))?;
             let constant = decode_tensor(classes).ok()?;
             return Some(match constant.strings {
                 Some(s) => s,
@@ -445,11 +489,16 @@ impl<'a> Converter<'a> {
             return Ok(vec![(out(0), Symbol::Constant(self.constant_node(index)?))]);
         }
         if all_constant {
-            return self.fold_constant(index, args).map(|c| vec![(out(0), Symbol::Constant(c))]);
+            return self
+                .fold_constant(index, args)
+                .map(|c| vec![(out(0), Symbol::Constant(c))]);
         }
         let ml = domain == "ai.onnx.ml";
         if !(ml || domain.is_empty() || domain == "ai.onnx") {
-            return Err(self.unsupported(index, format!("operators of domain '{domain}' are not supported")));
+            return Err(self.unsupported(
+                index,
+                format!("operators of domain '{domain}' are not supported"),
+            ));
         }
         let mut inputs = args.into_iter();
         let first = inputs.next().flatten();
@@ -467,7 +516,11 @@ impl<'a> Converter<'a> {
             }
             (Some(Symbol::Data(p)), c) => (*p, c, true),
             (c, Some(Symbol::Data(p))) => (*p, c, false),
-            _ => return Err(self.unsupported(index, "the data input must be its first or second operand")),
+            _ => {
+                return Err(
+                    self.unsupported(index, "the data input must be its first or second operand")
+                )
+            }
         };
         if rest.iter().any(|r| matches!(r, Some(Symbol::Data(_)))) {
             return Err(self.unsupported(index, "a parameter input depends on the data input"));
@@ -710,7 +763,12 @@ impl<'a> Converter<'a> {
         Ok(vec![(out(0), Symbol::Data(Box::new(path)))])
     }
 
-    fn linear_classifier(&self, index: usize, path: &mut DataPath, dropped: &mut Vec<String>) -> Result<(), OnnxError> {
+    fn linear_classifier(
+        &self,
+        index: usize,
+        path: &mut DataPath,
+        dropped: &mut Vec<String>,
+    ) -> Result<(), OnnxError> {
         let node = &self.graph.node[index];
         if node.output.first().is_some_and(|o| o.is_empty()) && node.output.len() < 2 {
             return Err(self.unsupported(index, "has no scores output"));
@@ -721,7 +779,10 @@ impl<'a> Converter<'a> {
         if coefficients.is_empty() || coefficients.len() % d != 0 {
             return Err(self.unsupported(
                 index,
-                format!("has {} coefficients, expected a multiple of the {d} input features", coefficients.len()),
+                format!(
+                    "has {} coefficients, expected a multiple of the {d} input features",
+                    coefficients.len()
+                ),
             ));
         }
         let rows = coefficients.len() / d;
@@ -730,7 +791,10 @@ impl<'a> Converter<'a> {
             intercepts = vec![0.0; rows];
         }
         if intercepts.len() != rows {
-            return Err(self.unsupported(index, format!("has {} intercepts, expected {rows}", intercepts.len())));
+            return Err(self.unsupported(
+                index,
+                format!("has {} intercepts, expected {rows}", intercepts.len()),
+            ));
         }
         self.require_finite(index, "coefficients", &coefficients)?;
         self.require_finite(index, "intercepts", &intercepts)?;
@@ -745,7 +809,10 @@ impl<'a> Converter<'a> {
             }
         }
         if rows == 1 && labels.as_ref().map(Vec::len) != Some(2) {
-            return Err(self.unsupported(index, "a single coefficient row needs exactly two class labels (binary)"));
+            return Err(self.unsupported(
+                index,
+                "a single coefficient row needs exactly two class labels (binary)",
+            ));
         }
         let weights = DMatrix::from_fn(rows, d, |r, c| coefficients[r * d + c]);
         path.linear(weights, DVector::from_vec(intercepts));
@@ -785,18 +852,30 @@ impl<'a> Converter<'a> {
             return Ok(Constant::from_values(vec![v.len()], v));
         }
         if attribute(node, "value_ints").is_some() {
-            let v: Vec<f64> = ints_attribute(node, "value_ints").iter().map(|v| *v as f64).collect();
+            let v: Vec<f64> = ints_attribute(node, "value_ints")
+                .iter()
+                .map(|v| *v as f64)
+                .collect();
             return Ok(Constant::from_values(vec![v.len()], v));
         }
         Err(self.unsupported(index, "only tensor, float and int constants are supported"))
     }
 
-    fn fold_constant(&self, index: usize, args: Vec<Option<Symbol>>) -> Result<Constant, OnnxError> {
+    fn fold_constant(
+        &self,
+        index: usize,
+        args: Vec<Option<Symbol>>,
+    ) -> Result<Constant, OnnxError> {
         let node = &self.graph.node[index];
         let op = node.op_type.as_deref().unwrap_or_default();
         let first = match args.into_iter().next().flatten() {
             Some(Symbol::Constant(c)) => c,
-            _ => return Err(self.unsupported(index, "does not depend on the data input and has no constant input")),
+            _ => {
+                return Err(self.unsupported(
+                    index,
+                    "does not depend on the data input and has no constant input",
+                ))
+            }
         };
         match op {
             "Identity" | "Cast" => Ok(first),
@@ -807,12 +886,20 @@ impl<'a> Converter<'a> {
         }
     }
 
-    fn reshape(&self, index: usize, shape: &[usize], target: &Constant, allow_zero: i64) -> Result<Vec<usize>, OnnxError> {
+    fn reshape(
+        &self,
+        index: usize,
+        shape: &[usize],
+        target: &Constant,
+        allow_zero: i64,
+    ) -> Result<Vec<usize>, OnnxError> {
         let width: usize = shape.iter().product();
         let t: Vec<i64> = target.values.iter().map(|v| *v as i64).collect();
         let fail = |why: String| self.unsupported(index, format!("target shape {t:?}: {why}"));
         if t.is_empty() || !(t[0] == 0 || t[0] == -1) || (t[0] == 0 && allow_zero != 0) {
-            return Err(fail("the first dimension must keep the batch (0 or -1)".into()));
+            return Err(fail(
+                "the first dimension must keep the batch (0 or -1)".into(),
+            ));
         }
         let mut out = Vec::new();
         let mut unknown = None;
@@ -825,7 +912,11 @@ impl<'a> Converter<'a> {
                     unknown = Some(out.len());
                     out.push(1);
                 }
-                0 if allow_zero == 0 => out.push(*shape.get(i - 1).ok_or_else(|| fail("0 copies a missing dimension".into()))?),
+                0 if allow_zero == 0 => out.push(
+                    *shape
+                        .get(i - 1)
+                        .ok_or_else(|| fail("0 copies a missing dimension".into()))?,
+                ),
                 v if v > 0 => out.push(v as usize),
                 v => return Err(fail(format!("dimension {v} is not allowed"))),
             }
@@ -837,12 +928,19 @@ impl<'a> Converter<'a> {
             }
             out[u] = width / known;
         } else if known != width {
-            return Err(fail(format!("holds {known} features per sample, the data has {width}")));
+            return Err(fail(format!(
+                "holds {known} features per sample, the data has {width}"
+            )));
         }
         Ok(out)
     }
 
-    fn check_feature_axis(&self, index: usize, path: &DataPath, axis: i64) -> Result<(), OnnxError> {
+    fn check_feature_axis(
+        &self,
+        index: usize,
+        path: &DataPath,
+        axis: i64,
+    ) -> Result<(), OnnxError> {
         self.require_vector_shape(index, path)?;
         if axis != 1 && axis != -1 {
             return Err(self.unsupported(index, format!("axis {axis} is not the feature axis")));
@@ -854,7 +952,10 @@ impl<'a> Converter<'a> {
         if path.shape.len() != 1 {
             return Err(self.unsupported(
                 index,
-                format!("the data has shape [batch, {}] here; flatten it to [batch, features] first", join(&path.shape)),
+                format!(
+                    "the data has shape [batch, {}] here; flatten it to [batch, features] first",
+                    join(&path.shape)
+                ),
             ));
         }
         Ok(())
@@ -868,17 +969,34 @@ impl<'a> Converter<'a> {
     }
 
     /// Broadcasts a constant (numpy rules, leading batch dimension of size 1 allowed) to `shape`.
-    fn broadcast(&self, index: usize, c: &Constant, shape: &[usize], what: &str) -> Result<DVector<f64>, OnnxError> {
+    fn broadcast(
+        &self,
+        index: usize,
+        c: &Constant,
+        shape: &[usize],
+        what: &str,
+    ) -> Result<DVector<f64>, OnnxError> {
         let fail = || {
             self.unsupported(
                 index,
-                format!("{what} has shape {:?}, which does not broadcast over [batch, {}]", c.dims, join(shape)),
+                format!(
+                    "{what} has shape {:?}, which does not broadcast over [batch, {}]",
+                    c.dims,
+                    join(shape)
+                ),
             )
         };
         if c.dims.len() > shape.len() + 1 || (c.dims.len() == shape.len() + 1 && c.dims[0] != 1) {
             return Err(fail());
         }
-        let dims: Vec<usize> = c.dims.iter().rev().take(shape.len()).rev().copied().collect();
+        let dims: Vec<usize> = c
+            .dims
+            .iter()
+            .rev()
+            .take(shape.len())
+            .rev()
+            .copied()
+            .collect();
         let offset = shape.len() - dims.len();
         for (k, d) in dims.iter().enumerate() {
             if *d != 1 && *d != shape[offset + k] {
@@ -908,7 +1026,11 @@ impl<'a> Converter<'a> {
 }
 
 fn join(shape: &[usize]) -> String {
-    shape.iter().map(|d| d.to_string()).collect::<Vec<_>>().join(", ")
+    shape
+        .iter()
+        .map(|d| d.to_string())
+        .collect::<Vec<_>>()
+        .join(", ")
 }
 
 fn labels_of(node: &NodeProto) -> Option<Vec<String>> {
@@ -947,10 +1069,11 @@ fn input_shape(input: &super::schema::ValueInfoProto) -> Result<Vec<usize>, Onnx
             "data input '{name}' has element type {element}; expected FLOAT or DOUBLE"
         )));
     }
-    let dims = tensor
-        .shape
-        .as_ref()
-        .ok_or_else(|| graph_error(format!("data input '{name}' has no shape; expected [batch, features]")))?;
+    let dims = tensor.shape.as_ref().ok_or_else(|| {
+        graph_error(format!(
+            "data input '{name}' has no shape; expected [batch, features]"
+        ))
+    })?;
     if dims.dim.len() < 2 {
         return Err(graph_error(format!(
             "data input '{name}' has rank {}; expected [batch, features]",
@@ -968,8 +1091,14 @@ fn input_shape(input: &super::schema::ValueInfoProto) -> Result<Vec<usize>, Onnx
             }
         }
     }
-    if shape.iter().try_fold(1usize, |a, d| a.checked_mul(*d)).is_none() {
-        return Err(graph_error(format!("data input '{name}': the feature count overflows")));
+    if shape
+        .iter()
+        .try_fold(1usize, |a, d| a.checked_mul(*d))
+        .is_none()
+    {
+        return Err(graph_error(format!(
+            "data input '{name}': the feature count overflows"
+        )));
     }
     Ok(shape)
 }
@@ -1003,7 +1132,9 @@ fn assemble(
     } = converted;
     path.flush();
     if path.layers.is_empty() {
-        return Err(graph_error("the score path holds no layer (the scores equal the input)".into()));
+        return Err(graph_error(
+            "the score path holds no layer (the scores equal the input)".into(),
+        ));
     }
     let layers = path.layers;
     let nan_or_inf = |l: &Layer| match l {
@@ -1012,20 +1143,26 @@ fn assemble(
         Layer::Relu => false,
     };
     if layers.iter().any(nan_or_inf) {
-        return Err(graph_error("composing the affine steps overflowed to a non-finite number".into()));
+        return Err(graph_error(
+            "composing the affine steps overflowed to a non-finite number".into(),
+        ));
     }
-    let range = |given: &Option<Vec<f64>>, key: &str, default: f64| -> Result<Vec<f64>, OnnxError> {
-        let values = match given {
-            Some(v) => Some(v.clone()),
-            None => parse_metadata::<Vec<Option<f64>>>(metadata, key)?
-                .map(|v| v.into_iter().map(|x| x.unwrap_or(default)).collect()),
+    let range =
+        |given: &Option<Vec<f64>>, key: &str, default: f64| -> Result<Vec<f64>, OnnxError> {
+            let values = match given {
+                Some(v) => Some(v.clone()),
+                None => parse_metadata::<Vec<Option<f64>>>(metadata, key)?
+                    .map(|v| v.into_iter().map(|x| x.unwrap_or(default)).collect()),
+            };
+            let values = values.unwrap_or_else(|| vec![default; dim]);
+            if values.len() != dim {
+                return Err(graph_error(format!(
+                    "input range has {} values, the model has {dim} features",
+                    values.len()
+                )));
+            }
+            Ok(values)
         };
-        let values = values.unwrap_or_else(|| vec![default; dim]);
-        if values.len() != dim {
-            return Err(graph_error(format!("input range has {} values, the model has {dim} features", values.len())));
-        }
-        Ok(values)
-    };
     let lower = range(&options.lower, META_LOWER, f64::NEG_INFINITY)?;
     let upper = range(&options.upper, META_UPPER, f64::INFINITY)?;
     let names = match &options.feature_names {
@@ -1050,7 +1187,12 @@ fn assemble(
         "dropped_final_steps": dropped,
     });
     for i in 0..dim {
-        if lower[i].is_nan() || upper[i].is_nan() || lower[i] > upper[i] || lower[i] == f64::INFINITY || upper[i] == f64::NEG_INFINITY {
+        if lower[i].is_nan()
+            || upper[i].is_nan()
+            || lower[i] > upper[i]
+            || lower[i] == f64::INFINITY
+            || upper[i] == f64::NEG_INFINITY
+        {
             return Err(graph_error(format!(
                 "input range of feature {i} is [{}, {}], expected lower ≤ upper",
                 lower[i], upper[i]
@@ -1071,9 +1213,197 @@ fn assemble(
     };
     // Validate through the layout's own checks (sizes, classes, names); the range is checked above
     // because JSON cannot hold a partly infinite range.
-    let text = serde_json::to_string(&model.to_json_value()).map_err(|e| graph_error(e.to_string()))?;
+    let text =
+        serde_json::to_string(&model.to_json_value()).map_err(|e| graph_error(e.to_string()))?;
     let mut checked = Model::from_json_str(&text)?;
     checked.input.lower = lower;
     checked.input.upper = upper;
     Ok(checked)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::onnx::schema::{
+        tensor_shape_proto::Dimension, AttributeProto, OperatorSetIdProto, TensorProto,
+        TensorShapeProto, TypeProto, ValueInfoProto,
+    };
+
+    fn value_info(name: &str, dims: &[i64]) -> ValueInfoProto {
+        let mut dim = vec![Dimension {
+            value: Some(dimension::Value::DimParam("N".into())),
+            ..Default::default()
+        }];
+        dim.extend(dims.iter().map(|d| Dimension {
+            value: Some(dimension::Value::DimValue(*d)),
+            ..Default::default()
+        }));
+        ValueInfoProto {
+            name: Some(name.into()),
+            r#type: Some(TypeProto {
+                value: Some(type_proto::Value::TensorType(type_proto::Tensor {
+                    elem_type: Some(DataType::Float as i32),
+                    shape: Some(TensorShapeProto { dim }),
+                })),
+                ..Default::default()
+            }),
+            ..Default::default()
+        }
+    }
+
+    fn constant(name: &str, dims: &[i64], values: &[f32]) -> TensorProto {
+        TensorProto {
+            name: Some(name.into()),
+            dims: dims.to_vec(),
+            data_type: Some(DataType::Float as i32),
+            float_data: values.to_vec(),
+            ..Default::default()
+        }
+    }
+
+    fn node(
+        op: &str,
+        name: &str,
+        inputs: &[&str],
+        output: &str,
+        attribute: Vec<AttributeProto>,
+    ) -> NodeProto {
+        NodeProto {
+            input: inputs.iter().map(|s| (*s).to_owned()).collect(),
+            output: vec![output.to_owned()],
+            name: Some(name.into()),
+            op_type: Some(op.into()),
+            attribute,
+            ..Default::default()
+        }
+    }
+
+    fn int(name: &str, value: i64) -> AttributeProto {
+        AttributeProto {
+            name: Some(name.into()),
+            i: Some(value),
+            ..Default::default()
+        }
+    }
+
+    fn import(
+        nodes: Vec<NodeProto>,
+        initializer: Vec<TensorProto>,
+        width: i64,
+        output: &str,
+    ) -> Result<Model, OnnxError> {
+        let graph = GraphProto {
+            node: nodes,
+            name: Some("t".into()),
+            initializer,
+            input: vec![value_info("x", &[width])],
+            output: vec![value_info(output, &[1])],
+            ..Default::default()
+        };
+        let proto = ModelProto {
+            ir_version: Some(8),
+            opset_import: vec![OperatorSetIdProto {
+                domain: Some(String::new()),
+                version: Some(15),
+            }],
+            graph: Some(graph),
+            ..Default::default()
+        };
+        import_model(&proto.encode_to_vec(), &ImportOptions::default())
+    }
+
+    #[test]
+    fn constant_minus_data_times_and_divided_compose_exactly() {
+        // y = ((c − x) · m) / d, elementwise, then a 2 → 1 MatMul; checked against the formula by hand.
+        let inits = vec![
+            constant("c", &[2], &[1.0, 2.0]),
+            constant("m", &[1, 2], &[3.0, -1.0]),
+            constant("d", &[], &[2.0]),
+            constant("w", &[2, 1], &[1.0, 1.0]),
+        ];
+        let nodes = vec![
+            node("Sub", "sub", &["c", "x"], "a", vec![]),
+            node("Mul", "mul", &["a", "m"], "b", vec![]),
+            node("Div", "div", &["b", "d"], "e", vec![]),
+            node("MatMul", "mm", &["e", "w"], "y", vec![]),
+        ];
+        let model = import(nodes, inits, 2, "y").unwrap();
+        let x = [0.5, -4.0];
+        let expected = (1.0 - x[0]) * 3.0 / 2.0 + (2.0 - x[1]) * -1.0 / 2.0;
+        let y = model.network().forward(&x);
+        approx::assert_abs_diff_eq!(y[0], expected, epsilon = 1e-12);
+    }
+
+    #[test]
+    fn operations_that_are_not_affine_or_not_final_are_refused_by_name() {
+        let w = || constant("w", &[2, 2], &[1.0, 0.0, 0.0, 1.0]);
+        let cases: Vec<(Vec<NodeProto>, &str)> = vec![
+            (
+                vec![
+                    node("Softmax", "sm", &["x"], "p", vec![]),
+                    node("MatMul", "late", &["p", "w"], "y", vec![]),
+                ],
+                "node 'late' (MatMul): MatMul after Softmax 'sm'",
+            ),
+            (
+                vec![node("Gemm", "g", &["x", "w"], "y", vec![int("transA", 1)])],
+                "transA=1",
+            ),
+            (
+                vec![node("Add", "twice", &["x", "x"], "y", vec![])],
+                "both operands",
+            ),
+            (
+                vec![node("Div", "inv", &["w", "x"], "y", vec![])],
+                "not affine",
+            ),
+            (
+                vec![node("MatMul", "left", &["w", "x"], "y", vec![])],
+                "constant · data",
+            ),
+            (
+                vec![node("Tanh", "squash", &["x"], "y", vec![])],
+                "node 'squash' (Tanh)",
+            ),
+        ];
+        for (nodes, expected) in cases {
+            let e = import(nodes, vec![w()], 2, "y").unwrap_err().to_string();
+            assert!(e.contains(expected), "expected '{expected}' in: {e}");
+        }
+    }
+
+    #[test]
+    fn reshape_must_keep_the_batch_and_broadcasts_must_fit() {
+        let shape = TensorProto {
+            name: Some("s".into()),
+            dims: vec![2],
+            data_type: Some(DataType::Int64 as i32),
+            int64_data: vec![1, -1],
+            ..Default::default()
+        };
+        let e = import(
+            vec![node("Reshape", "r", &["x", "s"], "y", vec![])],
+            vec![shape],
+            3,
+            "y",
+        )
+        .unwrap_err();
+        assert!(e.to_string().contains("keep the batch"), "{e}");
+        let e = import(
+            vec![node("Add", "add", &["x", "b"], "y", vec![])],
+            vec![constant("b", &[2], &[1.0, 2.0])],
+            3,
+            "y",
+        )
+        .unwrap_err();
+        assert!(e.to_string().contains("does not broadcast"), "{e}");
+        let e = import(
+            vec![node("Div", "div", &["x", "b"], "y", vec![])],
+            vec![constant("b", &[1], &[0.0])],
+            3,
+            "y",
+        )
+        .unwrap_err();
+        assert!(e.to_string().contains("divides by zero"), "{e}");
+    }
 }

@@ -47,7 +47,10 @@ pub(crate) fn decode_tensor(tensor: &TensorProto) -> Result<Constant, OnnxError>
         ));
     }
     if tensor.segment.is_some() {
-        return Err(tensor_error(&name, "is a segment of a larger tensor, which is not supported".into()));
+        return Err(tensor_error(
+            &name,
+            "is a segment of a larger tensor, which is not supported".into(),
+        ));
     }
     let mut dims = Vec::with_capacity(tensor.dims.len().min(64));
     let mut count: usize = 1;
@@ -105,7 +108,9 @@ pub(crate) fn decode_tensor(tensor: &TensorProto) -> Result<Constant, OnnxError>
                 check_exact(&name, bytes.len(), count, 8)?;
                 bytes
                     .chunks_exact(8)
-                    .map(|c| i64::from_le_bytes([c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7]]) as f64)
+                    .map(|c| {
+                        i64::from_le_bytes([c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7]]) as f64
+                    })
                     .collect()
             }
             None => {
@@ -144,16 +149,19 @@ pub(crate) fn decode_tensor(tensor: &TensorProto) -> Result<Constant, OnnxError>
                 strings: Some(strings),
             });
         }
-        Ok(other) => {
+        Ok(other) => return Err(tensor_error(
+            &name,
+            format!(
+                "element type {} is not supported (expected FLOAT, DOUBLE, INT32, INT64 or STRING)",
+                other.as_str_name()
+            ),
+        )),
+        Err(_) => {
             return Err(tensor_error(
                 &name,
-                format!(
-                    "element type {} is not supported (expected FLOAT, DOUBLE, INT32, INT64 or STRING)",
-                    other.as_str_name()
-                ),
+                format!("unknown element type {data_type}"),
             ))
         }
-        Err(_) => return Err(tensor_error(&name, format!("unknown element type {data_type}"))),
     };
     Ok(Constant {
         dims,
@@ -166,7 +174,10 @@ fn check_exact(name: &str, bytes: usize, count: usize, width: usize) -> Result<(
     if bytes != count * width {
         return Err(tensor_error(
             name,
-            format!("raw_data has {bytes} bytes, expected {} ({count} values of {width} bytes)", count * width),
+            format!(
+                "raw_data has {bytes} bytes, expected {} ({count} values of {width} bytes)",
+                count * width
+            ),
         ));
     }
     Ok(())
@@ -174,7 +185,9 @@ fn check_exact(name: &str, bytes: usize, count: usize, width: usize) -> Result<(
 
 /// The attribute `name` of `node`, if present.
 pub(crate) fn attribute<'a>(node: &'a NodeProto, name: &str) -> Option<&'a AttributeProto> {
-    node.attribute.iter().find(|a| a.name.as_deref() == Some(name))
+    node.attribute
+        .iter()
+        .find(|a| a.name.as_deref() == Some(name))
 }
 
 /// An integer attribute, or `default` when absent.
@@ -199,7 +212,9 @@ pub(crate) fn floats_attribute(node: &NodeProto, name: &str) -> Vec<f64> {
 
 /// An int-list attribute (empty when absent).
 pub(crate) fn ints_attribute(node: &NodeProto, name: &str) -> Vec<i64> {
-    attribute(node, name).map(|a| a.ints.clone()).unwrap_or_default()
+    attribute(node, name)
+        .map(|a| a.ints.clone())
+        .unwrap_or_default()
 }
 
 /// A string attribute (lossy UTF-8), or `None` when absent.
@@ -253,7 +268,12 @@ mod tests {
     #[test]
     fn claimed_size_is_checked_against_present_bytes() {
         // dims claim 10^12 elements but only 8 bytes are present: an error, not an allocation.
-        let e = decode_tensor(&float_tensor(vec![1_000_000, 1_000_000], Some(vec![0; 8]), vec![])).unwrap_err();
+        let e = decode_tensor(&float_tensor(
+            vec![1_000_000, 1_000_000],
+            Some(vec![0; 8]),
+            vec![],
+        ))
+        .unwrap_err();
         assert!(e.to_string().contains("needs 1000000000000 values"), "{e}");
         let e = decode_tensor(&float_tensor(vec![i64::MAX, i64::MAX], None, vec![])).unwrap_err();
         assert!(e.to_string().contains("overflows"), "{e}");
@@ -267,9 +287,15 @@ mod tests {
     fn external_data_and_float16_are_refused() {
         let mut t = float_tensor(vec![1], None, vec![1.0]);
         t.data_location = Some(1);
-        assert!(decode_tensor(&t).unwrap_err().to_string().contains("external file"));
+        assert!(decode_tensor(&t)
+            .unwrap_err()
+            .to_string()
+            .contains("external file"));
         let mut t = float_tensor(vec![1], Some(vec![0, 0]), vec![]);
         t.data_type = Some(DataType::Float16 as i32);
-        assert!(decode_tensor(&t).unwrap_err().to_string().contains("FLOAT16"));
+        assert!(decode_tensor(&t)
+            .unwrap_err()
+            .to_string()
+            .contains("FLOAT16"));
     }
 }

@@ -1,0 +1,99 @@
+//! The two demo models, trained by the project's plain cross-entropy trainer on the generated
+//! training set: `pump-linear` (normalize + one dense layer: softmax regression) and `pump-mlp`
+//! (normalize + 12-32-32-4 ReLU network).
+//!
+//! Both carry the scenario's input names, valid ranges and class names, and a provenance record
+//! (generator seed, training-data digest, trainer settings, epochs). Training is deterministic for a
+//! given seed on one platform; across platforms the committed models are the reference, not a rerun.
+//! Nothing here claims robustness: the plain trainer never looks at it.
+
+use serde_json::json;
+
+use super::generator::GeneratedSet;
+use super::scenario::{self, CLASSES};
+use super::DemoError;
+use crate::model::{InputSpec, Model};
+use crate::train::{new_mlp, train_cross_entropy, OptimizerKind, TrainLog, TrainSettings};
+
+/// File name of the linear demo model inside the models folder.
+pub const LINEAR_FILE: &str = "pump-linear.json";
+/// File name of the ReLU demo model inside the models folder.
+pub const MLP_FILE: &str = "pump-mlp.json";
+
+/// Hidden layer sizes of `pump-mlp`.
+pub const MLP_HIDDEN: [usize; 2] = [32, 32];
+
+/// A trained demo model with its training history.
+#[derive(Debug, Clone)]
+pub struct TrainedModel {
+    /// The model in the layout, with names, ranges, classes and provenance.
+    pub model: Model,
+    /// The trainer's log.
+    pub log: TrainLog,
+}
+
+/// The input specification of the scenario: names and valid ranges of the twelve features.
+pub fn input_spec() -> InputSpec {
+    InputSpec {
+        dim: scenario::FEATURES.len(),
+        names: Some(scenario::feature_names()),
+        lower: scenario::lower_bounds(),
+        upper: scenario::upper_bounds(),
+    }
+}
+
+/// The trainer settings used for both demo models (seeded by `seed`).
+pub fn train_settings(seed: u64) -> TrainSettings {
+    TrainSettings {
+        epochs: 150,
+        batch_size: 32,
+        optimizer: OptimizerKind::adam(0.003),
+        weight_decay: 1e-4,
+        seed,
+        validation_fraction: 0.15,
+        patience: Some(20),
+    }
+}
+
+/// Trains the model `name` with `hidden` layer sizes on `train` (generated with `data_seed`).
+pub fn train_model(
+    name: &str,
+    hidden: &[usize],
+    train: &GeneratedSet,
+    data_seed: u64,
+    train_seed: u64,
+) -> Result<TrainedModel, DemoError> {
+    let data = train.to_dataset();
+    let mut initial = new_mlp(&input_spec(), CLASSES.len(), hidden, &data, train_seed)?;
+    initial.name = Some(name.to_owned());
+    initial.classes = Some(scenario::class_names());
+    let settings = train_settings(train_seed);
+    let (mut model, log) = train_cross_entropy(&initial, &data, &settings)?;
+    let training_digest = crate::digest::sha256_bytes(train.to_csv().as_bytes());
+    model.provenance = Some(json!({
+        "scenario": "invented pump-fleet demo (docs/demo-scenario.md); not real data",
+        "made_by": format!("ballast {} generate-demo", env!("CARGO_PKG_VERSION")),
+        "data_seed": data_seed,
+        "training_data": "demo-data/train.csv",
+        "training_data_sha256": training_digest,
+        "trainer": "plain cross-entropy (train::train_cross_entropy)",
+        "trainer_seed": train_seed,
+        "settings": settings,
+        "epochs_run": log.epochs.len(),
+        "best_epoch": log.best_epoch,
+        "stop": log.stop,
+        "training_samples": log.training_samples,
+        "validation_samples": log.validation_samples,
+    }));
+    Ok(TrainedModel { model, log })
+}
+
+/// Trains `pump-linear` and `pump-mlp` on `train`.
+pub fn train_demo_models(
+    train: &GeneratedSet,
+    data_seed: u64,
+) -> Result<(TrainedModel, TrainedModel), DemoError> {
+    let linear = train_model("pump-linear", &[], train, data_seed, data_seed)?;
+    let mlp = train_model("pump-mlp", &MLP_HIDDEN, train, data_seed, data_seed)?;
+    Ok((linear, mlp))
+}

@@ -1,0 +1,386 @@
+//! Constrained training by a Lagrangian primal-dual loop (projected dual ascent, Arrow, Hurwicz &
+//! Uzawa, 1958): minimise the clean cross-entropy subject to a robustness constraint on the training
+//! data, with one multiplier `λ ≥ 0` per constraint.
+//!
+//! Per mini-batch the primal step follows the gradient of `clean loss + Σ_c λ_c · robust loss_c` (the
+//! robust loss of [`super::robust`] is the differentiable surrogate), then each multiplier takes a
+//! projected ascent step `λ_c ← max(0, λ_c + η · (measured_c − allowed_c))` on the batch's measured
+//! constraint value: either the robust error rate (bound not above the tolerance, or PGD point wrong)
+//! against `1 − floor − slack`, or the robust loss itself against a level. Constraints are one global
+//! constraint or one per class (each class's samples against the same allowance). With a fixed
+//! [`Formulation::Penalty`] weight no multiplier moves (the comparison baseline). Epsilon ramps
+//! linearly from 0 to the full budget over the first epochs; the linear-bound weight `β` ramps with it.
+//!
+//! The loop never claims the constraint holds: its figures are training measurements; the floor is
+//! checked afterwards with sound bounds ([`super::retrain`]).
+
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+use crate::bound::linear::batch_margin_lower_bounds as linear_batch;
+use crate::data::Dataset;
+use crate::model::{predicted_class, Network};
+use crate::threat::{Budget, Region, Targets};
+
+use super::backprop::add_scaled;
+use super::optimizer::Optimizer;
+use super::plain::{check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainSettings, TrainableModel};
+use super::robust::{robust_loss, RegionMap, RobustLoss};
+use super::TrainError;
+
+/// What the constraint bounds.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Constraint {
+    /// Robust error rate on the training data ≤ `1 − floor − slack`.
+    RobustError {
+        /// Required robust fraction.
+        floor: f64,
+        /// Extra margin demanded during training (raised between rounds).
+        slack: f64,
+    },
+    /// Mean robust loss on the training data ≤ `level`.
+    RobustLossLevel {
+        /// The allowed mean robust loss.
+        level: f64,
+    },
+}
+
+impl Constraint {
+    /// The allowed value of the measured quantity.
+    pub fn allowed(&self) -> f64 {
+        match self {
+            Constraint::RobustError { floor, slack } => (1.0 - floor - slack).max(0.0),
+            Constraint::RobustLossLevel { level } => *level,
+        }
+    }
+}
+
+/// How the robust term enters the objective.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Formulation {
+    /// Lagrangian with multipliers updated by projected dual ascent.
+    PrimalDual {
+        /// Dual step size η.
+        dual_step: f64,
+        /// Starting multiplier.
+        initial_multiplier: f64,
+        /// One constraint (and multiplier) per class instead of one overall.
+        per_class: bool,
+    },
+    /// Fixed weight `clean + weight · robust` (no multiplier updates).
+    Penalty {
+        /// The fixed weight.
+        weight: f64,
+    },
+}
+
+/// Settings of the constrained trainer.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct ConstrainedSettings {
+    /// Epochs, batch size, optimiser, weight decay, seed (the validation fields are not used here).
+    pub train: TrainSettings,
+    /// The perturbation budget in raw input units.
+    #[serde(skip)]
+    pub budget: Budget,
+    /// Which class changes count (forbidden targets per sample).
+    #[serde(skip)]
+    pub targets: Targets,
+    /// The robust loss.
+    pub loss: RobustLoss,
+    /// The constraint.
+    pub constraint: Constraint,
+    /// Multipliers or a fixed penalty.
+    pub formulation: Formulation,
+    /// Epochs over which epsilon ramps from 0 to the full budget (0 = full from the start).
+    pub ramp_epochs: usize,
+    /// Measure certified accuracy on the validation data after every epoch (sound linear bounds).
+    pub measure_certified: bool,
+}
+
+impl ConstrainedSettings {
+    /// Checks the fields, naming the bad one.
+    pub fn validate(&self) -> Result<(), TrainError> {
+        self.train.validate()?;
+        let bad = |m: String| Err(TrainError::Settings(m));
+        if let Some(r) = self.budget.radii.iter().find(|r| !(r.is_finite() && **r >= 0.0)) {
+            return bad(format!("budget radius {r} must be a finite number ≥ 0"));
+        }
+        match self.constraint {
+            Constraint::RobustError { floor, slack } => {
+                if !(0.0..=1.0).contains(&floor) {
+                    return bad(format!("floor {floor} must lie in [0, 1]"));
+                }
+                if !(slack.is_finite() && slack >= 0.0) {
+                    return bad(format!("slack {slack} must be a finite number ≥ 0"));
+                }
+            }
+            Constraint::RobustLossLevel { level } => {
+                if !(level.is_finite() && level >= 0.0) {
+                    return bad(format!("robust loss level {level} must be a finite number ≥ 0"));
+                }
+            }
+        }
+        match self.formulation {
+            Formulation::PrimalDual {
+                dual_step,
+                initial_multiplier,
+                ..
+            } => {
+                if !(dual_step.is_finite() && dual_step > 0.0) {
+                    return bad(format!("dual step {dual_step} must be a finite number > 0"));
+                }
+                if !(initial_multiplier.is_finite() && initial_multiplier >= 0.0) {
+                    return bad(format!("initial multiplier {initial_multiplier} must be ≥ 0"));
+                }
+            }
+            Formulation::Penalty { weight } => {
+                if !(weight.is_finite() && weight >= 0.0) {
+                    return bad(format!("penalty weight {weight} must be a finite number ≥ 0"));
+                }
+            }
+        }
+        if let RobustLoss::Adversarial { steps } = self.loss {
+            if steps == 0 {
+                return bad("PGD steps must be at least 1".into());
+            }
+        }
+        if let RobustLoss::LinearInterval { final_linear_weight } = self.loss {
+            if !(0.0..=1.0).contains(&final_linear_weight) {
+                return bad(format!("final linear weight {final_linear_weight} must lie in [0, 1]"));
+            }
+        }
+        Ok(())
+    }
+}
+
+/// What one epoch of constrained training measured.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct ConstrainedEpoch {
+    /// 1-based epoch number (counting across rounds).
+    pub epoch: usize,
+    /// Fraction of the full budget used at the end of the epoch.
+    pub epsilon_scale: f64,
+    /// Mean clean cross-entropy over the epoch's batches.
+    pub clean_loss: f64,
+    /// Mean robust loss over the epoch's batches.
+    pub robust_loss: f64,
+    /// Robust error rate measured on the training batches (the constraint's measure).
+    pub robust_error: f64,
+    /// The multipliers at the end of the epoch (one, or one per class).
+    pub multipliers: Vec<f64>,
+    /// Clean accuracy on the validation data.
+    pub validation_clean_accuracy: Option<f64>,
+    /// Certified accuracy on the validation data by sound linear bounds at the full budget.
+    pub validation_certified_accuracy: Option<f64>,
+}
+
+/// State carried across calls (so rounds can continue where the last one stopped).
+#[derive(Debug, Clone)]
+pub struct ConstrainedState {
+    /// The trainable network.
+    pub network: Network,
+    /// The optimiser's state.
+    pub optimizer: Optimizer,
+    /// The multipliers.
+    pub multipliers: Vec<f64>,
+    /// Epochs run so far.
+    pub epochs_done: usize,
+}
+
+impl ConstrainedState {
+    /// A fresh state for `trainable` under `settings`.
+    pub fn new(trainable: &TrainableModel, settings: &ConstrainedSettings, classes: usize) -> ConstrainedState {
+        let multipliers = match settings.formulation {
+            Formulation::PrimalDual {
+                initial_multiplier,
+                per_class,
+                ..
+            } => vec![initial_multiplier; if per_class { classes } else { 1 }],
+            Formulation::Penalty { weight } => vec![weight],
+        };
+        ConstrainedState {
+            network: trainable.network.clone(),
+            optimizer: Optimizer::new(settings.train.optimizer, settings.train.weight_decay, &trainable.network),
+            multipliers,
+            epochs_done: 0,
+        }
+    }
+}
+
+/// Runs `epochs` epochs of constrained training from `state` on `train` (validating on `validation`).
+/// `ramp` controls whether the epsilon ramp applies (only in the first round).
+pub fn train_constrained_epochs(
+    trainable: &TrainableModel,
+    state: &mut ConstrainedState,
+    train: &Dataset,
+    validation: Option<&Dataset>,
+    settings: &ConstrainedSettings,
+    epochs: usize,
+    observer: &mut dyn FnMut(&ConstrainedEpoch),
+) -> Result<Vec<ConstrainedEpoch>, TrainError> {
+    settings.validate()?;
+    let model = &trainable.template;
+    check_data(model, train, "training")?;
+    if let Some(v) = validation {
+        check_data(model, v, "validation")?;
+    }
+    let classes = model.class_count();
+    let features = trainable.to_network_units(&train.features);
+    let map = RegionMap::new(model, trainable.normalization.as_ref());
+    let targets: Vec<Vec<usize>> = train
+        .labels
+        .iter()
+        .map(|&y| settings.targets.forbidden_for(y, classes))
+        .collect();
+    let batches_per_epoch = train.len().div_ceil(settings.train.batch_size);
+    let ramp_steps = settings.ramp_epochs * batches_per_epoch;
+    let mut rng = ChaCha8Rng::seed_from_u64(settings.train.seed ^ (state.epochs_done as u64).wrapping_mul(0x2545_f491_4f6c_dd1d));
+    let mut order: Vec<usize> = (0..train.len()).collect();
+    let mut records = Vec::with_capacity(epochs);
+    for _ in 0..epochs {
+        state.epochs_done += 1;
+        let epoch = state.epochs_done;
+        order.shuffle(&mut rng);
+        let (mut clean_total, mut robust_total, mut error_total) = (0.0, 0.0, 0.0);
+        let mut scale = 1.0;
+        for (b, chunk) in order.chunks(settings.train.batch_size).enumerate() {
+            let step = (epoch - 1) * batches_per_epoch + b + 1;
+            scale = if ramp_steps == 0 { 1.0 } else { (step as f64 / ramp_steps as f64).min(1.0) };
+            let beta = match settings.loss {
+                RobustLoss::LinearInterval { final_linear_weight } => {
+                    1.0 - scale * (1.0 - final_linear_weight)
+                }
+                _ => 0.0,
+            };
+            let batch = gather_columns(&features, chunk);
+            let labels: Vec<usize> = chunk.iter().map(|&i| train.labels[i]).collect();
+            let (clean, mut gradient) = cross_entropy_gradient(&state.network, &batch, &labels);
+            if !clean.is_finite() {
+                return Err(TrainError::Diverged { epoch });
+            }
+            let budget = settings.budget.scaled(scale);
+            let regions: Vec<Region> = chunk.iter().map(|&i| map.region(train.sample(i), &budget)).collect();
+            let batch_targets: Vec<Vec<usize>> = chunk.iter().map(|&i| targets[i].clone()).collect();
+            // Per-sample weights: λ (global) or λ_c · B / B_c (per class, so each term is a class mean).
+            let per_class = state.multipliers.len() > 1;
+            let mut class_counts = vec![0usize; classes];
+            for &y in &labels {
+                class_counts[y] += 1;
+            }
+            let weights: Vec<f64> = labels
+                .iter()
+                .map(|&y| {
+                    if per_class {
+                        state.multipliers[y] * chunk.len() as f64 / class_counts[y] as f64
+                    } else {
+                        state.multipliers[0]
+                    }
+                })
+                .collect();
+            let robust = robust_loss(
+                settings.loss,
+                &state.network,
+                &regions,
+                &labels,
+                &batch_targets,
+                &weights,
+                beta,
+                settings.train.seed ^ step as u64,
+            )?;
+            if !robust.loss.is_finite() {
+                return Err(TrainError::Diverged { epoch });
+            }
+            add_scaled(&mut gradient, &robust.gradient, 1.0);
+            state.optimizer.step(&mut state.network, &gradient, 1.0);
+            let mean_robust = robust.sample_losses.iter().sum::<f64>() / chunk.len() as f64;
+            let error_rate = robust.errors.iter().filter(|e| **e).count() as f64 / chunk.len() as f64;
+            clean_total += clean * chunk.len() as f64;
+            robust_total += mean_robust * chunk.len() as f64;
+            error_total += error_rate * chunk.len() as f64;
+            if let Formulation::PrimalDual { dual_step, .. } = settings.formulation {
+                let allowed = settings.constraint.allowed();
+                if per_class {
+                    for c in 0..classes {
+                        if class_counts[c] == 0 {
+                            continue;
+                        }
+                        let members: Vec<usize> = (0..labels.len()).filter(|&s| labels[s] == c).collect();
+                        let measured = match settings.constraint {
+                            Constraint::RobustError { .. } => {
+                                members.iter().filter(|&&s| robust.errors[s]).count() as f64 / members.len() as f64
+                            }
+                            Constraint::RobustLossLevel { .. } => {
+                                members.iter().map(|&s| robust.sample_losses[s]).sum::<f64>() / members.len() as f64
+                            }
+                        };
+                        state.multipliers[c] = (state.multipliers[c] + dual_step * (measured - allowed)).max(0.0);
+                    }
+                } else {
+                    let measured = match settings.constraint {
+                        Constraint::RobustError { .. } => error_rate,
+                        Constraint::RobustLossLevel { .. } => mean_robust,
+                    };
+                    state.multipliers[0] = (state.multipliers[0] + dual_step * (measured - allowed)).max(0.0);
+                }
+            }
+        }
+        let n = train.len() as f64;
+        let mut record = ConstrainedEpoch {
+            epoch,
+            epsilon_scale: scale,
+            clean_loss: clean_total / n,
+            robust_loss: robust_total / n,
+            robust_error: error_total / n,
+            multipliers: state.multipliers.clone(),
+            validation_clean_accuracy: None,
+            validation_certified_accuracy: None,
+        };
+        if let Some(v) = validation {
+            let vf = trainable.to_network_units(&v.features);
+            record.validation_clean_accuracy = Some(loss_and_accuracy(&state.network, &vf, &v.labels).1);
+            if settings.measure_certified {
+                record.validation_certified_accuracy =
+                    Some(certified_accuracy(trainable, &state.network, v, &settings.budget, &settings.targets)?);
+            }
+        }
+        observer(&record);
+        records.push(record);
+    }
+    Ok(records)
+}
+
+/// Fraction of `data` predicted correctly and certified by sound linear-relaxation bounds (at least as
+/// tight as interval bounds) under `budget` and `targets`: a lower bound on robust accuracy.
+pub fn certified_accuracy(
+    trainable: &TrainableModel,
+    network: &Network,
+    data: &Dataset,
+    budget: &Budget,
+    targets: &Targets,
+) -> Result<f64, TrainError> {
+    let model = &trainable.template;
+    let classes = model.class_count();
+    let map = RegionMap::new(model, trainable.normalization.as_ref());
+    let features = trainable.to_network_units(&data.features);
+    let logits = network.as_classifier().forward_batch(&features);
+    let correct: Vec<usize> = (0..data.len())
+        .filter(|&i| predicted_class(logits.column(i).as_slice()) == data.labels[i])
+        .collect();
+    if correct.is_empty() {
+        return Ok(0.0);
+    }
+    let regions: Vec<Region> = correct.iter().map(|&i| map.region(data.sample(i), budget)).collect();
+    let labels: Vec<usize> = correct.iter().map(|&i| data.labels[i]).collect();
+    let target_lists: Vec<Vec<usize>> = labels.iter().map(|&y| targets.forbidden_for(y, classes)).collect();
+    let bounds = linear_batch(network, &regions, &labels, &target_lists)
+        .map_err(|e| TrainError::Data(format!("linear bounds: {e}")))?;
+    let certified = bounds
+        .samples
+        .iter()
+        .filter(|b| b.certified())
+        .count();
+    Ok(certified as f64 / data.len() as f64)
+}

@@ -1,0 +1,252 @@
+//! Robust training losses over the same threat model as certification (per-feature radii, clipped to
+//! the input range), expressed in the trainable network's units.
+//!
+//! - [`RobustLoss::Interval`]: cross-entropy on worst-case logits from interval bounds (Gowal et al.,
+//!   2018);
+//! - [`RobustLoss::LinearInterval`]: the same with the mix of linear-relaxation and interval bounds of
+//!   Zhang et al. (2020), `β` ramped from 1 to 0 while epsilon ramps up;
+//! - [`RobustLoss::Adversarial`]: cross-entropy at PGD points (Madry et al., 2018), found with the
+//!   attack module's margin gradients and projected steps.
+//!
+//! For a sample with label `y` and forbidden classes `F` (from [`crate::threat::Targets`]) every loss is
+//! `log(1 + Σ_{j∈F} exp(−m_j))` with `m_j` the margin `z_y − z_j` (a bound or its value at the PGD
+//! point); with every class forbidden this is ordinary cross-entropy. Each loss also reports a per-sample
+//! "robust error" indicator (bound not above the certification tolerance, or the PGD point misclassified)
+//! that the primal-dual loop uses as the measured constraint. These are training signals only: nothing
+//! here certifies anything.
+
+use nalgebra::DMatrix;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+
+use crate::attack::gradient::MarginGradient;
+use crate::attack::step::{descent_step, random_start};
+use crate::bound::CERTIFY_TOLERANCE;
+use crate::model::{Model, Network, Normalization};
+use crate::threat::{Budget, Region};
+
+use super::backprop::{backward, forward};
+use super::bound_gradient::{certified_cross_entropy, from_classifier_gradient};
+use super::TrainError;
+
+/// Which robust loss to train with.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum RobustLoss {
+    /// Interval bound propagation (Gowal et al., 2018).
+    Interval,
+    /// Linear relaxation mixed with interval bounds (Zhang et al., 2020), `β` from 1 down to
+    /// `final_linear_weight` over the epsilon ramp.
+    LinearInterval {
+        /// `β` after the ramp (0 in the original schedule).
+        final_linear_weight: f64,
+    },
+    /// Cross-entropy at projected-gradient-descent points (Madry et al., 2018).
+    Adversarial {
+        /// PGD steps per sample (step size 2.5 / steps of the radius, one random start).
+        steps: usize,
+    },
+}
+
+impl RobustLoss {
+    /// The lowercase name used in logs (`interval`, `linear_interval`, `adversarial`).
+    pub fn name(&self) -> &'static str {
+        match self {
+            RobustLoss::Interval => "interval",
+            RobustLoss::LinearInterval { .. } => "linear_interval",
+            RobustLoss::Adversarial { .. } => "adversarial",
+        }
+    }
+
+    /// True for the losses built on sound bounds.
+    pub fn is_certified(&self) -> bool {
+        !matches!(self, RobustLoss::Adversarial { .. })
+    }
+}
+
+/// A robust loss over a batch.
+#[derive(Debug, Clone)]
+pub struct RobustBatch {
+    /// `(1/B) Σ_s weight_s · loss_s`.
+    pub loss: f64,
+    /// Per-sample loss (without weights).
+    pub sample_losses: Vec<f64>,
+    /// Per sample: 1 when the sample counts as a robust error under this loss's measure, else 0.
+    pub errors: Vec<bool>,
+    /// Gradient of [`RobustBatch::loss`].
+    pub gradient: Network,
+}
+
+/// The regions of samples, in a trainable network's units.
+#[derive(Debug, Clone)]
+pub struct RegionMap {
+    normalization: Option<Normalization>,
+    lower: Vec<f64>,
+    upper: Vec<f64>,
+}
+
+impl RegionMap {
+    /// For `model`'s input range, with `normalization` the fixed leading normalize layer (if any).
+    pub fn new(model: &Model, normalization: Option<&Normalization>) -> RegionMap {
+        RegionMap {
+            normalization: normalization.cloned(),
+            lower: model.input.lower.clone(),
+            upper: model.input.upper.clone(),
+        }
+    }
+
+    /// The region of `budget` around the raw sample `center`, mapped through the normalisation:
+    /// `(x − mean)/std` is increasing per feature, so the box maps onto the box and the radii scale by
+    /// `1/std` (the ball maps onto the ball of the scaled radii).
+    pub fn region(&self, center: &[f64], budget: &Budget) -> Region {
+        let raw = budget.region(center, &self.lower, &self.upper);
+        match &self.normalization {
+            None => raw,
+            Some(n) => {
+                let map = |v: &[f64]| -> Vec<f64> {
+                    v.iter()
+                        .enumerate()
+                        .map(|(i, x)| (x - n.mean[i]) / n.std[i])
+                        .collect()
+                };
+                Region {
+                    center: map(&raw.center),
+                    norm: raw.norm,
+                    radii: raw.radii.iter().enumerate().map(|(i, r)| r / n.std[i]).collect(),
+                    lower: map(&raw.lower),
+                    upper: map(&raw.upper),
+                }
+            }
+        }
+    }
+}
+
+/// Evaluates `loss` on a batch: `regions[s]` (network units), `labels[s]`, `targets[s]` (forbidden
+/// classes), `weights[s]` (per-sample factor), `linear_weight` = `β` for the mixed loss, `seed` for PGD.
+#[allow(clippy::too_many_arguments)]
+pub fn robust_loss(
+    loss: RobustLoss,
+    network: &Network,
+    regions: &[Region],
+    labels: &[usize],
+    targets: &[Vec<usize>],
+    weights: &[f64],
+    linear_weight: f64,
+    seed: u64,
+) -> Result<RobustBatch, TrainError> {
+    match loss {
+        RobustLoss::Interval | RobustLoss::LinearInterval { .. } => {
+            let beta = if loss == RobustLoss::Interval { 0.0 } else { linear_weight };
+            let batch = certified_cross_entropy(network, regions, labels, targets, weights, beta)?;
+            Ok(RobustBatch {
+                loss: batch.loss,
+                errors: batch.worst_margins.iter().map(|m| *m <= CERTIFY_TOLERANCE).collect(),
+                sample_losses: batch.sample_losses,
+                gradient: batch.gradient,
+            })
+        }
+        RobustLoss::Adversarial { steps } => {
+            adversarial_cross_entropy(network, regions, labels, targets, weights, steps, seed)
+        }
+    }
+}
+
+/// PGD on the worst forbidden margin from one random start: `steps` sign (L-inf) or normalised (L2)
+/// steps of size `2.5 / steps` of the radius, projected into the region after each step.
+pub fn pgd_point(network: &Network, region: &Region, label: usize, targets: &[usize], steps: usize, seed: u64) -> Vec<f64> {
+    let classifier = network.as_classifier();
+    let mut buffers = MarginGradient::new(&classifier);
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut x = region.center.clone();
+    if targets.is_empty() {
+        return x;
+    }
+    random_start(region, &mut rng, &mut x);
+    let mut gradient = vec![0.0; x.len()];
+    let step = 2.5 / steps.max(1) as f64;
+    for _ in 0..steps {
+        let logits = buffers.logits(&x).to_vec();
+        let target = *targets
+            .iter()
+            .min_by(|a, b| {
+                let ma = logits[label] - logits[**a];
+                let mb = logits[label] - logits[**b];
+                ma.total_cmp(&mb)
+            })
+            .expect("non-empty targets");
+        buffers.gradient_at_last(label, target, &mut gradient);
+        descent_step(region, &mut x, &gradient, step);
+    }
+    x
+}
+
+/// Restricted cross-entropy `log(1 + Σ_{j∈F} exp(−(z_y − z_j)))` of classifier logits, with its
+/// gradient with respect to them.
+pub fn restricted_cross_entropy(logits: &[f64], label: usize, targets: &[usize]) -> (f64, Vec<f64>) {
+    let mut gradient = vec![0.0; logits.len()];
+    if targets.is_empty() {
+        return (0.0, gradient);
+    }
+    let margins: Vec<f64> = targets.iter().map(|&j| logits[label] - logits[j]).collect();
+    let shift = margins.iter().map(|m| -m).fold(0.0f64, f64::max);
+    let sum: f64 = (-shift).exp() + margins.iter().map(|m| (-m - shift).exp()).sum::<f64>();
+    for (t, &j) in targets.iter().enumerate() {
+        let p = (-margins[t] - shift).exp() / sum;
+        gradient[j] += p;
+        gradient[label] -= p;
+    }
+    (shift + sum.ln(), gradient)
+}
+
+fn adversarial_cross_entropy(
+    network: &Network,
+    regions: &[Region],
+    labels: &[usize],
+    targets: &[Vec<usize>],
+    weights: &[f64],
+    steps: usize,
+    seed: u64,
+) -> Result<RobustBatch, TrainError> {
+    let samples = regions.len();
+    if weights.len() != samples || labels.len() != samples || targets.len() != samples {
+        return Err(TrainError::Data("regions, labels, targets and weights differ in length".into()));
+    }
+    let dim = network.input_dim();
+    let points: Vec<Vec<f64>> = (0..samples)
+        .into_par_iter()
+        .map(|s| {
+            let sample_seed = seed ^ (s as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15);
+            pgd_point(network, &regions[s], labels[s], &targets[s], steps, sample_seed)
+        })
+        .collect();
+    let mut batch = DMatrix::zeros(dim, samples);
+    for (s, p) in points.iter().enumerate() {
+        batch.column_mut(s).copy_from_slice(p);
+    }
+    let classifier = network.as_classifier();
+    let cache = forward(&classifier, &batch);
+    let logits = cache.logits();
+    let mut d_logits = DMatrix::zeros(logits.nrows(), samples);
+    let mut loss = 0.0;
+    let mut sample_losses = Vec::with_capacity(samples);
+    let mut errors = Vec::with_capacity(samples);
+    let scale = 1.0 / samples.max(1) as f64;
+    for s in 0..samples {
+        let z = logits.column(s);
+        let (value, g) = restricted_cross_entropy(z.as_slice(), labels[s], &targets[s]);
+        for (r, gr) in g.iter().enumerate() {
+            d_logits[(r, s)] = weights[s] * scale * gr;
+        }
+        loss += weights[s] * scale * value;
+        sample_losses.push(value);
+        errors.push(targets[s].iter().any(|&j| z[labels[s]] - z[j] <= 0.0));
+    }
+    let gradient = from_classifier_gradient(network, backward(&classifier, &cache, &d_logits));
+    Ok(RobustBatch {
+        loss,
+        sample_losses,
+        errors,
+        gradient,
+    })
+}
