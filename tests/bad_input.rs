@@ -324,3 +324,178 @@ fn allow_large_lifts_the_data_limit_without_overflow() {
     assert_eq!(run.code, Some(0), "{}", run.stderr);
     assert!(run.stdout.contains("samples: 540"), "{}", run.stdout);
 }
+
+#[test]
+fn bad_flag_values_are_input_errors() {
+    // Flags rather than files: each must be refused before any work, naming the flag, writing nothing.
+    let good = corpus().join("good");
+    let model = good.join("two_sensor.model.json").display().to_string();
+    let data = good.join("two_sensor.csv").display().to_string();
+    let cases: [(&[&str], &str); 14] = [
+        (&["--eps=-0.1"], "--eps: -0.1 is not allowed"),
+        (&["--eps", "nan"], "--eps: NaN is not allowed"),
+        (&["--eps", "1e999"], "--eps: inf is not allowed"),
+        (&["--eps", "0.1,x"], "--eps: \"x\" is not a number"),
+        (
+            &["--eps", "missing-tolerances.csv"],
+            "--eps: the tolerance file",
+        ),
+        (
+            &["--eps", "0.1", "--floor", "1.5"],
+            "--floor: 1.5 is not allowed",
+        ),
+        (
+            &["--eps", "0.1", "--floor=-0.1"],
+            "--floor: -0.1 is not allowed",
+        ),
+        (
+            &["--eps", "0.1", "--floor", "NaN"],
+            "--floor: NaN is not allowed",
+        ),
+        (
+            &["--eps", "0.1", "--confidence", "1"],
+            "--confidence: 1 is not allowed",
+        ),
+        (
+            &["--eps", "0.1", "--budget=-1"],
+            "--budget: -1 is not allowed",
+        ),
+        (
+            &["--eps", "0.1", "--budget", "inf"],
+            "--budget: inf is not allowed",
+        ),
+        (&["--eps", "0.1", "--norm", "l3"], "--norm: unknown norm"),
+        (
+            &["--eps", "0.1", "--shard", "0/2"],
+            "--shard: \"0/2\" is not allowed",
+        ),
+        (
+            &["--eps", "0.1", "--forbid-into", "cat"],
+            "--forbid-into: \"cat\" is not a class",
+        ),
+    ];
+    let mut failures = Vec::new();
+    for (flags, expected) in cases {
+        let out = tempfile::tempdir().expect("temporary folder");
+        let mut args: Vec<String> = ["certify", "--model", &model, "--data", &data]
+            .map(String::from)
+            .to_vec();
+        args.extend(flags.iter().map(|f| f.to_string()));
+        args.push("--report".into());
+        args.push(out.path().join("r.json").display().to_string());
+        let run = run_ballast(&args);
+        let flag = expected.split(':').next().expect("a flag");
+        if let Some(problem) = check(&run, flag, expected) {
+            failures.push(format!("{flags:?}: {problem}"));
+        }
+        if !everything_under(out.path()).is_empty() {
+            failures.push(format!("{flags:?}: wrote into the output folder"));
+        }
+    }
+    assert!(failures.is_empty(), "{}", failures.join("\n"));
+}
+
+/// A small valid model whose every string is hostile: markup, quotes and path parts.
+fn hostile_model() -> String {
+    r#"{"format": "ballast.model/1", "name": "<script>alert('name')</script>../../escape",
+        "input": {"dim": 2, "names": ["../../speed", "<img src=x onerror=alert(1)>"],
+                  "lower": [0, -40], "upper": [10, 120]},
+        "classes": ["</td><script>alert('class')</script>", "../../../worn&\"quoted\""],
+        "layers": [{"kind": "dense", "weights": [[0.3, -0.1]], "bias": [0.2]}],
+        "provenance": {"note": "<!-- ../../ -->"}}"#
+        .to_owned()
+}
+
+#[test]
+fn outputs_escape_input_strings_and_stay_in_their_folders() {
+    // Strings from a model end up in the report and the sheet. The HTML sheet must escape them, and no
+    // name from an input may steer a file outside the folders given on the command line (common
+    // practice for anything that renders untrusted text or builds paths).
+    let sandbox = tempfile::tempdir().expect("temporary folder");
+    let work = sandbox.path().join("work");
+    let inputs = work.join("inputs");
+    let outputs = work.join("outputs");
+    std::fs::create_dir_all(&inputs).expect("folder");
+    std::fs::create_dir_all(&outputs).expect("folder");
+    let model = inputs.join("model.json");
+    std::fs::write(&model, hostile_model()).expect("write");
+    let data = inputs.join("data.csv");
+    std::fs::write(
+        &data,
+        "label,<img src=x onerror=alert(1)>,../../speed\n\
+         </td><script>alert('class')</script>,20,1\n\
+         1,100,9\n0,50,5\n",
+    )
+    .expect("write");
+    let report = outputs.join("report.json");
+    let sheet = outputs.join("sheet");
+    let path = |p: &Path| p.display().to_string();
+    let run = run_ballast(&[
+        "certify".into(),
+        "--model".into(),
+        path(&model),
+        "--data".into(),
+        path(&data),
+        "--eps".into(),
+        "0.5".into(),
+        "--report".into(),
+        path(&report),
+        "--sheet".into(),
+        path(&sheet),
+    ]);
+    assert!(
+        matches!(run.code, Some(0 | 1 | 3)),
+        "certify failed: {}",
+        run.stderr
+    );
+    let html = std::fs::read_to_string(sheet.join("sheet.html")).expect("the sheet was written");
+    for raw in [
+        "<script>alert",
+        "<img src=x",
+        "</td><script>",
+        "<!-- ../../ -->",
+    ] {
+        assert!(
+            !html.contains(raw),
+            "sheet.html contains the raw input string {raw:?}"
+        );
+    }
+    assert!(
+        html.contains("&lt;script&gt;alert(") || html.contains("&#60;script&#62;alert("),
+        "the model name is not shown escaped"
+    );
+    // Only the two folders hold anything new: nothing beside them in the sandbox or its parent.
+    let outside: Vec<PathBuf> = everything_under(sandbox.path())
+        .into_iter()
+        .filter(|p| !p.starts_with(&inputs) && !p.starts_with(&outputs) && *p != work)
+        .collect();
+    assert!(
+        outside.is_empty(),
+        "files written outside the chosen folders: {outside:?}"
+    );
+    let in_outputs = everything_under(&outputs);
+    assert!(in_outputs.contains(&report), "{in_outputs:?}");
+    let rerender = sandbox.path().join("rerendered");
+    let run = run_ballast(&[
+        "sheet".into(),
+        "--report".into(),
+        path(&report),
+        "--out".into(),
+        path(&rerender),
+    ]);
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    let again = std::fs::read_to_string(rerender.join("sheet.html")).expect("re-rendered");
+    assert!(
+        !again.contains("<script>alert"),
+        "re-rendered sheet.html is not escaped"
+    );
+    let names: Vec<String> = everything_under(&rerender)
+        .iter()
+        .map(|p| p.file_name().expect("named").to_string_lossy().into_owned())
+        .collect();
+    assert_eq!(
+        names,
+        ["sheet.html", "sheet.md"],
+        "the sheet folder holds only the two sheet files"
+    );
+}

@@ -860,3 +860,67 @@ fn optimised_linear_certifies_at_least_the_interval_lp_count() {
         );
     }
 }
+
+/// Through the model layout: a `normalize` layer (folded into the network), a 1-logit binary output,
+/// per-feature radii in raw units (one fixed) and a binding input range. Every method's bound holds on
+/// sampled and attacked points of the raw-unit region, checked with the model's own forward pass.
+#[test]
+fn bounds_hold_for_layout_models_with_normalize_and_one_logit() {
+    let text = r#"{
+        "format": "ballast.model/1",
+        "input": { "dim": 3, "lower": [0.0, 0.0, 0.0], "upper": [10.0, 5.0, 100.0] },
+        "layers": [
+            { "kind": "normalize", "mean": [5.0, 2.5, 50.0], "std": [2.0, 1.0, 25.0] },
+            { "kind": "dense", "weights": [[0.8, -0.5, 0.3], [-0.4, 0.9, 0.2], [0.5, 0.5, -0.7], [0.1, -0.3, 0.6]],
+              "bias": [0.1, -0.2, 0.05, 0.0] },
+            { "kind": "relu" },
+            { "kind": "dense", "weights": [[1.0, -0.8, 0.6, -0.5]], "bias": [0.05] }
+        ]
+    }"#;
+    let model = Model::from_json_str(text).unwrap();
+    let network = model.network();
+    assert_eq!(network.output_dim(), 1);
+    let classifier = model.classifier();
+    let mut rng = ChaCha8Rng::seed_from_u64(17);
+    let mut informative = 0;
+    for case in 0..12 {
+        let center = vec![
+            rng.gen_range(0.0..10.0),
+            rng.gen_range(0.0..5.0),
+            rng.gen_range(0.0..100.0),
+        ];
+        let norm = if case % 2 == 0 { Norm::Linf } else { Norm::L2 };
+        let radii = vec![0.8, 0.0, 12.0];
+        let region = Budget { norm, radii }.region(&center, &model.input.lower, &model.input.upper);
+        let logit = network.forward(&center)[0];
+        let label = usize::from(logit > 0.0);
+        let other = 1 - label;
+        let mut points = sample_points(&mut rng, &region, 400);
+        points.extend(attack(&classifier, &region, label, other, &center));
+        for method in [
+            Method::Interval,
+            Method::Linear,
+            Method::OptimisedLinear,
+            Method::Lp,
+        ] {
+            let result =
+                bound::margin_lower_bounds(&network, &region, label, &[other], method, None)
+                    .unwrap();
+            for x in &points {
+                assert!(region.contains(x));
+                assert!((x[1] - center[1]).abs() < 1e-12, "fixed feature moved");
+                let z = network.forward(x)[0];
+                let m = if label == 1 { z } else { -z };
+                assert!(
+                    m >= result.lower[0] - CERTIFY_TOLERANCE,
+                    "case {case} {method:?}: {m} < {}",
+                    result.lower[0]
+                );
+            }
+            if result.lower[0] > 0.0 {
+                informative += 1;
+            }
+        }
+    }
+    assert!(informative > 0, "no positive bound in the layout cases");
+}

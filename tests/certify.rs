@@ -287,7 +287,7 @@ fn usage_errors_name_the_flag_and_write_nothing() {
         (vec!["--eps", "0.05", "--forbid-into", "eleven"], "--forbid-into"),
         (vec!["--eps", "0.05", "--confidence", "1.0"], "--confidence"),
         (vec!["--eps", "0.05", "--shard", "4/3"], "--shard"),
-        (vec!["--eps", "0.05", "--budget", "-1"], "--budget"),
+        (vec!["--eps", "0.05", "--budget=-1"], "--budget"),
     ] {
         let mut all = vec!["certify", "--model", MODEL, "--data", DATA, "--report", report_s];
         all.extend(args.iter());
@@ -487,7 +487,8 @@ fn killed_run_resumes_to_the_same_statuses() {
     // Reference: an uninterrupted run with two threads (also checks thread-count independence).
     let fresh = dir.path().join("fresh.json");
     let mut again = args.to_vec();
-    again[again.len() - 1] = fresh.to_str().unwrap();
+    let last = again.len() - 1;
+    again[last] = fresh.to_str().unwrap();
     let out = Command::new(bin()).args(&again).env("RAYON_NUM_THREADS", "2").output().unwrap();
     assert_eq!(out.status.code(), Some(0));
     let fresh = read_report(&fresh);

@@ -5,7 +5,7 @@ use std::path::Path;
 
 use approx::assert_relative_eq;
 use ballast::data::{load_csv, DataOptions, Dataset};
-use ballast::model::{predicted_class, Dense, Model, Network};
+use ballast::model::{predicted_class, Model, Network};
 use ballast::train::backprop::{classifier_logits, softmax_cross_entropy};
 use ballast::train::plain::cross_entropy_gradient;
 use ballast::train::{he_network, new_mlp, train_cross_entropy, OptimizerKind, TrainSettings};
@@ -175,5 +175,234 @@ fn bad_settings_and_data_are_errors() {
     let error = train_cross_entropy(&fixture, &wrong, &TrainSettings::default()).unwrap_err();
     assert!(error.to_string().contains("sample 3"), "{error}");
     assert!(new_mlp(&fixture.input, 10, &[0], &train, 0).is_err());
-    let _ = Dense::identity(1);
+}
+
+mod robust_losses {
+    use super::*;
+    use ballast::bound::interval::batch_margin_lower_bounds;
+    use ballast::threat::{Budget, Norm, Region};
+    use ballast::train::bound_gradient::certified_cross_entropy;
+    use ballast::train::robust::{robust_loss, RobustLoss};
+    use rand::{Rng, SeedableRng};
+
+    fn regions(radius: f64, norm: Norm, samples: usize, seed: u64) -> Vec<Region> {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+        let budget = Budget::uniform(norm, radius, 4);
+        (0..samples)
+            .map(|_| {
+                let c: Vec<f64> = (0..4).map(|_| rng.gen_range(-0.8..0.8)).collect();
+                budget.region(&c, &[-1.0; 4], &[1.0; 4])
+            })
+            .collect()
+    }
+
+    fn setup() -> (Network, Vec<Region>, Vec<usize>, Vec<Vec<usize>>, Vec<f64>) {
+        let network = he_network(4, &[6, 5], 3, 21);
+        let regions = regions(0.3, Norm::Linf, 6, 22);
+        let labels = vec![0, 1, 2, 0, 1, 2];
+        let targets: Vec<Vec<usize>> = labels
+            .iter()
+            .map(|&y| (0..3).filter(|j| *j != y).collect())
+            .collect();
+        let weights = vec![1.0, 0.5, 2.0, 1.0, 1.5, 0.7];
+        (network, regions, labels, targets, weights)
+    }
+
+    // Common practice: reverse-mode gradients through the bound computations must agree with central
+    // differences (away from the measure-zero kinks of ReLU, |·| and the stability tests).
+    #[test]
+    fn certified_loss_gradients_match_finite_differences() {
+        let (network, regions, labels, targets, weights) = setup();
+        for beta in [0.0, 0.4, 1.0] {
+            let batch = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, beta)
+                .expect("bounds");
+            assert!(batch.loss.is_finite() && batch.loss > 0.0);
+            let loss = |n: &Network| {
+                certified_cross_entropy(n, &regions, &labels, &targets, &weights, beta)
+                    .expect("bounds")
+                    .loss
+            };
+            check_gradient(&network, &batch.gradient, &loss, 1e-7);
+        }
+    }
+
+    #[test]
+    fn certified_loss_gradient_with_restricted_targets_and_one_logit() {
+        let network = he_network(4, &[5], 1, 31);
+        let regions = regions(0.2, Norm::L2, 4, 32);
+        let labels = vec![0, 1, 1, 0];
+        let targets = vec![vec![1], vec![0], vec![], vec![1]]; // sample 2 has nothing forbidden
+        let weights = vec![1.0; 4];
+        let batch = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 0.5)
+            .expect("bounds");
+        assert!(batch.sample_losses[2].abs() < 1e-300 && batch.worst_margins[2].is_infinite());
+        let loss = |n: &Network| {
+            certified_cross_entropy(n, &regions, &labels, &targets, &weights, 0.5)
+                .expect("bounds")
+                .loss
+        };
+        check_gradient(&network, &batch.gradient, &loss, 1e-7);
+    }
+
+    #[test]
+    fn adversarial_loss_gradient_matches_finite_differences() {
+        // Danskin's theorem: at fixed PGD points the gradient is that of the loss at those points; the
+        // L-inf sign steps are locally constant in the parameters, so finite differences agree.
+        let (network, regions, labels, targets, weights) = setup();
+        let kind = RobustLoss::Adversarial { steps: 5 };
+        let batch = robust_loss(kind, &network, &regions, &labels, &targets, &weights, 0.0, 9)
+            .expect("pgd");
+        let loss = |n: &Network| {
+            robust_loss(kind, n, &regions, &labels, &targets, &weights, 0.0, 9)
+                .expect("pgd")
+                .loss
+        };
+        check_gradient(&network, &batch.gradient, &loss, 1e-7);
+        // The PGD loss is at least the clean restricted loss on average (it maximises the loss).
+        let clean_batch = robust_loss(
+            kind,
+            &network,
+            &regions
+                .iter()
+                .map(|r| Budget::uniform(Norm::Linf, 0.0, 4).region(&r.center, &[-1.0; 4], &[1.0; 4]))
+                .collect::<Vec<_>>(),
+            &labels,
+            &targets,
+            &weights,
+            0.0,
+            9,
+        )
+        .expect("pgd");
+        assert!(batch.loss >= clean_batch.loss);
+    }
+
+    // Soundness of the training bounds (common practice: a lower bound must not exceed any attained
+    // margin): the mixed bound lies below the margin at many points of each region, and the interval
+    // part equals bound/'s interval margins.
+    #[test]
+    fn training_bounds_are_below_sampled_margins() {
+        let (network, regions, labels, targets, weights) = setup();
+        let classifier = network.as_classifier();
+        let interval = batch_margin_lower_bounds(&classifier, &regions, &labels, &targets).expect("ibp");
+        let ibp = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 0.0).expect("b");
+        let mixed = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 1.0).expect("b");
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        for s in 0..regions.len() {
+            let worst_interval = interval.margins[s].iter().copied().fold(f64::INFINITY, f64::min);
+            assert_relative_eq!(ibp.worst_margins[s], worst_interval, epsilon = 1e-12);
+            for _ in 0..300 {
+                let x: Vec<f64> = (0..4)
+                    .map(|i| rng.gen_range(regions[s].lower[i]..=regions[s].upper[i]))
+                    .collect();
+                let z = classifier.forward(&x);
+                let margin = targets[s].iter().map(|&j| z[labels[s]] - z[j]).fold(f64::INFINITY, f64::min);
+                assert!(mixed.worst_margins[s] <= margin + 1e-9, "sample {s}");
+                assert!(ibp.worst_margins[s] <= margin + 1e-9, "sample {s}");
+            }
+        }
+    }
+}
+
+mod retraining {
+    use super::*;
+    use ballast::bound::{margin_lower_bounds, Method};
+    use ballast::cli::{run, Cli, Outcome};
+    use ballast::threat::{Budget, Norm};
+    use clap::Parser;
+    use rand::{Rng, SeedableRng};
+
+    /// Two Gaussian blobs in 2-D (means ±(1, 1), std 0.45), written as CSV.
+    fn blobs(samples: usize, seed: u64) -> String {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+        let normal = rand_distr::Normal::new(0.0, 0.45).expect("normal");
+        let mut text = String::from("label,a,b\n");
+        for i in 0..samples {
+            let y = i % 2;
+            let sign = if y == 1 { 1.0 } else { -1.0 };
+            let a: f64 = (sign + rng.sample::<f64, _>(normal)).clamp(-3.0, 3.0);
+            let b: f64 = (sign + rng.sample::<f64, _>(normal)).clamp(-3.0, 3.0);
+            text.push_str(&format!("{y},{a},{b}\n"));
+        }
+        text
+    }
+
+    // End to end: after `ballast retrain --floor F`, either the exit code says "not met" or sound
+    // bounds (bound/, computed here independently of the trainer) certify at least F of the acceptance
+    // data.
+    #[test]
+    fn retrain_meets_the_floor_or_says_it_did_not() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let model_path = dir.path().join("start.json");
+        std::fs::write(
+            &model_path,
+            r#"{"format":"ballast.model/1","input":{"dim":2,"names":["a","b"],"lower":-3.0,"upper":3.0},
+               "classes":["low","high"],
+               "layers":[{"kind":"dense","weights":[[0.1,0.0],[0.0,0.1]],"bias":[0.0,0.0]}]}"#,
+        )
+        .expect("write model");
+        let train = dir.path().join("train.csv");
+        let acceptance = dir.path().join("acceptance.csv");
+        std::fs::write(&train, blobs(400, 1)).expect("write");
+        std::fs::write(&acceptance, blobs(200, 2)).expect("write");
+        let out = dir.path().join("retrained.json");
+        let floor = 0.85;
+        let eps = 0.3;
+        let cli = Cli::parse_from([
+            "ballast", "retrain", "--model", model_path.to_str().unwrap(), "--train", train.to_str().unwrap(),
+            "--acceptance", acceptance.to_str().unwrap(), "--eps", "0.3", "--floor", "0.85", "--hidden", "8",
+            "--epochs", "12", "--max-rounds", "2", "--seed", "3", "--out", out.to_str().unwrap(),
+        ]);
+        let outcome = run(cli).expect("retrain runs");
+        let model = Model::load(&out).expect("retrained model written");
+        let provenance = model.provenance.as_ref().expect("provenance");
+        assert_eq!(
+            provenance["retrain"]["parent_sha256"].as_str().expect("digest"),
+            ballast::digest::sha256_file(&model_path).expect("digest")
+        );
+        let folder = dir.path().join("retrained.retrain");
+        let log = std::fs::read_to_string(folder.join("log.csv")).expect("log");
+        assert!(log.lines().count() >= 13, "{log}");
+        assert!(std::fs::read_to_string(folder.join("accuracy.svg")).expect("svg").contains("<polyline"));
+        assert!(folder.join("retrain.md").is_file());
+        let data = load_csv(&acceptance, &model, &DataOptions::default()).expect("acceptance");
+        let network = model.classifier();
+        let budget = Budget::uniform(Norm::Linf, eps, 2);
+        let mut certified = 0;
+        for i in 0..data.len() {
+            let x = data.sample(i);
+            let y = data.labels[i];
+            if predicted_class(network.forward(x).as_slice()) != y {
+                continue;
+            }
+            let region = budget.region(x, &model.input.lower, &model.input.upper);
+            let bounds = margin_lower_bounds(&network, &region, y, &[1 - y], Method::Linear, None).expect("bounds");
+            if bounds.certified() {
+                certified += 1;
+            }
+        }
+        let fraction = certified as f64 / data.len() as f64;
+        match outcome {
+            Outcome::Met => assert!(fraction >= floor, "claimed met but bounds certify {fraction}"),
+            Outcome::NotMet => {}
+            other => panic!("unexpected outcome {other:?}"),
+        }
+        // The blobs are far apart compared to eps, so the floor should be reachable.
+        assert_eq!(outcome, Outcome::Met, "certified fraction {fraction}");
+    }
+
+    #[test]
+    fn bad_arguments_are_clear_errors() {
+        let cli = Cli::parse_from([
+            "ballast", "retrain", "--model", "tests/data/digits_mlp.model.json", "--train",
+            "tests/data/digits_test.csv", "--eps", "0.01", "--floor", "1.5", "--out", "/nonexistent/x.json",
+        ]);
+        let error = run(cli).unwrap_err().to_string();
+        assert!(error.contains("--floor"), "{error}");
+        let cli = Cli::parse_from([
+            "ballast", "retrain", "--model", "tests/data/digits_mlp.model.json", "--train",
+            "tests/data/digits_test.csv", "--eps", "0.01", "--floor", "0.5", "--loss", "magic", "--out", "x.json",
+        ]);
+        let error = run(cli).unwrap_err().to_string();
+        assert!(error.contains("--loss"), "{error}");
+    }
 }

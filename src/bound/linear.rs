@@ -26,7 +26,7 @@ use super::{
     LayerBounds, MarginBounds, Method, ReluSplit, SplitState,
 };
 use crate::model::Network;
-use crate::threat::Region;
+use crate::threat::{Norm, Region};
 
 /// How one hidden unit is relaxed.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -137,7 +137,11 @@ pub(crate) fn intermediate_bounds(
             None => (region.lower.clone(), region.upper.clone()),
         };
         let mut best = affine_box(layer, &lo, &hi);
-        let refine: Vec<usize> = (0..best.len()).filter(|&i| best.is_unstable(i)).collect();
+        // For the first layer over an L-inf box the interval bound is already exact.
+        let exact = m == 0 && region.norm == Norm::Linf;
+        let refine: Vec<usize> = (0..best.len())
+            .filter(|&i| !exact && best.is_unstable(i))
+            .collect();
         if !refine.is_empty() {
             let count = refine.len();
             let width = layer.input_dim();

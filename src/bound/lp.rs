@@ -14,7 +14,8 @@
 //! Soundness caveat: the value is the solver's optimum, exact up to its feasibility tolerances (see
 //! docs/bounds.md). If the solver reports the LP infeasible (which in exact arithmetic means the split
 //! constraints leave no input), the linear-relaxation bound is returned instead of pruning on the
-//! solver's word.
+//! solver's word; likewise if the reported optimum exceeds the true margin at the solver's own input
+//! point (which a sound bound never does), the linear bound is used.
 
 use nalgebra::DVector;
 
@@ -29,6 +30,9 @@ use super::{
 };
 use crate::model::Network;
 use crate::threat::{Norm, Region};
+
+/// Relative slack for the solver sanity check (solver optimum versus the margin at its own point).
+const SOLVER_SLACK: f64 = 1e-9;
 
 /// LP lower bounds on `logit_label − logit_j` for every `j` in `targets`, on linear-relaxation
 /// intermediate bounds; each is the larger of the LP optimum and the linear-relaxation bound.
@@ -220,7 +224,22 @@ fn solve(
             Outcome::Optimal { value, point } => {
                 let mut x: Vec<f64> = point[..region.dim()].to_vec();
                 region.project(&mut x);
-                lower.push(value);
+                // Sanity check on the solver: a region point meeting the splits has a true margin no
+                // lower than any sound bound. If the reported optimum exceeds it, distrust the solver
+                // and keep the linear-relaxation bound.
+                let fallback = input_minimum + input_constants[t];
+                let logits = network.forward(&x);
+                let pre: Vec<Vec<f64>> = network
+                    .pre_activations(&x)
+                    .iter()
+                    .take(relaxations.len())
+                    .map(|z| z.iter().copied().collect())
+                    .collect();
+                let admitted = splits.map(|s| s.admits(&pre)).unwrap_or(true);
+                let observed = logits[label] - logits[targets[t]];
+                let trusted =
+                    !admitted || value <= observed + SOLVER_SLACK * (1.0 + observed.abs());
+                lower.push(if trusted { value } else { fallback });
                 minimisers.push(Some(x));
             }
             Outcome::Infeasible => {

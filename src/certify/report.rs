@@ -205,7 +205,8 @@ pub enum DecidedBy {
 pub struct Summary {
     /// Samples in the acceptance set (this shard's slice for a shard report).
     pub samples: usize,
-    /// Fraction predicted correctly without perturbation.
+    /// Fraction predicted correctly without perturbation (in an incomplete report, samples not run
+    /// count as correct here, as in the empirical figure: an upper bound).
     pub clean_accuracy: f64,
     /// certified / samples: a lower bound on robust accuracy.
     pub certified_accuracy: f64,
@@ -337,7 +338,7 @@ pub fn summarize(counts: &Counts, requirement: &Requirement) -> Summary {
     let unresolved = counts.unresolved + counts.not_run;
     Summary {
         samples: counts.samples,
-        clean_accuracy: counts.correct as f64 / n,
+        clean_accuracy: 1.0 - counts.misclassified as f64 / n,
         certified_accuracy: counts.certified as f64 / n,
         empirical_robust_accuracy: 1.0 - (counts.misclassified + counts.counterexample) as f64 / n,
         unresolved,

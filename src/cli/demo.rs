@@ -1,10 +1,45 @@
-//! `ballast demo` (not built yet).
+//! `ballast demo [--out DIR] [--quick]`: the whole job on the bundled pump-fleet demo (the files are
+//! embedded in the binary, so it works from any folder): certify `pump-mlp`, retrain it toward the
+//! floor, certify again, write both reports and sheets, print a short summary with the paths.
+//!
+//! It exits 0 when every stage ran, whatever the verdicts; the verdicts are in the summary and reports.
+
+use std::path::PathBuf;
+
+use crate::demo::pipeline::{describe, run_demo, DemoOptions, QUICK_ROWS};
 
 /// Arguments of `ballast demo`.
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+#[command(after_help = "Example: ballast demo --out ballast-demo\n\nSee docs/demo-scenario.md for the scenario.")]
+pub struct Args {
+    /// Folder for the demo files, models, reports and sheets (created if missing).
+    #[arg(long, default_value = "ballast-demo")]
+    pub out: PathBuf,
+    /// Smoke test: only the first acceptance rows (see docs/demo-scenario.md), bounds only, a short retraining.
+    #[arg(long)]
+    pub quick: bool,
+}
 
 /// Runs `ballast demo`.
-pub fn run(_args: Args) -> anyhow::Result<super::Outcome> {
-    anyhow::bail!("`ballast demo` is not built yet")
+pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
+    let options = DemoOptions {
+        out: args.out.clone(),
+        quick: args.quick,
+        command_line: std::env::args().collect(),
+    };
+    if args.quick {
+        println!("quick mode: first {QUICK_ROWS} acceptance rows, bounds only, short retraining");
+    }
+    let outcome = run_demo(&options, &mut |line| println!("{line}"))?;
+    println!();
+    println!("summary ({} acceptance samples)", outcome.samples);
+    println!("  bundled model   {}", outcome.before.model.display());
+    println!("    {}", describe(&outcome.before.summary));
+    println!("    report {}", outcome.before.report.display());
+    println!("    sheet  {}", outcome.before.sheet_html.display());
+    println!("  retrained model {}", outcome.after.model.display());
+    println!("    {}", describe(&outcome.after.summary));
+    println!("    report {}", outcome.after.report.display());
+    println!("    sheet  {}", outcome.after.sheet_html.display());
+    Ok(super::Outcome::Finished)
 }

@@ -1,10 +1,428 @@
-//! `ballast retrain` (not built yet).
+//! `ballast retrain`: constrained (primal-dual) retraining toward a certified floor, then an honest
+//! check with the certify pipeline. Writes the model (atomically, with provenance), a log CSV and a small
+//! sheet (Markdown + SVG curves) in a folder beside the model. Exit 0 when the floor is proven on the
+//! acceptance data, 1 when it is not.
+
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+
+use anyhow::{bail, Context};
+
+use super::common::{load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument};
+use super::Outcome;
+use crate::certify::PipelineOptions;
+use crate::threat::requirement::{RequirementSpec, ToleranceSource};
+use crate::train::constrained::{Constraint, ConstrainedEpoch, ConstrainedSettings, Formulation};
+use crate::train::curves::{plot_svg, Series};
+use crate::train::plain::split_validation;
+use crate::train::retrain::{retrain, RetrainResult, RetrainSettings, RetrainVerdict};
+use crate::train::robust::RobustLoss;
+use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 
 /// Arguments of `ballast retrain`.
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+#[command(after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n\nExit codes: 0 floor proven on the acceptance data, 1 not met, 2 usage or input error.")]
+pub struct Args {
+    /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// Training data (CSV).
+    #[arg(long)]
+    pub train: PathBuf,
+    /// Validation data (CSV); default: 20% held out from --train.
+    #[arg(long)]
+    pub val: Option<PathBuf>,
+    /// Acceptance data for the final certify check; default: the validation data.
+    #[arg(long)]
+    pub acceptance: Option<PathBuf>,
+    /// The budget: one number, or a per-feature tolerance file (radius = tolerance).
+    #[arg(long)]
+    pub eps: String,
+    /// Norm of the ball: linf or l2.
+    #[arg(long, default_value = "linf")]
+    pub norm: String,
+    /// Required certified fraction on the acceptance data.
+    #[arg(long)]
+    pub floor: f64,
+    /// Only changes into these classes count (names or indices, comma-separated).
+    #[arg(long)]
+    pub forbid_into: Option<String>,
+    /// Epochs of the first round.
+    #[arg(long, default_value_t = 30)]
+    pub epochs: usize,
+    /// Epochs of every further round (default: half of --epochs).
+    #[arg(long)]
+    pub round_epochs: Option<usize>,
+    /// Largest number of train-then-certify rounds.
+    #[arg(long, default_value_t = 3)]
+    pub max_rounds: usize,
+    /// Seed of initialisation, shuffling and attacks.
+    #[arg(long, default_value_t = 0)]
+    pub seed: u64,
+    /// Robust loss: certified (linear + interval bounds), interval, or adversarial (PGD).
+    #[arg(long, default_value = "certified")]
+    pub loss: String,
+    /// Constraint: error (robust error rate ≤ 1 − floor − slack) or loss (robust loss ≤ --level).
+    #[arg(long, default_value = "error")]
+    pub constraint: String,
+    /// Robust loss level for --constraint loss.
+    #[arg(long)]
+    pub level: Option<f64>,
+    /// Extra margin on the robust-error constraint in the first round.
+    #[arg(long, default_value_t = 0.02)]
+    pub slack: f64,
+    /// Slack added in every further round.
+    #[arg(long, default_value_t = 0.03)]
+    pub slack_step: f64,
+    /// Fixed penalty weight instead of the primal-dual multiplier (for comparison).
+    #[arg(long)]
+    pub penalty: Option<f64>,
+    /// One constraint and multiplier per class.
+    #[arg(long)]
+    pub per_class: bool,
+    /// Dual step size of the multiplier update.
+    #[arg(long, default_value_t = 0.05)]
+    pub dual_step: f64,
+    /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
+    #[arg(long)]
+    pub hidden: Option<String>,
+    /// Adam learning rate.
+    #[arg(long, default_value_t = 0.002)]
+    pub learning_rate: f64,
+    /// Mini-batch size.
+    #[arg(long, default_value_t = 64)]
+    pub batch_size: usize,
+    /// Epochs over which epsilon ramps up from 0 (default: 40% of --epochs).
+    #[arg(long)]
+    pub ramp_epochs: Option<usize>,
+    /// Where to write the retrained model (the log and sheet go to a folder beside it).
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Name of the label column.
+    #[arg(long, default_value = "label")]
+    pub label_column: String,
+    /// Accept inputs above the size limits.
+    #[arg(long)]
+    pub allow_large: bool,
+}
+
+fn parse_hidden(text: &str) -> anyhow::Result<Vec<usize>> {
+    if text.trim().eq_ignore_ascii_case("none") || text.trim().is_empty() {
+        return Ok(Vec::new());
+    }
+    text.split(',')
+        .map(|p| match p.trim().parse::<usize>() {
+            Ok(n) if n > 0 => Ok(n),
+            _ => bail!("--hidden: \"{p}\" is not allowed, expected layer sizes ≥ 1 like 32,32 (or none)"),
+        })
+        .collect()
+}
+
+/// The folder beside `out` that receives the log and the sheet: `m2.json` → `m2.retrain/`.
+pub fn sheet_folder(out: &Path) -> PathBuf {
+    let stem = out
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "model".into());
+    out.with_file_name(format!("{stem}.retrain"))
+}
 
 /// Runs `ballast retrain`.
-pub fn run(_args: Args) -> anyhow::Result<super::Outcome> {
-    anyhow::bail!("`ballast retrain` is not built yet")
+pub fn run(args: Args) -> anyhow::Result<Outcome> {
+    // Validate the plain values first.
+    if !(0.0..=1.0).contains(&args.floor) {
+        bail!("--floor: {} is not allowed, expected a fraction in [0, 1]", args.floor);
+    }
+    if args.epochs == 0 {
+        bail!("--epochs: must be at least 1");
+    }
+    if args.max_rounds == 0 {
+        bail!("--max-rounds: must be at least 1");
+    }
+    if args.batch_size == 0 {
+        bail!("--batch-size: must be at least 1");
+    }
+    if !(args.learning_rate.is_finite() && args.learning_rate > 0.0) {
+        bail!("--learning-rate: {} is not allowed, expected a number > 0", args.learning_rate);
+    }
+    if !(args.slack.is_finite() && args.slack >= 0.0 && args.slack_step.is_finite() && args.slack_step >= 0.0) {
+        bail!("--slack / --slack-step: expected finite numbers ≥ 0");
+    }
+    if !(args.dual_step.is_finite() && args.dual_step > 0.0) {
+        bail!("--dual-step: {} is not allowed, expected a number > 0", args.dual_step);
+    }
+    if let Some(w) = args.penalty {
+        if !(w.is_finite() && w >= 0.0) {
+            bail!("--penalty: {w} is not allowed, expected a weight ≥ 0");
+        }
+    }
+    let loss = match args.loss.as_str() {
+        "certified" => RobustLoss::LinearInterval {
+            final_linear_weight: 0.0,
+        },
+        "interval" => RobustLoss::Interval,
+        "adversarial" => RobustLoss::Adversarial { steps: 7 },
+        other => bail!("--loss: \"{other}\" is not allowed, expected certified, interval or adversarial"),
+    };
+    let constraint = match args.constraint.as_str() {
+        "error" => Constraint::RobustError {
+            floor: args.floor,
+            slack: args.slack,
+        },
+        "loss" => match args.level {
+            Some(level) if level.is_finite() && level >= 0.0 => Constraint::RobustLossLevel { level },
+            Some(level) => bail!("--level: {level} is not allowed, expected a number ≥ 0"),
+            None => bail!("--constraint loss needs --level (the allowed mean robust loss)"),
+        },
+        other => bail!("--constraint: \"{other}\" is not allowed, expected error or loss"),
+    };
+    let hidden = args.hidden.as_deref().map(parse_hidden).transpose()?;
+    if let Some(parent) = args.out.parent() {
+        if !parent.as_os_str().is_empty() && !parent.is_dir() {
+            bail!("--out: the folder {} does not exist", parent.display());
+        }
+    }
+
+    let parent = load_model(&args.model, args.allow_large)?;
+    let parent_sha256 = crate::digest::sha256_file(&args.model)
+        .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
+    let train_all = load_data(&args.train, &parent, &args.label_column, args.allow_large)?;
+    let (train, validation) = match &args.val {
+        Some(p) => (train_all, load_data(p, &parent, &args.label_column, args.allow_large)?),
+        None => {
+            let (t, v) = split_validation(&train_all, 0.2, args.seed);
+            match v {
+                Some(v) => (t, v),
+                None => bail!("--train: too few rows to hold out validation data; give --val"),
+            }
+        }
+    };
+    let acceptance = match &args.acceptance {
+        Some(p) => load_data(p, &parent, &args.label_column, args.allow_large)?,
+        None => validation.clone(),
+    };
+
+    let mut spec = RequirementSpec::default();
+    match parse_epsilon_argument(&args.eps)? {
+        EpsilonArgument::Values(v) if v.len() == 1 => spec.epsilons = Some((v, "--eps".into())),
+        EpsilonArgument::Values(_) => bail!("--eps: retraining takes one epsilon, not a sweep"),
+        EpsilonArgument::ToleranceFile(p) => spec.tolerances = Some((ToleranceSource::File(p), "--eps".into())),
+    }
+    spec.norm = Some((parse_norm(&args.norm)?, "--norm".into()));
+    spec.floor = Some((args.floor, "--floor".into()));
+    if let Some(f) = &args.forbid_into {
+        spec.forbid_into = Some((parse_class_list(f, "--forbid-into")?, "--forbid-into".into()));
+    }
+    let requirement = spec.resolve(&parent)?;
+
+    let initial = match &hidden {
+        Some(h) => {
+            let mut m = new_mlp(&parent.input, parent.class_count(), h, &train, args.seed)?;
+            m.name = parent.name.clone();
+            m.classes = parent.classes.clone();
+            m
+        }
+        None => parent.clone(),
+    };
+    let formulation = match args.penalty {
+        Some(weight) => Formulation::Penalty { weight },
+        None => Formulation::PrimalDual {
+            dual_step: args.dual_step,
+            initial_multiplier: 0.0,
+            per_class: args.per_class,
+        },
+    };
+    let train_settings = TrainSettings {
+        epochs: args.epochs,
+        batch_size: args.batch_size,
+        optimizer: OptimizerKind::adam(args.learning_rate),
+        weight_decay: 0.0,
+        seed: args.seed,
+        validation_fraction: 0.0,
+        patience: None,
+    };
+    let settings = RetrainSettings {
+        constrained: ConstrainedSettings {
+            train: train_settings,
+            budget: requirement.budget(requirement.epsilon(), parent.input.dim),
+            targets: requirement.targets.clone(),
+            loss,
+            constraint,
+            formulation,
+            ramp_epochs: args.ramp_epochs.unwrap_or((args.epochs * 2) / 5),
+            measure_certified: true,
+        },
+        round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
+        max_rounds: args.max_rounds,
+        slack_step: args.slack_step,
+        pipeline: PipelineOptions {
+            seed: args.seed,
+            ..PipelineOptions::default()
+        },
+    };
+    let mut print_epoch = |e: &ConstrainedEpoch| {
+        eprintln!(
+            "epoch {:>3}  eps×{:.2}  clean loss {:.4}  robust loss {:.4}  λ {:.3}  val clean {:.3}  val certified {:.3}",
+            e.epoch,
+            e.epsilon_scale,
+            e.clean_loss,
+            e.robust_loss,
+            e.multipliers.iter().copied().fold(0.0, f64::max),
+            e.validation_clean_accuracy.unwrap_or(f64::NAN),
+            e.validation_certified_accuracy.unwrap_or(f64::NAN)
+        );
+    };
+    let result = retrain(&initial, &train, Some(&validation), &acceptance, &requirement, &settings, &mut print_epoch)?;
+
+    // Outputs: model, then log and sheet in the folder beside it.
+    let last = result.rounds.last().expect("at least one round");
+    let mut model = result.model.clone();
+    model.provenance = Some(serde_json::json!({
+        "parent": parent.provenance.clone().unwrap_or(serde_json::Value::Null),
+        "retrain": {
+            "parent_sha256": parent_sha256,
+            "parent_path": args.model.display().to_string(),
+            "train_sha256": crate::digest::sha256_file(&args.train).ok(),
+            "from_scratch_hidden": hidden,
+            "settings": {
+                "epsilon": args.eps, "norm": args.norm, "floor": args.floor,
+                "forbid_into": args.forbid_into,
+                "constrained": settings.constrained, "round_epochs": settings.round_epochs,
+                "max_rounds": settings.max_rounds, "slack_step": settings.slack_step,
+            },
+            "rounds": result.rounds,
+            "final": {
+                "verdict": result.verdict,
+                "clean_accuracy": last.clean_accuracy,
+                "certified_accuracy": last.certified_accuracy,
+                "empirical_robust_accuracy": last.empirical_robust_accuracy,
+                "acceptance_samples": acceptance.len(),
+            },
+        }
+    }));
+    model.save(&args.out)?;
+    let folder = sheet_folder(&args.out);
+    std::fs::create_dir_all(&folder).with_context(|| format!("{}: creating the folder", folder.display()))?;
+    write(&folder.join("log.csv"), &log_csv(&result))?;
+    let (accuracy_svg, multiplier_svg) = curves(&result);
+    write(&folder.join("accuracy.svg"), &accuracy_svg)?;
+    write(&folder.join("loss_and_multiplier.svg"), &multiplier_svg)?;
+    write(&folder.join("retrain.md"), &sheet_markdown(&args, &result, acceptance.len()))?;
+    println!(
+        "retrain: {} after {} round(s): certified accuracy {:.4} (floor {}), clean accuracy {:.4}; model {}, sheet {}",
+        match result.verdict {
+            RetrainVerdict::Met => "floor met",
+            RetrainVerdict::NotMet => "floor NOT met",
+        },
+        result.rounds.len(),
+        last.certified_accuracy,
+        args.floor,
+        last.clean_accuracy,
+        args.out.display(),
+        folder.display()
+    );
+    Ok(match result.verdict {
+        RetrainVerdict::Met => Outcome::Met,
+        RetrainVerdict::NotMet => Outcome::NotMet,
+    })
+}
+
+fn write(path: &Path, text: &str) -> anyhow::Result<()> {
+    crate::atomic::write_file(path, text.as_bytes()).with_context(|| format!("{}: writing", path.display()))
+}
+
+fn option(v: Option<f64>) -> String {
+    v.map(|x| format!("{x:.6}")).unwrap_or_default()
+}
+
+/// The per-epoch log as CSV (epoch, epsilon scale, clean loss, robust loss, robust error, λ, validation
+/// clean and certified accuracy); per-class multipliers are joined with `;`.
+pub fn log_csv(result: &RetrainResult) -> String {
+    let mut text = String::from(
+        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,val_clean_accuracy,val_certified_accuracy\n",
+    );
+    for e in &result.epochs {
+        let lambda: Vec<String> = e.multipliers.iter().map(|m| format!("{m:.6}")).collect();
+        let _ = writeln!(
+            text,
+            "{},{:.4},{:.6},{:.6},{:.6},{},{},{}",
+            e.epoch,
+            e.epsilon_scale,
+            e.clean_loss,
+            e.robust_loss,
+            e.robust_error,
+            lambda.join(";"),
+            option(e.validation_clean_accuracy),
+            option(e.validation_certified_accuracy)
+        );
+    }
+    text
+}
+
+fn curves(result: &RetrainResult) -> (String, String) {
+    let epochs = &result.epochs;
+    let series = |name: &str, f: &dyn Fn(&ConstrainedEpoch) -> Option<f64>| Series {
+        name: name.into(),
+        points: epochs.iter().filter_map(|e| f(e).map(|v| (e.epoch as f64, v))).collect(),
+        markers_only: false,
+    };
+    let accuracy = plot_svg(
+        "Validation accuracy per epoch",
+        "epoch",
+        "accuracy",
+        &[
+            series("clean", &|e| e.validation_clean_accuracy),
+            series("certified", &|e| e.validation_certified_accuracy),
+        ],
+    );
+    let multiplier = plot_svg(
+        "Training losses and multiplier λ",
+        "epoch",
+        "value",
+        &[
+            series("clean loss", &|e| Some(e.clean_loss)),
+            series("robust loss", &|e| Some(e.robust_loss)),
+            series("λ (largest)", &|e| e.multipliers.iter().copied().reduce(f64::max)),
+        ],
+    );
+    (accuracy, multiplier)
+}
+
+fn sheet_markdown(args: &Args, result: &RetrainResult, acceptance: usize) -> String {
+    let mut md = String::new();
+    let verdict = match result.verdict {
+        RetrainVerdict::Met => "**met**: the certify pipeline proved the floor on the acceptance data",
+        RetrainVerdict::NotMet => "**not met**: the floor was not proven on the acceptance data",
+    };
+    let _ = writeln!(md, "# Retraining sheet\n");
+    let _ = writeln!(md, "- parent model: `{}`", args.model.display());
+    let _ = writeln!(md, "- retrained model: `{}`", args.out.display());
+    let _ = writeln!(
+        md,
+        "- requirement: eps {} ({}), floor {}{}",
+        args.eps,
+        args.norm,
+        args.floor,
+        args.forbid_into.as_ref().map(|f| format!(", only changes into {f} count")).unwrap_or_default()
+    );
+    let formulation = match args.penalty {
+        Some(w) => format!("fixed penalty weight {w}"),
+        None => format!("primal-dual (dual step {}{})", args.dual_step, if args.per_class { ", per class" } else { "" }),
+    };
+    let _ = writeln!(md, "- loss: {}, {formulation}", args.loss);
+    let _ = writeln!(md, "- acceptance samples: {acceptance}");
+    let _ = writeln!(md, "- verdict: {verdict}\n");
+    let _ = writeln!(md, "| round | slack | epochs | clean accuracy | certified accuracy | empirical robust accuracy | pipeline verdict |");
+    let _ = writeln!(md, "| --- | --- | --- | --- | --- | --- | --- |");
+    for r in &result.rounds {
+        let _ = writeln!(
+            md,
+            "| {} | {:.3} | {} | {:.4} | {:.4} | {:.4} | {:?} |",
+            r.round, r.slack, r.epochs, r.clean_accuracy, r.certified_accuracy, r.empirical_robust_accuracy, r.verdict
+        );
+    }
+    let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
+    let _ = writeln!(md, "![accuracy](accuracy.svg)\n\n![losses and multiplier](loss_and_multiplier.svg)\n");
+    let _ = writeln!(md, "Per-epoch figures: `log.csv`.");
+    md
 }

@@ -3,12 +3,15 @@
 //!
 //! [`scenario`] holds the tables (features, units, ranges, tolerances, classes), [`generator`] makes
 //! the data deterministically from a seed, [`files`] writes the data, tolerance and requirement files,
-//! [`models`] trains the two demo models.
+//! [`models`] trains the two demo models, [`bundle`] embeds the committed files in the binary and
+//! [`pipeline`] runs the whole job (`ballast demo`).
 //! Everything here is invented for the demo only; nothing here decides robustness itself.
 
+pub mod bundle;
 pub mod files;
 pub mod generator;
 pub mod models;
+pub mod pipeline;
 pub mod scenario;
 
 /// Why a demo step failed.
@@ -25,7 +28,19 @@ pub enum DemoError {
     /// Training a demo model failed.
     #[error("training the demo model: {0}")]
     Train(#[from] crate::train::TrainError),
-    /// A demo model could not be saved.
+    /// A demo model could not be read or saved.
     #[error(transparent)]
     Model(#[from] crate::model::ModelError),
+    /// A demo data file could not be read.
+    #[error(transparent)]
+    Data(#[from] crate::data::DataError),
+    /// The demo requirement could not be read.
+    #[error(transparent)]
+    Requirement(#[from] crate::threat::requirement::RequirementError),
+    /// Certification could not run.
+    #[error("certify: {0}")]
+    Certify(#[from] crate::certify::CertifyError),
+    /// A sheet could not be written.
+    #[error(transparent)]
+    Sheet(#[from] crate::sheet::SheetError),
 }

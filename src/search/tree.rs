@@ -390,3 +390,182 @@ impl<'a> TargetTree<'a> {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::Dense;
+    use crate::search::leaf::affine_piece;
+    use crate::search::solver::{minimise, LinearProgram, LpOutcome, Row};
+    use crate::threat::{Budget, Norm};
+    use nalgebra::{DMatrix, DVector};
+    use rand::{Rng, SeedableRng};
+    use rand_chacha::ChaCha8Rng;
+
+    fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
+        Network::new(
+            sizes
+                .windows(2)
+                .map(|w| Dense {
+                    weights: DMatrix::from_fn(w[1], w[0], |_, _| rng.gen_range(-1.0..1.0)),
+                    bias: DVector::from_fn(w[1], |_, _| rng.gen_range(-0.3..0.3)),
+                })
+                .collect(),
+        )
+    }
+
+    /// Brute force: for every full activation pattern, the exact LP minimum of the margin over the
+    /// region points with that pattern (`None` when no point has it). Every unit gets its half-space.
+    fn pattern_minima(
+        network: &Network,
+        region: &Region,
+        label: usize,
+        target: usize,
+    ) -> Vec<(Vec<Vec<bool>>, Option<f64>)> {
+        let sizes = network.hidden_sizes();
+        let total: usize = sizes.iter().sum();
+        assert!(total <= 10);
+        (0..1usize << total)
+            .map(|bits| {
+                let mut pattern = Vec::new();
+                let mut position = 0;
+                for size in &sizes {
+                    pattern.push((0..*size).map(|i| bits >> (position + i) & 1 == 1).collect());
+                    position += size;
+                }
+                let piece = affine_piece(network, &pattern, &|_, _| true, label, target);
+                let mut program = LinearProgram::default();
+                for i in 0..region.dim() {
+                    program.add_variable(piece.gradient[i], region.lower[i], region.upper[i]);
+                }
+                for (row, t) in piece.rows.iter().zip(&piece.right_hand_sides) {
+                    program.rows.push(Row {
+                        coefficients: row.iter().copied().enumerate().collect(),
+                        lower: *t,
+                        upper: f64::INFINITY,
+                    });
+                }
+                let value = match minimise(&program, None).unwrap() {
+                    LpOutcome::Optimal { value, .. } => Some(value + piece.constant),
+                    _ => None,
+                };
+                (pattern, value)
+            })
+            .collect()
+    }
+
+    fn consistent(splits: &SplitState, pattern: &[Vec<bool>]) -> bool {
+        splits.layers.iter().zip(pattern).all(|(s, p)| {
+            s.iter().zip(p).all(|(s, p)| match s {
+                ReluSplit::Free => true,
+                ReluSplit::Active => *p,
+                ReluSplit::Inactive => !*p,
+            })
+        })
+    }
+
+    fn exact_over(minima: &[(Vec<Vec<bool>>, Option<f64>)], splits: &SplitState) -> f64 {
+        minima
+            .iter()
+            .filter(|(p, _)| consistent(splits, p))
+            .filter_map(|(_, v)| *v)
+            .fold(f64::INFINITY, f64::min)
+    }
+
+    /// Every node bound is ≤ the brute-force minimum over its sub-domain, and the optimality mode ends at
+    /// the brute-force minimum over all patterns.
+    #[test]
+    fn node_bounds_and_optimum_against_pattern_enumeration() {
+        let mut rng = ChaCha8Rng::seed_from_u64(11);
+        for case in 0..6 {
+            let sizes: &[usize] = if case % 2 == 0 { &[3, 6, 3] } else { &[2, 4, 4, 3] };
+            let network = random_network(&mut rng, sizes);
+            let dim = sizes[0];
+            let center: Vec<f64> = (0..dim).map(|_| rng.gen_range(0.3..0.7)).collect();
+            let region = Budget::uniform(Norm::Linf, 0.4, dim).region(
+                &center,
+                &vec![0.0; dim],
+                &vec![1.0; dim],
+            );
+            let label = crate::model::predicted_class(network.forward(&center).as_slice());
+            let target = (label + 1) % 3;
+            let minima = pattern_minima(&network, &region, label, target);
+            let exact = exact_over(&minima, &SplitState::free(&network));
+            let settings = SearchSettings {
+                optimality: true,
+                ..SearchSettings::default()
+            };
+            let forbidden = [target];
+            let problem = Problem {
+                network: &network,
+                region: &region,
+                label,
+                forbidden: &forbidden,
+                settings: &settings,
+                seed: 0,
+            };
+            let root = margin_lower_bounds(
+                &network,
+                &region,
+                label,
+                &forbidden,
+                settings.bound_method,
+                None,
+            )
+            .unwrap();
+            assert!(root.lower[0] <= exact + 1e-9);
+            let mut tree = TargetTree::new(
+                problem,
+                target,
+                Node {
+                    splits: SplitState::free(&network),
+                    bounds: root.pre_activation.clone(),
+                    lower: root.lower[0],
+                    minimiser: root.minimisers[0].clone(),
+                },
+            );
+            let mut steps = 0;
+            while tree.has_open_nodes() {
+                for node in tree.queue.iter() {
+                    let truth = exact_over(&minima, &node.splits);
+                    assert!(node.lower <= truth + 1e-7, "case {case}: node bound above its minimum");
+                }
+                if tree.step().unwrap() == Step::Finished {
+                    break;
+                }
+                steps += 1;
+                assert!(steps < 10_000);
+            }
+            assert!((tree.incumbent - exact).abs() < 1e-6, "case {case}: {} vs {exact}", tree.incumbent);
+            assert!(tree.lower() <= exact + 1e-9);
+            // Random partial split states: the bound module's bound under splits is below the minimum.
+            for _ in 0..20 {
+                let mut splits = SplitState::free(&network);
+                for layer in splits.layers.iter_mut() {
+                    for s in layer.iter_mut() {
+                        *s = match rng.gen_range(0..3) {
+                            0 => ReluSplit::Active,
+                            1 => ReluSplit::Inactive,
+                            _ => ReluSplit::Free,
+                        };
+                    }
+                }
+                let truth = exact_over(&minima, &splits);
+                let bound = margin_lower_bounds(
+                    &network,
+                    &region,
+                    label,
+                    &forbidden,
+                    settings.bound_method,
+                    Some(&splits),
+                )
+                .unwrap();
+                if let Domain::Feasible = bound.domain {
+                    assert!(bound.lower[0] <= truth + 1e-7);
+                } else {
+                    assert!(truth.is_infinite(), "an emptied domain must hold no pattern");
+                }
+            }
+        }
+    }
+}

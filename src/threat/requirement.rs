@@ -314,7 +314,7 @@ pub fn parse_epsilon_list(text: &str, place: &str) -> Result<Vec<f64>, Requireme
         if step <= 0.0 || stop < start {
             return Err(invalid(place, format!("range \"{text}\" needs step > 0 and stop ≥ start")));
         }
-        let count = ((stop - start) / step + 1e-9).floor() as usize + 1;
+        let count = (((stop - start) / step + 1e-9).floor() as usize).saturating_add(1);
         if count > 1000 {
             return Err(invalid(place, format!("range \"{text}\" has {count} values, at most 1000 are allowed")));
         }

@@ -60,7 +60,7 @@ pub fn plot_svg(title: &str, x_label: &str, y_label: &str, series: &[Series]) ->
     let _ = writeln!(svg, r#"<text x="{}" y="20" font-size="14">{}</text>"#, left, escape(title));
     let _ = writeln!(
         svg,
-        r#"<rect x="{left}" y="{top}" width="{plot_w}" height="{plot_h}" fill="none" stroke="#999"/>"#
+        r#"<rect x="{left}" y="{top}" width="{plot_w}" height="{plot_h}" fill="none" stroke="gray"/>"#
     );
     for i in 0..=4 {
         let fx = x0 + (x1 - x0) * i as f64 / 4.0;

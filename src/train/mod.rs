@@ -23,13 +23,21 @@
 //! `new_mlp(input, classes, &[], data, seed)` gives a softmax regression (one dense layer after the
 //! normalize layer). Set `classes`, `name` and `provenance` on the returned [`crate::model::Model`] as
 //! needed; the trainer keeps them.
+//!
+//! # Constrained retraining
+//!
+//! [`retrain::retrain`] runs rounds of the primal-dual trainer ([`constrained`]) with a robust loss
+//! ([`robust`]: interval, linear + interval, or PGD) and checks the floor with the certify pipeline
+//! after each round; `ballast retrain` is its command-line front end.
 
 pub mod backprop;
 pub mod bound_gradient;
 pub mod constrained;
+pub mod curves;
 pub mod init;
 pub mod optimizer;
 pub mod plain;
+pub mod retrain;
 pub mod robust;
 
 pub use init::{fit_normalization, he_network, new_mlp};

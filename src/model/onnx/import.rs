@@ -658,6 +658,9 @@ impl<'a> Converter<'a> {
                 if is_final {
                     return Err(after_final(op));
                 }
+                if op == "Div" && !data_first {
+                    return Err(self.unsupported(index, "constant / data is not affine"));
+                }
                 let c = constant.ok_or_else(|| self.unsupported(index, "the constant operand is missing"))?;
                 self.require_finite(index, "constant operand", &c.values)?;
                 let shape = path.shape.clone();

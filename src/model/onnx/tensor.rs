@@ -149,13 +149,15 @@ pub(crate) fn decode_tensor(tensor: &TensorProto) -> Result<Constant, OnnxError>
                 strings: Some(strings),
             });
         }
-        Ok(other) => return Err(tensor_error(
-            &name,
-            format!(
+        Ok(other) => {
+            return Err(tensor_error(
+                &name,
+                format!(
                 "element type {} is not supported (expected FLOAT, DOUBLE, INT32, INT64 or STRING)",
                 other.as_str_name()
             ),
-        )),
+            ))
+        }
         Err(_) => {
             return Err(tensor_error(
                 &name,

@@ -1,0 +1,135 @@
+//! Checks of the release sheet: hostile names are escaped (HTML and Markdown), the verdict comes first,
+//! sweeps get a plot, the sheet is self-contained, and `ballast sheet` re-renders a saved report
+//! byte for byte.
+
+use std::path::Path;
+use std::process::Command;
+
+use ballast::certify::report::Report;
+use ballast::certify::{certify, CertifyOptions, PipelineOptions, Sources};
+use ballast::data::{parse_csv, DataOptions};
+use ballast::model::Model;
+use ballast::sheet::{content, html, markdown};
+use ballast::threat::requirement::Requirement;
+use ballast::threat::{Norm, Targets};
+
+const HOSTILE_CLASS: &str = "<script>alert(\"x\")</script> & 'co'";
+
+fn hostile_model() -> Model {
+    let json = r#"{"format":"ballast.model/1","name":"pump <b>\"v2\"</b> & sons",
+      "input":{"dim":2,"names":["flow <img src=x onerror=1>","temp | *hot* [x](http://e)"],"lower":0,"upper":1},
+      "classes":["normal & fine","<script>alert(\"x\")</script> & 'co'"],
+      "layers":[{"kind":"dense","weights":[[4,-4],[-4,4]],"bias":[0,0]}]}"#;
+    Model::from_json_str(json).expect("valid model")
+}
+
+fn hostile_report(epsilons: Vec<f64>) -> Report {
+    let model = hostile_model();
+    let csv = "label,\"flow <img src=x onerror=1>\",\"temp | *hot* [x](http://e)\"\n\
+               0,0.9,0.1\n0,0.6,0.5\n1,0.2,0.8\n1,0.45,0.5\n0,0.7,0.2\n";
+    let data = parse_csv(csv, &model, &DataOptions::default()).expect("valid data");
+    let requirement = Requirement {
+        epsilons,
+        floor: Some(0.5),
+        targets: Targets::Into {
+            classes: vec![1],
+            from: None,
+        },
+        ..Requirement::uniform(Norm::Linf, 0.1)
+    };
+    let options = CertifyOptions {
+        pipeline: PipelineOptions::default(),
+        command_line: vec!["ballast".into(), "certify".into(), "--model".into(), "it's <here>.json".into()],
+        ..CertifyOptions::default()
+    };
+    certify(&model, &data, &requirement, &Sources::in_memory(&model, &data), &options).expect("certify runs")
+}
+
+#[test]
+fn hostile_names_are_escaped_in_html_and_markdown() {
+    let report = hostile_report(vec![0.05, 0.1, 0.2]);
+    assert!(report.model.classes.iter().any(|c| c == HOSTILE_CLASS));
+    let c = content::build(&report);
+    let page = html::render(&c);
+    assert!(!page.contains("<script"), "raw script tag in the HTML");
+    assert!(!page.contains("<img"), "raw img tag in the HTML");
+    assert!(!page.contains("<b>"));
+    assert!(page.contains("&lt;script&gt;alert(&quot;x&quot;)&lt;/script&gt; &amp; &#39;co&#39;"));
+    assert!(page.contains("pump &lt;b&gt;&quot;v2&quot;&lt;/b&gt; &amp; sons"));
+    assert!(page.contains("it&#39;s &lt;here&gt;.json"));
+    // Self-contained: no scripts, links, external sources or event handlers.
+    for forbidden in ["<script", "<link", " src=", " href=", "onerror=", "@import", "url("] {
+        assert!(!page.contains(forbidden), "found {forbidden}");
+    }
+    let md = markdown::render(&c);
+    assert!(!md.contains("<script"), "raw script tag in the Markdown");
+    assert!(md.contains("&lt;script&gt;"));
+    assert!(md.contains("pump &lt;b&gt;&quot;v2&quot;&lt;/b&gt; &amp; sons"));
+    // Table cells cannot be split by a pipe from a name.
+    for line in md.lines().filter(|l| l.starts_with("| ")) {
+        let header_cells = line.matches(" | ").count();
+        assert!(header_cells <= 6, "unexpected cells in {line}");
+    }
+}
+
+#[test]
+fn verdict_comes_first_and_sweeps_are_plotted() {
+    let report = hostile_report(vec![0.05, 0.1, 0.2]);
+    let c = content::build(&report);
+    let page = html::render(&c);
+    let verdict = page.find("class=\"verdict").expect("a verdict block");
+    let requirement = page.find("<h2>Requirement</h2>").unwrap();
+    assert!(verdict < requirement);
+    assert!(page.contains("<svg"));
+    assert_eq!(page.matches("<polyline").count(), 2, "certified and empirical lines");
+    assert!(page.contains("no safety case"));
+    assert!(page.contains("only this model file"));
+    assert!(page.contains(&report.model.sha256));
+    assert!(page.contains(&report.data.sha256));
+    assert!(page.contains("LOWER bound") && page.contains("UPPER bound"));
+    let md = markdown::render(&c);
+    let first_heading = md.lines().find(|l| l.starts_with("## ")).unwrap();
+    assert!(first_heading.starts_with("## Verdict"));
+    // One epsilon: no plot.
+    let single = hostile_report(vec![0.1]);
+    let page = html::render(&content::build(&single));
+    assert!(!page.contains("<polyline"));
+}
+
+#[test]
+fn sheet_command_rerenders_the_same_files() {
+    let dir = tempfile::tempdir().unwrap();
+    let report = dir.path().join("r.json");
+    let first = dir.path().join("first");
+    let again = dir.path().join("again");
+    let bin = env!("CARGO_BIN_EXE_ballast");
+    let status = Command::new(bin)
+        .args([
+            "certify", "--model", "tests/data/digits_mlp.model.json", "--data", "tests/data/digits_test.csv", "--eps",
+            "0.01,0.03", "--report", report.to_str().unwrap(), "--sheet", first.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(status.status.code(), Some(0), "{}", String::from_utf8_lossy(&status.stderr));
+    let out = Command::new(bin)
+        .args(["sheet", "--report", report.to_str().unwrap(), "--out", again.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0));
+    for name in ["sheet.md", "sheet.html"] {
+        let a = std::fs::read(first.join(name)).unwrap();
+        let b = std::fs::read(again.join(name)).unwrap();
+        assert_eq!(a, b, "{name} differs");
+    }
+    // A file that is not a report is refused with its name.
+    let bogus = dir.path().join("bogus.json");
+    std::fs::write(&bogus, "{\"format\": \"something/1\"}").unwrap();
+    let out = Command::new(bin)
+        .args(["sheet", "--report", bogus.to_str().unwrap(), "--out", again.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("bogus.json") && err.contains("ballast.report/1"), "{err}");
+    assert!(Path::new(&again.join("sheet.html")).exists());
+}
