@@ -14,8 +14,12 @@ use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 
 fn problems() -> (Model, Vec<AttackProblem>) {
     let model = Model::load(Path::new("tests/data/digits_mlp.model.json")).expect("fixture model");
-    let data = load_csv(Path::new("tests/data/digits_test.csv"), &model, &DataOptions::default())
-        .expect("fixture data");
+    let data = load_csv(
+        Path::new("tests/data/digits_test.csv"),
+        &model,
+        &DataOptions::default(),
+    )
+    .expect("fixture data");
     let network = model.classifier();
     let budget = Budget::uniform(Norm::Linf, 0.05, model.input.dim);
     let problems = (0..100)

@@ -9,7 +9,8 @@
 //!     measured here on one core and on both cores);
 //! (b) optimised linear bounds versus the LP on the digits fixture (first 100 test rows, L-inf
 //!     ε ∈ {0.01, 0.02, 0.05}): certified counts and time per sample, next to scipy/HiGHS's counts and
-//!     time from tests/reference/out/lp_digits.json.
+//!     time from tests/reference/out/lp_digits.json;
+//! (c) tightness of the four methods on both digits models at larger ε.
 
 use std::path::Path;
 use std::time::Instant;
@@ -260,6 +261,85 @@ fn part_b(quick: bool) {
     println!();
 }
 
+/// (c) Tightness: certified counts and the mean smallest margin bound per method on both digits models
+/// (first 100 test rows, L-inf), optimised slopes run for all 20 steps.
+fn part_c() {
+    let data_model =
+        Model::load(Path::new("tests/data/digits_mlp.model.json")).expect("digits model");
+    let data = load_csv(
+        Path::new("tests/data/digits_test.csv"),
+        &data_model,
+        &DataOptions::default(),
+    )
+    .expect("digits data");
+    println!("## (c) tightness on the digits models, first 100 test rows, L-inf");
+    println!();
+    println!("| model | eps | certified (interval / linear / optimised / LP) | mean smallest bound (same order) |");
+    println!("| --- | --- | --- | --- |");
+    for file in [
+        "tests/data/digits_mlp.model.json",
+        "tests/data/digits_mlp_deep.model.json",
+    ] {
+        let model = Model::load(Path::new(file)).expect("digits model");
+        let network = model.classifier();
+        for epsilon in [0.05, 0.08, 0.1] {
+            let mut certified = [0usize; 4];
+            let mut worst = [0.0f64; 4];
+            for r in 0..100 {
+                let region = Budget::uniform(Norm::Linf, epsilon, 64).region(
+                    data.sample(r),
+                    &model.input.lower,
+                    &model.input.upper,
+                );
+                let y = data.labels[r];
+                let targets: Vec<usize> = (0..10).filter(|j| *j != y).collect();
+                let options = optimised::SlopeOptions {
+                    stop_when_certified: false,
+                    ..Default::default()
+                };
+                let results = [
+                    bound::margin_lower_bounds(
+                        &network,
+                        &region,
+                        y,
+                        &targets,
+                        Method::Interval,
+                        None,
+                    ),
+                    bound::margin_lower_bounds(
+                        &network,
+                        &region,
+                        y,
+                        &targets,
+                        Method::Linear,
+                        None,
+                    ),
+                    optimised::margin_lower_bounds(&network, &region, y, &targets, None, &options),
+                    bound::margin_lower_bounds(&network, &region, y, &targets, Method::Lp, None),
+                ];
+                for (m, result) in results.into_iter().enumerate() {
+                    let result = result.expect("bounds");
+                    certified[m] += usize::from(result.certified());
+                    worst[m] += result.worst() / 100.0;
+                }
+            }
+            println!(
+                "| {} | {epsilon} | {} / {} / {} / {} | {:.4} / {:.4} / {:.4} / {:.4} |",
+                model.name.clone().unwrap_or_default(),
+                certified[0],
+                certified[1],
+                certified[2],
+                certified[3],
+                worst[0],
+                worst[1],
+                worst[2],
+                worst[3]
+            );
+        }
+    }
+    println!();
+}
+
 fn main() {
     let quick = std::env::args().any(|a| a == "quick");
     println!(
@@ -268,5 +348,6 @@ fn main() {
     );
     println!();
     part_b(quick);
+    part_c();
     part_a(quick);
 }

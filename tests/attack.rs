@@ -7,8 +7,8 @@ use std::time::{Duration, Instant};
 
 use approx::assert_abs_diff_eq;
 use ballast::attack::{
-    attack_batch, attack_sample, margin_and_gradient, sample_seed, validate, AttackError, AttackOutcome,
-    AttackProblem, AttackSettings, StopReason,
+    attack_batch, attack_sample, margin_and_gradient, sample_seed, validate, AttackError,
+    AttackOutcome, AttackProblem, AttackSettings, StopReason,
 };
 use ballast::data::{load_csv, DataOptions};
 use ballast::model::{predicted_class, Dense, Model, Network};
@@ -65,24 +65,37 @@ fn linear_binary_classifier_flips_exactly_at_the_dual_norm_distance() {
                     ..AttackSettings::default()
                 };
                 let above = Budget::uniform(norm, 1.001 * minimum, dim).region(&x, &lower, &upper);
-                let outcome = attack_sample(&network, &above, label, &[1 - label], &settings, case, &[])
-                    .expect("valid problem");
-                let found = outcome
-                    .counterexample()
-                    .unwrap_or_else(|| panic!("case {case} {norm}: no counterexample at 1.001× the minimum"));
+                let outcome =
+                    attack_sample(&network, &above, label, &[1 - label], &settings, case, &[])
+                        .expect("valid problem");
+                let found = outcome.counterexample().unwrap_or_else(|| {
+                    panic!("case {case} {norm}: no counterexample at 1.001× the minimum")
+                });
                 assert_ne!(found.predicted, label);
                 assert!(found.distance <= 1.001 * minimum * (1.0 + 1e-9));
-                assert!(found.distance >= minimum * (1.0 - 1e-9), "closer than the proven minimum");
+                assert!(
+                    found.distance >= minimum * (1.0 - 1e-9),
+                    "closer than the proven minimum"
+                );
                 let below = Budget::uniform(norm, 0.999 * minimum, dim).region(&x, &lower, &upper);
-                let outcome = attack_sample(&network, &below, label, &[1 - label], &settings, case, &[])
-                    .expect("valid problem");
+                let outcome =
+                    attack_sample(&network, &below, label, &[1 - label], &settings, case, &[])
+                        .expect("valid problem");
                 match outcome {
-                    AttackOutcome::NotFound { best_margin, stop, .. } => {
+                    AttackOutcome::NotFound {
+                        best_margin, stop, ..
+                    } => {
                         assert_eq!(stop, StopReason::BudgetSpent);
                         // The best margin the search reached is the exact worst case |f| (1 − 0.999).
-                        assert_abs_diff_eq!(best_margin, 0.001 * value.abs(), epsilon = 1e-9 * (1.0 + value.abs()));
+                        assert_abs_diff_eq!(
+                            best_margin,
+                            0.001 * value.abs(),
+                            epsilon = 1e-9 * (1.0 + value.abs())
+                        );
                     }
-                    AttackOutcome::Found(c) => panic!("case {case} {norm}: impossible counterexample {c:?}"),
+                    AttackOutcome::Found(c) => {
+                        panic!("case {case} {norm}: impossible counterexample {c:?}")
+                    }
                 }
                 checked += 1;
             }
@@ -109,11 +122,17 @@ struct Reference {
 
 fn digits() -> (Model, ballast::data::Dataset) {
     let model = Model::load(Path::new(DIGITS_MODEL)).expect("fixture model");
-    let data = load_csv(Path::new(DIGITS_TEST), &model, &DataOptions::default()).expect("fixture data");
+    let data =
+        load_csv(Path::new(DIGITS_TEST), &model, &DataOptions::default()).expect("fixture data");
     (model, data)
 }
 
-fn digits_problems(model: &Model, data: &ballast::data::Dataset, count: usize, budget: &Budget) -> (Vec<usize>, Vec<AttackProblem>) {
+fn digits_problems(
+    model: &Model,
+    data: &ballast::data::Dataset,
+    count: usize,
+    budget: &Budget,
+) -> (Vec<usize>, Vec<AttackProblem>) {
     let network = model.classifier();
     let mut misclassified = Vec::new();
     let mut problems = Vec::new();
@@ -140,7 +159,8 @@ fn digits_problems(model: &Model, data: &ballast::data::Dataset, count: usize, b
 /// With the same gradient budget (no FGSM, no targeted runs) ballast must find at least as many.
 #[test]
 fn digits_pgd_finds_at_least_as_many_counterexamples_as_the_numpy_reference() {
-    let text = std::fs::read_to_string("tests/reference/out/pgd_digits.json").expect("committed reference");
+    let text = std::fs::read_to_string("tests/reference/out/pgd_digits.json")
+        .expect("committed reference");
     let reference: Reference = serde_json::from_str(&text).expect("reference JSON");
     let (model, data) = digits();
     let network = model.classifier();
@@ -216,13 +236,27 @@ fn every_counterexample_is_inside_the_region_and_misclassified() {
         }
         sizes.push(classes);
         let network = random_network(&mut rng, &sizes);
-        let norm = if rng.gen_bool(0.5) { Norm::Linf } else { Norm::L2 };
+        let norm = if rng.gen_bool(0.5) {
+            Norm::Linf
+        } else {
+            Norm::L2
+        };
         let radii: Vec<f64> = (0..dim)
-            .map(|_| if rng.gen_bool(0.25) { 0.0 } else { rng.gen_range(0.0..0.6) })
+            .map(|_| {
+                if rng.gen_bool(0.25) {
+                    0.0
+                } else {
+                    rng.gen_range(0.0..0.6)
+                }
+            })
             .collect();
         let budget = Budget { norm, radii };
         let bounded = rng.gen_bool(0.5);
-        let (lower, upper) = if bounded { (vec![0.0; dim], vec![1.0; dim]) } else { unbounded(dim) };
+        let (lower, upper) = if bounded {
+            (vec![0.0; dim], vec![1.0; dim])
+        } else {
+            unbounded(dim)
+        };
         let center: Vec<f64> = (0..dim).map(|_| rng.gen_range(0.0..1.0)).collect();
         let region = budget.region(&center, &lower, &upper);
         let label = predicted_class(network.forward(&center).as_slice());
@@ -241,7 +275,8 @@ fn every_counterexample_is_inside_the_region_and_misclassified() {
             seed: case,
             ..AttackSettings::default()
         };
-        let outcome = attack_sample(&network, &region, label, &forbidden, &settings, case, &[]).expect("valid");
+        let outcome = attack_sample(&network, &region, label, &forbidden, &settings, case, &[])
+            .expect("valid");
         attacked += 1;
         if let AttackOutcome::Found(c) = &outcome {
             found += 1;
@@ -256,24 +291,42 @@ fn every_counterexample_is_inside_the_region_and_misclassified() {
             let predicted = predicted_class(logits.as_slice());
             assert_eq!(predicted, c.predicted);
             assert_ne!(predicted, label);
-            assert!(forbidden.contains(&predicted), "case {case}: class {predicted} is not forbidden");
-            assert_abs_diff_eq!(c.distance, ballast::threat::distance(norm, &center, &c.input), epsilon = 1e-12);
+            assert!(
+                forbidden.contains(&predicted),
+                "case {case}: class {predicted} is not forbidden"
+            );
+            assert_abs_diff_eq!(
+                c.distance,
+                ballast::threat::distance(norm, &center, &c.input),
+                epsilon = 1e-12
+            );
             for (a, b) in c.logits.iter().zip(logits.iter()) {
                 assert_abs_diff_eq!(*a, *b, epsilon = 1e-12);
             }
-        } else if let AttackOutcome::NotFound { best_input, best_margin, .. } = &outcome {
+        } else if let AttackOutcome::NotFound {
+            best_input,
+            best_margin,
+            ..
+        } = &outcome
+        {
             assert!(region.contains(best_input));
             // A negative forbidden margin without a counterexample means a third, allowed class wins there.
             if *best_margin < 0.0 {
                 let predicted = predicted_class(network.forward(best_input).as_slice());
-                assert!(!forbidden.contains(&predicted), "case {case}: a counterexample was missed");
+                assert!(
+                    !forbidden.contains(&predicted),
+                    "case {case}: a counterexample was missed"
+                );
                 assert!(validate(&network, &region, label, &forbidden, best_input).is_none());
             }
         }
     }
     assert_eq!(attacked, 300);
     // The property is not vacuous: a good share of the random problems have counterexamples.
-    assert!(found >= 30, "only {found} counterexamples in 300 random problems");
+    assert!(
+        found >= 30,
+        "only {found} counterexamples in 300 random problems"
+    );
 }
 
 #[test]
@@ -335,12 +388,16 @@ fn restricted_targets_only_report_forbidden_classes() {
     // Class 2 can reach at most 0.3 < 0.7 = the lowest label logit: none exists.
     let only_two = attack_sample(&network, &region, 0, &[2], &settings, 1, &[]).expect("valid");
     match only_two {
-        AttackOutcome::NotFound { best_margin, .. } => assert_abs_diff_eq!(best_margin, 0.4, epsilon = 1e-9),
+        AttackOutcome::NotFound { best_margin, .. } => {
+            assert_abs_diff_eq!(best_margin, 0.4, epsilon = 1e-9)
+        }
         AttackOutcome::Found(c) => panic!("class {} is not forbidden", c.predicted),
     }
     // Nothing forbidden: nothing to find.
     let none = attack_sample(&network, &region, 0, &[], &settings, 1, &[]).expect("valid");
-    assert!(matches!(none, AttackOutcome::NotFound { best_margin, .. } if best_margin.is_infinite()));
+    assert!(
+        matches!(none, AttackOutcome::NotFound { best_margin, .. } if best_margin.is_infinite())
+    );
 }
 
 #[test]
@@ -358,11 +415,15 @@ fn extra_starts_are_used_and_deadlines_stop_the_search() {
     };
     let without = attack_sample(&network, &region, 0, &[1], &settings, 0, &[]).expect("valid");
     assert!(without.counterexample().is_none());
-    let with = attack_sample(&network, &region, 0, &[1], &settings, 0, &[vec![0.4, 1.2]]).expect("valid");
-    let c = with.counterexample().expect("the extra start is a counterexample");
+    let with =
+        attack_sample(&network, &region, 0, &[1], &settings, 0, &[vec![0.4, 1.2]]).expect("valid");
+    let c = with
+        .counterexample()
+        .expect("the extra start is a counterexample");
     assert_eq!(c.predicted, 1);
     // An extra start outside the region is projected in first.
-    let far = attack_sample(&network, &region, 0, &[1], &settings, 0, &[vec![-9.0, 9.0]]).expect("valid");
+    let far =
+        attack_sample(&network, &region, 0, &[1], &settings, 0, &[vec![-9.0, 9.0]]).expect("valid");
     assert!(region.contains(&far.counterexample().expect("projected start").input));
 
     let late = AttackSettings {
@@ -370,28 +431,45 @@ fn extra_starts_are_used_and_deadlines_stop_the_search() {
         ..AttackSettings::default()
     };
     let outcome = attack_sample(&network, &region, 0, &[1], &late, 0, &[]).expect("valid");
-    assert!(matches!(outcome, AttackOutcome::NotFound { stop: StopReason::DeadlineReached, .. }));
+    assert!(matches!(
+        outcome,
+        AttackOutcome::NotFound {
+            stop: StopReason::DeadlineReached,
+            ..
+        }
+    ));
 }
 
 #[test]
 fn misuse_is_a_typed_error() {
     let network = Network::new(vec![Dense::identity(2)]);
-    let region: Region = Budget::uniform(Norm::Linf, 0.1, 3).region(&[0.0; 3], &[-1.0; 3], &[1.0; 3]);
+    let region: Region =
+        Budget::uniform(Norm::Linf, 0.1, 3).region(&[0.0; 3], &[-1.0; 3], &[1.0; 3]);
     let settings = AttackSettings::default();
     assert!(matches!(
         attack_sample(&network, &region, 0, &[1], &settings, 0, &[]),
-        Err(AttackError::Dimension { found: 3, expected: 2, .. })
+        Err(AttackError::Dimension {
+            found: 3,
+            expected: 2,
+            ..
+        })
     ));
     let region = Budget::uniform(Norm::Linf, 0.1, 2).region(&[0.0; 2], &[-1.0; 2], &[1.0; 2]);
     assert!(matches!(
         attack_sample(&network, &region, 0, &[2], &settings, 0, &[]),
-        Err(AttackError::Class { class: 2, classes: 2 })
+        Err(AttackError::Class {
+            class: 2,
+            classes: 2
+        })
     ));
     let bad = AttackSettings {
         step_fraction: 0.0,
         ..AttackSettings::default()
     };
-    assert!(matches!(attack_sample(&network, &region, 0, &[1], &bad, 0, &[]), Err(AttackError::Settings(_))));
+    assert!(matches!(
+        attack_sample(&network, &region, 0, &[1], &bad, 0, &[]),
+        Err(AttackError::Settings(_))
+    ));
     // validate refuses a point outside the region even when it changes the class.
     assert!(validate(&network, &region, 0, &[1], &[0.0, 0.5]).is_none());
 }
@@ -405,13 +483,28 @@ fn cli_writes_a_parseable_csv_and_exits_as_documented() {
     let dir = tempfile::tempdir().expect("temporary folder");
     let out = dir.path().join("counterexamples.csv");
     let output = ballast()
-        .args(["attack", "--model", DIGITS_MODEL, "--data", DIGITS_TEST, "--eps", "0.1", "--steps", "40"])
+        .args([
+            "attack",
+            "--model",
+            DIGITS_MODEL,
+            "--data",
+            DIGITS_TEST,
+            "--eps",
+            "0.1",
+            "--steps",
+            "40",
+        ])
         .args(["--restarts", "2", "--seed", "7", "--out"])
         .arg(&out)
         .output()
         .expect("runs");
     let stdout = String::from_utf8_lossy(&output.stdout);
-    assert_eq!(output.status.code(), Some(0), "stdout: {stdout}\nstderr: {}", String::from_utf8_lossy(&output.stderr));
+    assert_eq!(
+        output.status.code(),
+        Some(0),
+        "stdout: {stdout}\nstderr: {}",
+        String::from_utf8_lossy(&output.stderr)
+    );
     let count: usize = stdout
         .lines()
         .find_map(|l| l.strip_prefix("counterexamples: "))
@@ -438,26 +531,55 @@ fn cli_writes_a_parseable_csv_and_exits_as_documented() {
         let label: usize = record[1].parse().expect("label");
         let new_class: usize = record[2].parse().expect("class");
         let distance: f64 = record[3].parse().expect("distance");
-        let input: Vec<f64> = (4..record.len()).map(|i| record[i].parse().expect("feature")).collect();
+        let input: Vec<f64> = (4..record.len())
+            .map(|i| record[i].parse().expect("feature"))
+            .collect();
         assert_eq!(label, data.labels[sample]);
         assert_ne!(label, new_class);
         assert!(distance <= 0.1 * (1.0 + 1e-12));
-        assert_abs_diff_eq!(distance, ballast::threat::distance(Norm::Linf, data.sample(sample), &input), epsilon = 1e-12);
+        assert_abs_diff_eq!(
+            distance,
+            ballast::threat::distance(Norm::Linf, data.sample(sample), &input),
+            epsilon = 1e-12
+        );
         assert!(input.iter().all(|v| (0.0..=1.0).contains(v)));
-        assert_eq!(predicted_class(network.forward(&input).as_slice()), new_class);
+        assert_eq!(
+            predicted_class(network.forward(&input).as_slice()),
+            new_class
+        );
     }
     assert_eq!(rows, count);
 
     // A floor the counterexamples refute: exit 1.
     let refuted = ballast()
-        .args(["attack", "--model", DIGITS_MODEL, "--data", DIGITS_TEST, "--eps", "0.1", "--steps", "20"])
+        .args([
+            "attack",
+            "--model",
+            DIGITS_MODEL,
+            "--data",
+            DIGITS_TEST,
+            "--eps",
+            "0.1",
+            "--steps",
+            "20",
+        ])
         .args(["--restarts", "1", "--floor", "0.99"])
         .output()
         .expect("runs");
     assert_eq!(refuted.status.code(), Some(1));
     // A floor an attack cannot prove: exit 3, said on stderr.
     let undecided = ballast()
-        .args(["attack", "--model", DIGITS_MODEL, "--data", DIGITS_TEST, "--eps", "0.01", "--steps", "10"])
+        .args([
+            "attack",
+            "--model",
+            DIGITS_MODEL,
+            "--data",
+            DIGITS_TEST,
+            "--eps",
+            "0.01",
+            "--steps",
+            "10",
+        ])
         .args(["--restarts", "1", "--floor", "0.5", "--norm", "l2"])
         .output()
         .expect("runs");
@@ -483,11 +605,22 @@ fn cli_rejects_bad_input_with_exit_2_and_writes_nothing() {
             .output()
             .expect("runs");
         assert_eq!(output.status.code(), Some(2), "{extra:?}");
-        assert!(String::from_utf8_lossy(&output.stderr).contains(message), "{extra:?}");
+        assert!(
+            String::from_utf8_lossy(&output.stderr).contains(message),
+            "{extra:?}"
+        );
         assert!(!out.exists());
     }
     let output = ballast()
-        .args(["attack", "--model", "tests/data/no-such-model.json", "--data", DIGITS_TEST, "--eps", "0.1"])
+        .args([
+            "attack",
+            "--model",
+            "tests/data/no-such-model.json",
+            "--data",
+            DIGITS_TEST,
+            "--eps",
+            "0.1",
+        ])
         .output()
         .expect("runs");
     assert_eq!(output.status.code(), Some(2));

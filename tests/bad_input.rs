@@ -118,6 +118,8 @@ struct Case {
     file: String,
     command: String,
     expected: String,
+    /// Set when the case still breaks the contract because of a known bug elsewhere.
+    known_bug: Option<String>,
 }
 
 fn manifest() -> Vec<Case> {
@@ -127,15 +129,15 @@ fn manifest() -> Vec<Case> {
         .filter(|l| !l.trim().is_empty() && !l.starts_with('#'))
         .map(|line| {
             let parts: Vec<&str> = line.split(" | ").collect();
-            assert_eq!(
-                parts.len(),
-                3,
-                "manifest line is `file | command | expected`: {line}"
+            assert!(
+                parts.len() == 3 || (parts.len() == 4 && parts[3].starts_with("known bug: ")),
+                "manifest line is `file | command | expected [| known bug: ...]`: {line}"
             );
             Case {
                 file: parts[0].trim().to_owned(),
                 command: parts[1].trim().to_owned(),
                 expected: parts[2].trim().to_owned(),
+                known_bug: parts.get(3).map(|b| b.trim().to_owned()),
             }
         })
         .collect()
@@ -144,24 +146,45 @@ fn manifest() -> Vec<Case> {
 /// The command of a case with its placeholders filled in.
 fn arguments(command: &str, bad: &Path, out: &Path) -> Vec<String> {
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let good = corpus().join("good");
+    let places = [
+        ("{bad}", bad.to_path_buf()),
+        ("{digits}", root.join("tests/data/digits_mlp.model.json")),
+        ("{digits_data}", root.join("tests/data/digits_test.csv")),
+        ("{plain}", good.join("plain3.model.json")),
+        ("{plain_data}", good.join("plain3.csv")),
+        ("{named}", good.join("two_sensor.model.json")),
+        ("{named_data}", good.join("two_sensor.csv")),
+        ("{out}", out.to_path_buf()),
+    ];
     command
         .split_whitespace()
         .map(|word| {
-            let path = match word {
-                "{bad}" => bad.to_path_buf(),
-                "{digits}" => root.join("tests/data/digits_mlp.model.json"),
-                "{digits_data}" => root.join("tests/data/digits_test.csv"),
-                "{plain}" => corpus().join("good/plain3.model.json"),
-                "{named}" => corpus().join("good/two_sensor.model.json"),
-                "{out}" => out.to_path_buf(),
-                other => {
-                    assert!(!other.starts_with('{'), "unknown placeholder {other}");
-                    return other.to_owned();
-                }
-            };
-            path.display().to_string()
+            let mut word = word.to_owned();
+            for (placeholder, path) in &places {
+                word = word.replace(placeholder, &path.display().to_string());
+            }
+            assert!(!word.contains('{'), "unknown placeholder in {command}");
+            word
         })
         .collect()
+}
+
+/// Files and folders anywhere under `folder`.
+fn everything_under(folder: &Path) -> Vec<PathBuf> {
+    let mut found = Vec::new();
+    let mut pending = vec![folder.to_path_buf()];
+    while let Some(next) = pending.pop() {
+        for entry in std::fs::read_dir(&next).expect("readable folder") {
+            let path = entry.expect("entry").path();
+            if path.is_dir() {
+                pending.push(path.clone());
+            }
+            found.push(path);
+        }
+    }
+    found.sort();
+    found
 }
 
 #[test]
@@ -173,21 +196,30 @@ fn every_corpus_file_fails_cleanly() {
         cases.len()
     );
     let mut failures = Vec::new();
+    let mut known_bugs = 0;
     for case in &cases {
         let bad = corpus().join(&case.file);
         assert!(bad.is_file(), "manifest names a missing file {}", case.file);
         let out = tempfile::tempdir().expect("temporary folder");
         let run = run_ballast(&arguments(&case.command, &bad, out.path()));
-        if let Some(problem) = check(&run, &bad.display().to_string(), &case.expected) {
-            failures.push(format!("{} ({}): {problem}", case.file, case.command));
-        }
-        let written: Vec<_> = std::fs::read_dir(out.path()).expect("readable").collect();
+        let mut problem = check(&run, &bad.display().to_string(), &case.expected);
+        let written = everything_under(out.path());
         if !written.is_empty() {
-            failures.push(format!(
-                "{}: wrote {} file(s) into the output folder",
-                case.file,
-                written.len()
-            ));
+            problem = Some(format!("wrote into the output folder: {written:?}"));
+        }
+        match (&case.known_bug, problem) {
+            (None, Some(problem)) => {
+                failures.push(format!("{} ({}): {problem}", case.file, case.command))
+            }
+            (Some(_), None) => failures.push(format!(
+                "{}: listed as a known bug but now passes; move it into CASES in make_corpus.py",
+                case.file
+            )),
+            (Some(bug), Some(problem)) => {
+                known_bugs += 1;
+                eprintln!("{} still fails ({bug}): {problem}", case.file);
+            }
+            (None, None) => {}
         }
     }
     assert!(
@@ -197,6 +229,7 @@ fn every_corpus_file_fails_cleanly() {
         cases.len(),
         failures.join("\n")
     );
+    eprintln!("{} cases, {known_bugs} known bugs", cases.len());
 }
 
 #[test]

@@ -336,6 +336,7 @@ fn bounds_are_sound_under_split_constraints() {
     let mut rng = ChaCha8Rng::seed_from_u64(11);
     let mut admitted_total = 0;
     let mut empty_domains = 0;
+    let mut improved = 0;
     for case in 0..40 {
         let depth = 2 + case % 3;
         let input = rng.gen_range(2..=6);
@@ -385,20 +386,37 @@ fn bounds_are_sound_under_split_constraints() {
             region.project(&mut x);
             points.push(x);
         }
+        let mut results = Vec::new();
         for method in [
             Method::Interval,
             Method::Linear,
             Method::OptimisedLinear,
             Method::Lp,
         ] {
-            let constrained = bound::margin_lower_bounds(
-                &network,
-                &region,
-                label,
-                &targets,
-                method,
-                Some(&splits),
-            )
+            let constrained = if method == Method::OptimisedLinear {
+                let options = optimised::SlopeOptions {
+                    iterations: 40,
+                    stop_when_certified: false,
+                    ..Default::default()
+                };
+                optimised::margin_lower_bounds(
+                    &network,
+                    &region,
+                    label,
+                    &targets,
+                    Some(&splits),
+                    &options,
+                )
+            } else {
+                bound::margin_lower_bounds(
+                    &network,
+                    &region,
+                    label,
+                    &targets,
+                    method,
+                    Some(&splits),
+                )
+            }
             .unwrap();
             let context = format!("case {case} {method:?} with splits");
             let (_, admitted) = check_sound(
@@ -415,8 +433,25 @@ fn bounds_are_sound_under_split_constraints() {
                 empty_domains += 1;
                 assert!(constrained.prunable());
             }
+            results.push(constrained);
+        }
+        if results[1].domain == Domain::Feasible {
+            for t in 0..targets.len() {
+                let (l, o) = (results[1].lower[t], results[2].lower[t]);
+                assert!(
+                    l <= o + 1e-9 * (1.0 + l.abs()),
+                    "case {case}: optimised {o} < linear {l}"
+                );
+                if o > l + 1e-6 * (1.0 + l.abs()) {
+                    improved += 1;
+                }
+            }
         }
     }
+    assert!(
+        improved > 0,
+        "slope and multiplier optimisation never tightened a split bound"
+    );
     assert!(
         admitted_total > 5_000,
         "only {admitted_total} admitted points"

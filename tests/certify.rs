@@ -24,7 +24,10 @@ fn bin() -> &'static str {
 }
 
 fn run(args: &[&str]) -> (i32, String, String) {
-    let out = Command::new(bin()).args(args).output().expect("ballast runs");
+    let out = Command::new(bin())
+        .args(args)
+        .output()
+        .expect("ballast runs");
     (
         out.status.code().unwrap_or(-1),
         String::from_utf8_lossy(&out.stdout).into_owned(),
@@ -33,7 +36,8 @@ fn run(args: &[&str]) -> (i32, String, String) {
 }
 
 fn read_report(path: &Path) -> Report {
-    Report::from_json_str(&std::fs::read_to_string(path).expect("report written")).expect("valid report")
+    Report::from_json_str(&std::fs::read_to_string(path).expect("report written"))
+        .expect("valid report")
 }
 
 /// The first `rows` rows of the digits test set, written to `dir`.
@@ -51,33 +55,62 @@ fn digits() -> (Model, Dataset) {
     (model, data)
 }
 
-fn report_of(model: &Model, data: &Dataset, requirement: &Requirement, pipeline: PipelineOptions) -> Report {
+fn report_of(
+    model: &Model,
+    data: &Dataset,
+    requirement: &Requirement,
+    pipeline: PipelineOptions,
+) -> Report {
     let options = CertifyOptions {
         pipeline,
         ..CertifyOptions::default()
     };
-    certify(model, data, requirement, &Sources::in_memory(model, data), &options).expect("certify runs")
+    certify(
+        model,
+        data,
+        requirement,
+        &Sources::in_memory(model, data),
+        &options,
+    )
+    .expect("certify runs")
 }
 
 fn check_invariants(r: &Report) {
     let s = &r.summary;
-    assert_eq!(s.certified + s.counterexample + s.misclassified + s.unresolved, s.samples);
+    assert_eq!(
+        s.certified + s.counterexample + s.misclassified + s.unresolved,
+        s.samples
+    );
     assert_eq!(r.samples.len() + s.not_run, s.samples);
     assert!(s.certified_accuracy <= s.empirical_robust_accuracy + 1e-12);
     assert!(s.empirical_robust_accuracy <= s.clean_accuracy + 1e-12);
     if s.unresolved == 0 {
-        assert_abs_diff_eq!(s.certified_accuracy, s.empirical_robust_accuracy, epsilon = 1e-12);
+        assert_abs_diff_eq!(
+            s.certified_accuracy,
+            s.empirical_robust_accuracy,
+            epsilon = 1e-12
+        );
         assert!(s.exact);
     }
     let class_total: usize = r.per_class.iter().map(|c| c.samples).sum();
     assert_eq!(class_total, r.samples.len());
     let class_certified: usize = r.per_class.iter().map(|c| c.certified).sum();
     assert_eq!(class_certified, s.certified);
-    let stage_total: usize = r.stages.iter().map(|st| st.certified + st.refuted + st.unresolved).sum();
+    let stage_total: usize = r
+        .stages
+        .iter()
+        .map(|st| st.certified + st.refuted + st.unresolved)
+        .sum();
     assert_eq!(stage_total, r.samples.len());
     for sample in &r.samples {
-        assert_eq!(sample.status == Status::Misclassified, sample.label != sample.predicted);
-        assert_eq!(sample.status == Status::Counterexample, sample.counterexample.is_some());
+        assert_eq!(
+            sample.status == Status::Misclassified,
+            sample.label != sample.predicted
+        );
+        assert_eq!(
+            sample.status == Status::Counterexample,
+            sample.counterexample.is_some()
+        );
     }
 }
 
@@ -88,29 +121,47 @@ fn check_counterexamples(model: &Model, data: &Dataset, r: &Report) -> usize {
     let requirement = r.requirement.requirement();
     let mut checked = 0;
     for s in &r.samples {
-        let outcomes: Vec<(f64, &ballast::certify::report::CounterexampleRecord)> = if s.sweep.is_empty() {
-            s.counterexample.iter().map(|c| (r.requirement.epsilon, c)).collect()
-        } else {
-            s.sweep.iter().filter_map(|o| o.counterexample.as_ref().map(|c| (o.epsilon, c))).collect()
-        };
+        let outcomes: Vec<(f64, &ballast::certify::report::CounterexampleRecord)> =
+            if s.sweep.is_empty() {
+                s.counterexample
+                    .iter()
+                    .map(|c| (r.requirement.epsilon, c))
+                    .collect()
+            } else {
+                s.sweep
+                    .iter()
+                    .filter_map(|o| o.counterexample.as_ref().map(|c| (o.epsilon, c)))
+                    .collect()
+            };
         for (eps, c) in outcomes {
             let x = data.sample(s.index);
             let budget = requirement.budget(eps, model.input.dim);
             for i in 0..x.len() {
-                assert!(c.features[i] >= model.input.lower[i] - 1e-12 && c.features[i] <= model.input.upper[i] + 1e-12);
+                assert!(
+                    c.features[i] >= model.input.lower[i] - 1e-12
+                        && c.features[i] <= model.input.upper[i] + 1e-12
+                );
                 if budget.norm == Norm::Linf {
                     assert!((c.features[i] - x[i]).abs() <= budget.radii[i] * (1.0 + 1e-9) + 1e-12);
                 }
             }
             if budget.norm == Norm::L2 {
-                let d: f64 = x.iter().zip(&c.features).map(|(a, b)| (a - b) * (a - b)).sum::<f64>().sqrt();
+                let d: f64 = x
+                    .iter()
+                    .zip(&c.features)
+                    .map(|(a, b)| (a - b) * (a - b))
+                    .sum::<f64>()
+                    .sqrt();
                 assert!(d <= budget.radii[0] * (1.0 + 1e-9) + 1e-12);
             }
             let logits: Vec<f64> = network.forward(&c.features).iter().copied().collect();
             let class = predicted_class(&logits);
             assert_eq!(class, c.new_class);
             assert_ne!(class, s.label);
-            assert!(requirement.targets.forbidden_for(s.label, logits.len()).contains(&class));
+            assert!(requirement
+                .targets
+                .forbidden_for(s.label, logits.len())
+                .contains(&class));
             checked += 1;
         }
     }
@@ -140,7 +191,10 @@ fn clopper_pearson_matches_scipy_reference() {
         if v["bound"] != "lower" {
             continue;
         }
-        let (n, c) = (v["n"].as_u64().unwrap() as usize, v["confidence"].as_f64().unwrap());
+        let (n, c) = (
+            v["n"].as_u64().unwrap() as usize,
+            v["confidence"].as_f64().unwrap(),
+        );
         let lower = ballast::certify::statistics::clopper_pearson_lower(n, n, c).unwrap();
         assert_abs_diff_eq!(lower, (1.0 - c).powf(1.0 / n as f64), epsilon = 1e-12);
         assert_abs_diff_eq!(lower, v["value"].as_f64().unwrap(), epsilon = 1e-12);
@@ -173,7 +227,11 @@ fn linear_model_matches_the_hyperplane_distance() {
     // (Hölder's inequality; common practice).
     let w = [0.5, -1.5, 2.0];
     let model = linear_model(&w, 0.25);
-    let points = vec![vec![1.0, 0.2, 0.3], vec![-1.0, 1.0, 0.1], vec![0.3, -0.4, -0.2]];
+    let points = vec![
+        vec![1.0, 0.2, 0.3],
+        vec![-1.0, 1.0, 0.1],
+        vec![0.3, -0.4, -0.2],
+    ];
     let labels: Vec<usize> = points
         .iter()
         .map(|x| {
@@ -190,10 +248,28 @@ fn linear_model_matches_the_hyperplane_distance() {
             let z: f64 = w.iter().zip(x).map(|(a, b)| a * b).sum::<f64>() + 0.25;
             let radius = z.abs() / dual;
             let one = data.subset(&[s]);
-            let inside = report_of(&model, &one, &Requirement::uniform(norm, radius * 0.98), PipelineOptions::default());
-            assert_eq!(inside.samples[0].status, Status::Certified, "{norm} sample {s} below its radius");
-            let outside = report_of(&model, &one, &Requirement::uniform(norm, radius * 1.05), PipelineOptions::default());
-            assert_eq!(outside.samples[0].status, Status::Counterexample, "{norm} sample {s} above its radius");
+            let inside = report_of(
+                &model,
+                &one,
+                &Requirement::uniform(norm, radius * 0.98),
+                PipelineOptions::default(),
+            );
+            assert_eq!(
+                inside.samples[0].status,
+                Status::Certified,
+                "{norm} sample {s} below its radius"
+            );
+            let outside = report_of(
+                &model,
+                &one,
+                &Requirement::uniform(norm, radius * 1.05),
+                PipelineOptions::default(),
+            );
+            assert_eq!(
+                outside.samples[0].status,
+                Status::Counterexample,
+                "{norm} sample {s} above its radius"
+            );
             check_counterexamples(&model, &one, &outside);
             let with_radius = report_of(
                 &model,
@@ -205,8 +281,14 @@ fn linear_model_matches_the_hyperplane_distance() {
                 },
             );
             let found = with_radius.samples[0].radius.unwrap();
-            assert!(found <= radius * (1.0 + 1e-9), "{norm}: radius {found} above the true {radius}");
-            assert!(found >= radius * 0.99, "{norm}: radius {found} far below the true {radius}");
+            assert!(
+                found <= radius * (1.0 + 1e-9),
+                "{norm}: radius {found} above the true {radius}"
+            );
+            assert!(
+                found >= radius * 0.99,
+                "{norm}: radius {found} far below the true {radius}"
+            );
         }
     }
 }
@@ -214,19 +296,33 @@ fn linear_model_matches_the_hyperplane_distance() {
 #[test]
 fn digits_report_invariants_and_counterexamples() {
     let (model, data) = digits();
-    let r = report_of(&model, &data, &Requirement::uniform(Norm::Linf, 0.05), PipelineOptions::default());
+    let r = report_of(
+        &model,
+        &data,
+        &Requirement::uniform(Norm::Linf, 0.05),
+        PipelineOptions::default(),
+    );
     check_invariants(&r);
     // scikit-learn's test accuracy of this fixture (tests/reference/out/digits_forward.json).
-    let reference: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string("tests/reference/out/digits_forward.json").unwrap()).unwrap();
+    let reference: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string("tests/reference/out/digits_forward.json").unwrap(),
+    )
+    .unwrap();
     let fixture = &reference["models"]["digits_mlp"];
-    assert_abs_diff_eq!(r.summary.clean_accuracy, fixture["test_accuracy"].as_f64().unwrap(), epsilon = 1e-12);
+    assert_abs_diff_eq!(
+        r.summary.clean_accuracy,
+        fixture["test_accuracy"].as_f64().unwrap(),
+        epsilon = 1e-12
+    );
     let predicted = fixture["predicted"].as_array().unwrap();
     for s in &r.samples {
         assert_eq!(s.predicted as u64, predicted[s.index].as_u64().unwrap());
     }
     assert!(r.summary.counterexample > 0 && r.summary.certified > 0);
-    assert_eq!(check_counterexamples(&model, &data, &r), r.summary.counterexample);
+    assert_eq!(
+        check_counterexamples(&model, &data, &r),
+        r.summary.counterexample
+    );
 }
 
 #[test]
@@ -236,13 +332,21 @@ fn verdict_and_exit_code_follow_the_floor() {
     let data = data.to_str().unwrap();
     let report = dir.path().join("r.json");
     let report_s = report.to_str().unwrap();
-    let (code, _, err) = run(&["certify", "--model", MODEL, "--data", data, "--eps", "0.05", "--report", report_s]);
+    let (code, _, err) = run(&[
+        "certify", "--model", MODEL, "--data", data, "--eps", "0.05", "--report", report_s,
+    ]);
     assert_eq!(code, 0, "no floor: {err}");
     let base = read_report(&report);
     check_invariants(&base);
     assert_eq!(base.summary.verdict, Verdict::None);
-    let (certified, empirical) = (base.summary.certified_accuracy, base.summary.empirical_robust_accuracy);
-    assert!(base.summary.unresolved > 0 && certified < empirical, "this setting leaves samples open");
+    let (certified, empirical) = (
+        base.summary.certified_accuracy,
+        base.summary.empirical_robust_accuracy,
+    );
+    assert!(
+        base.summary.unresolved > 0 && certified < empirical,
+        "this setting leaves samples open"
+    );
     let cases = [
         (certified - 0.05, 0, Verdict::Pass),
         (certified, 0, Verdict::Pass),
@@ -253,18 +357,42 @@ fn verdict_and_exit_code_follow_the_floor() {
     for (floor, expected, verdict) in cases {
         let floor_text = format!("{floor}");
         let (code, out, err) = run(&[
-            "certify", "--model", MODEL, "--data", data, "--eps", "0.05", "--floor", &floor_text, "--report", report_s,
+            "certify",
+            "--model",
+            MODEL,
+            "--data",
+            data,
+            "--eps",
+            "0.05",
+            "--floor",
+            &floor_text,
+            "--report",
+            report_s,
         ]);
         assert_eq!(code, expected, "floor {floor}: {out}{err}");
         let r = read_report(&report);
         assert_eq!(r.summary.verdict, verdict);
-        assert_eq!(r.summary.unresolved > 0, code == 3 || r.summary.unresolved > 0);
+        assert_eq!(
+            r.summary.unresolved > 0,
+            code == 3 || r.summary.unresolved > 0
+        );
         assert!(out.contains(&format!("verdict: {}", verdict.name())));
     }
     // With nothing unresolved (search decides every sample), the floor between the old bounds is decided.
     let (code, _, err) = run(&[
-        "certify", "--model", MODEL, "--data", data, "--eps", "0.05", "--budget", "5", "--floor",
-        &format!("{}", (certified + empirical) / 2.0), "--report", report_s,
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        data,
+        "--eps",
+        "0.05",
+        "--budget",
+        "5",
+        "--floor",
+        &format!("{}", (certified + empirical) / 2.0),
+        "--report",
+        report_s,
     ]);
     let r = read_report(&report);
     check_invariants(&r);
@@ -284,12 +412,17 @@ fn usage_errors_name_the_flag_and_write_nothing() {
         (vec!["--eps", "0.05", "--floor", "1.5"], "--floor"),
         (vec!["--eps", "abc"], "--eps"),
         (vec!["--eps", "0.05", "--norm", "l3"], "--norm"),
-        (vec!["--eps", "0.05", "--forbid-into", "eleven"], "--forbid-into"),
+        (
+            vec!["--eps", "0.05", "--forbid-into", "eleven"],
+            "--forbid-into",
+        ),
         (vec!["--eps", "0.05", "--confidence", "1.0"], "--confidence"),
         (vec!["--eps", "0.05", "--shard", "4/3"], "--shard"),
         (vec!["--eps", "0.05", "--budget=-1"], "--budget"),
     ] {
-        let mut all = vec!["certify", "--model", MODEL, "--data", DATA, "--report", report_s];
+        let mut all = vec![
+            "certify", "--model", MODEL, "--data", DATA, "--report", report_s,
+        ];
         all.extend(args.iter());
         let (code, _, err) = run(&all);
         assert_eq!(code, 2, "{args:?}");
@@ -298,7 +431,15 @@ fn usage_errors_name_the_flag_and_write_nothing() {
     }
     let bad = dir.path().join("req.toml");
     std::fs::write(&bad, "epsilon = 0.05\nflor = 0.9\n").unwrap();
-    let (code, _, err) = run(&["certify", "--model", MODEL, "--data", DATA, "--requirement", bad.to_str().unwrap()]);
+    let (code, _, err) = run(&[
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        DATA,
+        "--requirement",
+        bad.to_str().unwrap(),
+    ]);
     assert_eq!(code, 2);
     assert!(err.contains("req.toml") && err.contains("flor"), "{err}");
 }
@@ -319,18 +460,40 @@ fn requirement_file_tolerances_and_flags_agree() {
     let requirement = dir.path().join("req.toml");
     std::fs::write(
         &requirement,
-        format!("epsilon = 0.5\ntolerances = \"{}\"\nfloor = 0.99\nnorm = \"linf\"\n", tolerances.display()),
+        format!(
+            "epsilon = 0.5\ntolerances = \"{}\"\nfloor = 0.99\nnorm = \"linf\"\n",
+            tolerances.display()
+        ),
     )
     .unwrap();
     let a = dir.path().join("a.json");
     let b = dir.path().join("b.json");
     // The file says floor 0.99; the flag overrides it with 0.5.
     let (code_a, _, err) = run(&[
-        "certify", "--model", MODEL, "--data", data_s, "--requirement", requirement.to_str().unwrap(), "--floor", "0.5",
-        "--report", a.to_str().unwrap(),
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        data_s,
+        "--requirement",
+        requirement.to_str().unwrap(),
+        "--floor",
+        "0.5",
+        "--report",
+        a.to_str().unwrap(),
     ]);
     assert_eq!(code_a, 0, "{err}");
-    let (_, _, err) = run(&["certify", "--model", MODEL, "--data", data_s, "--eps", "0.02", "--report", b.to_str().unwrap()]);
+    let (_, _, err) = run(&[
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        data_s,
+        "--eps",
+        "0.02",
+        "--report",
+        b.to_str().unwrap(),
+    ]);
     let (ra, rb) = (read_report(&a), read_report(&b));
     assert!(err.is_empty() || !err.contains("error"), "{err}");
     assert_abs_diff_eq!(ra.requirement.floor.unwrap(), 0.5);
@@ -338,7 +501,15 @@ fn requirement_file_tolerances_and_flags_agree() {
     assert_eq!(statuses(&ra), statuses(&rb));
     // A tolerance file that misses a feature is refused, naming the feature.
     std::fs::write(&tolerances, "feature,tolerance\npx0,0.1\n").unwrap();
-    let (code, _, err) = run(&["certify", "--model", MODEL, "--data", data_s, "--eps", tolerances.to_str().unwrap()]);
+    let (code, _, err) = run(&[
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        data_s,
+        "--eps",
+        tolerances.to_str().unwrap(),
+    ]);
     assert_eq!(code, 2);
     assert!(err.contains("px1"), "{err}");
 }
@@ -347,7 +518,12 @@ fn requirement_file_tolerances_and_flags_agree() {
 fn forbidden_targets_only_count_the_named_class() {
     let (model, data) = digits();
     let data = data.subset(&(0..150).collect::<Vec<_>>());
-    let any = report_of(&model, &data, &Requirement::uniform(Norm::Linf, 0.05), PipelineOptions::default());
+    let any = report_of(
+        &model,
+        &data,
+        &Requirement::uniform(Norm::Linf, 0.05),
+        PipelineOptions::default(),
+    );
     let into_eight = Requirement {
         targets: Targets::Into {
             classes: vec![8],
@@ -383,24 +559,45 @@ fn sweep_is_monotone_and_sound() {
     assert_eq!(r.sweep.len(), 3);
     for pair in r.sweep.windows(2) {
         assert!(pair[1].summary.certified <= pair[0].summary.certified);
-        assert!(pair[1].summary.empirical_robust_accuracy <= pair[0].summary.empirical_robust_accuracy + 1e-12);
+        assert!(
+            pair[1].summary.empirical_robust_accuracy
+                <= pair[0].summary.empirical_robust_accuracy + 1e-12
+        );
     }
     for s in &r.samples {
         for k in 1..s.sweep.len() {
             if s.sweep[k].status == Status::Certified {
-                assert_eq!(s.sweep[k - 1].status, Status::Certified, "sample {}", s.index);
+                assert_eq!(
+                    s.sweep[k - 1].status,
+                    Status::Certified,
+                    "sample {}",
+                    s.index
+                );
             }
             if s.sweep[k - 1].status == Status::Counterexample {
-                assert_eq!(s.sweep[k].status, Status::Counterexample, "sample {}", s.index);
+                assert_eq!(
+                    s.sweep[k].status,
+                    Status::Counterexample,
+                    "sample {}",
+                    s.index
+                );
             }
         }
     }
     check_counterexamples(&model, &data, &r);
     // Each sweep point is at least as decided as a single run at that epsilon.
     for (k, &eps) in sweep.epsilons.iter().enumerate() {
-        let single = report_of(&model, &data, &Requirement::uniform(Norm::Linf, eps), PipelineOptions::default());
+        let single = report_of(
+            &model,
+            &data,
+            &Requirement::uniform(Norm::Linf, eps),
+            PipelineOptions::default(),
+        );
         assert!(r.sweep[k].summary.certified >= single.summary.certified);
-        assert!(r.sweep[k].summary.empirical_robust_accuracy <= single.summary.empirical_robust_accuracy + 1e-12);
+        assert!(
+            r.sweep[k].summary.empirical_robust_accuracy
+                <= single.summary.empirical_robust_accuracy + 1e-12
+        );
     }
 }
 
@@ -410,11 +607,24 @@ fn shards_merge_into_the_single_run() {
     let data = small_digits(dir.path(), 90);
     let data_s = data.to_str().unwrap();
     let single = dir.path().join("single.json");
-    let common = ["certify", "--model", MODEL, "--data", data_s, "--eps", "0.01,0.05", "--floor", "0.8"];
+    let common = [
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        data_s,
+        "--eps",
+        "0.01,0.05",
+        "--floor",
+        "0.8",
+    ];
     let mut args = common.to_vec();
     args.extend(["--report", single.to_str().unwrap()]);
     let (code_single, _, err) = run(&args);
-    assert!(code_single == 0 || code_single == 1 || code_single == 3, "{err}");
+    assert!(
+        code_single == 0 || code_single == 1 || code_single == 3,
+        "{err}"
+    );
     let mut shard_files = Vec::new();
     for k in 1..=3 {
         let path = dir.path().join(format!("shard{k}.json"));
@@ -430,7 +640,11 @@ fn shards_merge_into_the_single_run() {
     let merged = dir.path().join("merged.json");
     let mut args = vec!["merge"];
     // Any order.
-    args.extend([shard_files[2].as_str(), shard_files[0].as_str(), shard_files[1].as_str()]);
+    args.extend([
+        shard_files[2].as_str(),
+        shard_files[0].as_str(),
+        shard_files[1].as_str(),
+    ]);
     args.extend(["--out", merged.to_str().unwrap()]);
     let (code_merge, _, err) = run(&args);
     assert_eq!(code_merge, code_single, "{err}");
@@ -440,9 +654,18 @@ fn shards_merge_into_the_single_run() {
         serde_json::to_string(&a.sweep).unwrap(),
         serde_json::to_string(&b.sweep).unwrap()
     );
-    assert_eq!(serde_json::to_string(&a.per_class).unwrap(), serde_json::to_string(&b.per_class).unwrap());
+    assert_eq!(
+        serde_json::to_string(&a.per_class).unwrap(),
+        serde_json::to_string(&b.per_class).unwrap()
+    );
     // A missing shard is refused.
-    let (code, _, err) = run(&["merge", &shard_files[0], &shard_files[1], "--out", merged.to_str().unwrap()]);
+    let (code, _, err) = run(&[
+        "merge",
+        &shard_files[0],
+        &shard_files[1],
+        "--out",
+        merged.to_str().unwrap(),
+    ]);
     assert_eq!(code, 2);
     assert!(err.contains("3/3") && err.contains("missing"), "{err}");
 }
@@ -457,7 +680,16 @@ fn killed_run_resumes_to_the_same_statuses() {
     let report = dir.path().join("r.json");
     let journal = dir.path().join("r.journal.jsonl");
     let args = [
-        "certify", "--model", MODEL, "--data", DATA, "--eps", "0.05", "--radius", "--report", report.to_str().unwrap(),
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        DATA,
+        "--eps",
+        "0.05",
+        "--radius",
+        "--report",
+        report.to_str().unwrap(),
     ];
     let mut child = Command::new(bin())
         .args(args)
@@ -468,7 +700,9 @@ fn killed_run_resumes_to_the_same_statuses() {
         .unwrap();
     let mut lines = 0;
     for _ in 0..4000 {
-        lines = std::fs::read_to_string(&journal).map(|t| t.lines().count()).unwrap_or(0);
+        lines = std::fs::read_to_string(&journal)
+            .map(|t| t.lines().count())
+            .unwrap_or(0);
         if lines > 60 {
             break;
         }
@@ -477,7 +711,10 @@ fn killed_run_resumes_to_the_same_statuses() {
     child.kill().unwrap(); // SIGKILL
     child.wait().unwrap();
     assert!(!report.exists(), "the killed run must not have finished");
-    assert!(lines > 60 && lines < 541, "killed halfway ({lines} journal lines)");
+    assert!(
+        lines > 60 && lines < 541,
+        "killed halfway ({lines} journal lines)"
+    );
     let mut resume = args.to_vec();
     resume.push("--resume");
     let (code, _, err) = run(&resume);
@@ -489,7 +726,11 @@ fn killed_run_resumes_to_the_same_statuses() {
     let mut again = args.to_vec();
     let last = again.len() - 1;
     again[last] = fresh.to_str().unwrap();
-    let out = Command::new(bin()).args(&again).env("RAYON_NUM_THREADS", "2").output().unwrap();
+    let out = Command::new(bin())
+        .args(&again)
+        .env("RAYON_NUM_THREADS", "2")
+        .output()
+        .unwrap();
     assert_eq!(out.status.code(), Some(0));
     let fresh = read_report(&fresh);
     assert_eq!(statuses(&resumed), statuses(&fresh));
@@ -509,7 +750,17 @@ fn sigint_writes_a_partial_report_and_exits_130() {
     let journal = dir.path().join("r.journal.jsonl");
     let mut child = Command::new(bin())
         .args([
-            "certify", "--model", MODEL, "--data", DATA, "--eps", "0.05", "--radius", "--floor", "0.5", "--report",
+            "certify",
+            "--model",
+            MODEL,
+            "--data",
+            DATA,
+            "--eps",
+            "0.05",
+            "--radius",
+            "--floor",
+            "0.5",
+            "--report",
             report.to_str().unwrap(),
         ])
         .env("RAYON_NUM_THREADS", "1")
@@ -518,13 +769,18 @@ fn sigint_writes_a_partial_report_and_exits_130() {
         .spawn()
         .unwrap();
     for _ in 0..4000 {
-        let lines = std::fs::read_to_string(&journal).map(|t| t.lines().count()).unwrap_or(0);
+        let lines = std::fs::read_to_string(&journal)
+            .map(|t| t.lines().count())
+            .unwrap_or(0);
         if lines > 30 {
             break;
         }
         std::thread::sleep(std::time::Duration::from_millis(2));
     }
-    let status = Command::new("kill").args(["-INT", &child.id().to_string()]).status().unwrap();
+    let status = Command::new("kill")
+        .args(["-INT", &child.id().to_string()])
+        .status()
+        .unwrap();
     assert!(status.success());
     let code = child.wait().unwrap().code();
     let r = read_report(&report);

@@ -23,11 +23,19 @@ fn committed_model(file: &str) -> Model {
 }
 
 fn committed_data(file: &str, model: &Model) -> Dataset {
-    load_csv(&root().join("demo-data").join(file), model, &DataOptions::default()).expect("committed data loads")
+    load_csv(
+        &root().join("demo-data").join(file),
+        model,
+        &DataOptions::default(),
+    )
+    .expect("committed data loads")
 }
 
 fn reference() -> serde_json::Value {
-    serde_json::from_str(&read(&root().join("tests/reference/out/demo_reference.json"))).expect("valid JSON")
+    serde_json::from_str(&read(
+        &root().join("tests/reference/out/demo_reference.json"),
+    ))
+    .expect("valid JSON")
 }
 
 #[test]
@@ -41,7 +49,13 @@ fn same_seed_gives_identical_bytes_and_another_seed_differs() {
     // Training and acceptance rows come from different streams: no row is shared.
     let train_csv = a.train.to_csv();
     let train_rows: std::collections::HashSet<&str> = train_csv.lines().skip(1).collect();
-    let shared = a.acceptance.to_csv().lines().skip(1).filter(|l| train_rows.contains(l)).count();
+    let shared = a
+        .acceptance
+        .to_csv()
+        .lines()
+        .skip(1)
+        .filter(|l| train_rows.contains(l))
+        .count();
     assert_eq!(shared, 0);
 }
 
@@ -49,10 +63,22 @@ fn same_seed_gives_identical_bytes_and_another_seed_differs() {
 fn committed_demo_data_equal_the_generator_output() {
     let data = generator::generate(scenario::DEFAULT_SEED);
     let folder = root().join("demo-data");
-    assert!(read(&folder.join(files::TRAIN_FILE)) == data.train.to_csv(), "train.csv is stale: run generate-demo");
-    assert!(read(&folder.join(files::ACCEPTANCE_FILE)) == data.acceptance.to_csv(), "acceptance.csv is stale");
-    assert!(read(&folder.join(files::TOLERANCE_FILE)) == files::tolerance_json(), "tolerances.json is stale");
-    assert!(read(&folder.join(files::REQUIREMENT_FILE)) == files::requirement_toml(), "requirement.toml is stale");
+    assert!(
+        read(&folder.join(files::TRAIN_FILE)) == data.train.to_csv(),
+        "train.csv is stale: run generate-demo"
+    );
+    assert!(
+        read(&folder.join(files::ACCEPTANCE_FILE)) == data.acceptance.to_csv(),
+        "acceptance.csv is stale"
+    );
+    assert!(
+        read(&folder.join(files::TOLERANCE_FILE)) == files::tolerance_json(),
+        "tolerances.json is stale"
+    );
+    assert!(
+        read(&folder.join(files::REQUIREMENT_FILE)) == files::requirement_toml(),
+        "requirement.toml is stale"
+    );
 }
 
 #[test]
@@ -63,11 +89,18 @@ fn generate_demo_data_only_reproduces_the_committed_files() {
         .arg(out.path())
         .output()
         .expect("runs");
-    assert!(status.status.success(), "{}", String::from_utf8_lossy(&status.stderr));
+    assert!(
+        status.status.success(),
+        "{}",
+        String::from_utf8_lossy(&status.stderr)
+    );
     for (name, _) in bundle::DATA_FILES {
         let written = std::fs::read(out.path().join("demo-data").join(name)).expect("written");
         let committed = std::fs::read(root().join("demo-data").join(name)).expect("committed");
-        assert!(written == committed, "{name} differs from the committed file");
+        assert!(
+            written == committed,
+            "{name} differs from the committed file"
+        );
     }
 }
 
@@ -78,23 +111,49 @@ fn committed_csv_parse_matches_numpy() {
     let model = committed_model(models::MLP_FILE);
     let train = committed_data(files::TRAIN_FILE, &model);
     let acceptance = committed_data(files::ACCEPTANCE_FILE, &model);
-    assert_eq!(train.len() as u64, reference["train_rows"].as_u64().unwrap());
-    assert_eq!(acceptance.len() as u64, reference["acceptance_rows"].as_u64().unwrap());
+    assert_eq!(
+        train.len() as u64,
+        reference["train_rows"].as_u64().unwrap()
+    );
+    assert_eq!(
+        acceptance.len() as u64,
+        reference["acceptance_rows"].as_u64().unwrap()
+    );
     for c in 0..scenario::CLASSES.len() {
         let count = acceptance.labels.iter().filter(|l| **l == c).count() as u64;
-        assert_eq!(count, reference["acceptance_class_counts"][c].as_u64().unwrap());
+        assert_eq!(
+            count,
+            reference["acceptance_class_counts"][c].as_u64().unwrap()
+        );
     }
-    let names: Vec<&str> = reference["features"].as_array().unwrap().iter().map(|v| v.as_str().unwrap()).collect();
+    let names: Vec<&str> = reference["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
     let ours: Vec<&str> = scenario::FEATURES.iter().map(|f| f.name).collect();
     assert_eq!(names, ours);
     for (i, feature) in scenario::FEATURES.iter().enumerate() {
         let row = train.features.row(i);
         let mean = row.mean();
         let std = row.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / train.len() as f64;
-        assert_abs_diff_eq!(mean, reference["train_mean"][i].as_f64().unwrap(), epsilon = 1e-9);
-        assert_abs_diff_eq!(std.sqrt(), reference["train_std"][i].as_f64().unwrap(), epsilon = 1e-9);
+        assert_abs_diff_eq!(
+            mean,
+            reference["train_mean"][i].as_f64().unwrap(),
+            epsilon = 1e-9
+        );
+        assert_abs_diff_eq!(
+            std.sqrt(),
+            reference["train_std"][i].as_f64().unwrap(),
+            epsilon = 1e-9
+        );
         for v in row.iter() {
-            assert!(*v >= feature.lower && *v <= feature.upper, "{} = {v} outside its range", feature.name);
+            assert!(
+                *v >= feature.lower && *v <= feature.upper,
+                "{} = {v} outside its range",
+                feature.name
+            );
         }
     }
 }
@@ -106,40 +165,80 @@ fn committed_models_reach_the_documented_clean_accuracy() {
     // (tests/reference/demo_reference.py).
     let reference = reference();
     for (file, documented, sklearn_key, allowed_gap) in [
-        (models::LINEAR_FILE, 336.0 / 360.0, "logistic_regression_acceptance_accuracy", 0.03),
-        (models::MLP_FILE, 327.0 / 360.0, "mlp_32_32_acceptance_accuracy", 0.05),
+        (
+            models::LINEAR_FILE,
+            336.0 / 360.0,
+            "logistic_regression_acceptance_accuracy",
+            0.03,
+        ),
+        (
+            models::MLP_FILE,
+            327.0 / 360.0,
+            "mlp_32_32_acceptance_accuracy",
+            0.05,
+        ),
     ] {
         let model = committed_model(file);
         assert_eq!(model.input.dim, 12, "{file}");
-        assert_eq!(model.classes.as_deref(), Some(&scenario::class_names()[..]), "{file}");
-        assert_eq!(model.input.names.as_deref(), Some(&scenario::feature_names()[..]), "{file}");
+        assert_eq!(
+            model.classes.as_deref(),
+            Some(&scenario::class_names()[..]),
+            "{file}"
+        );
+        assert_eq!(
+            model.input.names.as_deref(),
+            Some(&scenario::feature_names()[..]),
+            "{file}"
+        );
         for (i, f) in scenario::FEATURES.iter().enumerate() {
             assert_abs_diff_eq!(model.input.lower[i], f.lower);
             assert_abs_diff_eq!(model.input.upper[i], f.upper);
         }
         let provenance = model.provenance.as_ref().expect("provenance");
-        assert_eq!(provenance["data_seed"].as_u64(), Some(scenario::DEFAULT_SEED), "{file}");
+        assert_eq!(
+            provenance["data_seed"].as_u64(),
+            Some(scenario::DEFAULT_SEED),
+            "{file}"
+        );
         let acceptance = committed_data(files::ACCEPTANCE_FILE, &model);
         let accuracy = evaluate(&model, &acceptance).accuracy;
         assert_abs_diff_eq!(accuracy, documented, epsilon = 1e-9);
-        assert!((0.90..=0.97).contains(&accuracy), "{file}: clean accuracy {accuracy}");
+        assert!(
+            (0.90..=0.97).contains(&accuracy),
+            "{file}: clean accuracy {accuracy}"
+        );
         let sklearn = reference[sklearn_key].as_f64().unwrap();
-        assert!((accuracy - sklearn).abs() <= allowed_gap, "{file}: {accuracy} vs scikit-learn {sklearn}");
+        assert!(
+            (accuracy - sklearn).abs() <= allowed_gap,
+            "{file}: {accuracy} vs scikit-learn {sklearn}"
+        );
     }
     // Shapes: softmax regression and 12-32-32-4.
-    assert_eq!(committed_model(models::LINEAR_FILE).network().hidden_sizes(), Vec::<usize>::new());
-    assert_eq!(committed_model(models::MLP_FILE).network().hidden_sizes(), vec![32, 32]);
+    assert_eq!(
+        committed_model(models::LINEAR_FILE)
+            .network()
+            .hidden_sizes(),
+        Vec::<usize>::new()
+    );
+    assert_eq!(
+        committed_model(models::MLP_FILE).network().hidden_sizes(),
+        vec![32, 32]
+    );
 }
 
 #[test]
 fn retraining_the_demo_models_gives_comparable_accuracy() {
     let data = generator::generate(scenario::DEFAULT_SEED);
-    let (linear, mlp) = models::train_demo_models(&data.train, scenario::DEFAULT_SEED).expect("trains");
+    let (linear, mlp) =
+        models::train_demo_models(&data.train, scenario::DEFAULT_SEED).expect("trains");
     let acceptance = data.acceptance.to_dataset();
     for (trained, file) in [(linear, models::LINEAR_FILE), (mlp, models::MLP_FILE)] {
         let fresh = evaluate(&trained.model, &acceptance).accuracy;
         let committed = evaluate(&committed_model(file), &acceptance).accuracy;
-        assert!((fresh - committed).abs() <= 0.02, "{file}: fresh {fresh}, committed {committed}");
+        assert!(
+            (fresh - committed).abs() <= 0.02,
+            "{file}: fresh {fresh}, committed {committed}"
+        );
     }
 }
 
@@ -152,7 +251,11 @@ fn demo_quick_runs_from_another_folder_and_writes_its_files() {
         .output()
         .expect("runs");
     let stdout = String::from_utf8_lossy(&output.stdout);
-    assert!(output.status.success(), "stdout:\n{stdout}\nstderr:\n{}", String::from_utf8_lossy(&output.stderr));
+    assert!(
+        output.status.success(),
+        "stdout:\n{stdout}\nstderr:\n{}",
+        String::from_utf8_lossy(&output.stderr)
+    );
     let out = work.path().join("out");
     for (name, text) in bundle::DATA_FILES {
         assert!(read(&out.join("demo-data").join(name)) == text, "{name}");
@@ -160,18 +263,26 @@ fn demo_quick_runs_from_another_folder_and_writes_its_files() {
     for (name, text) in bundle::MODEL_FILES {
         assert!(read(&out.join("models").join(name)) == text, "{name}");
     }
-    let retrained = Model::load(&out.join("models/pump-mlp-retrained.json")).expect("retrained model loads");
+    let retrained =
+        Model::load(&out.join("models/pump-mlp-retrained.json")).expect("retrained model loads");
     assert_eq!(retrained.name.as_deref(), Some("pump-mlp-retrained"));
     for stage in ["before", "after"] {
         let folder = out.join(stage);
         for file in ["report.json", "sheet.md", "sheet.html"] {
             assert!(folder.join(file).is_file(), "{stage}/{file} missing");
         }
-        let report: serde_json::Value = serde_json::from_str(&read(&folder.join("report.json"))).expect("JSON");
+        let report: serde_json::Value =
+            serde_json::from_str(&read(&folder.join("report.json"))).expect("JSON");
         assert_eq!(report["format"].as_str(), Some("ballast.report/1"));
         assert_eq!(report["summary"]["samples"].as_u64(), Some(48));
         let verdict = report["summary"]["verdict"].as_str().unwrap_or("");
-        assert!(["pass", "fail", "undecided"].contains(&verdict), "{stage}: verdict {verdict}");
-        assert!(stdout.contains(&format!("out/{stage}/report.json")), "summary lacks the {stage} report path");
+        assert!(
+            ["pass", "fail", "undecided"].contains(&verdict),
+            "{stage}: verdict {verdict}"
+        );
+        assert!(
+            stdout.contains(&format!("out/{stage}/report.json")),
+            "summary lacks the {stage} report path"
+        );
     }
 }

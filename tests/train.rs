@@ -68,6 +68,12 @@ fn check_gradient(
         }
     }
     assert!(checked > 0);
+    let size: f64 = analytic
+        .layers
+        .iter()
+        .map(|l| l.weights.iter().chain(l.bias.iter()).map(|v| v.abs()).sum::<f64>())
+        .sum();
+    assert!(size > 1e-6, "the analytic gradient is (nearly) zero: the check would be vacuous");
 }
 
 fn random_batch(dim: usize, samples: usize, seed: u64) -> DMatrix<f64> {
@@ -127,6 +133,7 @@ fn plain_trainer_matches_scikit_learn_on_digits() {
     };
     let (model, log) = train_cross_entropy(&initial, &train, &settings).expect("training runs");
     let test_accuracy = accuracy(&model, &test);
+    eprintln!("digits 64-32-10: test accuracy {test_accuracy:.4}, scikit-learn {target:.4}");
     assert!(
         test_accuracy >= target - 0.02,
         "test accuracy {test_accuracy:.4}, scikit-learn {target:.4} (best epoch {})",
@@ -136,6 +143,35 @@ fn plain_trainer_matches_scikit_learn_on_digits() {
     assert_eq!(model.layers.len(), 4);
     assert_eq!(model.layers[0], initial.layers[0]);
     assert_eq!(model.input, fixture.input);
+}
+
+// Outside reference: scikit-learn 1.9.1's MLPClassifier loss (sklearn.metrics.log_loss) and its
+// backpropagated gradients (MLPClassifier._backprop with alpha = 0) for the fixture 64-32-10 model on
+// the first 64 training rows, from tests/reference/train_reference.py
+// (tests/reference/out/train_gradients.json).
+#[test]
+fn loss_and_gradients_match_scikit_learn() {
+    let reference: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string("tests/reference/out/train_gradients.json").expect("reference"),
+    )
+    .expect("reference JSON");
+    let rows = reference["rows"].as_u64().expect("rows") as usize;
+    let fixture = fixture_model();
+    let data = digits("digits_train.csv", &fixture).subset(&(0..rows).collect::<Vec<_>>());
+    let network = fixture.network();
+    let (loss, gradient) = cross_entropy_gradient(&network, &data.features, &data.labels);
+    assert_relative_eq!(loss, reference["loss"].as_f64().expect("loss"), max_relative = 1e-9);
+    for (k, layer) in gradient.layers.iter().enumerate() {
+        let weights = &reference["weight_gradients"][k];
+        let bias = &reference["bias_gradients"][k];
+        for r in 0..layer.weights.nrows() {
+            for c in 0..layer.weights.ncols() {
+                let expected = weights[r][c].as_f64().expect("number");
+                assert_relative_eq!(layer.weights[(r, c)], expected, epsilon = 1e-12, max_relative = 1e-7);
+            }
+            assert_relative_eq!(layer.bias[r], bias[r].as_f64().expect("number"), epsilon = 1e-12, max_relative = 1e-7);
+        }
+    }
 }
 
 #[test]

@@ -15,6 +15,9 @@ use crate::model::Network;
 #[derive(Debug, Clone)]
 pub struct MarginGradient<'a> {
     network: &'a Network,
+    /// `transposed[k]` holds the weights of `layers[k]` row by row (column-major `Wᵀ`), so the backward
+    /// pass is a sum of contiguous rows that skips inactive units.
+    transposed: Vec<Vec<f64>>,
     /// `outputs[k]` is the output of `layers[k]`, after the ReLU for hidden layers.
     outputs: Vec<Vec<f64>>,
     /// Backward buffers: `backward[k]` holds the gradient with respect to the input of `layers[k]`.
@@ -34,8 +37,14 @@ impl<'a> MarginGradient<'a> {
             .iter()
             .map(|l| vec![0.0; l.input_dim()])
             .collect();
+        let transposed = network
+            .layers
+            .iter()
+            .map(|l| l.weights.transpose().as_slice().to_vec())
+            .collect();
         MarginGradient {
             network,
+            transposed,
             outputs,
             backward,
         }
@@ -105,25 +114,25 @@ impl<'a> MarginGradient<'a> {
             }
         }
         for k in (0..last).rev() {
-            let layer = &layers[k];
-            let rows = layer.output_dim();
-            let weights = layer.weights.as_slice();
+            let columns = layers[k].input_dim();
+            let rows_major = &self.transposed[k]; // row i of W is rows_major[i*columns..]
             let (lower, upper) = self.backward.split_at_mut(k + 1);
-            let upstream = &mut upper[0];
-            // ReLU mask: the output of layers[k] is positive exactly where the unit is active.
-            for (g, &h) in upstream.iter_mut().zip(&self.outputs[k]) {
-                if h <= 0.0 {
-                    *g = 0.0;
-                }
-            }
+            let upstream = &upper[0];
             let into = if k == 0 {
                 &mut *gradient
             } else {
                 &mut lower[k][..]
             };
-            for (j, g) in into.iter_mut().enumerate() {
-                let column = &weights[j * rows..(j + 1) * rows];
-                *g = column.iter().zip(upstream.iter()).map(|(w, u)| w * u).sum();
+            into.fill(0.0);
+            // ReLU mask: the output of layers[k] is positive exactly where the unit is active; inactive
+            // units pass no gradient.
+            for (i, (&u, &h)) in upstream.iter().zip(&self.outputs[k]).enumerate() {
+                if h > 0.0 && u != 0.0 {
+                    let row = &rows_major[i * columns..(i + 1) * columns];
+                    for (g, w) in into.iter_mut().zip(row) {
+                        *g += u * w;
+                    }
+                }
             }
         }
         margin
@@ -147,7 +156,12 @@ impl<'a> MarginGradient<'a> {
 ///
 /// # Panics
 /// If `x.len()` differs from the network's input size or `label` / `target` is not a logit index.
-pub fn margin_and_gradient(network: &Network, x: &[f64], label: usize, target: usize) -> (f64, Vec<f64>) {
+pub fn margin_and_gradient(
+    network: &Network,
+    x: &[f64],
+    label: usize,
+    target: usize,
+) -> (f64, Vec<f64>) {
     let mut buffers = MarginGradient::new(network);
     let mut gradient = vec![0.0; network.input_dim()];
     let margin = buffers.margin_and_gradient(x, label, target, &mut gradient);

@@ -16,7 +16,8 @@ pub mod step;
 pub use counterexample::{forbidden_margin, validate, Counterexample};
 pub use gradient::{margin_and_gradient, MarginGradient};
 pub use runner::{
-    attack_batch, attack_sample, sample_seed, AttackOutcome, AttackProblem, AttackSettings, StopReason,
+    attack_batch, attack_sample, sample_seed, AttackOutcome, AttackProblem, AttackSettings,
+    StopReason,
 };
 
 /// Misuse of the attack API (bad sizes, classes or settings); outcomes are never errors.

@@ -81,7 +81,9 @@ impl AttackSettings {
             )));
         }
         if self.patience == 0 {
-            return Err(AttackError::Settings("patience must be at least 1 step".into()));
+            return Err(AttackError::Settings(
+                "patience must be at least 1 step".into(),
+            ));
         }
         Ok(())
     }
@@ -175,7 +177,10 @@ fn check_problem(
         });
     }
     if label >= classes {
-        return Err(AttackError::Class { class: label, classes });
+        return Err(AttackError::Class {
+            class: label,
+            classes,
+        });
     }
     if let Some(&class) = forbidden.iter().find(|&&j| j >= classes) {
         return Err(AttackError::Class { class, classes });
@@ -196,7 +201,10 @@ pub fn attack_sample(
 ) -> Result<AttackOutcome, AttackError> {
     settings.check()?;
     check_problem(network, region, label, forbidden, extra_starts)?;
-    Ok(SampleSearch::new(network, region, label, forbidden, settings).run(sample_seed, extra_starts))
+    Ok(
+        SampleSearch::new(network, region, label, forbidden, settings)
+            .run(sample_seed, extra_starts),
+    )
 }
 
 /// Attacks every problem, in parallel over samples (rayon); sample `p` uses
@@ -378,7 +386,8 @@ impl<'a> SampleSearch<'a> {
         if self.found.is_none() && predicted != self.label && self.forbidden.contains(&predicted) {
             self.found = validate(self.network, self.region, self.label, self.forbidden, x);
         }
-        self.buffers.gradient_at_last(self.label, target, &mut self.gradient)
+        self.buffers
+            .gradient_at_last(self.label, target, &mut self.gradient)
     }
 
     fn pgd_run(&mut self, start: &[f64], loss: Loss) -> Control {

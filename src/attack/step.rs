@@ -73,7 +73,13 @@ pub fn random_start<R: Rng>(region: &Region, rng: &mut R, x: &mut [f64]) {
             let direction: Vec<f64> = region
                 .radii
                 .iter()
-                .map(|r| if *r > 0.0 { rng.sample(StandardNormal) } else { 0.0 })
+                .map(|r| {
+                    if *r > 0.0 {
+                        rng.sample(StandardNormal)
+                    } else {
+                        0.0
+                    }
+                })
                 .collect();
             let length = direction.iter().map(|d| d * d).sum::<f64>().sqrt();
             if length > 0.0 {

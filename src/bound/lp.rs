@@ -17,8 +17,6 @@
 //! solver's word; likewise if the reported optimum exceeds the true margin at the solver's own input
 //! point (which a sound bound never does), the linear bound is used.
 
-use nalgebra::DVector;
-
 use super::linear::{
     backward, checked_layer_bounds, intermediate_bounds, margin_rows, relax_given,
 };
@@ -212,7 +210,9 @@ fn solve(
                 .filter(|(_, a)| **a != 0.0)
                 .map(|(i, a)| (i, *a))
                 .collect();
-            program.constrain(terms, Sense::AtLeast, input_minimum);
+            // Loosened by a rounding slack so the cut never removes region points.
+            let slack = SOLVER_SLACK * (1.0 + input_minimum.abs());
+            program.constrain(terms, Sense::AtLeast, input_minimum - slack);
         }
         let objective: Vec<(usize, f64)> = last_units
             .iter()
@@ -248,7 +248,6 @@ fn solve(
             }
         }
     }
-    let _: &DVector<f64> = &constants;
     Ok(MarginBounds {
         method: Method::Lp,
         targets: targets.to_vec(),

@@ -41,7 +41,11 @@ fn io_error(path: &Path, e: impl std::fmt::Display) -> CertifyError {
 impl Journal {
     /// Starts a new journal at `path` (replacing any old one) with `fingerprint` in its header, then the
     /// `records` already known (when resuming). The rewrite is atomic.
-    pub fn create(path: &Path, fingerprint: &Value, records: &[SampleRecord]) -> Result<Journal, CertifyError> {
+    pub fn create(
+        path: &Path,
+        fingerprint: &Value,
+        records: &[SampleRecord],
+    ) -> Result<Journal, CertifyError> {
         let mut text = header_line(fingerprint);
         for r in records {
             text.push_str(&serde_json::to_string(r).expect("a record always serialises"));
@@ -82,7 +86,10 @@ impl Journal {
         let header: Value = serde_json::from_str(header.trim())
             .map_err(|e| io_error(path, format!("line 1: not a journal header ({e})")))?;
         if header.get("journal").and_then(Value::as_str) != Some(JOURNAL_FORMAT) {
-            return Err(io_error(path, format!("line 1: not a {JOURNAL_FORMAT} header")));
+            return Err(io_error(
+                path,
+                format!("line 1: not a {JOURNAL_FORMAT} header"),
+            ));
         }
         let found = header.get("fingerprint").cloned().unwrap_or(Value::Null);
         if let Some(difference) = first_difference(fingerprint, &found, "") {
@@ -119,7 +126,11 @@ pub fn first_difference(expected: &Value, found: &Value, path: &str) -> Option<S
     match (expected, found) {
         (Value::Object(a), Value::Object(b)) => {
             for (key, value) in a {
-                let here = if path.is_empty() { key.clone() } else { format!("{path}.{key}") };
+                let here = if path.is_empty() {
+                    key.clone()
+                } else {
+                    format!("{path}.{key}")
+                };
                 let other = b.get(key).unwrap_or(&Value::Null);
                 if let Some(d) = first_difference(value, other, &here) {
                     return Some(d);

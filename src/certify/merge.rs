@@ -29,7 +29,11 @@ pub fn merge(reports: &[Report]) -> Result<Report, CertifyError> {
     let expected = comparable(first);
     let count = match first.settings.shard {
         Some(s) => s.count,
-        None => return Err(CertifyError::Mismatch("report 1 is not a shard report (no --shard in its settings)".into())),
+        None => {
+            return Err(CertifyError::Mismatch(
+                "report 1 is not a shard report (no --shard in its settings)".into(),
+            ))
+        }
     };
     let mut seen = vec![false; count];
     for (n, r) in reports.iter().enumerate() {
@@ -40,7 +44,10 @@ pub fn merge(reports: &[Report]) -> Result<Report, CertifyError> {
             )));
         }
         let Some(s) = r.settings.shard else {
-            return Err(CertifyError::Mismatch(format!("report {} is not a shard report", n + 1)));
+            return Err(CertifyError::Mismatch(format!(
+                "report {} is not a shard report",
+                n + 1
+            )));
         };
         if s.count != count || s.index == 0 || s.index > count {
             return Err(CertifyError::Mismatch(format!(
@@ -51,7 +58,10 @@ pub fn merge(reports: &[Report]) -> Result<Report, CertifyError> {
             )));
         }
         if seen[s.index - 1] {
-            return Err(CertifyError::Mismatch(format!("shard {}/{count} is given twice", s.index)));
+            return Err(CertifyError::Mismatch(format!(
+                "shard {}/{count} is given twice",
+                s.index
+            )));
         }
         seen[s.index - 1] = true;
         if !r.complete {
@@ -63,14 +73,23 @@ pub fn merge(reports: &[Report]) -> Result<Report, CertifyError> {
         }
     }
     if let Some(missing) = seen.iter().position(|s| !s) {
-        return Err(CertifyError::Mismatch(format!("shard {}/{count} is missing", missing + 1)));
+        return Err(CertifyError::Mismatch(format!(
+            "shard {}/{count} is missing",
+            missing + 1
+        )));
     }
     let mut merged = first.clone();
     merged.settings.shard = None;
-    merged.samples = reports.iter().flat_map(|r| r.samples.iter().cloned()).collect();
+    merged.samples = reports
+        .iter()
+        .flat_map(|r| r.samples.iter().cloned())
+        .collect();
     merged.samples.sort_by_key(|s| s.index);
     if let Some(w) = merged.samples.windows(2).find(|w| w[0].index == w[1].index) {
-        return Err(CertifyError::Mismatch(format!("sample {} appears in two shards", w[0].index)));
+        return Err(CertifyError::Mismatch(format!(
+            "sample {} appears in two shards",
+            w[0].index
+        )));
     }
     merged.data.samples = merged.data.rows;
     if merged.samples.len() != merged.data.rows {

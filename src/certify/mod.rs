@@ -141,7 +141,16 @@ pub fn certify(
     sources: &Sources,
     options: &CertifyOptions,
 ) -> Result<Report, CertifyError> {
-    certify_run(model, data, requirement, sources, options, None, &Silent, &AtomicBool::new(false))
+    certify_run(
+        model,
+        data,
+        requirement,
+        sources,
+        options,
+        None,
+        &Silent,
+        &AtomicBool::new(false),
+    )
 }
 
 /// A journal for [`certify_run`]: where it lives and whether to resume from it.
@@ -197,7 +206,11 @@ pub fn certify_run(
         }
     }
     let finished: std::collections::HashSet<usize> = done.iter().map(|r| r.index).collect();
-    let pending: Vec<usize> = indices.iter().copied().filter(|i| !finished.contains(i)).collect();
+    let pending: Vec<usize> = indices
+        .iter()
+        .copied()
+        .filter(|i| !finished.contains(i))
+        .collect();
     let mut writer = match journal {
         Some(j) => Some(journal::Journal::create(&j.path, &fingerprint, &done)?),
         None => None,
@@ -212,7 +225,16 @@ pub fn certify_run(
             None => Ok(()),
         }
     });
-    let result = pipeline::run(model, data, requirement, &options.pipeline, &pending, observer, cancel, &sink);
+    let result = pipeline::run(
+        model,
+        data,
+        requirement,
+        &options.pipeline,
+        &pending,
+        observer,
+        cancel,
+        &sink,
+    );
     observer.end();
     let new = result?;
     done.extend(new);
@@ -224,7 +246,11 @@ pub fn certify_run(
     Ok(report)
 }
 
-fn check_inputs(model: &Model, data: &Dataset, requirement: &Requirement) -> Result<(), CertifyError> {
+fn check_inputs(
+    model: &Model,
+    data: &Dataset,
+    requirement: &Requirement,
+) -> Result<(), CertifyError> {
     let dim = model.input.dim;
     if data.features.nrows() != dim {
         return Err(CertifyError::Invalid(format!(
@@ -273,8 +299,12 @@ fn empty_report(
             path: sources.model_path.clone(),
             sha256: sources.model_sha256.clone(),
             name: model.name.clone(),
-            classes: (0..model.class_count()).map(|c| model.class_name(c)).collect(),
-            features: (0..model.input.dim).map(|i| model.feature_name(i)).collect(),
+            classes: (0..model.class_count())
+                .map(|c| model.class_name(c))
+                .collect(),
+            features: (0..model.input.dim)
+                .map(|i| model.feature_name(i))
+                .collect(),
             parameters: model.parameter_count(),
         },
         data: DataInfo {
@@ -337,8 +367,17 @@ pub fn write_counterexamples(report: &Report, path: &Path) -> Result<usize, Cert
         "distance".into(),
     ];
     header.extend(report.model.features.iter().cloned());
-    writer.write_record(&header).map_err(|e| output(e.to_string()))?;
-    let class = |c: usize| report.model.classes.get(c).cloned().unwrap_or_else(|| c.to_string());
+    writer
+        .write_record(&header)
+        .map_err(|e| output(e.to_string()))?;
+    let class = |c: usize| {
+        report
+            .model
+            .classes
+            .get(c)
+            .cloned()
+            .unwrap_or_else(|| c.to_string())
+    };
     let mut rows = 0;
     for s in &report.samples {
         let outcomes: Vec<(f64, &report::CounterexampleRecord)> = if s.sweep.is_empty() {
@@ -361,7 +400,9 @@ pub fn write_counterexamples(report: &Report, path: &Path) -> Result<usize, Cert
                 format!("{}", c.distance),
             ];
             row.extend(c.features.iter().map(|v| format!("{v}")));
-            writer.write_record(&row).map_err(|e| output(e.to_string()))?;
+            writer
+                .write_record(&row)
+                .map_err(|e| output(e.to_string()))?;
             rows += 1;
         }
     }

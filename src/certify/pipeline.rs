@@ -122,6 +122,7 @@ struct Context<'a> {
 /// given. `sink` is called once per finished sample (under a lock, from worker threads), e.g. to append
 /// to a journal; `cancel` stops the run before the next sample starts (finished samples are kept,
 /// unstarted ones are left out of the result).
+#[allow(clippy::too_many_arguments)]
 pub fn run(
     model: &Model,
     data: &Dataset,
@@ -173,7 +174,10 @@ struct IntervalResult {
     seconds: f64,
 }
 
-fn batch_interval(context: &Context, indices: &[usize]) -> Result<Vec<IntervalResult>, CertifyError> {
+fn batch_interval(
+    context: &Context,
+    indices: &[usize],
+) -> Result<Vec<IntervalResult>, CertifyError> {
     let model = context.model;
     let classes = context.network.output_dim();
     let dim = model.input.dim;
@@ -208,15 +212,27 @@ fn batch_interval(context: &Context, indices: &[usize]) -> Result<Vec<IntervalRe
             .map(|chunk| {
                 let regions: Vec<Region> = chunk
                     .iter()
-                    .map(|(i, _)| budget.region(context.data.sample(*i), &model.input.lower, &model.input.upper))
+                    .map(|(i, _)| {
+                        budget.region(
+                            context.data.sample(*i),
+                            &model.input.lower,
+                            &model.input.upper,
+                        )
+                    })
                     .collect();
-                let labels: Vec<usize> = chunk.iter().map(|(i, _)| context.data.labels[*i]).collect();
+                let labels: Vec<usize> =
+                    chunk.iter().map(|(i, _)| context.data.labels[*i]).collect();
                 let targets: Vec<Vec<usize>> = chunk.iter().map(|(_, f)| f.clone()).collect();
-                let bounds = bound::interval::batch_margin_lower_bounds(&context.network, &regions, &labels, &targets)
-                    .map_err(|e| CertifyError::Bound {
-                        index: chunk[0].0,
-                        message: e.to_string(),
-                    })?;
+                let bounds = bound::interval::batch_margin_lower_bounds(
+                    &context.network,
+                    &regions,
+                    &labels,
+                    &targets,
+                )
+                .map_err(|e| CertifyError::Bound {
+                    index: chunk[0].0,
+                    message: e.to_string(),
+                })?;
                 Ok(bounds
                     .margins
                     .iter()
@@ -246,7 +262,11 @@ struct Attempt {
     counterexample: Option<CounterexampleRecord>,
 }
 
-fn decide_sample(context: &Context, index: usize, interval: &IntervalResult) -> Result<SampleRecord, CertifyError> {
+fn decide_sample(
+    context: &Context,
+    index: usize,
+    interval: &IntervalResult,
+) -> Result<SampleRecord, CertifyError> {
     let start = Instant::now();
     let model = context.model;
     let requirement = context.requirement;
@@ -255,7 +275,9 @@ fn decide_sample(context: &Context, index: usize, interval: &IntervalResult) -> 
     let label = context.data.labels[index];
     let logits: Vec<f64> = network.forward(x).iter().copied().collect();
     let predicted = predicted_class(&logits);
-    let forbidden = requirement.targets.forbidden_for(label, network.output_dim());
+    let forbidden = requirement
+        .targets
+        .forbidden_for(label, network.output_dim());
     let mut stage_seconds = std::collections::BTreeMap::new();
     let epsilons = &requirement.epsilons;
     let mut outcomes: Vec<Attempt> = Vec::with_capacity(epsilons.len());
@@ -277,9 +299,11 @@ fn decide_sample(context: &Context, index: usize, interval: &IntervalResult) -> 
         *stage_seconds.entry(Stage::Interval).or_insert(0.0) += interval.seconds;
         let mut earlier: Option<CounterexampleRecord> = None;
         for (k, &eps) in epsilons.iter().enumerate() {
-            let region = requirement
-                .budget(eps, model.input.dim)
-                .region(x, &model.input.lower, &model.input.upper);
+            let region = requirement.budget(eps, model.input.dim).region(
+                x,
+                &model.input.lower,
+                &model.input.upper,
+            );
             // A counterexample of a smaller epsilon lies in this (larger) region too; re-validated.
             let reused = earlier
                 .as_ref()
@@ -308,7 +332,9 @@ fn decide_sample(context: &Context, index: usize, interval: &IntervalResult) -> 
         }
         // Certified at a larger epsilon ⇒ certified at every smaller one (the region is a subset).
         for k in (0..outcomes.len().saturating_sub(1)).rev() {
-            if outcomes[k + 1].status == Status::Certified && outcomes[k].status == Status::Unresolved {
+            if outcomes[k + 1].status == Status::Certified
+                && outcomes[k].status == Status::Unresolved
+            {
                 outcomes[k].status = Status::Certified;
                 outcomes[k].stage = Stage::Reused;
                 if let Some(m) = outcomes[k + 1].margin_lower {
@@ -318,10 +344,7 @@ fn decide_sample(context: &Context, index: usize, interval: &IntervalResult) -> 
         }
     }
     let radius = if context.options.radius && predicted == label && !forbidden.is_empty() {
-        let t = Instant::now();
-        let r = certified_radius(context, x, label, &forbidden, &outcomes)?;
-        *stage_seconds.entry(Stage::Linear).or_insert(0.0) += t.elapsed().as_secs_f64();
-        Some(r)
+        Some(certified_radius(context, x, label, &forbidden, &outcomes)?)
     } else {
         None
     };
@@ -357,7 +380,13 @@ fn decide_sample(context: &Context, index: usize, interval: &IntervalResult) -> 
 }
 
 /// Re-validates a candidate point and turns it into a record (`None` if it is not a counterexample).
-fn checked(network: &Network, region: &Region, label: usize, forbidden: &[usize], x: &[f64]) -> Option<CounterexampleRecord> {
+fn checked(
+    network: &Network,
+    region: &Region,
+    label: usize,
+    forbidden: &[usize],
+    x: &[f64],
+) -> Option<CounterexampleRecord> {
     attack::validate(network, region, label, forbidden, x).map(|c| CounterexampleRecord {
         new_class: c.predicted,
         distance: c.distance,
@@ -372,7 +401,11 @@ fn best(a: Option<f64>, b: f64) -> Option<f64> {
     Some(a.map_or(b, |a| a.max(b)))
 }
 
-fn add_time(stage_seconds: &mut std::collections::BTreeMap<Stage, f64>, stage: Stage, since: Instant) {
+fn add_time(
+    stage_seconds: &mut std::collections::BTreeMap<Stage, f64>,
+    stage: Stage,
+    since: Instant,
+) {
     *stage_seconds.entry(stage).or_insert(0.0) += since.elapsed().as_secs_f64();
 }
 
@@ -405,11 +438,12 @@ fn decide_region(
         let t = Instant::now();
         let settings = quick_attack_settings(options.seed);
         let seed = attack::sample_seed(options.seed, index);
-        let outcome = attack::attack_sample(network, region, label, forbidden, &settings, seed, &[])
-            .map_err(|e| CertifyError::Attack {
-                index,
-                message: e.to_string(),
-            })?;
+        let outcome =
+            attack::attack_sample(network, region, label, forbidden, &settings, seed, &[])
+                .map_err(|e| CertifyError::Attack {
+                    index,
+                    message: e.to_string(),
+                })?;
         add_time(stage_seconds, Stage::Attack, t);
         last = Stage::Attack;
         if let AttackOutcome::Found(c) = outcome {
@@ -465,7 +499,8 @@ fn decide_region(
         let t = Instant::now();
         let deadline = t + Duration::from_secs_f64(options.budget_seconds);
         let seed = attack::sample_seed(options.seed, index);
-        let found = super::search_stage::run(network, region, label, forbidden, deadline, seed, index)?;
+        let found =
+            super::search_stage::run(network, region, label, forbidden, deadline, seed, index)?;
         add_time(stage_seconds, Stage::Search, t);
         last = Stage::Search;
         match found {
@@ -500,16 +535,31 @@ fn decide_region(
 
 /// True when the sound bounds (interval, then the configured linear methods except LP) certify the
 /// region at `scale`.
-fn bounds_certify(context: &Context, x: &[f64], label: usize, forbidden: &[usize], scale: f64) -> Result<bool, CertifyError> {
+fn bounds_certify(
+    context: &Context,
+    x: &[f64],
+    label: usize,
+    forbidden: &[usize],
+    scale: f64,
+) -> Result<bool, CertifyError> {
     let model = context.model;
-    let region = context
-        .requirement
-        .budget(scale, model.input.dim)
-        .region(x, &model.input.lower, &model.input.upper);
+    let region = context.requirement.budget(scale, model.input.dim).region(
+        x,
+        &model.input.lower,
+        &model.input.upper,
+    );
     let mut methods = vec![Method::Interval];
-    methods.extend(context.options.methods.iter().copied().filter(|m| *m != Method::Lp));
+    methods.extend(
+        context
+            .options
+            .methods
+            .iter()
+            .copied()
+            .filter(|m| *m != Method::Lp),
+    );
     for method in methods {
-        match bound::margin_lower_bounds(&context.network, &region, label, forbidden, method, None) {
+        match bound::margin_lower_bounds(&context.network, &region, label, forbidden, method, None)
+        {
             Ok(b) if b.certified() => return Ok(true),
             Ok(_) | Err(bound::BoundError::Solver { .. }) => {}
             Err(e) => {
@@ -552,7 +602,11 @@ fn certified_radius(
     let mut high = match high {
         Some(h) => h,
         None => {
-            let mut h = if low > 0.0 { low * 2.0 } else { context.requirement.epsilon().max(1e-3) };
+            let mut h = if low > 0.0 {
+                low * 2.0
+            } else {
+                context.requirement.epsilon().max(1e-3)
+            };
             let mut doublings = 0;
             while doublings < 10 && bounds_certify(context, x, label, forbidden, h)? {
                 low = h;

@@ -29,8 +29,10 @@ impl TerminalProgress {
         };
         let bar = ProgressBar::with_draw_target(Some(0), target);
         bar.set_style(
-            ProgressStyle::with_template("{bar:30} {pos}/{len} samples  {msg}  [{elapsed_precise}]")
-                .unwrap_or_else(|_| ProgressStyle::default_bar()),
+            ProgressStyle::with_template(
+                "{bar:30} {pos}/{len} samples  {msg}  [{elapsed_precise}]",
+            )
+            .unwrap_or_else(|_| ProgressStyle::default_bar()),
         );
         TerminalProgress {
             bar,

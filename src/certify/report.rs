@@ -419,7 +419,10 @@ pub struct RequirementRecord {
 
 impl RequirementRecord {
     /// Records `requirement` (class names for the description from `class_name`).
-    pub fn new(requirement: &Requirement, class_name: &dyn Fn(usize) -> String) -> RequirementRecord {
+    pub fn new(
+        requirement: &Requirement,
+        class_name: &dyn Fn(usize) -> String,
+    ) -> RequirementRecord {
         let (forbid_into, forbid_from) = match &requirement.targets {
             Targets::Any => (Vec::new(), None),
             Targets::Into { classes, from } => (classes.clone(), from.clone()),
@@ -587,7 +590,8 @@ impl Report {
         self.summary = summarize(&counts, &requirement);
         self.sweep = (0..requirement.epsilons.len())
             .map(|k| {
-                let counts = Counts::from_statuses(self.samples.iter().map(|s| s.status_at(k)), total);
+                let counts =
+                    Counts::from_statuses(self.samples.iter().map(|s| s.status_at(k)), total);
                 SweepPoint {
                     epsilon: requirement.epsilons[k],
                     summary: summarize(&counts, &requirement),
@@ -605,7 +609,13 @@ impl Report {
                     count(Status::Misclassified),
                     count(Status::Unresolved),
                 );
-                let frac = |k: usize| if n == 0 { None } else { Some(k as f64 / n as f64) };
+                let frac = |k: usize| {
+                    if n == 0 {
+                        None
+                    } else {
+                        Some(k as f64 / n as f64)
+                    }
+                };
                 ClassFigures {
                     class: c,
                     name: self.model.classes[c].clone(),
@@ -623,9 +633,14 @@ impl Report {
         let mut stages: BTreeMap<Stage, StageFigures> = BTreeMap::new();
         for s in &self.samples {
             for (stage, seconds) in &s.stage_seconds {
-                stages.entry(*stage).or_insert_with(|| StageFigures::empty(*stage)).seconds += seconds;
+                stages
+                    .entry(*stage)
+                    .or_insert_with(|| StageFigures::empty(*stage))
+                    .seconds += seconds;
             }
-            let entry = stages.entry(s.stage).or_insert_with(|| StageFigures::empty(s.stage));
+            let entry = stages
+                .entry(s.stage)
+                .or_insert_with(|| StageFigures::empty(s.stage));
             match s.status {
                 Status::Certified => entry.certified += 1,
                 Status::Counterexample | Status::Misclassified => entry.refuted += 1,
@@ -714,24 +729,41 @@ mod tests {
         }
     }
 
-    fn counts(certified: usize, counterexample: usize, misclassified: usize, unresolved: usize) -> Counts {
+    fn counts(
+        certified: usize,
+        counterexample: usize,
+        misclassified: usize,
+        unresolved: usize,
+    ) -> Counts {
         let statuses = std::iter::repeat_n(Status::Certified, certified)
             .chain(std::iter::repeat_n(Status::Counterexample, counterexample))
             .chain(std::iter::repeat_n(Status::Misclassified, misclassified))
             .chain(std::iter::repeat_n(Status::Unresolved, unresolved));
-        Counts::from_statuses(statuses, certified + counterexample + misclassified + unresolved)
+        Counts::from_statuses(
+            statuses,
+            certified + counterexample + misclassified + unresolved,
+        )
     }
 
     #[test]
     fn verdict_follows_the_floor() {
         let c = counts(80, 10, 5, 5); // certified 0.80, empirical 0.85
         assert_eq!(decide(&c, &requirement(Some(0.8), None)).0, Verdict::Pass);
-        assert_eq!(decide(&c, &requirement(Some(0.82), None)).0, Verdict::Undecided);
-        assert_eq!(decide(&c, &requirement(Some(0.85), None)).0, Verdict::Undecided);
+        assert_eq!(
+            decide(&c, &requirement(Some(0.82), None)).0,
+            Verdict::Undecided
+        );
+        assert_eq!(
+            decide(&c, &requirement(Some(0.85), None)).0,
+            Verdict::Undecided
+        );
         assert_eq!(decide(&c, &requirement(Some(0.86), None)).0, Verdict::Fail);
         assert_eq!(decide(&c, &requirement(None, None)).0, Verdict::None);
         let exact = counts(80, 15, 5, 0);
-        assert_eq!(decide(&exact, &requirement(Some(0.81), None)).0, Verdict::Fail);
+        assert_eq!(
+            decide(&exact, &requirement(Some(0.81), None)).0,
+            Verdict::Fail
+        );
     }
 
     #[test]
@@ -740,7 +772,10 @@ mod tests {
         let (v, by, lower) = decide(&c, &requirement(Some(0.98), Some(0.95)));
         assert_eq!((v, by), (Verdict::Fail, DecidedBy::ConfidenceBound));
         approx::assert_abs_diff_eq!(lower.unwrap(), 0.05f64.powf(0.01), epsilon = 1e-12);
-        assert_eq!(decide(&c, &requirement(Some(0.97), Some(0.95))).0, Verdict::Pass);
+        assert_eq!(
+            decide(&c, &requirement(Some(0.97), Some(0.95))).0,
+            Verdict::Pass
+        );
     }
 
     #[test]

@@ -7,8 +7,8 @@
 use std::time::Instant;
 
 use super::CertifyError;
-use crate::search::{self, SearchSettings, Verdict};
 use crate::model::Network;
+use crate::search::{self, SearchSettings, Verdict};
 use crate::threat::Region;
 
 /// What the search established within its deadline.
@@ -37,10 +37,13 @@ pub fn run(
         seed,
         ..SearchSettings::default()
     };
-    let outcome = search::verify_sample(network, region, label, forbidden, &settings).map_err(|e| CertifyError::Search {
-        index,
-        message: e.to_string(),
-    })?;
+    let outcome =
+        search::verify_sample(network, region, label, forbidden, &settings).map_err(|e| {
+            CertifyError::Search {
+                index,
+                message: e.to_string(),
+            }
+        })?;
     Ok(match outcome.verdict {
         Verdict::Proved { .. } => Found::Proved,
         Verdict::Counterexample(c) => Found::Counterexample(c.input),

@@ -35,7 +35,11 @@ fn check(successes: usize, samples: usize, confidence: f64) -> Result<(), Statis
 }
 
 /// One-sided Clopper–Pearson lower bound on the fraction, at `confidence` (e.g. 0.95).
-pub fn clopper_pearson_lower(successes: usize, samples: usize, confidence: f64) -> Result<f64, StatisticsError> {
+pub fn clopper_pearson_lower(
+    successes: usize,
+    samples: usize,
+    confidence: f64,
+) -> Result<f64, StatisticsError> {
     check(successes, samples, confidence)?;
     if successes == 0 {
         return Ok(0.0);
@@ -51,7 +55,11 @@ pub fn clopper_pearson_lower(successes: usize, samples: usize, confidence: f64) 
 }
 
 /// One-sided Clopper–Pearson upper bound on the fraction, at `confidence`.
-pub fn clopper_pearson_upper(successes: usize, samples: usize, confidence: f64) -> Result<f64, StatisticsError> {
+pub fn clopper_pearson_upper(
+    successes: usize,
+    samples: usize,
+    confidence: f64,
+) -> Result<f64, StatisticsError> {
     check(successes, samples, confidence)?;
     if successes == samples {
         return Ok(1.0);

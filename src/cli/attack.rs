@@ -164,7 +164,11 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
 /// Writes the counterexamples CSV atomically: `sample,label,new_class,distance`, then one column per
 /// feature (named by [`Model::feature_name`]). Classes are written by name ([`Model::class_name`]),
 /// numbers in shortest round-trip form.
-pub fn write_counterexamples(path: &Path, model: &Model, summary: &AttackSummary) -> anyhow::Result<()> {
+pub fn write_counterexamples(
+    path: &Path,
+    model: &Model,
+    summary: &AttackSummary,
+) -> anyhow::Result<()> {
     let mut writer = csv::Writer::from_writer(Vec::new());
     let mut header = vec![
         "sample".to_string(),

@@ -11,18 +11,23 @@ use std::sync::Arc;
 
 use anyhow::{bail, Context};
 
-use super::common::{load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument};
+use super::common::{
+    load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument,
+};
 use super::Outcome;
 use crate::certify::journal::journal_path;
 use crate::certify::progress::TerminalProgress;
 use crate::certify::{
-    certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report, Shard, Sources, Verdict,
+    certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report,
+    Shard, Sources, Verdict,
 };
 use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 
 /// Arguments of `ballast certify`.
 #[derive(Debug, clap::Args)]
-#[command(after_help = "Examples:\n  ballast certify --model m.json --data acceptance.csv --eps 0.05 --floor 0.9 --report r.json --sheet sheet/\n  ballast certify --model m.json --data d.csv --eps tolerances.csv --forbid-into normal --floor 0.95\n  ballast certify --model m.json --data d.csv --eps 0.01,0.02,0.05 --radius --report sweep.json\n\nExit codes: 0 requirement met (or no floor and finished), 1 not met, 2 usage or input error, 3 undecided, 130/143 interrupted.")]
+#[command(
+    after_help = "Examples:\n  ballast certify --model m.json --data acceptance.csv --eps 0.05 --floor 0.9 --report r.json --sheet sheet/\n  ballast certify --model m.json --data d.csv --eps tolerances.csv --forbid-into normal --floor 0.95\n  ballast certify --model m.json --data d.csv --eps 0.01,0.02,0.05 --radius --report sweep.json\n\nExit codes: 0 requirement met (or no floor and finished), 1 not met, 2 usage or input error, 3 undecided, 130/143 interrupted."
+)]
 pub struct Args {
     /// The model file (ballast.model/1 JSON).
     #[arg(long)]
@@ -94,12 +99,18 @@ pub struct Args {
 pub fn parse_shard(text: &str) -> anyhow::Result<Shard> {
     let parts: Vec<&str> = text.split('/').collect();
     let parsed = if parts.len() == 2 {
-        parts[0].trim().parse::<usize>().ok().zip(parts[1].trim().parse::<usize>().ok())
+        parts[0]
+            .trim()
+            .parse::<usize>()
+            .ok()
+            .zip(parts[1].trim().parse::<usize>().ok())
     } else {
         None
     };
     match parsed {
-        Some((index, count)) if count >= 1 && (1..=count).contains(&index) => Ok(Shard { index, count }),
+        Some((index, count)) if count >= 1 && (1..=count).contains(&index) => {
+            Ok(Shard { index, count })
+        }
         _ => bail!("--shard: \"{text}\" is not allowed, expected K/N with 1 ≤ K ≤ N (e.g. 2/4)"),
     }
 }
@@ -124,13 +135,21 @@ fn flags_spec(args: &Args) -> anyhow::Result<RequirementSpec> {
         spec.norm = Some((parse_norm(n)?, "--norm".into()));
     }
     spec.floor = args.floor.map(|v| (v, "--floor".to_string()));
-    spec.min_clean_accuracy = args.min_clean_accuracy.map(|v| (v, "--min-clean-accuracy".to_string()));
+    spec.min_clean_accuracy = args
+        .min_clean_accuracy
+        .map(|v| (v, "--min-clean-accuracy".to_string()));
     spec.confidence = args.confidence.map(|v| (v, "--confidence".to_string()));
     if let Some(f) = &args.forbid_into {
-        spec.forbid_into = Some((parse_class_list(f, "--forbid-into")?, "--forbid-into".into()));
+        spec.forbid_into = Some((
+            parse_class_list(f, "--forbid-into")?,
+            "--forbid-into".into(),
+        ));
     }
     if let Some(f) = &args.forbid_from {
-        spec.forbid_from = Some((parse_class_list(f, "--forbid-from")?, "--forbid-from".into()));
+        spec.forbid_from = Some((
+            parse_class_list(f, "--forbid-from")?,
+            "--forbid-from".into(),
+        ));
     }
     Ok(spec)
 }
@@ -158,7 +177,10 @@ pub fn counterexample_path(report: &Path) -> PathBuf {
 pub fn run(args: Args) -> anyhow::Result<Outcome> {
     // Validate everything before any work or output.
     if !(args.budget.is_finite() && args.budget >= 0.0) {
-        bail!("--budget: {} is not allowed, expected seconds ≥ 0", args.budget);
+        bail!(
+            "--budget: {} is not allowed, expected seconds ≥ 0",
+            args.budget
+        );
     }
     if args.resume && args.report.is_none() {
         bail!("--resume needs --report (the journal lives beside the report)");
@@ -170,14 +192,20 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         Some(p) => RequirementSpec::from_file(p)?,
         None => RequirementSpec::default(),
     };
-    let requirement = file_spec.overridden_by(flags_spec(&args)?).resolve(&model)?;
+    let requirement = file_spec
+        .overridden_by(flags_spec(&args)?)
+        .resolve(&model)?;
     if let Some(report) = &args.report {
         check_writable_folder(report)?;
         if args.resume && !journal_path(report).is_file() {
-            bail!("--resume: no journal at {} to continue from", journal_path(report).display());
+            bail!(
+                "--resume: no journal at {} to continue from",
+                journal_path(report).display()
+            );
         }
     }
-    let sources = Sources::from_files(&args.model, &args.data).context("reading inputs for their digests")?;
+    let sources =
+        Sources::from_files(&args.model, &args.data).context("reading inputs for their digests")?;
     let options = CertifyOptions {
         pipeline: PipelineOptions {
             budget_seconds: args.budget,
@@ -204,11 +232,25 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         signal_hook::flag::register_usize(s, Arc::clone(&signal), s as usize)?;
     }
     let progress = TerminalProgress::new();
-    let mut report = certify_run(&model, &data, &requirement, &sources, &options, journal.as_ref(), &progress, &cancel)?;
+    let mut report = certify_run(
+        &model,
+        &data,
+        &requirement,
+        &sources,
+        &options,
+        journal.as_ref(),
+        &progress,
+        &cancel,
+    )?;
     let interrupted = signal.load(Ordering::SeqCst);
 
     if let Some(path) = &args.report {
-        if report.summary.counterexample > 0 || report.samples.iter().any(|s| s.sweep.iter().any(|o| o.counterexample.is_some())) {
+        if report.summary.counterexample > 0
+            || report
+                .samples
+                .iter()
+                .any(|s| s.sweep.iter().any(|o| o.counterexample.is_some()))
+        {
             let csv = counterexample_path(path);
             write_counterexamples(&report, &csv)?;
             report.counterexamples = csv.file_name().map(|n| n.to_string_lossy().into_owned());
@@ -221,7 +263,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     }
     print_summary(&report);
     if interrupted != 0 || !report.complete {
-        let s = if interrupted != 0 { interrupted as i32 } else { signal_hook::consts::SIGINT };
+        let s = if interrupted != 0 {
+            interrupted as i32
+        } else {
+            signal_hook::consts::SIGINT
+        };
         eprintln!(
             "interrupted: {} of {} samples finished; continue with --resume",
             report.samples.len(),
@@ -248,8 +294,14 @@ pub fn print_summary(report: &Report) {
     let s = &report.summary;
     println!("samples: {}", s.samples);
     println!("clean accuracy: {:.4}", s.clean_accuracy);
-    println!("certified accuracy (lower bound): {:.4}", s.certified_accuracy);
-    println!("empirical robust accuracy (upper bound): {:.4}", s.empirical_robust_accuracy);
+    println!(
+        "certified accuracy (lower bound): {:.4}",
+        s.certified_accuracy
+    );
+    println!(
+        "empirical robust accuracy (upper bound): {:.4}",
+        s.empirical_robust_accuracy
+    );
     if let Some(l) = s.certified_lower_bound {
         println!("certified lower confidence bound: {l:.4}");
     }
@@ -261,7 +313,10 @@ pub fn print_summary(report: &Report) {
         for p in &report.sweep {
             println!(
                 "  eps {}: certified {:.4}, empirical {:.4}, unresolved {}",
-                p.epsilon, p.summary.certified_accuracy, p.summary.empirical_robust_accuracy, p.summary.unresolved
+                p.epsilon,
+                p.summary.certified_accuracy,
+                p.summary.empirical_robust_accuracy,
+                p.summary.unresolved
             );
         }
     }

@@ -10,7 +10,9 @@ use crate::demo::pipeline::{describe, run_demo, DemoOptions, QUICK_ROWS};
 
 /// Arguments of `ballast demo`.
 #[derive(Debug, clap::Args)]
-#[command(after_help = "Example: ballast demo --out ballast-demo\n\nSee docs/demo-scenario.md for the scenario.")]
+#[command(
+    after_help = "Example: ballast demo --out ballast-demo\n\nSee docs/demo-scenario.md for the scenario."
+)]
 pub struct Args {
     /// Folder for the demo files, models, reports and sheets (created if missing).
     #[arg(long, default_value = "ballast-demo")]

@@ -33,8 +33,7 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
         return Ok(super::Outcome::Finished);
     }
     let folder = args.out.join("models");
-    std::fs::create_dir_all(&folder)
-        .map_err(|e| anyhow::anyhow!("{}: {e}", folder.display()))?;
+    std::fs::create_dir_all(&folder).map_err(|e| anyhow::anyhow!("{}: {e}", folder.display()))?;
     let (linear, mlp) = models::train_demo_models(&data.train, args.seed)?;
     let acceptance = data.acceptance.to_dataset();
     for (file, trained) in [(models::LINEAR_FILE, &linear), (models::MLP_FILE, &mlp)] {

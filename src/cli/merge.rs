@@ -11,7 +11,9 @@ use super::sheet::read_report;
 
 /// Arguments of `ballast merge`.
 #[derive(Debug, clap::Args)]
-#[command(after_help = "Example: ballast merge shard-1.json shard-2.json shard-3.json --out report.json --sheet sheet/")]
+#[command(
+    after_help = "Example: ballast merge shard-1.json shard-2.json shard-3.json --out report.json --sheet sheet/"
+)]
 pub struct Args {
     /// The shard reports (all N of them, any order).
     #[arg(required = true)]

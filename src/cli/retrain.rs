@@ -37,16 +37,23 @@ pub struct Args {
     pub acceptance: Option<PathBuf>,
     /// The budget: one number, or a per-feature tolerance file (radius = tolerance).
     #[arg(long)]
-    pub eps: String,
-    /// Norm of the ball: linf or l2.
-    #[arg(long, default_value = "linf")]
-    pub norm: String,
+    pub eps: Option<String>,
+    /// Norm of the ball: linf or l2 (default linf).
+    #[arg(long)]
+    pub norm: Option<String>,
     /// Required certified fraction on the acceptance data.
     #[arg(long)]
-    pub floor: f64,
+    pub floor: Option<f64>,
+    /// A requirement file (TOML or JSON: epsilon, tolerances, norm, floor, forbid_into, forbid_from);
+    /// flags override its values.
+    #[arg(long)]
+    pub requirement: Option<PathBuf>,
     /// Only changes into these classes count (names or indices, comma-separated).
     #[arg(long)]
     pub forbid_into: Option<String>,
+    /// True classes the --forbid-into restriction applies to (names or indices, comma-separated).
+    #[arg(long)]
+    pub forbid_from: Option<String>,
     /// Epochs of the first round.
     #[arg(long, default_value_t = 30)]
     pub epochs: usize,
@@ -130,8 +137,10 @@ pub fn sheet_folder(out: &Path) -> PathBuf {
 /// Runs `ballast retrain`.
 pub fn run(args: Args) -> anyhow::Result<Outcome> {
     // Validate the plain values first.
-    if !(0.0..=1.0).contains(&args.floor) {
-        bail!("--floor: {} is not allowed, expected a fraction in [0, 1]", args.floor);
+    if let Some(floor) = args.floor {
+        if !(0.0..=1.0).contains(&floor) {
+            bail!("--floor: {floor} is not allowed, expected a fraction in [0, 1]");
+        }
     }
     if args.epochs == 0 {
         bail!("--epochs: must be at least 1");
@@ -166,7 +175,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     };
     let constraint = match args.constraint.as_str() {
         "error" => Constraint::RobustError {
-            floor: args.floor,
+            floor: args.floor.unwrap_or(0.0),
             slack: args.slack,
         },
         "loss" => match args.level {
@@ -203,17 +212,36 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     };
 
     let mut spec = RequirementSpec::default();
-    match parse_epsilon_argument(&args.eps)? {
-        EpsilonArgument::Values(v) if v.len() == 1 => spec.epsilons = Some((v, "--eps".into())),
-        EpsilonArgument::Values(_) => bail!("--eps: retraining takes one epsilon, not a sweep"),
-        EpsilonArgument::ToleranceFile(p) => spec.tolerances = Some((ToleranceSource::File(p), "--eps".into())),
+    if let Some(eps) = &args.eps {
+        match parse_epsilon_argument(eps)? {
+            EpsilonArgument::Values(v) if v.len() == 1 => spec.epsilons = Some((v, "--eps".into())),
+            EpsilonArgument::Values(_) => bail!("--eps: retraining takes one epsilon, not a sweep"),
+            EpsilonArgument::ToleranceFile(p) => {
+                spec.tolerances = Some((ToleranceSource::File(p), "--eps".into()))
+            }
+        }
     }
-    spec.norm = Some((parse_norm(&args.norm)?, "--norm".into()));
-    spec.floor = Some((args.floor, "--floor".into()));
+    if let Some(norm) = &args.norm {
+        spec.norm = Some((parse_norm(norm)?, "--norm".into()));
+    }
+    spec.floor = args.floor.map(|f| (f, "--floor".to_string()));
     if let Some(f) = &args.forbid_into {
         spec.forbid_into = Some((parse_class_list(f, "--forbid-into")?, "--forbid-into".into()));
     }
-    let requirement = spec.resolve(&parent)?;
+    if let Some(f) = &args.forbid_from {
+        spec.forbid_from = Some((parse_class_list(f, "--forbid-from")?, "--forbid-from".into()));
+    }
+    let file_spec = match &args.requirement {
+        Some(p) => RequirementSpec::from_file(p)?,
+        None => RequirementSpec::default(),
+    };
+    let requirement = file_spec.overridden_by(spec).resolve(&parent)?;
+    let Some(floor) = requirement.floor else {
+        bail!("--floor: retraining needs a floor (give --floor or a requirement file with floor)");
+    };
+    if requirement.epsilons.len() != 1 {
+        bail!("--eps: retraining takes one epsilon, not a sweep");
+    }
 
     let initial = match &hidden {
         Some(h) => {
@@ -285,8 +313,9 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             "train_sha256": crate::digest::sha256_file(&args.train).ok(),
             "from_scratch_hidden": hidden,
             "settings": {
-                "epsilon": args.eps, "norm": args.norm, "floor": args.floor,
-                "forbid_into": args.forbid_into,
+                "epsilon": requirement.epsilon(), "norm": requirement.norm, "floor": floor,
+                "per_feature_tolerances": requirement.tolerances.as_ref().map(|t| t.values.clone()),
+                "targets": format!("{:?}", requirement.targets),
                 "constrained": settings.constrained, "round_epochs": settings.round_epochs,
                 "max_rounds": settings.max_rounds, "slack_step": settings.slack_step,
             },
@@ -307,7 +336,8 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     let (accuracy_svg, multiplier_svg) = curves(&result);
     write(&folder.join("accuracy.svg"), &accuracy_svg)?;
     write(&folder.join("loss_and_multiplier.svg"), &multiplier_svg)?;
-    write(&folder.join("retrain.md"), &sheet_markdown(&args, &result, acceptance.len()))?;
+    let described = requirement.describe(&|c| parent.class_name(c));
+    write(&folder.join("retrain.md"), &sheet_markdown(&args, &described, floor, &result, acceptance.len()))?;
     println!(
         "retrain: {} after {} round(s): certified accuracy {:.4} (floor {}), clean accuracy {:.4}; model {}, sheet {}",
         match result.verdict {
@@ -316,7 +346,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         },
         result.rounds.len(),
         last.certified_accuracy,
-        args.floor,
+        floor,
         last.clean_accuracy,
         args.out.display(),
         folder.display()
@@ -388,7 +418,7 @@ fn curves(result: &RetrainResult) -> (String, String) {
     (accuracy, multiplier)
 }
 
-fn sheet_markdown(args: &Args, result: &RetrainResult, acceptance: usize) -> String {
+fn sheet_markdown(args: &Args, requirement: &str, floor: f64, result: &RetrainResult, acceptance: usize) -> String {
     let mut md = String::new();
     let verdict = match result.verdict {
         RetrainVerdict::Met => "**met**: the certify pipeline proved the floor on the acceptance data",
@@ -397,14 +427,7 @@ fn sheet_markdown(args: &Args, result: &RetrainResult, acceptance: usize) -> Str
     let _ = writeln!(md, "# Retraining sheet\n");
     let _ = writeln!(md, "- parent model: `{}`", args.model.display());
     let _ = writeln!(md, "- retrained model: `{}`", args.out.display());
-    let _ = writeln!(
-        md,
-        "- requirement: eps {} ({}), floor {}{}",
-        args.eps,
-        args.norm,
-        args.floor,
-        args.forbid_into.as_ref().map(|f| format!(", only changes into {f} count")).unwrap_or_default()
-    );
+    let _ = writeln!(md, "- requirement (floor {floor}): {requirement}");
     let formulation = match args.penalty {
         Some(w) => format!("fixed penalty weight {w}"),
         None => format!("primal-dual (dual step {}{})", args.dual_step, if args.per_class { ", per class" } else { "" }),

@@ -19,9 +19,18 @@ pub const MODEL_FOLDER: &str = "models";
 /// The committed `demo-data/` files as `(file name, text)`.
 pub const DATA_FILES: [(&str, &str); 4] = [
     (TRAIN_FILE, include_str!("../../demo-data/train.csv")),
-    (ACCEPTANCE_FILE, include_str!("../../demo-data/acceptance.csv")),
-    (TOLERANCE_FILE, include_str!("../../demo-data/tolerances.json")),
-    (REQUIREMENT_FILE, include_str!("../../demo-data/requirement.toml")),
+    (
+        ACCEPTANCE_FILE,
+        include_str!("../../demo-data/acceptance.csv"),
+    ),
+    (
+        TOLERANCE_FILE,
+        include_str!("../../demo-data/tolerances.json"),
+    ),
+    (
+        REQUIREMENT_FILE,
+        include_str!("../../demo-data/requirement.toml"),
+    ),
 ];
 
 /// The committed `models/` files as `(file name, text)`.
@@ -70,9 +79,21 @@ mod tests {
     #[test]
     fn embedded_data_match_the_generator() {
         let data = crate::demo::generator::generate(crate::demo::scenario::DEFAULT_SEED);
-        assert!(DATA_FILES[0].1 == data.train.to_csv(), "demo-data/train.csv is stale: run generate-demo");
-        assert!(DATA_FILES[1].1 == data.acceptance.to_csv(), "demo-data/acceptance.csv is stale");
-        assert!(DATA_FILES[2].1 == crate::demo::files::tolerance_json(), "tolerances.json is stale");
-        assert!(DATA_FILES[3].1 == crate::demo::files::requirement_toml(), "requirement.toml is stale");
+        assert!(
+            DATA_FILES[0].1 == data.train.to_csv(),
+            "demo-data/train.csv is stale: run generate-demo"
+        );
+        assert!(
+            DATA_FILES[1].1 == data.acceptance.to_csv(),
+            "demo-data/acceptance.csv is stale"
+        );
+        assert!(
+            DATA_FILES[2].1 == crate::demo::files::tolerance_json(),
+            "tolerances.json is stale"
+        );
+        assert!(
+            DATA_FILES[3].1 == crate::demo::files::requirement_toml(),
+            "requirement.toml is stale"
+        );
     }
 }

@@ -82,7 +82,7 @@ pub fn generate_set(seed: u64, stream: u64, rows: usize) -> GeneratedSet {
     let mut source = Source::new(seed, stream);
     let per_class = rows / CLASSES.len();
     let mut labels: Vec<usize> = (0..CLASSES.len())
-        .flat_map(|c| std::iter::repeat(c).take(per_class))
+        .flat_map(|c| std::iter::repeat_n(c, per_class))
         .collect();
     // Fisher–Yates shuffle with an unbiased integer draw.
     for i in (1..labels.len()).rev() {

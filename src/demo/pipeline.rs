@@ -17,7 +17,7 @@ use crate::data::{load_csv, DataOptions, Dataset};
 use crate::model::Model;
 use crate::threat::requirement::{Requirement, RequirementSpec};
 use crate::threat::{Budget, Norm, Targets};
-use crate::train::constrained::{Constraint, ConstrainedSettings, Formulation};
+use crate::train::constrained::{ConstrainedSettings, Constraint, Formulation};
 use crate::train::retrain::{retrain, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
 use crate::train::{OptimizerKind, TrainSettings};
@@ -86,7 +86,10 @@ pub struct DemoOutcome {
 }
 
 /// Runs the whole demo into `options.out`; `progress` receives one line per step.
-pub fn run_demo(options: &DemoOptions, progress: &mut dyn FnMut(&str)) -> Result<DemoOutcome, DemoError> {
+pub fn run_demo(
+    options: &DemoOptions,
+    progress: &mut dyn FnMut(&str),
+) -> Result<DemoOutcome, DemoError> {
     let bundle = write_bundle(&options.out)?;
     progress(&format!(
         "wrote the demo files to {}",
@@ -126,10 +129,21 @@ pub fn run_demo(options: &DemoOptions, progress: &mut dyn FnMut(&str)) -> Result
 
     progress("retraining pump-mlp toward the floor (constrained primal-dual trainer)");
     let settings = retrain_settings(&requirement, options.quick, pipeline.clone());
-    let result = retrain(&mlp, &train, None, &acceptance, &requirement, &settings, &mut |_| {})?;
+    let result = retrain(
+        &mlp,
+        &train,
+        None,
+        &acceptance,
+        &requirement,
+        &settings,
+        &mut |_| {},
+    )?;
     let mut retrained = result.model;
     retrained.name = Some("pump-mlp-retrained".into());
-    let mut provenance = retrained.provenance.take().unwrap_or(serde_json::Value::Null);
+    let mut provenance = retrained
+        .provenance
+        .take()
+        .unwrap_or(serde_json::Value::Null);
     let retraining = serde_json::json!({
         "retrained_from": format!("{MODEL_FOLDER}/{}", super::models::MLP_FILE),
         "rounds": result.rounds,
@@ -200,7 +214,11 @@ pub fn pipeline_options(quick: bool) -> PipelineOptions {
 }
 
 /// The retrainer settings of the demo (budget, targets and floor are taken from `requirement`).
-pub fn retrain_settings(requirement: &Requirement, quick: bool, pipeline: PipelineOptions) -> RetrainSettings {
+pub fn retrain_settings(
+    requirement: &Requirement,
+    quick: bool,
+    pipeline: PipelineOptions,
+) -> RetrainSettings {
     let floor = requirement.floor.unwrap_or(0.0);
     let epochs = if quick { 4 } else { 60 };
     RetrainSettings {
@@ -251,10 +269,11 @@ fn certify_model(
         path: folder.display().to_string(),
         source,
     })?;
-    let mut sources = Sources::from_files(model_path, data_path).map_err(|source| DemoError::Io {
-        path: model_path.display().to_string(),
-        source,
-    })?;
+    let mut sources =
+        Sources::from_files(model_path, data_path).map_err(|source| DemoError::Io {
+            path: model_path.display().to_string(),
+            source,
+        })?;
     if let Some(rows) = first_rows_only {
         sources.data_path = format!("{} (first {rows} rows, --quick)", data_path.display());
     }
@@ -271,12 +290,12 @@ fn certify_model(
         write_counterexamples(&report, &csv)?;
         report.counterexamples = Some("report.counterexamples.csv".into());
     }
-    crate::atomic::write_file(&report_path, report.to_json_string().as_bytes()).map_err(|source| {
-        DemoError::Io {
+    crate::atomic::write_file(&report_path, report.to_json_string().as_bytes()).map_err(
+        |source| DemoError::Io {
             path: report_path.display().to_string(),
             source,
-        }
-    })?;
+        },
+    )?;
     let (sheet_markdown, sheet_html) = crate::sheet::write_sheet(&report, folder)?;
     Ok(CertifiedModel {
         model: model_path.to_path_buf(),

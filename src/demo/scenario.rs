@@ -176,7 +176,11 @@ mod tests {
             assert!(names.insert(f.name), "duplicate feature {}", f.name);
             assert!(f.lower < f.upper, "{}: empty range", f.name);
             assert!(f.tolerance > 0.0, "{}: tolerance must be positive", f.name);
-            assert!(f.tolerance < (f.upper - f.lower) / 20.0, "{}: tolerance too wide", f.name);
+            assert!(
+                f.tolerance < (f.upper - f.lower) / 20.0,
+                "{}: tolerance too wide",
+                f.name
+            );
         }
         assert_eq!(CLASSES[NORMAL_CLASS], "normal");
         assert_eq!(TRAIN_ROWS % CLASSES.len(), 0);

@@ -109,7 +109,10 @@ pub fn build(report: &Report) -> SheetContent {
         Verdict::None => "NO FLOOR SET",
     }
     .to_string();
-    let confidence = r.confidence.map(|c| format!("{:.0}%", c * 100.0)).unwrap_or_default();
+    let confidence = r
+        .confidence
+        .map(|c| format!("{:.0}%", c * 100.0))
+        .unwrap_or_default();
     let reason = match (s.verdict, s.decided_by) {
         (Verdict::Pass, DecidedBy::ConfidenceBound) => format!(
             "The {confidence} lower confidence bound on the certified fraction, {}, is at least the floor {}.",
@@ -192,11 +195,8 @@ pub fn build(report: &Report) -> SheetContent {
         },
         Figure {
             name: "Counts".into(),
-            value: format!(
-                "{} certified, {} counterexample, {} misclassified",
-                s.certified, s.counterexample, s.misclassified
-            ),
-            meaning: "the four outcomes add up to the samples".into(),
+            value: format!("{} / {} / {}", s.certified, s.counterexample, s.misclassified),
+            meaning: "certified / counterexample / misclassified; with the unresolved they add up to the samples".into(),
         },
     ];
     if let Some(l) = s.certified_lower_bound {
@@ -216,9 +216,17 @@ pub fn build(report: &Report) -> SheetContent {
         )
     };
     let classes = Table {
-        headers: ["class", "samples", "clean", "certified", "empirical", "counterexample", "unresolved"]
-            .map(String::from)
-            .to_vec(),
+        headers: [
+            "class",
+            "samples",
+            "clean",
+            "certified",
+            "empirical",
+            "counterexample",
+            "unresolved",
+        ]
+        .map(String::from)
+        .to_vec(),
         rows: report
             .per_class
             .iter()
@@ -237,7 +245,9 @@ pub fn build(report: &Report) -> SheetContent {
     };
     let (sweep_table, sweep_plot) = if report.sweep.len() > 1 {
         let table = Table {
-            headers: ["epsilon", "certified", "empirical", "unresolved", "verdict"].map(String::from).to_vec(),
+            headers: ["epsilon", "certified", "empirical", "unresolved", "verdict"]
+                .map(String::from)
+                .to_vec(),
             rows: report
                 .sweep
                 .iter()
@@ -254,8 +264,16 @@ pub fn build(report: &Report) -> SheetContent {
         };
         let plot = SweepPlot {
             epsilons: report.sweep.iter().map(|p| p.epsilon).collect(),
-            certified: report.sweep.iter().map(|p| p.summary.certified_accuracy).collect(),
-            empirical: report.sweep.iter().map(|p| p.summary.empirical_robust_accuracy).collect(),
+            certified: report
+                .sweep
+                .iter()
+                .map(|p| p.summary.certified_accuracy)
+                .collect(),
+            empirical: report
+                .sweep
+                .iter()
+                .map(|p| p.summary.empirical_robust_accuracy)
+                .collect(),
             floor,
         };
         (Some(table), Some(plot))
@@ -264,7 +282,15 @@ pub fn build(report: &Report) -> SheetContent {
     };
     let histogram = histogram(report);
     let stages = Table {
-        headers: ["stage", "certified", "refuted", "left unresolved", "seconds"].map(String::from).to_vec(),
+        headers: [
+            "stage",
+            "certified",
+            "refuted",
+            "left unresolved",
+            "seconds",
+        ]
+        .map(String::from)
+        .to_vec(),
         rows: report
             .stages
             .iter()
@@ -285,16 +311,34 @@ pub fn build(report: &Report) -> SheetContent {
         ("Data".to_string(), report.data.path.clone()),
         ("Data SHA-256".to_string(), report.data.sha256.clone()),
         ("Samples in file".to_string(), report.data.rows.to_string()),
-        ("Tool".to_string(), format!("{} {}", report.tool.name, report.tool.version)),
+        (
+            "Tool".to_string(),
+            format!("{} {}", report.tool.name, report.tool.version),
+        ),
         ("Date (UTC)".to_string(), report.date.clone()),
-        ("Time budget per sample".to_string(), format!("{} s of branch and bound", report.settings.budget_seconds)),
+        (
+            "Time budget per sample".to_string(),
+            format!("{} s of branch and bound", report.settings.budget_seconds),
+        ),
         (
             "Stages".to_string(),
-            report.settings.stages.iter().map(|s| s.name()).collect::<Vec<_>>().join(" → "),
+            report
+                .settings
+                .stages
+                .iter()
+                .map(|s| s.name())
+                .collect::<Vec<_>>()
+                .join(" → "),
         ),
     ];
     if let Some(shard) = report.settings.shard {
-        inputs.push(("Shard".into(), format!("{}/{} (this sheet covers one slice only)", shard.index, shard.count)));
+        inputs.push((
+            "Shard".into(),
+            format!(
+                "{}/{} (this sheet covers one slice only)",
+                shard.index, shard.count
+            ),
+        ));
     }
     if let Some(c) = &report.counterexamples {
         inputs.push(("Counterexamples".into(), c.clone()));
@@ -306,9 +350,15 @@ pub fn build(report: &Report) -> SheetContent {
         .collect::<Vec<_>>()
         .join(" ");
     let budget = if report.requirement.tolerances.is_some() {
-        format!("epsilon {} times the stated per-feature tolerances", report.requirement.epsilon)
+        format!(
+            "epsilon {} times the stated per-feature tolerances",
+            report.requirement.epsilon
+        )
     } else {
-        format!("epsilon {} in the {} norm", report.requirement.epsilon, report.requirement.norm)
+        format!(
+            "epsilon {} in the {} norm",
+            report.requirement.epsilon, report.requirement.norm
+        )
     };
     let cautions = vec![
         format!("A certificate covers only the stated budget ({budget}, inside the model's valid input range) and nothing beyond it."),
@@ -319,7 +369,11 @@ pub fn build(report: &Report) -> SheetContent {
     SheetContent {
         title: format!(
             "Robustness release sheet: {}",
-            report.model.name.clone().unwrap_or_else(|| report.model.path.clone())
+            report
+                .model
+                .name
+                .clone()
+                .unwrap_or_else(|| report.model.path.clone())
         ),
         verdict: s.verdict,
         headline,
@@ -344,7 +398,12 @@ pub fn build(report: &Report) -> SheetContent {
 const BINS: usize = 20;
 
 fn histogram(report: &Report) -> Option<Histogram> {
-    let radii: Vec<f64> = report.samples.iter().filter_map(|s| s.radius).filter(|r| r.is_finite()).collect();
+    let radii: Vec<f64> = report
+        .samples
+        .iter()
+        .filter_map(|s| s.radius)
+        .filter(|r| r.is_finite())
+        .collect();
     let (values, title, axis) = if !radii.is_empty() {
         (
             radii,
@@ -368,7 +427,11 @@ fn histogram(report: &Report) -> Option<Histogram> {
     if values.is_empty() {
         return None;
     }
-    let low = values.iter().copied().fold(f64::INFINITY, f64::min).min(0.0);
+    let low = values
+        .iter()
+        .copied()
+        .fold(f64::INFINITY, f64::min)
+        .min(0.0);
     let mut high = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
     if high <= low {
         high = low + 1.0;

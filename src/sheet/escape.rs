@@ -89,7 +89,10 @@ mod tests {
 
     #[test]
     fn html_escapes_markup() {
-        assert_eq!(html("<script>\"a\" & 'b'</script>"), "&lt;script&gt;&quot;a&quot; &amp; &#39;b&#39;&lt;/script&gt;");
+        assert_eq!(
+            html("<script>\"a\" & 'b'</script>"),
+            "&lt;script&gt;&quot;a&quot; &amp; &#39;b&#39;&lt;/script&gt;"
+        );
     }
 
     #[test]

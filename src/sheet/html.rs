@@ -19,7 +19,10 @@ dl{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px}dt{font-weigh
 .cautions{background:#f6f6f6;padding:8px 20px;border-radius:6px}.small{color:#555;font-size:.9em}";
 
 fn numeric(cell: &str) -> bool {
-    cell.chars().next().map(|c| c.is_ascii_digit() || c == '–').unwrap_or(false)
+    cell.chars()
+        .next()
+        .map(|c| c.is_ascii_digit() || c == '–')
+        .unwrap_or(false)
 }
 
 fn table(t: &Table) -> String {
@@ -63,10 +66,18 @@ pub fn render(c: &SheetContent) -> String {
         h(&c.rule)
     ));
     if let Some(w) = &c.incomplete {
-        s.push_str(&format!("<div class=\"warning\"><strong>Warning:</strong> {}</div>\n", h(w)));
+        s.push_str(&format!(
+            "<div class=\"warning\"><strong>Warning:</strong> {}</div>\n",
+            h(w)
+        ));
     }
-    s.push_str(&format!("<h2>Requirement</h2>\n<p>{}</p>\n", h(&c.requirement)));
-    s.push_str("<h2>Figures</h2>\n<table>\n<tr><th>figure</th><th>value</th><th>meaning</th></tr>\n");
+    s.push_str(&format!(
+        "<h2>Requirement</h2>\n<p>{}</p>\n",
+        h(&c.requirement)
+    ));
+    s.push_str(
+        "<h2>Figures</h2>\n<table>\n<tr><th>figure</th><th>value</th><th>meaning</th></tr>\n",
+    );
     for f in &c.figures {
         s.push_str(&format!(
             "<tr><td>{}</td><td class=\"num\"><strong>{}</strong></td><td>{}</td></tr>\n",
@@ -91,10 +102,17 @@ pub fn render(c: &SheetContent) -> String {
     s.push_str(&table(&c.stages));
     s.push_str("<h2>Inputs and digests</h2>\n<dl>\n");
     for (k, v) in &c.inputs {
-        s.push_str(&format!("<dt>{}</dt><dd><code>{}</code></dd>\n", h(k), h(v)));
+        s.push_str(&format!(
+            "<dt>{}</dt><dd><code>{}</code></dd>\n",
+            h(k),
+            h(v)
+        ));
     }
     s.push_str("</dl>\n");
-    s.push_str(&format!("<h2>Reproduce</h2>\n<pre>{}</pre>\n", h(&c.command)));
+    s.push_str(&format!(
+        "<h2>Reproduce</h2>\n<pre>{}</pre>\n",
+        h(&c.command)
+    ));
     s.push_str("<h2>Cautions</h2>\n<div class=\"cautions\"><ul>\n");
     for caution in &c.cautions {
         s.push_str(&format!("<li>{}</li>\n", h(caution)));

@@ -7,10 +7,20 @@ use super::escape::{code_fence, markdown as md};
 
 fn table(t: &Table) -> String {
     let mut s = String::new();
-    s.push_str(&format!("| {} |\n", t.headers.iter().map(|h| md(h)).collect::<Vec<_>>().join(" | ")));
+    s.push_str(&format!(
+        "| {} |\n",
+        t.headers
+            .iter()
+            .map(|h| md(h))
+            .collect::<Vec<_>>()
+            .join(" | ")
+    ));
     s.push_str(&format!("|{}\n", " --- |".repeat(t.headers.len())));
     for row in &t.rows {
-        s.push_str(&format!("| {} |\n", row.iter().map(|c| md(c)).collect::<Vec<_>>().join(" | ")));
+        s.push_str(&format!(
+            "| {} |\n",
+            row.iter().map(|c| md(c)).collect::<Vec<_>>().join(" | ")
+        ));
     }
     s
 }
@@ -18,14 +28,24 @@ fn table(t: &Table) -> String {
 /// Renders the sheet as Markdown.
 pub fn render(c: &SheetContent) -> String {
     let mut s = format!("# {}\n\n", md(&c.title));
-    s.push_str(&format!("## Verdict: **{}**\n\n{}\n\n_{}._\n\n", md(&c.headline), md(&c.reason), md(&c.rule)));
+    s.push_str(&format!(
+        "## Verdict: **{}**\n\n{}\n\n_{}._\n\n",
+        md(&c.headline),
+        md(&c.reason),
+        md(&c.rule)
+    ));
     if let Some(w) = &c.incomplete {
         s.push_str(&format!("> **Warning:** {}\n\n", md(w)));
     }
     s.push_str(&format!("## Requirement\n\n{}\n\n", md(&c.requirement)));
     s.push_str("## Figures\n\n| figure | value | meaning |\n| --- | --- | --- |\n");
     for f in &c.figures {
-        s.push_str(&format!("| {} | {} | {} |\n", md(&f.name), md(&f.value), md(&f.meaning)));
+        s.push_str(&format!(
+            "| {} | {} | {} |\n",
+            md(&f.name),
+            md(&f.value),
+            md(&f.meaning)
+        ));
     }
     s.push_str(&format!("\n{}\n\n", md(&c.exactness)));
     s.push_str("## Per class\n\n");
@@ -35,10 +55,17 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&table(t));
     }
     if let Some(h) = &c.histogram {
-        s.push_str(&format!("\n## {}\n\n| from | to | samples |\n| --- | --- | --- |\n", md(&h.title)));
+        s.push_str(&format!(
+            "\n## {}\n\n| from | to | samples |\n| --- | --- | --- |\n",
+            md(&h.title)
+        ));
         for (k, count) in h.counts.iter().enumerate() {
             if *count > 0 {
-                s.push_str(&format!("| {:.4} | {:.4} | {count} |\n", h.edges[k], h.edges[k + 1]));
+                s.push_str(&format!(
+                    "| {:.4} | {:.4} | {count} |\n",
+                    h.edges[k],
+                    h.edges[k + 1]
+                ));
             }
         }
         s.push_str(&format!("\nx: {}\n", md(&h.axis)));
@@ -50,7 +77,10 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&format!("- {}: {}\n", md(k), md(v)));
     }
     let fence = code_fence(&c.command);
-    s.push_str(&format!("\n## Reproduce\n\n{fence}sh\n{}\n{fence}\n", c.command.replace('\n', " ")));
+    s.push_str(&format!(
+        "\n## Reproduce\n\n{fence}sh\n{}\n{fence}\n",
+        c.command.replace('\n', " ")
+    ));
     s.push_str("\n## Cautions\n\n");
     for caution in &c.cautions {
         s.push_str(&format!("- {}\n", md(caution)));

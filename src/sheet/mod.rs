@@ -44,7 +44,9 @@ pub fn write_sheet(report: &Report, folder: &Path) -> Result<(PathBuf, PathBuf),
     let content = content::build(report);
     let md = folder.join(MARKDOWN_FILE);
     let page = folder.join(HTML_FILE);
-    crate::atomic::write_file(&md, markdown::render(&content).as_bytes()).map_err(|e| output(&md, e))?;
-    crate::atomic::write_file(&page, html::render(&content).as_bytes()).map_err(|e| output(&page, e))?;
+    crate::atomic::write_file(&md, markdown::render(&content).as_bytes())
+        .map_err(|e| output(&md, e))?;
+    crate::atomic::write_file(&page, html::render(&content).as_bytes())
+        .map_err(|e| output(&page, e))?;
     Ok((md, page))
 }

@@ -27,10 +27,24 @@ pub fn sweep_plot(plot: &SweepPlot) -> String {
     let plot_w = WIDTH - LEFT - RIGHT;
     let plot_h = HEIGHT - TOP - BOTTOM;
     let x_max = plot.epsilons.iter().copied().fold(0.0, f64::max);
-    let x_min = plot.epsilons.iter().copied().fold(f64::INFINITY, f64::min).min(0.0);
+    let x_min = plot
+        .epsilons
+        .iter()
+        .copied()
+        .fold(f64::INFINITY, f64::min)
+        .min(0.0);
     let span = if x_max > x_min { x_max - x_min } else { 1.0 };
     let x = |e: f64| LEFT + (e - x_min) / span * plot_w;
-    let y = |a: f64| TOP + (1.0 - a.clamp(0.0, 1.0)) * plot_h;
+    // The y axis runs from a round value below every line (and the floor) up to 100%.
+    let lowest = plot
+        .certified
+        .iter()
+        .chain(&plot.empirical)
+        .chain(plot.floor.iter())
+        .copied()
+        .fold(1.0, f64::min);
+    let y_min = ((lowest - 0.05) * 10.0).floor().clamp(0.0, 9.0) / 10.0;
+    let y = |a: f64| TOP + (1.0 - (a.clamp(y_min, 1.0) - y_min) / (1.0 - y_min)) * plot_h;
     let mut s = format!(
         "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 {WIDTH} {HEIGHT}\" width=\"{WIDTH}\" height=\"{HEIGHT}\" role=\"img\" aria-label=\"robust accuracy against epsilon\">\n"
     );
@@ -38,13 +52,13 @@ pub fn sweep_plot(plot: &SweepPlot) -> String {
         "<rect x=\"{LEFT}\" y=\"{TOP}\" width=\"{plot_w}\" height=\"{plot_h}\" fill=\"#fafafa\" stroke=\"#999\"/>\n"
     ));
     for k in 0..=4 {
-        let a = k as f64 / 4.0;
+        let a = y_min + (1.0 - y_min) * k as f64 / 4.0;
         s.push_str(&format!(
             "<line x1=\"{LEFT}\" x2=\"{}\" y1=\"{y0:.1}\" y2=\"{y0:.1}\" stroke=\"#ddd\"/><text x=\"{}\" y=\"{:.1}\" font-size=\"11\" text-anchor=\"end\">{}%</text>\n",
             LEFT + plot_w,
             LEFT - 6.0,
             y(a) + 4.0,
-            (a * 100.0) as i32,
+            html(&short(a * 100.0)),
             y0 = y(a)
         ));
     }
@@ -84,7 +98,10 @@ pub fn sweep_plot(plot: &SweepPlot) -> String {
             .rev()
             .map(|(e, a)| format!("{:.1},{:.1}", x(*e), y(*a))),
     );
-    s.push_str(&format!("<polygon points=\"{}\" fill=\"#f3d9a4\" opacity=\"0.6\"/>\n", band.join(" ")));
+    s.push_str(&format!(
+        "<polygon points=\"{}\" fill=\"#f3d9a4\" opacity=\"0.6\"/>\n",
+        band.join(" ")
+    ));
     if let Some(f) = plot.floor {
         s.push_str(&format!(
             "<line x1=\"{LEFT}\" x2=\"{}\" y1=\"{y0:.1}\" y2=\"{y0:.1}\" stroke=\"#b00\" stroke-width=\"1.5\" stroke-dasharray=\"2 3\"/><text x=\"{}\" y=\"{:.1}\" font-size=\"11\" fill=\"#b00\" text-anchor=\"end\">floor {}%</text>\n",
@@ -104,10 +121,18 @@ pub fn sweep_plot(plot: &SweepPlot) -> String {
         points(&plot.empirical)
     ));
     for (e, a) in plot.epsilons.iter().zip(&plot.certified) {
-        s.push_str(&format!("<circle cx=\"{:.1}\" cy=\"{:.1}\" r=\"3.5\" fill=\"#1f5fa8\"/>\n", x(*e), y(*a)));
+        s.push_str(&format!(
+            "<circle cx=\"{:.1}\" cy=\"{:.1}\" r=\"3.5\" fill=\"#1f5fa8\"/>\n",
+            x(*e),
+            y(*a)
+        ));
     }
     for (e, a) in plot.epsilons.iter().zip(&plot.empirical) {
-        s.push_str(&format!("<circle cx=\"{:.1}\" cy=\"{:.1}\" r=\"3\" fill=\"#c06000\"/>\n", x(*e), y(*a)));
+        s.push_str(&format!(
+            "<circle cx=\"{:.1}\" cy=\"{:.1}\" r=\"3\" fill=\"#c06000\"/>\n",
+            x(*e),
+            y(*a)
+        ));
     }
     s.push_str(&format!(
         "<g font-size=\"11\"><line x1=\"{lx}\" x2=\"{}\" y1=\"{ly}\" y2=\"{ly}\" stroke=\"#1f5fa8\" stroke-width=\"2.5\"/><text x=\"{}\" y=\"{}\">certified (lower bound)</text>\

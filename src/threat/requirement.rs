@@ -118,18 +118,18 @@ impl RequirementSpec {
     /// relative to the requirement file's folder.
     pub fn from_file(path: &Path) -> Result<RequirementSpec, RequirementError> {
         let shown = path.display().to_string();
-        let text = crate::limits::read_text_file(path, crate::limits::MAX_SMALL_FILE_BYTES).map_err(|e| {
-            RequirementError::Io {
+        let text = crate::limits::read_text_file(path, crate::limits::MAX_SMALL_FILE_BYTES)
+            .map_err(|e| RequirementError::Io {
                 path: shown.clone(),
                 message: e.to_string(),
-            }
-        })?;
+            })?;
         let extension = path
             .extension()
             .map(|e| e.to_string_lossy().to_ascii_lowercase())
             .unwrap_or_default();
         let raw: RawRequirement = match extension.as_str() {
-            "toml" => toml::from_str(&text).map_err(|e| invalid(&shown, e.to_string().trim().to_string()))?,
+            "toml" => toml::from_str(&text)
+                .map_err(|e| invalid(&shown, e.to_string().trim().to_string()))?,
             "json" => serde_json::from_str(&text).map_err(|e| invalid(&shown, e.to_string()))?,
             other => {
                 return Err(invalid(
@@ -164,7 +164,9 @@ impl RequirementSpec {
             spec.norm = Some((norm, place("norm")));
         }
         spec.floor = raw.floor.map(|v| (v, place("floor")));
-        spec.min_clean_accuracy = raw.min_clean_accuracy.map(|v| (v, place("min_clean_accuracy")));
+        spec.min_clean_accuracy = raw
+            .min_clean_accuracy
+            .map(|v| (v, place("min_clean_accuracy")));
         spec.confidence = raw.confidence.map(|v| (v, place("confidence")));
         spec.forbid_into = raw.forbid_into.map(|v| (v, place("forbid_into")));
         spec.forbid_from = raw.forbid_from.map(|v| (v, place("forbid_from")));
@@ -202,16 +204,24 @@ impl RequirementSpec {
             }
         };
         if epsilons.is_empty() {
-            return Err(invalid(eps_place, "empty list, expected at least one epsilon"));
+            return Err(invalid(
+                eps_place,
+                "empty list, expected at least one epsilon",
+            ));
         }
         for e in &epsilons {
             if !e.is_finite() || *e < 0.0 {
-                return Err(invalid(&eps_place, format!("{e} is not allowed, expected a finite number ≥ 0")));
+                return Err(invalid(
+                    &eps_place,
+                    format!("{e} is not allowed, expected a finite number ≥ 0"),
+                ));
             }
         }
         epsilons.sort_by(f64::total_cmp);
         epsilons.dedup_by(|a, b| (*a - *b).abs() <= 1e-15 * b.abs().max(1.0));
-        let fraction = |value: &Option<(f64, String)>, open_ends: bool| -> Result<Option<f64>, RequirementError> {
+        let fraction = |value: &Option<(f64, String)>,
+                        open_ends: bool|
+         -> Result<Option<f64>, RequirementError> {
             match value {
                 None => Ok(None),
                 Some((v, place)) => {
@@ -225,7 +235,10 @@ impl RequirementSpec {
                     } else if open_ends {
                         Err(invalid(place, format!("{v} is not allowed, expected a level strictly between 0 and 1 (e.g. 0.95)")))
                     } else {
-                        Err(invalid(place, format!("{v} is not allowed, expected a fraction in [0, 1]")))
+                        Err(invalid(
+                            place,
+                            format!("{v} is not allowed, expected a fraction in [0, 1]"),
+                        ))
                     }
                 }
             }
@@ -234,22 +247,30 @@ impl RequirementSpec {
         let min_clean_accuracy = fraction(&self.min_clean_accuracy, false)?;
         let confidence = fraction(&self.confidence, true)?;
         let classes = model.class_count();
-        let resolve_classes = |value: &Option<(Vec<String>, String)>| -> Result<Vec<usize>, RequirementError> {
-            let mut out = Vec::new();
-            if let Some((names, place)) = value {
-                for name in names {
-                    let index = class_index(model, name).ok_or_else(|| {
-                        let known: Vec<String> = (0..classes).map(|c| model.class_name(c)).collect();
-                        invalid(place, format!("\"{name}\" is not a class of the model (classes: {})", known.join(", ")))
-                    })?;
-                    if !out.contains(&index) {
-                        out.push(index);
+        let resolve_classes =
+            |value: &Option<(Vec<String>, String)>| -> Result<Vec<usize>, RequirementError> {
+                let mut out = Vec::new();
+                if let Some((names, place)) = value {
+                    for name in names {
+                        let index = class_index(model, name).ok_or_else(|| {
+                            let known: Vec<String> =
+                                (0..classes).map(|c| model.class_name(c)).collect();
+                            invalid(
+                                place,
+                                format!(
+                                    "\"{name}\" is not a class of the model (classes: {})",
+                                    known.join(", ")
+                                ),
+                            )
+                        })?;
+                        if !out.contains(&index) {
+                            out.push(index);
+                        }
                     }
                 }
-            }
-            out.sort_unstable();
-            Ok(out)
-        };
+                out.sort_unstable();
+                Ok(out)
+            };
         let into = resolve_classes(&self.forbid_into)?;
         let from = resolve_classes(&self.forbid_from)?;
         if let Some((list, place)) = &self.forbid_into {
@@ -266,7 +287,11 @@ impl RequirementSpec {
         } else {
             Targets::Into {
                 classes: into,
-                from: if self.forbid_from.is_some() { Some(from) } else { None },
+                from: if self.forbid_from.is_some() {
+                    Some(from)
+                } else {
+                    None
+                },
             }
         };
         Ok(Requirement {
@@ -300,7 +325,10 @@ pub fn parse_epsilon_list(text: &str, place: &str) -> Result<Vec<f64>, Requireme
             .parse()
             .map_err(|_| invalid(place, format!("\"{}\" is not a number", t.trim())))?;
         if !v.is_finite() || v < 0.0 {
-            return Err(invalid(place, format!("{v} is not allowed, expected a finite number ≥ 0")));
+            return Err(invalid(
+                place,
+                format!("{v} is not allowed, expected a finite number ≥ 0"),
+            ));
         }
         Ok(v)
     };
@@ -308,15 +336,26 @@ pub fn parse_epsilon_list(text: &str, place: &str) -> Result<Vec<f64>, Requireme
     if text.contains(':') {
         let parts: Vec<&str> = text.split(':').collect();
         if parts.len() != 3 {
-            return Err(invalid(place, format!("\"{text}\" is not a range, expected start:stop:step (e.g. 0.01:0.05:0.01)")));
+            return Err(invalid(
+                place,
+                format!(
+                    "\"{text}\" is not a range, expected start:stop:step (e.g. 0.01:0.05:0.01)"
+                ),
+            ));
         }
         let (start, stop, step) = (number(parts[0])?, number(parts[1])?, number(parts[2])?);
         if step <= 0.0 || stop < start {
-            return Err(invalid(place, format!("range \"{text}\" needs step > 0 and stop ≥ start")));
+            return Err(invalid(
+                place,
+                format!("range \"{text}\" needs step > 0 and stop ≥ start"),
+            ));
         }
         let count = (((stop - start) / step + 1e-9).floor() as usize).saturating_add(1);
         if count > 1000 {
-            return Err(invalid(place, format!("range \"{text}\" has {count} values, at most 1000 are allowed")));
+            return Err(invalid(
+                place,
+                format!("range \"{text}\" has {count} values, at most 1000 are allowed"),
+            ));
         }
         return Ok((0..count).map(|k| start + k as f64 * step).collect());
     }
@@ -326,37 +365,54 @@ pub fn parse_epsilon_list(text: &str, place: &str) -> Result<Vec<f64>, Requireme
 /// Reads a per-feature tolerance file for `model`: JSON object `{"feature": tolerance}` or CSV with header
 /// `feature,tolerance`. Every model feature must appear exactly once (give 0 to hold a feature fixed).
 pub fn load_tolerances(path: &Path, model: &Model) -> Result<Vec<f64>, RequirementError> {
-    resolve_tolerances(&ToleranceSource::File(path.to_path_buf()), &path.display().to_string(), model)
-        .map(|t| t.values)
+    resolve_tolerances(
+        &ToleranceSource::File(path.to_path_buf()),
+        &path.display().to_string(),
+        model,
+    )
+    .map(|t| t.values)
 }
 
-fn resolve_tolerances(source: &ToleranceSource, place: &str, model: &Model) -> Result<Tolerances, RequirementError> {
+fn resolve_tolerances(
+    source: &ToleranceSource,
+    place: &str,
+    model: &Model,
+) -> Result<Tolerances, RequirementError> {
     let (entries, where_from): (Vec<(String, f64, String)>, String) = match source {
         ToleranceSource::Inline(list) => (
-            list.iter().map(|(n, v)| (n.clone(), *v, format!("{place}.{n}"))).collect(),
+            list.iter()
+                .map(|(n, v)| (n.clone(), *v, format!("{place}.{n}")))
+                .collect(),
             place.to_string(),
         ),
         ToleranceSource::File(path) => {
             let shown = path.display().to_string();
-            let text = crate::limits::read_text_file(path, crate::limits::MAX_SMALL_FILE_BYTES).map_err(|e| {
-                RequirementError::Io {
+            let text = crate::limits::read_text_file(path, crate::limits::MAX_SMALL_FILE_BYTES)
+                .map_err(|e| RequirementError::Io {
                     path: shown.clone(),
                     message: e.to_string(),
-                }
-            })?;
+                })?;
             let is_json = path
                 .extension()
                 .map(|e| e.eq_ignore_ascii_case("json"))
                 .unwrap_or(false)
                 || text.trim_start().starts_with('{');
             let entries = if is_json {
-                let map: serde_json::Map<String, serde_json::Value> =
-                    serde_json::from_str(&text).map_err(|e| invalid(&shown, format!("{e} (expected a JSON object {{\"feature\": tolerance}})")))?;
+                let map: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&text)
+                    .map_err(|e| {
+                    invalid(
+                        &shown,
+                        format!("{e} (expected a JSON object {{\"feature\": tolerance}})"),
+                    )
+                })?;
                 let mut out = Vec::new();
                 for (name, value) in map {
-                    let v = value
-                        .as_f64()
-                        .ok_or_else(|| invalid(format!("{shown}: \"{name}\""), format!("{value} is not a number")))?;
+                    let v = value.as_f64().ok_or_else(|| {
+                        invalid(
+                            format!("{shown}: \"{name}\""),
+                            format!("{value} is not a number"),
+                        )
+                    })?;
                     out.push((name.clone(), v, format!("{shown}: \"{name}\"")));
                 }
                 out
@@ -371,7 +427,12 @@ fn resolve_tolerances(source: &ToleranceSource, place: &str, model: &Model) -> R
     for (name, value, at) in &entries {
         let index = (0..dim)
             .find(|i| model.feature_name(*i) == *name)
-            .ok_or_else(|| invalid(at, format!("\"{name}\" is not an input feature of the model")))?;
+            .ok_or_else(|| {
+                invalid(
+                    at,
+                    format!("\"{name}\" is not an input feature of the model"),
+                )
+            })?;
         if !values[index].is_nan() {
             return Err(invalid(at, format!("feature \"{name}\" is given twice")));
         }
@@ -400,7 +461,10 @@ fn resolve_tolerances(source: &ToleranceSource, place: &str, model: &Model) -> R
     })
 }
 
-fn parse_tolerance_csv(text: &str, shown: &str) -> Result<Vec<(String, f64, String)>, RequirementError> {
+fn parse_tolerance_csv(
+    text: &str,
+    shown: &str,
+) -> Result<Vec<(String, f64, String)>, RequirementError> {
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(true)
         .trim(csv::Trim::All)
@@ -421,10 +485,15 @@ fn parse_tolerance_csv(text: &str, shown: &str) -> Result<Vec<(String, f64, Stri
         let row = r + 2;
         let record = record.map_err(|e| invalid(format!("{shown}: row {row}"), e.to_string()))?;
         let (Some(name), Some(value)) = (record.get(fc), record.get(tc)) else {
-            return Err(invalid(format!("{shown}: row {row}"), "missing the feature or tolerance field"));
+            return Err(invalid(
+                format!("{shown}: row {row}"),
+                "missing the feature or tolerance field",
+            ));
         };
         let at = format!("{shown}: row {row}, column \"tolerance\"");
-        let v: f64 = value.parse().map_err(|_| invalid(&at, format!("\"{value}\" is not a number")))?;
+        let v: f64 = value
+            .parse()
+            .map_err(|_| invalid(&at, format!("\"{value}\" is not a number")))?;
         out.push((name.to_string(), v, at));
     }
     Ok(out)
@@ -509,7 +578,10 @@ impl Requirement {
             Targets::Into { classes, from } => {
                 let into: Vec<String> = classes.iter().map(|c| class_name(*c)).collect();
                 match from {
-                    None => format!("only a change into {} counts as a failure", into.join(" or ")),
+                    None => format!(
+                        "only a change into {} counts as a failure",
+                        into.join(" or ")
+                    ),
                     Some(f) => {
                         let from: Vec<String> = f.iter().map(|c| class_name(*c)).collect();
                         format!(
@@ -561,7 +633,9 @@ mod tests {
         let r = parse_epsilon_list("0.01:0.05:0.01", "--eps").unwrap();
         assert_eq!(r.len(), 5);
         approx::assert_abs_diff_eq!(r[4], 0.05, epsilon = 1e-12);
-        let e = parse_epsilon_list("0.1,abc", "--eps").unwrap_err().to_string();
+        let e = parse_epsilon_list("0.1,abc", "--eps")
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("--eps") && e.contains("abc"), "{e}");
         assert!(parse_epsilon_list("-1", "--eps").is_err());
         assert!(parse_epsilon_list("0.1:0.05:0.01", "--eps").is_err());
@@ -601,7 +675,12 @@ mod tests {
             ..Default::default()
         };
         let e = spec.resolve(&model()).unwrap_err().to_string();
-        assert!(e.contains("--forbid-into") && e.contains("nomral") && e.contains("normal, worn, broken"), "{e}");
+        assert!(
+            e.contains("--forbid-into")
+                && e.contains("nomral")
+                && e.contains("normal, worn, broken"),
+            "{e}"
+        );
     }
 
     #[test]
@@ -619,7 +698,10 @@ mod tests {
         approx::assert_abs_diff_eq!(b.radii[0], 0.1);
         approx::assert_abs_diff_eq!(b.radii[1], 0.5);
         let missing = RequirementSpec {
-            tolerances: Some((ToleranceSource::Inline(vec![("speed".into(), 0.2)]), "t".into())),
+            tolerances: Some((
+                ToleranceSource::Inline(vec![("speed".into(), 0.2)]),
+                "t".into(),
+            )),
             ..Default::default()
         };
         let e = missing.resolve(&model()).unwrap_err().to_string();

@@ -779,7 +779,7 @@ impl<'a> Converter<'a> {
         self.require_vector_shape(index, path)?;
         let d = path.width();
         let coefficients = floats_attribute(node, "coefficients");
-        if coefficients.is_empty() || coefficients.len() % d != 0 {
+        if coefficients.is_empty() || !coefficients.len().is_multiple_of(d) {
             return Err(self.unsupported(
                 index,
                 format!(
@@ -926,7 +926,7 @@ impl<'a> Converter<'a> {
         }
         let known: usize = out.iter().product();
         if let Some(u) = unknown {
-            if known == 0 || width % known != 0 {
+            if known == 0 || !width.is_multiple_of(known) {
                 return Err(fail(format!("does not fit {width} features")));
             }
             out[u] = width / known;
@@ -1332,7 +1332,7 @@ mod tests {
         ];
         let model = import(nodes, inits, 2, "y").unwrap();
         let x = [0.5, -4.0];
-        let expected = (1.0 - x[0]) * 3.0 / 2.0 + (2.0 - x[1]) * -1.0 / 2.0;
+        let expected = (1.0 - x[0]) * 3.0 / 2.0 + -(2.0 - x[1]) / 2.0;
         let y = model.network().forward(&x);
         approx::assert_abs_diff_eq!(y[0], expected, epsilon = 1e-12);
     }
