@@ -35,7 +35,10 @@ fn random_model(sizes: &[usize]) -> Model {
         .windows(2)
         .map(|w| {
             let scale = (2.0 / w[0] as f64).sqrt();
-            let mut sample = || StandardNormal.sample(&mut rng) * scale;
+            let mut sample = || {
+                let z: f64 = StandardNormal.sample(&mut rng);
+                z * scale
+            };
             Dense {
                 weights: DMatrix::from_fn(w[1], w[0], |_, _| sample()),
                 bias: DVector::from_fn(w[1], |_, _| 0.0),

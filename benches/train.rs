@@ -18,7 +18,7 @@ use ballast::model::Model;
 use ballast::threat::requirement::RequirementSpec;
 use ballast::threat::{Budget, Norm, Targets};
 use ballast::train::constrained::{
-    train_constrained_epochs, Constraint, ConstrainedSettings, ConstrainedState, Formulation,
+    train_constrained_epochs, ConstrainedSettings, ConstrainedState, Constraint, Formulation,
 };
 use ballast::train::curves::{plot_svg, Series};
 use ballast::train::plain::{split_validation, TrainableModel};
@@ -26,7 +26,14 @@ use ballast::train::retrain::{retrain, RetrainSettings};
 use ballast::train::robust::RobustLoss;
 use ballast::train::{OptimizerKind, TrainSettings};
 
-fn constrained_settings(epochs: usize, seed: u64, budget: Budget, targets: Targets, formulation: Formulation, floor: f64) -> ConstrainedSettings {
+fn constrained_settings(
+    epochs: usize,
+    seed: u64,
+    budget: Budget,
+    targets: Targets,
+    formulation: Formulation,
+    floor: f64,
+) -> ConstrainedSettings {
     ConstrainedSettings {
         train: TrainSettings {
             epochs,
@@ -57,7 +64,11 @@ fn speed() {
     let mut features = nalgebra::DMatrix::zeros(64, 1400);
     let mut labels = Vec::with_capacity(1400);
     for i in 0..1400 {
-        let (source, j) = if i < train.len() { (&train, i) } else { (&test, i - train.len()) };
+        let (source, j) = if i < train.len() {
+            (&train, i)
+        } else {
+            (&test, i - train.len())
+        };
         features.column_mut(i).copy_from_slice(source.sample(j));
         labels.push(source.labels[j]);
     }
@@ -77,8 +88,16 @@ fn speed() {
     let trainable = TrainableModel::new(&model);
     let mut state = ConstrainedState::new(&trainable, &settings, 10);
     let start = Instant::now();
-    let epochs = train_constrained_epochs(&trainable, &mut state, &data, None, &settings, 30, &mut |_| {})
-        .expect("training runs");
+    let epochs = train_constrained_epochs(
+        &trainable,
+        &mut state,
+        &data,
+        None,
+        &settings,
+        30,
+        &mut |_| {},
+    )
+    .expect("training runs");
     let seconds = start.elapsed().as_secs_f64();
     let last = epochs.last().expect("epochs");
     println!(
@@ -102,27 +121,48 @@ fn tradeoff() {
     let model = Model::load(Path::new("models/pump-mlp.json")).expect("demo model");
     let options = DataOptions::default();
     let all = load_csv(Path::new("demo-data/train.csv"), &model, &options).expect("demo train");
-    let acceptance = load_csv(Path::new("demo-data/acceptance.csv"), &model, &options).expect("demo acceptance");
+    let acceptance =
+        load_csv(Path::new("demo-data/acceptance.csv"), &model, &options).expect("demo acceptance");
     let (train, validation) = split_validation(&all, 0.2, 5);
     let validation = validation.expect("validation");
-    let spec = RequirementSpec::from_file(Path::new("demo-data/requirement.toml")).expect("requirement");
+    let spec =
+        RequirementSpec::from_file(Path::new("demo-data/requirement.toml")).expect("requirement");
     let base = spec.resolve(&model).expect("requirement resolves");
     let budget = base.budget(base.epsilon(), model.input.dim);
     let epochs = 30;
     let mut runs = Vec::new();
-    let mut run = |label: String, formulation: Formulation, floor: f64, rounds: usize, penalty: Option<f64>| {
+    let mut run = |label: String,
+                   formulation: Formulation,
+                   floor: f64,
+                   rounds: usize,
+                   penalty: Option<f64>| {
         let mut requirement = base.clone();
         requirement.floor = Some(floor);
         let settings = RetrainSettings {
-            constrained: constrained_settings(epochs, 7, budget.clone(), base.targets.clone(), formulation, floor),
+            constrained: constrained_settings(
+                epochs,
+                7,
+                budget.clone(),
+                base.targets.clone(),
+                formulation,
+                floor,
+            ),
             round_epochs: 15,
             max_rounds: rounds,
             slack_step: 0.03,
             pipeline: PipelineOptions::default(),
         };
         let start = Instant::now();
-        let result = retrain(&model, &train, Some(&validation), &acceptance, &requirement, &settings, &mut |_| {})
-            .expect("retrain runs");
+        let result = retrain(
+            &model,
+            &train,
+            Some(&validation),
+            &acceptance,
+            &requirement,
+            &settings,
+            &mut |_| {},
+        )
+        .expect("retrain runs");
         let last = result.rounds.last().expect("a round");
         let r = Run {
             label,
@@ -145,15 +185,30 @@ fn tradeoff() {
             initial_multiplier: 0.0,
             per_class: false,
         };
-        run(format!("primal-dual floor {floor}"), formulation, floor, 3, None);
+        run(
+            format!("primal-dual floor {floor}"),
+            formulation,
+            floor,
+            3,
+            None,
+        );
     }
     for weight in [0.1, 0.3, 1.0, 3.0, 10.0] {
-        run(format!("penalty {weight}"), Formulation::Penalty { weight }, 0.0, 1, Some(weight));
+        run(
+            format!("penalty {weight}"),
+            Formulation::Penalty { weight },
+            0.0,
+            1,
+            Some(weight),
+        );
     }
     let folder = Path::new("target/bench-train");
     std::fs::create_dir_all(folder).expect("folder");
     let points = |keep: &dyn Fn(&Run) -> bool| -> Vec<(f64, f64)> {
-        runs.iter().filter(|r| keep(r)).map(|r| (r.certified, r.clean)).collect()
+        runs.iter()
+            .filter(|r| keep(r))
+            .map(|r| (r.certified, r.clean))
+            .collect()
     };
     let svg = plot_svg(
         "Demo: clean vs certified accuracy (acceptance data)",
@@ -191,7 +246,10 @@ fn tradeoff() {
 }
 
 fn main() {
-    let which: Vec<String> = std::env::args().skip(1).filter(|a| !a.starts_with('-')).collect();
+    let which: Vec<String> = std::env::args()
+        .skip(1)
+        .filter(|a| !a.starts_with('-'))
+        .collect();
     let all = which.is_empty();
     if all || which.iter().any(|w| w == "speed") {
         speed();

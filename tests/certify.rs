@@ -136,13 +136,12 @@ fn check_counterexamples(model: &Model, data: &Dataset, r: &Report) -> usize {
         for (eps, c) in outcomes {
             let x = data.sample(s.index);
             let budget = requirement.budget(eps, model.input.dim);
-            for i in 0..x.len() {
+            for (i, (&value, &centre)) in c.features.iter().zip(x).enumerate() {
                 assert!(
-                    c.features[i] >= model.input.lower[i] - 1e-12
-                        && c.features[i] <= model.input.upper[i] + 1e-12
+                    value >= model.input.lower[i] - 1e-12 && value <= model.input.upper[i] + 1e-12
                 );
                 if budget.norm == Norm::Linf {
-                    assert!((c.features[i] - x[i]).abs() <= budget.radii[i] * (1.0 + 1e-9) + 1e-12);
+                    assert!((value - centre).abs() <= budget.radii[i] * (1.0 + 1e-9) + 1e-12);
                 }
             }
             if budget.norm == Norm::L2 {

@@ -286,3 +286,22 @@ fn demo_quick_runs_from_another_folder_and_writes_its_files() {
         );
     }
 }
+
+#[test]
+fn demo_into_a_file_path_is_a_clear_input_error() {
+    let work = tempfile::tempdir().expect("temporary folder");
+    let blocker = work.path().join("taken");
+    std::fs::write(&blocker, "not a folder").expect("written");
+    let output = Command::new(env!("CARGO_BIN_EXE_ballast"))
+        .args(["demo", "--quick", "--out"])
+        .arg(&blocker)
+        .output()
+        .expect("runs");
+    assert_eq!(output.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(
+        stderr.contains("taken"),
+        "the message names the path: {stderr}"
+    );
+    assert!(!stderr.contains("panicked"), "{stderr}");
+}

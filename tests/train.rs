@@ -16,8 +16,12 @@ fn fixture_model() -> Model {
 }
 
 fn digits(name: &str, model: &Model) -> Dataset {
-    load_csv(Path::new(&format!("tests/data/{name}")), model, &DataOptions::default())
-        .expect("fixture data loads")
+    load_csv(
+        Path::new(&format!("tests/data/{name}")),
+        model,
+        &DataOptions::default(),
+    )
+    .expect("fixture data loads")
 }
 
 fn accuracy(model: &Model, data: &Dataset) -> f64 {
@@ -71,9 +75,18 @@ fn check_gradient(
     let size: f64 = analytic
         .layers
         .iter()
-        .map(|l| l.weights.iter().chain(l.bias.iter()).map(|v| v.abs()).sum::<f64>())
+        .map(|l| {
+            l.weights
+                .iter()
+                .chain(l.bias.iter())
+                .map(|v| v.abs())
+                .sum::<f64>()
+        })
         .sum();
-    assert!(size > 1e-6, "the analytic gradient is (nearly) zero: the check would be vacuous");
+    assert!(
+        size > 1e-6,
+        "the analytic gradient is (nearly) zero: the check would be vacuous"
+    );
 }
 
 fn random_batch(dim: usize, samples: usize, seed: u64) -> DMatrix<f64> {
@@ -104,7 +117,11 @@ fn binary_one_logit_gradient_matches_finite_differences() {
     // The 1-logit model is read as logits [0, z] (the project's binary rule).
     let logits = classifier_logits(&network.forward_batch(&batch));
     let (value, _) = softmax_cross_entropy(&logits, &labels);
-    assert_relative_eq!(value, cross_entropy_gradient(&network, &batch, &labels).0, epsilon = 1e-12);
+    assert_relative_eq!(
+        value,
+        cross_entropy_gradient(&network, &batch, &labels).0,
+        epsilon = 1e-12
+    );
 }
 
 // Outside reference: scikit-learn 1.9.1 MLPClassifier(hidden_layer_sizes=(32,), random_state=0,
@@ -117,7 +134,9 @@ fn plain_trainer_matches_scikit_learn_on_digits() {
         &std::fs::read_to_string("tests/reference/out/digits_forward.json").expect("reference"),
     )
     .expect("reference JSON");
-    let target = reference["models"]["digits_mlp"]["test_accuracy"].as_f64().expect("accuracy");
+    let target = reference["models"]["digits_mlp"]["test_accuracy"]
+        .as_f64()
+        .expect("accuracy");
     let fixture = fixture_model();
     let train = digits("digits_train.csv", &fixture);
     let test = digits("digits_test.csv", &fixture);
@@ -160,16 +179,30 @@ fn loss_and_gradients_match_scikit_learn() {
     let data = digits("digits_train.csv", &fixture).subset(&(0..rows).collect::<Vec<_>>());
     let network = fixture.network();
     let (loss, gradient) = cross_entropy_gradient(&network, &data.features, &data.labels);
-    assert_relative_eq!(loss, reference["loss"].as_f64().expect("loss"), max_relative = 1e-9);
+    assert_relative_eq!(
+        loss,
+        reference["loss"].as_f64().expect("loss"),
+        max_relative = 1e-9
+    );
     for (k, layer) in gradient.layers.iter().enumerate() {
         let weights = &reference["weight_gradients"][k];
         let bias = &reference["bias_gradients"][k];
         for r in 0..layer.weights.nrows() {
             for c in 0..layer.weights.ncols() {
                 let expected = weights[r][c].as_f64().expect("number");
-                assert_relative_eq!(layer.weights[(r, c)], expected, epsilon = 1e-12, max_relative = 1e-7);
+                assert_relative_eq!(
+                    layer.weights[(r, c)],
+                    expected,
+                    epsilon = 1e-12,
+                    max_relative = 1e-7
+                );
             }
-            assert_relative_eq!(layer.bias[r], bias[r].as_f64().expect("number"), epsilon = 1e-12, max_relative = 1e-7);
+            assert_relative_eq!(
+                layer.bias[r],
+                bias[r].as_f64().expect("number"),
+                epsilon = 1e-12,
+                max_relative = 1e-7
+            );
         }
     }
 }
@@ -232,7 +265,10 @@ mod robust_losses {
             .collect()
     }
 
-    fn setup() -> (Network, Vec<Region>, Vec<usize>, Vec<Vec<usize>>, Vec<f64>) {
+    /// Network, regions, labels, forbidden targets and sample weights of a small batch.
+    type Setup = (Network, Vec<Region>, Vec<usize>, Vec<Vec<usize>>, Vec<f64>);
+
+    fn setup() -> Setup {
         let network = he_network(4, &[6, 5], 3, 21);
         let regions = regions(0.3, Norm::Linf, 6, 22);
         let labels = vec![0, 1, 2, 0, 1, 2];
@@ -250,8 +286,9 @@ mod robust_losses {
     fn certified_loss_gradients_match_finite_differences() {
         let (network, regions, labels, targets, weights) = setup();
         for beta in [0.0, 0.4, 1.0] {
-            let batch = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, beta)
-                .expect("bounds");
+            let batch =
+                certified_cross_entropy(&network, &regions, &labels, &targets, &weights, beta)
+                    .expect("bounds");
             assert!(batch.loss.is_finite() && batch.loss > 0.0);
             let loss = |n: &Network| {
                 certified_cross_entropy(n, &regions, &labels, &targets, &weights, beta)
@@ -286,8 +323,10 @@ mod robust_losses {
         // L-inf sign steps are locally constant in the parameters, so finite differences agree.
         let (network, regions, labels, targets, weights) = setup();
         let kind = RobustLoss::Adversarial { steps: 5 };
-        let batch = robust_loss(kind, &network, &regions, &labels, &targets, &weights, 0.0, 9)
-            .expect("pgd");
+        let batch = robust_loss(
+            kind, &network, &regions, &labels, &targets, &weights, 0.0, 9,
+        )
+        .expect("pgd");
         let loss = |n: &Network| {
             robust_loss(kind, n, &regions, &labels, &targets, &weights, 0.0, 9)
                 .expect("pgd")
@@ -300,7 +339,9 @@ mod robust_losses {
             &network,
             &regions
                 .iter()
-                .map(|r| Budget::uniform(Norm::Linf, 0.0, 4).region(&r.center, &[-1.0; 4], &[1.0; 4]))
+                .map(|r| {
+                    Budget::uniform(Norm::Linf, 0.0, 4).region(&r.center, &[-1.0; 4], &[1.0; 4])
+                })
                 .collect::<Vec<_>>(),
             &labels,
             &targets,
@@ -319,19 +360,28 @@ mod robust_losses {
     fn training_bounds_are_below_sampled_margins() {
         let (network, regions, labels, targets, weights) = setup();
         let classifier = network.as_classifier();
-        let interval = batch_margin_lower_bounds(&classifier, &regions, &labels, &targets).expect("ibp");
-        let ibp = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 0.0).expect("b");
-        let mixed = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 1.0).expect("b");
+        let interval =
+            batch_margin_lower_bounds(&classifier, &regions, &labels, &targets).expect("ibp");
+        let ibp = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 0.0)
+            .expect("b");
+        let mixed = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 1.0)
+            .expect("b");
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
         for s in 0..regions.len() {
-            let worst_interval = interval.margins[s].iter().copied().fold(f64::INFINITY, f64::min);
+            let worst_interval = interval.margins[s]
+                .iter()
+                .copied()
+                .fold(f64::INFINITY, f64::min);
             assert_relative_eq!(ibp.worst_margins[s], worst_interval, epsilon = 1e-12);
             for _ in 0..300 {
                 let x: Vec<f64> = (0..4)
                     .map(|i| rng.gen_range(regions[s].lower[i]..=regions[s].upper[i]))
                     .collect();
                 let z = classifier.forward(&x);
-                let margin = targets[s].iter().map(|&j| z[labels[s]] - z[j]).fold(f64::INFINITY, f64::min);
+                let margin = targets[s]
+                    .iter()
+                    .map(|&j| z[labels[s]] - z[j])
+                    .fold(f64::INFINITY, f64::min);
                 assert!(mixed.worst_margins[s] <= margin + 1e-9, "sample {s}");
                 assert!(ibp.worst_margins[s] <= margin + 1e-9, "sample {s}");
             }
@@ -384,21 +434,44 @@ mod retraining {
         let floor = 0.85;
         let eps = 0.3;
         let cli = Cli::parse_from([
-            "ballast", "retrain", "--model", model_path.to_str().unwrap(), "--train", train.to_str().unwrap(),
-            "--acceptance", acceptance.to_str().unwrap(), "--eps", "0.3", "--floor", "0.85", "--hidden", "8",
-            "--epochs", "12", "--max-rounds", "2", "--seed", "3", "--out", out.to_str().unwrap(),
+            "ballast",
+            "retrain",
+            "--model",
+            model_path.to_str().unwrap(),
+            "--train",
+            train.to_str().unwrap(),
+            "--acceptance",
+            acceptance.to_str().unwrap(),
+            "--eps",
+            "0.3",
+            "--floor",
+            "0.85",
+            "--hidden",
+            "8",
+            "--epochs",
+            "12",
+            "--max-rounds",
+            "2",
+            "--seed",
+            "3",
+            "--out",
+            out.to_str().unwrap(),
         ]);
         let outcome = run(cli).expect("retrain runs");
         let model = Model::load(&out).expect("retrained model written");
         let provenance = model.provenance.as_ref().expect("provenance");
         assert_eq!(
-            provenance["retrain"]["parent_sha256"].as_str().expect("digest"),
+            provenance["retrain"]["parent_sha256"]
+                .as_str()
+                .expect("digest"),
             ballast::digest::sha256_file(&model_path).expect("digest")
         );
         let folder = dir.path().join("retrained.retrain");
         let log = std::fs::read_to_string(folder.join("log.csv")).expect("log");
         assert!(log.lines().count() >= 13, "{log}");
-        assert!(std::fs::read_to_string(folder.join("accuracy.svg")).expect("svg").contains("<polyline"));
+        assert!(std::fs::read_to_string(folder.join("accuracy.svg"))
+            .expect("svg")
+            .contains("<polyline"));
         assert!(folder.join("retrain.md").is_file());
         let data = load_csv(&acceptance, &model, &DataOptions::default()).expect("acceptance");
         let network = model.classifier();
@@ -411,14 +484,18 @@ mod retraining {
                 continue;
             }
             let region = budget.region(x, &model.input.lower, &model.input.upper);
-            let bounds = margin_lower_bounds(&network, &region, y, &[1 - y], Method::Linear, None).expect("bounds");
+            let bounds = margin_lower_bounds(&network, &region, y, &[1 - y], Method::Linear, None)
+                .expect("bounds");
             if bounds.certified() {
                 certified += 1;
             }
         }
         let fraction = certified as f64 / data.len() as f64;
         match outcome {
-            Outcome::Met => assert!(fraction >= floor, "claimed met but bounds certify {fraction}"),
+            Outcome::Met => assert!(
+                fraction >= floor,
+                "claimed met but bounds certify {fraction}"
+            ),
             Outcome::NotMet => {}
             other => panic!("unexpected outcome {other:?}"),
         }
@@ -429,14 +506,36 @@ mod retraining {
     #[test]
     fn bad_arguments_are_clear_errors() {
         let cli = Cli::parse_from([
-            "ballast", "retrain", "--model", "tests/data/digits_mlp.model.json", "--train",
-            "tests/data/digits_test.csv", "--eps", "0.01", "--floor", "1.5", "--out", "/nonexistent/x.json",
+            "ballast",
+            "retrain",
+            "--model",
+            "tests/data/digits_mlp.model.json",
+            "--train",
+            "tests/data/digits_test.csv",
+            "--eps",
+            "0.01",
+            "--floor",
+            "1.5",
+            "--out",
+            "/nonexistent/x.json",
         ]);
         let error = run(cli).unwrap_err().to_string();
         assert!(error.contains("--floor"), "{error}");
         let cli = Cli::parse_from([
-            "ballast", "retrain", "--model", "tests/data/digits_mlp.model.json", "--train",
-            "tests/data/digits_test.csv", "--eps", "0.01", "--floor", "0.5", "--loss", "magic", "--out", "x.json",
+            "ballast",
+            "retrain",
+            "--model",
+            "tests/data/digits_mlp.model.json",
+            "--train",
+            "tests/data/digits_test.csv",
+            "--eps",
+            "0.01",
+            "--floor",
+            "0.5",
+            "--loss",
+            "magic",
+            "--out",
+            "x.json",
         ]);
         let error = run(cli).unwrap_err().to_string();
         assert!(error.contains("--loss"), "{error}");

@@ -59,9 +59,8 @@ pub fn fgsm_point(region: &Region, gradient: &[f64], x: &mut [f64]) {
 pub fn random_start<R: Rng>(region: &Region, rng: &mut R, x: &mut [f64]) {
     match region.norm {
         Norm::Linf => {
-            for i in 0..x.len() {
-                let (lo, hi) = (region.lower[i], region.upper[i]);
-                x[i] = if hi > lo { rng.gen_range(lo..=hi) } else { lo };
+            for ((xi, &lo), &hi) in x.iter_mut().zip(&region.lower).zip(&region.upper) {
+                *xi = if hi > lo { rng.gen_range(lo..=hi) } else { lo };
             }
         }
         Norm::L2 => {
@@ -84,8 +83,8 @@ pub fn random_start<R: Rng>(region: &Region, rng: &mut R, x: &mut [f64]) {
             let length = direction.iter().map(|d| d * d).sum::<f64>().sqrt();
             if length > 0.0 {
                 let radius = rng.gen::<f64>().powf(1.0 / free as f64);
-                for i in 0..x.len() {
-                    x[i] += radius * region.radii[i] * direction[i] / length;
+                for ((xi, r), d) in x.iter_mut().zip(&region.radii).zip(&direction) {
+                    *xi += radius * r * d / length;
                 }
             }
             region.project(x);

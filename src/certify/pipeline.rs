@@ -118,6 +118,9 @@ struct Context<'a> {
     options: &'a PipelineOptions,
 }
 
+/// Receives each finished sample (e.g. to append it to a journal).
+pub type RecordSink<'a> = dyn FnMut(&SampleRecord) -> std::io::Result<()> + Send + 'a;
+
 /// Decides every sample of `indices` (row indices of `data`) and returns their records in the order
 /// given. `sink` is called once per finished sample (under a lock, from worker threads), e.g. to append
 /// to a journal; `cancel` stops the run before the next sample starts (finished samples are kept,
@@ -131,7 +134,7 @@ pub fn run(
     indices: &[usize],
     observer: &dyn Observer,
     cancel: &AtomicBool,
-    sink: &Mutex<dyn FnMut(&SampleRecord) -> std::io::Result<()> + Send + '_>,
+    sink: &Mutex<RecordSink<'_>>,
 ) -> Result<Vec<SampleRecord>, CertifyError> {
     let context = Context {
         network: model.classifier(),

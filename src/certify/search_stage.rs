@@ -7,8 +7,9 @@
 use std::time::Instant;
 
 use super::CertifyError;
+use crate::bound::BoundError;
 use crate::model::Network;
-use crate::search::{self, SearchSettings, Verdict};
+use crate::search::{self, SearchError, SearchSettings, Verdict};
 use crate::threat::Region;
 
 /// What the search established within its deadline.
@@ -37,13 +38,20 @@ pub fn run(
         seed,
         ..SearchSettings::default()
     };
-    let outcome =
-        search::verify_sample(network, region, label, forbidden, &settings).map_err(|e| {
-            CertifyError::Search {
+    let outcome = match search::verify_sample(network, region, label, forbidden, &settings) {
+        Ok(o) => o,
+        // A solver that fails, or a region the search does not handle, proves nothing either way: the
+        // sample stays open (unresolved).
+        Err(SearchError::Solver { .. })
+        | Err(SearchError::Bound(BoundError::Solver { .. }))
+        | Err(SearchError::Unsupported(_)) => return Ok(Found::Open),
+        Err(e) => {
+            return Err(CertifyError::Search {
                 index,
                 message: e.to_string(),
-            }
-        })?;
+            })
+        }
+    };
     Ok(match outcome.verdict {
         Verdict::Proved { .. } => Found::Proved,
         Verdict::Counterexample(c) => Found::Counterexample(c.input),

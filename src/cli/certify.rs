@@ -309,6 +309,9 @@ pub fn print_summary(report: &Report) {
         "certified {}, counterexample {}, misclassified {}, unresolved {}",
         s.certified, s.counterexample, s.misclassified, s.unresolved
     );
+    if s.not_run > 0 {
+        println!("not run (counted as unresolved): {}", s.not_run);
+    }
     if report.sweep.len() > 1 {
         for p in &report.sweep {
             println!(

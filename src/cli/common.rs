@@ -94,9 +94,9 @@ pub fn parse_epsilon_argument(text: &str) -> anyhow::Result<EpsilonArgument> {
         }
         return Ok(EpsilonArgument::ToleranceFile(trimmed.into()));
     }
-    Ok(EpsilonArgument::Values(crate::threat::requirement::parse_epsilon_list(
-        trimmed, "--eps",
-    )?))
+    Ok(EpsilonArgument::Values(
+        crate::threat::requirement::parse_epsilon_list(trimmed, "--eps")?,
+    ))
 }
 
 /// Parses a comma-separated list of class names or indices (for `--forbid-into` / `--forbid-from`).

@@ -8,11 +8,13 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 
-use super::common::{load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument};
+use super::common::{
+    load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument,
+};
 use super::Outcome;
 use crate::certify::PipelineOptions;
 use crate::threat::requirement::{RequirementSpec, ToleranceSource};
-use crate::train::constrained::{Constraint, ConstrainedEpoch, ConstrainedSettings, Formulation};
+use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::curves::{plot_svg, Series};
 use crate::train::plain::split_validation;
 use crate::train::retrain::{retrain, RetrainResult, RetrainSettings, RetrainVerdict};
@@ -21,7 +23,9 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 
 /// Arguments of `ballast retrain`.
 #[derive(Debug, clap::Args)]
-#[command(after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n\nExit codes: 0 floor proven on the acceptance data, 1 not met, 2 usage or input error.")]
+#[command(
+    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n\nExit codes: 0 floor proven on the acceptance data, 1 not met, 2 usage or input error."
+)]
 pub struct Args {
     /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
     #[arg(long)]
@@ -120,7 +124,9 @@ fn parse_hidden(text: &str) -> anyhow::Result<Vec<usize>> {
     text.split(',')
         .map(|p| match p.trim().parse::<usize>() {
             Ok(n) if n > 0 => Ok(n),
-            _ => bail!("--hidden: \"{p}\" is not allowed, expected layer sizes ≥ 1 like 32,32 (or none)"),
+            _ => bail!(
+                "--hidden: \"{p}\" is not allowed, expected layer sizes ≥ 1 like 32,32 (or none)"
+            ),
         })
         .collect()
 }
@@ -152,13 +158,23 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         bail!("--batch-size: must be at least 1");
     }
     if !(args.learning_rate.is_finite() && args.learning_rate > 0.0) {
-        bail!("--learning-rate: {} is not allowed, expected a number > 0", args.learning_rate);
+        bail!(
+            "--learning-rate: {} is not allowed, expected a number > 0",
+            args.learning_rate
+        );
     }
-    if !(args.slack.is_finite() && args.slack >= 0.0 && args.slack_step.is_finite() && args.slack_step >= 0.0) {
+    if !(args.slack.is_finite()
+        && args.slack >= 0.0
+        && args.slack_step.is_finite()
+        && args.slack_step >= 0.0)
+    {
         bail!("--slack / --slack-step: expected finite numbers ≥ 0");
     }
     if !(args.dual_step.is_finite() && args.dual_step > 0.0) {
-        bail!("--dual-step: {} is not allowed, expected a number > 0", args.dual_step);
+        bail!(
+            "--dual-step: {} is not allowed, expected a number > 0",
+            args.dual_step
+        );
     }
     if let Some(w) = args.penalty {
         if !(w.is_finite() && w >= 0.0) {
@@ -171,7 +187,9 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         },
         "interval" => RobustLoss::Interval,
         "adversarial" => RobustLoss::Adversarial { steps: 7 },
-        other => bail!("--loss: \"{other}\" is not allowed, expected certified, interval or adversarial"),
+        other => {
+            bail!("--loss: \"{other}\" is not allowed, expected certified, interval or adversarial")
+        }
     };
     let constraint = match args.constraint.as_str() {
         "error" => Constraint::RobustError {
@@ -179,7 +197,9 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             slack: args.slack,
         },
         "loss" => match args.level {
-            Some(level) if level.is_finite() && level >= 0.0 => Constraint::RobustLossLevel { level },
+            Some(level) if level.is_finite() && level >= 0.0 => {
+                Constraint::RobustLossLevel { level }
+            }
             Some(level) => bail!("--level: {level} is not allowed, expected a number ≥ 0"),
             None => bail!("--constraint loss needs --level (the allowed mean robust loss)"),
         },
@@ -197,7 +217,10 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
     let train_all = load_data(&args.train, &parent, &args.label_column, args.allow_large)?;
     let (train, validation) = match &args.val {
-        Some(p) => (train_all, load_data(p, &parent, &args.label_column, args.allow_large)?),
+        Some(p) => (
+            train_all,
+            load_data(p, &parent, &args.label_column, args.allow_large)?,
+        ),
         None => {
             let (t, v) = split_validation(&train_all, 0.2, args.seed);
             match v {
@@ -226,10 +249,16 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     }
     spec.floor = args.floor.map(|f| (f, "--floor".to_string()));
     if let Some(f) = &args.forbid_into {
-        spec.forbid_into = Some((parse_class_list(f, "--forbid-into")?, "--forbid-into".into()));
+        spec.forbid_into = Some((
+            parse_class_list(f, "--forbid-into")?,
+            "--forbid-into".into(),
+        ));
     }
     if let Some(f) = &args.forbid_from {
-        spec.forbid_from = Some((parse_class_list(f, "--forbid-from")?, "--forbid-from".into()));
+        spec.forbid_from = Some((
+            parse_class_list(f, "--forbid-from")?,
+            "--forbid-from".into(),
+        ));
     }
     let file_spec = match &args.requirement {
         Some(p) => RequirementSpec::from_file(p)?,
@@ -300,7 +329,15 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             e.validation_certified_accuracy.unwrap_or(f64::NAN)
         );
     };
-    let result = retrain(&initial, &train, Some(&validation), &acceptance, &requirement, &settings, &mut print_epoch)?;
+    let result = retrain(
+        &initial,
+        &train,
+        Some(&validation),
+        &acceptance,
+        &requirement,
+        &settings,
+        &mut print_epoch,
+    )?;
 
     // Outputs: model, then log and sheet in the folder beside it.
     let last = result.rounds.last().expect("at least one round");
@@ -331,13 +368,17 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     }));
     model.save(&args.out)?;
     let folder = sheet_folder(&args.out);
-    std::fs::create_dir_all(&folder).with_context(|| format!("{}: creating the folder", folder.display()))?;
+    std::fs::create_dir_all(&folder)
+        .with_context(|| format!("{}: creating the folder", folder.display()))?;
     write(&folder.join("log.csv"), &log_csv(&result))?;
     let (accuracy_svg, multiplier_svg) = curves(&result);
     write(&folder.join("accuracy.svg"), &accuracy_svg)?;
     write(&folder.join("loss_and_multiplier.svg"), &multiplier_svg)?;
     let described = requirement.describe(&|c| parent.class_name(c));
-    write(&folder.join("retrain.md"), &sheet_markdown(&args, &described, floor, &result, acceptance.len()))?;
+    write(
+        &folder.join("retrain.md"),
+        &sheet_markdown(&args, &described, floor, &result, acceptance.len()),
+    )?;
     println!(
         "retrain: {} after {} round(s): certified accuracy {:.4} (floor {}), clean accuracy {:.4}; model {}, sheet {}",
         match result.verdict {
@@ -358,7 +399,8 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
 }
 
 fn write(path: &Path, text: &str) -> anyhow::Result<()> {
-    crate::atomic::write_file(path, text.as_bytes()).with_context(|| format!("{}: writing", path.display()))
+    crate::atomic::write_file(path, text.as_bytes())
+        .with_context(|| format!("{}: writing", path.display()))
 }
 
 fn option(v: Option<f64>) -> String {
@@ -393,7 +435,10 @@ fn curves(result: &RetrainResult) -> (String, String) {
     let epochs = &result.epochs;
     let series = |name: &str, f: &dyn Fn(&ConstrainedEpoch) -> Option<f64>| Series {
         name: name.into(),
-        points: epochs.iter().filter_map(|e| f(e).map(|v| (e.epoch as f64, v))).collect(),
+        points: epochs
+            .iter()
+            .filter_map(|e| f(e).map(|v| (e.epoch as f64, v)))
+            .collect(),
         markers_only: false,
     };
     let accuracy = plot_svg(
@@ -412,16 +457,26 @@ fn curves(result: &RetrainResult) -> (String, String) {
         &[
             series("clean loss", &|e| Some(e.clean_loss)),
             series("robust loss", &|e| Some(e.robust_loss)),
-            series("λ (largest)", &|e| e.multipliers.iter().copied().reduce(f64::max)),
+            series("λ (largest)", &|e| {
+                e.multipliers.iter().copied().reduce(f64::max)
+            }),
         ],
     );
     (accuracy, multiplier)
 }
 
-fn sheet_markdown(args: &Args, requirement: &str, floor: f64, result: &RetrainResult, acceptance: usize) -> String {
+fn sheet_markdown(
+    args: &Args,
+    requirement: &str,
+    floor: f64,
+    result: &RetrainResult,
+    acceptance: usize,
+) -> String {
     let mut md = String::new();
     let verdict = match result.verdict {
-        RetrainVerdict::Met => "**met**: the certify pipeline proved the floor on the acceptance data",
+        RetrainVerdict::Met => {
+            "**met**: the certify pipeline proved the floor on the acceptance data"
+        }
         RetrainVerdict::NotMet => "**not met**: the floor was not proven on the acceptance data",
     };
     let _ = writeln!(md, "# Retraining sheet\n");
@@ -430,7 +485,11 @@ fn sheet_markdown(args: &Args, requirement: &str, floor: f64, result: &RetrainRe
     let _ = writeln!(md, "- requirement (floor {floor}): {requirement}");
     let formulation = match args.penalty {
         Some(w) => format!("fixed penalty weight {w}"),
-        None => format!("primal-dual (dual step {}{})", args.dual_step, if args.per_class { ", per class" } else { "" }),
+        None => format!(
+            "primal-dual (dual step {}{})",
+            args.dual_step,
+            if args.per_class { ", per class" } else { "" }
+        ),
     };
     let _ = writeln!(md, "- loss: {}, {formulation}", args.loss);
     let _ = writeln!(md, "- acceptance samples: {acceptance}");
@@ -441,11 +500,20 @@ fn sheet_markdown(args: &Args, requirement: &str, floor: f64, result: &RetrainRe
         let _ = writeln!(
             md,
             "| {} | {:.3} | {} | {:.4} | {:.4} | {:.4} | {:?} |",
-            r.round, r.slack, r.epochs, r.clean_accuracy, r.certified_accuracy, r.empirical_robust_accuracy, r.verdict
+            r.round,
+            r.slack,
+            r.epochs,
+            r.clean_accuracy,
+            r.certified_accuracy,
+            r.empirical_robust_accuracy,
+            r.verdict
         );
     }
     let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
-    let _ = writeln!(md, "![accuracy](accuracy.svg)\n\n![losses and multiplier](loss_and_multiplier.svg)\n");
+    let _ = writeln!(
+        md,
+        "![accuracy](accuracy.svg)\n\n![losses and multiplier](loss_and_multiplier.svg)\n"
+    );
     let _ = writeln!(md, "Per-epoch figures: `log.csv`.");
     md
 }

@@ -270,7 +270,7 @@ pub(crate) fn solve_leaf(
         value = piece.gradient.iter().zip(x).map(|(g, v)| g * v).sum::<f64>() + piece.constant;
         lower = lagrangian_bound(region, piece, &kkt_multipliers(region, piece, x));
     }
-    let tight = lower >= value - 1e-7 * (1.0 + value.abs());
+    let tight = point.is_some() && lower >= value - 1e-7 * (1.0 + value.abs());
     if !(tight || lower > threshold) {
         let multipliers = dual_multipliers(region, piece)?;
         lower = lower.max(lagrangian_bound(region, piece, &multipliers));

@@ -278,8 +278,7 @@ impl RequirementSpec {
                 return Err(invalid(place, "empty list, expected at least one class"));
             }
         }
-        if self.forbid_from.is_some() && self.forbid_into.is_none() {
-            let (_, place) = self.forbid_from.as_ref().expect("checked");
+        if let (Some((_, place)), None) = (&self.forbid_from, &self.forbid_into) {
             return Err(invalid(place, "restricts which classes the rule applies to, but no --forbid-into classes are given"));
         }
         let targets = if into.is_empty() {

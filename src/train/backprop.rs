@@ -43,7 +43,9 @@ pub struct ForwardCache {
 impl ForwardCache {
     /// The network's outputs (logits), one column per sample.
     pub fn logits(&self) -> &DMatrix<f64> {
-        self.pre_activations.last().expect("a network has at least one layer")
+        self.pre_activations
+            .last()
+            .expect("a network has at least one layer")
     }
 }
 
@@ -56,7 +58,11 @@ pub fn forward(network: &Network, batch: &DMatrix<f64>) -> ForwardCache {
     for (k, layer) in network.layers.iter().enumerate() {
         let z = layer.apply_batch(&h);
         inputs.push(h);
-        h = if k + 1 < count { z.map(|v| v.max(0.0)) } else { DMatrix::zeros(0, 0) };
+        h = if k + 1 < count {
+            z.map(|v| v.max(0.0))
+        } else {
+            DMatrix::zeros(0, 0)
+        };
         pre_activations.push(z);
     }
     ForwardCache {
@@ -67,7 +73,11 @@ pub fn forward(network: &Network, batch: &DMatrix<f64>) -> ForwardCache {
 
 /// Backward pass: given ∂loss/∂logits (`output_gradient`, one column per sample), the gradient of the
 /// loss with respect to every weight and bias.
-pub fn backward(network: &Network, cache: &ForwardCache, output_gradient: &DMatrix<f64>) -> Network {
+pub fn backward(
+    network: &Network,
+    cache: &ForwardCache,
+    output_gradient: &DMatrix<f64>,
+) -> Network {
     backward_with_input(network, cache, output_gradient, false).0
 }
 
@@ -173,7 +183,16 @@ mod tests {
         let b1 = DVector::from_vec(vec![0.1, -0.2, 0.05]);
         let w2 = DMatrix::from_row_slice(2, 3, &[0.3, -0.7, 0.4, 0.6, 0.1, -0.5]);
         let b2 = DVector::from_vec(vec![0.0, 0.2]);
-        Network::new(vec![Dense { weights: w1, bias: b1 }, Dense { weights: w2, bias: b2 }])
+        Network::new(vec![
+            Dense {
+                weights: w1,
+                bias: b1,
+            },
+            Dense {
+                weights: w2,
+                bias: b2,
+            },
+        ])
     }
 
     #[test]
@@ -201,7 +220,8 @@ mod tests {
     fn input_gradient_matches_finite_differences() {
         let net = small_network();
         let x = DMatrix::from_column_slice(2, 1, &[0.3, -0.4]);
-        let loss = |x: &DMatrix<f64>| softmax_cross_entropy(&forward(&net, x).logits().clone(), &[1]).0;
+        let loss =
+            |x: &DMatrix<f64>| softmax_cross_entropy(&forward(&net, x).logits().clone(), &[1]).0;
         let cache = forward(&net, &x);
         let (_, dl) = softmax_cross_entropy(cache.logits(), &[1]);
         let (_, dx) = backward_with_input(&net, &cache, &dl, true);

@@ -270,7 +270,8 @@ impl SampleBounds<'_> {
             .map(|b| -factor * (-b - shift).exp() / sum)
             .collect();
 
-        let mut d_lower: Vec<DVector<f64>> = self.lower.iter().map(|v| DVector::zeros(v.len())).collect();
+        let mut d_lower: Vec<DVector<f64>> =
+            self.lower.iter().map(|v| DVector::zeros(v.len())).collect();
         let mut d_upper: Vec<DVector<f64>> = d_lower.clone();
         let width = last.input_dim();
         let mut d_centre = DVector::zeros(width);
@@ -306,7 +307,8 @@ impl SampleBounds<'_> {
             for k in 0..hidden {
                 let layer = &net.layers[k];
                 let relaxed = &lambda_relaxed[k];
-                let d_relaxed = &d_lambda * layer.weights.transpose() + &d_constant * layer.bias.transpose();
+                let d_relaxed =
+                    &d_lambda * layer.weights.transpose() + &d_constant * layer.bias.transpose();
                 gradient.layers[k].weights += relaxed.transpose() * &d_lambda;
                 gradient.layers[k].bias += relaxed.transpose() * &d_constant;
                 let input = &lambda_in[k];
@@ -371,8 +373,18 @@ impl SampleBounds<'_> {
             let mut d_mid = DVector::zeros(n);
             let mut d_spread = DVector::zeros(n);
             for i in 0..n {
-                let dl = d_lower[k][i] + if self.lower[k][i] > 0.0 { d_low[i] } else { 0.0 };
-                let du = d_upper[k][i] + if self.upper[k][i] > 0.0 { d_high[i] } else { 0.0 };
+                let dl = d_lower[k][i]
+                    + if self.lower[k][i] > 0.0 {
+                        d_low[i]
+                    } else {
+                        0.0
+                    };
+                let du = d_upper[k][i]
+                    + if self.upper[k][i] > 0.0 {
+                        d_high[i]
+                    } else {
+                        0.0
+                    };
                 d_mid[i] = dl + du;
                 d_spread[i] = du - dl;
             }

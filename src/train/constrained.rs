@@ -25,7 +25,10 @@ use crate::threat::{Budget, Region, Targets};
 
 use super::backprop::add_scaled;
 use super::optimizer::Optimizer;
-use super::plain::{check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainSettings, TrainableModel};
+use super::plain::{
+    check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainSettings,
+    TrainableModel,
+};
 use super::robust::{robust_loss, RegionMap, RobustLoss};
 use super::TrainError;
 
@@ -105,7 +108,12 @@ impl ConstrainedSettings {
     pub fn validate(&self) -> Result<(), TrainError> {
         self.train.validate()?;
         let bad = |m: String| Err(TrainError::Settings(m));
-        if let Some(r) = self.budget.radii.iter().find(|r| !(r.is_finite() && **r >= 0.0)) {
+        if let Some(r) = self
+            .budget
+            .radii
+            .iter()
+            .find(|r| !(r.is_finite() && **r >= 0.0))
+        {
             return bad(format!("budget radius {r} must be a finite number ≥ 0"));
         }
         match self.constraint {
@@ -119,7 +127,9 @@ impl ConstrainedSettings {
             }
             Constraint::RobustLossLevel { level } => {
                 if !(level.is_finite() && level >= 0.0) {
-                    return bad(format!("robust loss level {level} must be a finite number ≥ 0"));
+                    return bad(format!(
+                        "robust loss level {level} must be a finite number ≥ 0"
+                    ));
                 }
             }
         }
@@ -133,12 +143,16 @@ impl ConstrainedSettings {
                     return bad(format!("dual step {dual_step} must be a finite number > 0"));
                 }
                 if !(initial_multiplier.is_finite() && initial_multiplier >= 0.0) {
-                    return bad(format!("initial multiplier {initial_multiplier} must be ≥ 0"));
+                    return bad(format!(
+                        "initial multiplier {initial_multiplier} must be ≥ 0"
+                    ));
                 }
             }
             Formulation::Penalty { weight } => {
                 if !(weight.is_finite() && weight >= 0.0) {
-                    return bad(format!("penalty weight {weight} must be a finite number ≥ 0"));
+                    return bad(format!(
+                        "penalty weight {weight} must be a finite number ≥ 0"
+                    ));
                 }
             }
         }
@@ -147,9 +161,14 @@ impl ConstrainedSettings {
                 return bad("PGD steps must be at least 1".into());
             }
         }
-        if let RobustLoss::LinearInterval { final_linear_weight } = self.loss {
+        if let RobustLoss::LinearInterval {
+            final_linear_weight,
+        } = self.loss
+        {
             if !(0.0..=1.0).contains(&final_linear_weight) {
-                return bad(format!("final linear weight {final_linear_weight} must lie in [0, 1]"));
+                return bad(format!(
+                    "final linear weight {final_linear_weight} must lie in [0, 1]"
+                ));
             }
         }
         Ok(())
@@ -192,7 +211,11 @@ pub struct ConstrainedState {
 
 impl ConstrainedState {
     /// A fresh state for `trainable` under `settings`.
-    pub fn new(trainable: &TrainableModel, settings: &ConstrainedSettings, classes: usize) -> ConstrainedState {
+    pub fn new(
+        trainable: &TrainableModel,
+        settings: &ConstrainedSettings,
+        classes: usize,
+    ) -> ConstrainedState {
         let multipliers = match settings.formulation {
             Formulation::PrimalDual {
                 initial_multiplier,
@@ -203,7 +226,11 @@ impl ConstrainedState {
         };
         ConstrainedState {
             network: trainable.network.clone(),
-            optimizer: Optimizer::new(settings.train.optimizer, settings.train.weight_decay, &trainable.network),
+            optimizer: Optimizer::new(
+                settings.train.optimizer,
+                settings.train.weight_decay,
+                &trainable.network,
+            ),
             multipliers,
             epochs_done: 0,
         }
@@ -237,7 +264,9 @@ pub fn train_constrained_epochs(
         .collect();
     let batches_per_epoch = train.len().div_ceil(settings.train.batch_size);
     let ramp_steps = settings.ramp_epochs * batches_per_epoch;
-    let mut rng = ChaCha8Rng::seed_from_u64(settings.train.seed ^ (state.epochs_done as u64).wrapping_mul(0x2545_f491_4f6c_dd1d));
+    let mut rng = ChaCha8Rng::seed_from_u64(
+        settings.train.seed ^ (state.epochs_done as u64).wrapping_mul(0x2545_f491_4f6c_dd1d),
+    );
     let mut order: Vec<usize> = (0..train.len()).collect();
     let mut records = Vec::with_capacity(epochs);
     for _ in 0..epochs {
@@ -248,11 +277,15 @@ pub fn train_constrained_epochs(
         let mut scale = 1.0;
         for (b, chunk) in order.chunks(settings.train.batch_size).enumerate() {
             let step = (epoch - 1) * batches_per_epoch + b + 1;
-            scale = if ramp_steps == 0 { 1.0 } else { (step as f64 / ramp_steps as f64).min(1.0) };
+            scale = if ramp_steps == 0 {
+                1.0
+            } else {
+                (step as f64 / ramp_steps as f64).min(1.0)
+            };
             let beta = match settings.loss {
-                RobustLoss::LinearInterval { final_linear_weight } => {
-                    1.0 - scale * (1.0 - final_linear_weight)
-                }
+                RobustLoss::LinearInterval {
+                    final_linear_weight,
+                } => 1.0 - scale * (1.0 - final_linear_weight),
                 _ => 0.0,
             };
             let batch = gather_columns(&features, chunk);
@@ -262,8 +295,12 @@ pub fn train_constrained_epochs(
                 return Err(TrainError::Diverged { epoch });
             }
             let budget = settings.budget.scaled(scale);
-            let regions: Vec<Region> = chunk.iter().map(|&i| map.region(train.sample(i), &budget)).collect();
-            let batch_targets: Vec<Vec<usize>> = chunk.iter().map(|&i| targets[i].clone()).collect();
+            let regions: Vec<Region> = chunk
+                .iter()
+                .map(|&i| map.region(train.sample(i), &budget))
+                .collect();
+            let batch_targets: Vec<Vec<usize>> =
+                chunk.iter().map(|&i| targets[i].clone()).collect();
             // Per-sample weights: λ (global) or λ_c · B / B_c (per class, so each term is a class mean).
             let per_class = state.multipliers.len() > 1;
             let mut class_counts = vec![0usize; classes];
@@ -296,34 +333,43 @@ pub fn train_constrained_epochs(
             add_scaled(&mut gradient, &robust.gradient, 1.0);
             state.optimizer.step(&mut state.network, &gradient, 1.0);
             let mean_robust = robust.sample_losses.iter().sum::<f64>() / chunk.len() as f64;
-            let error_rate = robust.errors.iter().filter(|e| **e).count() as f64 / chunk.len() as f64;
+            let error_rate =
+                robust.errors.iter().filter(|e| **e).count() as f64 / chunk.len() as f64;
             clean_total += clean * chunk.len() as f64;
             robust_total += mean_robust * chunk.len() as f64;
             error_total += error_rate * chunk.len() as f64;
             if let Formulation::PrimalDual { dual_step, .. } = settings.formulation {
                 let allowed = settings.constraint.allowed();
                 if per_class {
-                    for c in 0..classes {
-                        if class_counts[c] == 0 {
+                    for (c, &count) in class_counts.iter().enumerate() {
+                        if count == 0 {
                             continue;
                         }
-                        let members: Vec<usize> = (0..labels.len()).filter(|&s| labels[s] == c).collect();
+                        let members: Vec<usize> =
+                            (0..labels.len()).filter(|&s| labels[s] == c).collect();
                         let measured = match settings.constraint {
                             Constraint::RobustError { .. } => {
-                                members.iter().filter(|&&s| robust.errors[s]).count() as f64 / members.len() as f64
+                                members.iter().filter(|&&s| robust.errors[s]).count() as f64
+                                    / members.len() as f64
                             }
                             Constraint::RobustLossLevel { .. } => {
-                                members.iter().map(|&s| robust.sample_losses[s]).sum::<f64>() / members.len() as f64
+                                members
+                                    .iter()
+                                    .map(|&s| robust.sample_losses[s])
+                                    .sum::<f64>()
+                                    / members.len() as f64
                             }
                         };
-                        state.multipliers[c] = (state.multipliers[c] + dual_step * (measured - allowed)).max(0.0);
+                        state.multipliers[c] =
+                            (state.multipliers[c] + dual_step * (measured - allowed)).max(0.0);
                     }
                 } else {
                     let measured = match settings.constraint {
                         Constraint::RobustError { .. } => error_rate,
                         Constraint::RobustLossLevel { .. } => mean_robust,
                     };
-                    state.multipliers[0] = (state.multipliers[0] + dual_step * (measured - allowed)).max(0.0);
+                    state.multipliers[0] =
+                        (state.multipliers[0] + dual_step * (measured - allowed)).max(0.0);
                 }
             }
         }
@@ -340,10 +386,16 @@ pub fn train_constrained_epochs(
         };
         if let Some(v) = validation {
             let vf = trainable.to_network_units(&v.features);
-            record.validation_clean_accuracy = Some(loss_and_accuracy(&state.network, &vf, &v.labels).1);
+            record.validation_clean_accuracy =
+                Some(loss_and_accuracy(&state.network, &vf, &v.labels).1);
             if settings.measure_certified {
-                record.validation_certified_accuracy =
-                    Some(certified_accuracy(trainable, &state.network, v, &settings.budget, &settings.targets)?);
+                record.validation_certified_accuracy = Some(certified_accuracy(
+                    trainable,
+                    &state.network,
+                    v,
+                    &settings.budget,
+                    &settings.targets,
+                )?);
             }
         }
         observer(&record);
@@ -372,15 +424,17 @@ pub fn certified_accuracy(
     if correct.is_empty() {
         return Ok(0.0);
     }
-    let regions: Vec<Region> = correct.iter().map(|&i| map.region(data.sample(i), budget)).collect();
+    let regions: Vec<Region> = correct
+        .iter()
+        .map(|&i| map.region(data.sample(i), budget))
+        .collect();
     let labels: Vec<usize> = correct.iter().map(|&i| data.labels[i]).collect();
-    let target_lists: Vec<Vec<usize>> = labels.iter().map(|&y| targets.forbidden_for(y, classes)).collect();
+    let target_lists: Vec<Vec<usize>> = labels
+        .iter()
+        .map(|&y| targets.forbidden_for(y, classes))
+        .collect();
     let bounds = linear_batch(network, &regions, &labels, &target_lists)
         .map_err(|e| TrainError::Data(format!("linear bounds: {e}")))?;
-    let certified = bounds
-        .samples
-        .iter()
-        .filter(|b| b.certified())
-        .count();
+    let certified = bounds.samples.iter().filter(|b| b.certified()).count();
     Ok(certified as f64 / data.len() as f64)
 }

@@ -16,10 +16,14 @@ pub struct Series {
     pub markers_only: bool,
 }
 
-const COLOURS: [&str; 6] = ["#1f5fa8", "#c4452b", "#2c8a3b", "#8a5a00", "#6b3fa0", "#555555"];
+const COLOURS: [&str; 6] = [
+    "#1f5fa8", "#c4452b", "#2c8a3b", "#8a5a00", "#6b3fa0", "#555555",
+];
 
 fn escape(text: &str) -> String {
-    text.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;")
+    text.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
 }
 
 /// An SVG plot (640 × 360) of `series` with a title and axis labels.
@@ -31,7 +35,12 @@ pub fn plot_svg(title: &str, x_label: &str, y_label: &str, series: &[Series]) ->
         .flat_map(|s| s.points.iter().copied())
         .filter(|(x, y)| x.is_finite() && y.is_finite())
         .collect();
-    let (mut x0, mut x1, mut y0, mut y1) = (f64::INFINITY, f64::NEG_INFINITY, f64::INFINITY, f64::NEG_INFINITY);
+    let (mut x0, mut x1, mut y0, mut y1) = (
+        f64::INFINITY,
+        f64::NEG_INFINITY,
+        f64::INFINITY,
+        f64::NEG_INFINITY,
+    );
     for (x, y) in &finite {
         x0 = x0.min(*x);
         x1 = x1.max(*x);
@@ -57,7 +66,12 @@ pub fn plot_svg(title: &str, x_label: &str, y_label: &str, series: &[Series]) ->
         r#"<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" viewBox="0 0 {width} {height}" font-family="sans-serif" font-size="12">"#
     );
     let _ = writeln!(svg, r#"<rect width="100%" height="100%" fill="white"/>"#);
-    let _ = writeln!(svg, r#"<text x="{}" y="20" font-size="14">{}</text>"#, left, escape(title));
+    let _ = writeln!(
+        svg,
+        r#"<text x="{}" y="20" font-size="14">{}</text>"#,
+        left,
+        escape(title)
+    );
     let _ = writeln!(
         svg,
         r#"<rect x="{left}" y="{top}" width="{plot_w}" height="{plot_h}" fill="none" stroke="gray"/>"#
@@ -112,7 +126,10 @@ pub fn plot_svg(title: &str, x_label: &str, y_label: &str, series: &[Series]) ->
                 );
             }
         } else if !points.is_empty() {
-            let path: Vec<String> = points.iter().map(|(x, y)| format!("{:.1},{:.1}", px(*x), py(*y))).collect();
+            let path: Vec<String> = points
+                .iter()
+                .map(|(x, y)| format!("{:.1},{:.1}", px(*x), py(*y)))
+                .collect();
             let _ = writeln!(
                 svg,
                 r#"<polyline points="{}" fill="none" stroke="{colour}" stroke-width="2"/>"#,

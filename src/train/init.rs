@@ -27,7 +27,11 @@ pub fn fit_normalization(data: &Dataset) -> Normalization {
         let var = row.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n;
         mean[i] = m;
         let s = var.sqrt();
-        std[i] = if s.is_finite() && s > 1e-12 * (1.0 + m.abs()) { s } else { 1.0 };
+        std[i] = if s.is_finite() && s > 1e-12 * (1.0 + m.abs()) {
+            s
+        } else {
+            1.0
+        };
     }
     Normalization { mean, std }
 }

@@ -57,7 +57,9 @@ pub enum TrainError {
     #[error("training data: {0}")]
     Data(String),
     /// The loss became non-finite (step size too large or inputs far out of scale).
-    #[error("training diverged in epoch {epoch}: the loss is not finite (try a smaller learning rate)")]
+    #[error(
+        "training diverged in epoch {epoch}: the loss is not finite (try a smaller learning rate)"
+    )]
     Diverged {
         /// 1-based epoch.
         epoch: usize,

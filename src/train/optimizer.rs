@@ -43,9 +43,8 @@ impl OptimizerKind {
     /// The step size.
     pub fn learning_rate(&self) -> f64 {
         match self {
-            OptimizerKind::Adam { learning_rate, .. } | OptimizerKind::Sgd { learning_rate, .. } => {
-                *learning_rate
-            }
+            OptimizerKind::Adam { learning_rate, .. }
+            | OptimizerKind::Sgd { learning_rate, .. } => *learning_rate,
         }
     }
 }
@@ -184,6 +183,10 @@ mod tests {
         };
         let mut opt = Optimizer::new(kind, 0.5, &p);
         opt.step(&mut p, &scalar(0.0), 1.0);
-        assert_relative_eq!(p.layers[0].weights[0], 2.0 - 0.1 * 0.5 * 2.0, epsilon = 1e-12);
+        assert_relative_eq!(
+            p.layers[0].weights[0],
+            2.0 - 0.1 * 0.5 * 2.0,
+            epsilon = 1e-12
+        );
     }
 }

@@ -81,7 +81,10 @@ impl TrainSettings {
             }
         }
         if !(self.weight_decay.is_finite() && self.weight_decay >= 0.0) {
-            return bad(format!("weight decay {} must be a finite number ≥ 0", self.weight_decay));
+            return bad(format!(
+                "weight decay {} must be a finite number ≥ 0",
+                self.weight_decay
+            ));
         }
         if !(0.0..1.0).contains(&self.validation_fraction) {
             return bad(format!(
@@ -172,7 +175,8 @@ impl TrainableModel {
 
     /// The model with `network` in place of the trainable part (same normalisation and metadata).
     pub fn model_with(&self, network: &Network) -> Model {
-        self.template.with_network(self.normalization.as_ref(), network)
+        self.template
+            .with_network(self.normalization.as_ref(), network)
     }
 }
 
@@ -209,7 +213,11 @@ pub fn check_data(model: &Model, data: &Dataset, what: &str) -> Result<(), Train
 pub fn split_validation(data: &Dataset, fraction: f64, seed: u64) -> (Dataset, Option<Dataset>) {
     let n = data.len();
     let held = ((n as f64) * fraction).round() as usize;
-    let held = if fraction > 0.0 && n >= 2 { held.clamp(1, n - 1) } else { 0 };
+    let held = if fraction > 0.0 && n >= 2 {
+        held.clamp(1, n - 1)
+    } else {
+        0
+    };
     if held == 0 {
         return (data.clone(), None);
     }
@@ -228,11 +236,17 @@ const SPLIT_SEED_MIX: u64 = 0x9e37_79b9_7f4a_7c15;
 
 /// The columns `indices` of `features`.
 pub fn gather_columns(features: &DMatrix<f64>, indices: &[usize]) -> DMatrix<f64> {
-    DMatrix::from_fn(features.nrows(), indices.len(), |r, c| features[(r, indices[c])])
+    DMatrix::from_fn(features.nrows(), indices.len(), |r, c| {
+        features[(r, indices[c])]
+    })
 }
 
 /// Mean cross-entropy and clean accuracy of `network` on features already in network units.
-pub fn loss_and_accuracy(network: &Network, features: &DMatrix<f64>, labels: &[usize]) -> (f64, f64) {
+pub fn loss_and_accuracy(
+    network: &Network,
+    features: &DMatrix<f64>,
+    labels: &[usize],
+) -> (f64, f64) {
     let logits = classifier_logits(&network.forward_batch(features));
     let (loss, _) = softmax_cross_entropy(&logits, labels);
     let correct = (0..labels.len())

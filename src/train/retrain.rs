@@ -13,7 +13,7 @@ use crate::model::Model;
 use crate::threat::requirement::Requirement;
 
 use super::constrained::{
-    train_constrained_epochs, Constraint, ConstrainedEpoch, ConstrainedSettings, ConstrainedState,
+    train_constrained_epochs, ConstrainedEpoch, ConstrainedSettings, ConstrainedState, Constraint,
 };
 use super::plain::TrainableModel;
 use super::TrainError;
@@ -94,7 +94,9 @@ pub fn retrain(
         .floor
         .ok_or_else(|| TrainError::Settings("retraining needs a floor".into()))?;
     if settings.max_rounds == 0 {
-        return Err(TrainError::Settings("the round limit must be at least 1".into()));
+        return Err(TrainError::Settings(
+            "the round limit must be at least 1".into(),
+        ));
     }
     if !(settings.slack_step.is_finite() && settings.slack_step >= 0.0) {
         return Err(TrainError::Settings(format!(
@@ -165,7 +167,11 @@ pub fn retrain(
                 model,
                 epochs,
                 rounds,
-                verdict: if met { RetrainVerdict::Met } else { RetrainVerdict::NotMet },
+                verdict: if met {
+                    RetrainVerdict::Met
+                } else {
+                    RetrainVerdict::NotMet
+                },
                 report,
             });
         }

@@ -113,7 +113,12 @@ impl RegionMap {
                 Region {
                     center: map(&raw.center),
                     norm: raw.norm,
-                    radii: raw.radii.iter().enumerate().map(|(i, r)| r / n.std[i]).collect(),
+                    radii: raw
+                        .radii
+                        .iter()
+                        .enumerate()
+                        .map(|(i, r)| r / n.std[i])
+                        .collect(),
                     lower: map(&raw.lower),
                     upper: map(&raw.upper),
                 }
@@ -137,11 +142,19 @@ pub fn robust_loss(
 ) -> Result<RobustBatch, TrainError> {
     match loss {
         RobustLoss::Interval | RobustLoss::LinearInterval { .. } => {
-            let beta = if loss == RobustLoss::Interval { 0.0 } else { linear_weight };
+            let beta = if loss == RobustLoss::Interval {
+                0.0
+            } else {
+                linear_weight
+            };
             let batch = certified_cross_entropy(network, regions, labels, targets, weights, beta)?;
             Ok(RobustBatch {
                 loss: batch.loss,
-                errors: batch.worst_margins.iter().map(|m| *m <= CERTIFY_TOLERANCE).collect(),
+                errors: batch
+                    .worst_margins
+                    .iter()
+                    .map(|m| *m <= CERTIFY_TOLERANCE)
+                    .collect(),
                 sample_losses: batch.sample_losses,
                 gradient: batch.gradient,
             })
@@ -154,7 +167,14 @@ pub fn robust_loss(
 
 /// PGD on the worst forbidden margin from one random start: `steps` sign (L-inf) or normalised (L2)
 /// steps of size `2.5 / steps` of the radius, projected into the region after each step.
-pub fn pgd_point(network: &Network, region: &Region, label: usize, targets: &[usize], steps: usize, seed: u64) -> Vec<f64> {
+pub fn pgd_point(
+    network: &Network,
+    region: &Region,
+    label: usize,
+    targets: &[usize],
+    steps: usize,
+    seed: u64,
+) -> Vec<f64> {
     let classifier = network.as_classifier();
     let mut buffers = MarginGradient::new(&classifier);
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
@@ -183,7 +203,11 @@ pub fn pgd_point(network: &Network, region: &Region, label: usize, targets: &[us
 
 /// Restricted cross-entropy `log(1 + Σ_{j∈F} exp(−(z_y − z_j)))` of classifier logits, with its
 /// gradient with respect to them.
-pub fn restricted_cross_entropy(logits: &[f64], label: usize, targets: &[usize]) -> (f64, Vec<f64>) {
+pub fn restricted_cross_entropy(
+    logits: &[f64],
+    label: usize,
+    targets: &[usize],
+) -> (f64, Vec<f64>) {
     let mut gradient = vec![0.0; logits.len()];
     if targets.is_empty() {
         return (0.0, gradient);
@@ -210,14 +234,23 @@ fn adversarial_cross_entropy(
 ) -> Result<RobustBatch, TrainError> {
     let samples = regions.len();
     if weights.len() != samples || labels.len() != samples || targets.len() != samples {
-        return Err(TrainError::Data("regions, labels, targets and weights differ in length".into()));
+        return Err(TrainError::Data(
+            "regions, labels, targets and weights differ in length".into(),
+        ));
     }
     let dim = network.input_dim();
     let points: Vec<Vec<f64>> = (0..samples)
         .into_par_iter()
         .map(|s| {
             let sample_seed = seed ^ (s as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15);
-            pgd_point(network, &regions[s], labels[s], &targets[s], steps, sample_seed)
+            pgd_point(
+                network,
+                &regions[s],
+                labels[s],
+                &targets[s],
+                steps,
+                sample_seed,
+            )
         })
         .collect();
     let mut batch = DMatrix::zeros(dim, samples);

@@ -23,7 +23,7 @@ use super::tensor::{
     string_attribute, strings_attribute, Constant,
 };
 use super::OnnxError;
-use crate::model::{InputSpec, Layer, Model};
+use crate::model::{InputSpec, Layer, Model, ModelError};
 
 /// What the caller adds to or overrides in an imported model.
 #[derive(Debug, Clone, Default)]
@@ -388,6 +388,16 @@ impl<'a> Converter<'a> {
             }
         }
 
+        // Remaining uses of each tensor, so a value is moved (not copied) into its last consumer.
+        let mut uses: HashMap<String, usize> = HashMap::new();
+        *uses.entry(score_name.clone()).or_default() += 1;
+        for (index, node) in graph.node.iter().enumerate() {
+            if needed[index] {
+                for name in node.input.iter().filter(|n| !n.is_empty()) {
+                    *uses.entry(name.clone()).or_default() += 1;
+                }
+            }
+        }
         let mut dropped = Vec::new();
         let mut data_names = vec![input_name.clone()];
         for (index, node) in graph.node.iter().enumerate() {
@@ -400,8 +410,16 @@ impl<'a> Converter<'a> {
                     args.push(None);
                     continue;
                 }
-                match symbols.get(name) {
-                    Some(s) => args.push(Some(s.clone())),
+                let remaining = uses.get_mut(name).map(|u| {
+                    *u = u.saturating_sub(1);
+                    *u
+                });
+                let symbol = match remaining {
+                    Some(0) => symbols.remove(name),
+                    _ => symbols.get(name).cloned(),
+                };
+                match symbol {
+                    Some(s) => args.push(Some(s)),
                     None => {
                         return Err(self.unsupported(
                             index,
@@ -1207,21 +1225,77 @@ fn assemble(
         input: InputSpec {
             dim,
             names,
-            lower: vec![f64::NEG_INFINITY; dim],
-            upper: vec![f64::INFINITY; dim],
+            lower,
+            upper,
         },
         classes,
         layers,
         provenance: Some(provenance),
     };
-    // Validate through the layout's own checks (sizes, classes, names); the range is checked above
-    // because JSON cannot hold a partly infinite range.
-    let text =
-        serde_json::to_string(&model.to_json_value()).map_err(|e| graph_error(e.to_string()))?;
-    let mut checked = Model::from_json_str(&text)?;
-    checked.input.lower = lower;
-    checked.input.upper = upper;
-    Ok(checked)
+    validate(&model)?;
+    Ok(model)
+}
+
+/// The layout's rules for a converted model: sizes chain, every layer non-empty, std > 0, classes and
+/// feature names fit (finiteness is checked before).
+fn validate(model: &Model) -> Result<(), OnnxError> {
+    let invalid =
+        |place: String, message: String| OnnxError::Model(ModelError::Invalid { place, message });
+    let mut width = model.input.dim;
+    for (i, layer) in model.layers.iter().enumerate() {
+        match layer {
+            Layer::Normalize { mean, std } => {
+                if mean.len() != width || std.len() != width || std.iter().any(|s| *s <= 0.0) {
+                    return Err(invalid(
+                        format!("layers[{i}]"),
+                        format!("normalize must have {width} entries with std > 0"),
+                    ));
+                }
+            }
+            Layer::Dense { weights, bias } => {
+                if weights.ncols() != width || weights.nrows() == 0 || bias.len() != weights.nrows()
+                {
+                    return Err(invalid(
+                        format!("layers[{i}]"),
+                        format!(
+                            "dense is {}x{}, expected at least one row of {width} inputs",
+                            weights.nrows(),
+                            weights.ncols()
+                        ),
+                    ));
+                }
+                width = weights.nrows();
+            }
+            Layer::Relu => {}
+        }
+    }
+    if let Some(classes) = &model.classes {
+        let expected = if width == 1 { 2 } else { width };
+        if classes.len() != expected {
+            return Err(invalid(
+                "classes".into(),
+                format!(
+                    "has {} names, expected {expected} (the model has {width} output{})",
+                    classes.len(),
+                    if width == 1 {
+                        ", a binary classifier"
+                    } else {
+                        "s"
+                    }
+                ),
+            ));
+        }
+    }
+    if let Some(names) = &model.input.names {
+        let distinct: HashSet<&String> = names.iter().collect();
+        if names.len() != model.input.dim || distinct.len() != names.len() {
+            return Err(invalid(
+                "input.names".into(),
+                format!("expected {} distinct names", model.input.dim),
+            ));
+        }
+    }
+    Ok(())
 }
 
 #[cfg(test)]
