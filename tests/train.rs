@@ -42,8 +42,8 @@ fn check_gradient(
 ) {
     let h = 1e-6;
     let mut checked = 0;
-    for k in 0..network.layers.len() {
-        let (rows, cols) = network.layers[k].weights.shape();
+    for (k, layer) in network.layers.iter().enumerate() {
+        let (rows, cols) = layer.weights.shape();
         for r in 0..rows {
             for c in 0..cols {
                 let mut plus = network.clone();
@@ -367,7 +367,7 @@ mod robust_losses {
         let mixed = certified_cross_entropy(&network, &regions, &labels, &targets, &weights, 1.0)
             .expect("b");
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
-        for s in 0..regions.len() {
+        for (s, region) in regions.iter().enumerate() {
             let worst_interval = interval.margins[s]
                 .iter()
                 .copied()
@@ -375,7 +375,7 @@ mod robust_losses {
             assert_relative_eq!(ibp.worst_margins[s], worst_interval, epsilon = 1e-12);
             for _ in 0..300 {
                 let x: Vec<f64> = (0..4)
-                    .map(|i| rng.gen_range(regions[s].lower[i]..=regions[s].upper[i]))
+                    .map(|i| rng.gen_range(region.lower[i]..=region.upper[i]))
                     .collect();
                 let z = classifier.forward(&x);
                 let margin = targets[s]
@@ -477,9 +477,8 @@ mod retraining {
         let network = model.classifier();
         let budget = Budget::uniform(Norm::Linf, eps, 2);
         let mut certified = 0;
-        for i in 0..data.len() {
+        for (i, &y) in data.labels.iter().enumerate() {
             let x = data.sample(i);
-            let y = data.labels[i];
             if predicted_class(network.forward(x).as_slice()) != y {
                 continue;
             }
@@ -539,5 +538,149 @@ mod retraining {
         ]);
         let error = run(cli).unwrap_err().to_string();
         assert!(error.contains("--loss"), "{error}");
+    }
+}
+
+mod primal_dual {
+    use super::*;
+    use ballast::model::InputSpec;
+    use ballast::threat::{Budget, Norm, Targets};
+    use ballast::train::constrained::{
+        train_constrained_epochs, ConstrainedSettings, ConstrainedState, Constraint, Formulation,
+    };
+    use ballast::train::plain::TrainableModel;
+    use ballast::train::robust::RobustLoss;
+    use rand::{Rng, SeedableRng};
+
+    /// Three overlapping classes in 2-D (class means on a line, std 0.6).
+    fn three_classes(samples: usize) -> Dataset {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let normal = rand_distr::Normal::new(0.0, 0.6).expect("normal");
+        let mut features = DMatrix::zeros(2, samples);
+        let mut labels = Vec::with_capacity(samples);
+        for i in 0..samples {
+            let y = i % 3;
+            features[(0, i)] = (y as f64 - 1.0 + rng.sample::<f64, _>(normal)).clamp(-3.0, 3.0);
+            features[(1, i)] = rng.sample::<f64, _>(normal).clamp(-3.0, 3.0);
+            labels.push(y);
+        }
+        Dataset { features, labels }
+    }
+
+    fn settings(
+        loss: RobustLoss,
+        constraint: Constraint,
+        formulation: Formulation,
+    ) -> ConstrainedSettings {
+        ConstrainedSettings {
+            train: TrainSettings {
+                epochs: 2,
+                batch_size: 32,
+                patience: None,
+                validation_fraction: 0.0,
+                ..TrainSettings::default()
+            },
+            budget: Budget::uniform(Norm::Linf, 0.5, 2),
+            targets: Targets::Any,
+            loss,
+            constraint,
+            formulation,
+            ramp_epochs: 0,
+            measure_certified: true,
+        }
+    }
+
+    fn run(settings: &ConstrainedSettings) -> Vec<ballast::train::constrained::ConstrainedEpoch> {
+        let data = three_classes(240);
+        let input = InputSpec {
+            dim: 2,
+            names: None,
+            lower: vec![-3.0; 2],
+            upper: vec![3.0; 2],
+        };
+        let model = new_mlp(&input, 3, &[8], &data, 4).expect("model");
+        let trainable = TrainableModel::new(&model);
+        let mut state = ConstrainedState::new(&trainable, settings, 3);
+        train_constrained_epochs(
+            &trainable,
+            &mut state,
+            &data,
+            Some(&data),
+            settings,
+            2,
+            &mut |_| {},
+        )
+        .expect("training runs")
+    }
+
+    // Projected dual ascent (Arrow, Hurwicz & Uzawa, 1958): λ stays ≥ 0, grows while the measured
+    // constraint exceeds its allowance and stays at 0 when the allowance can never be exceeded.
+    #[test]
+    fn multipliers_follow_projected_dual_ascent() {
+        let dual = Formulation::PrimalDual {
+            dual_step: 0.1,
+            initial_multiplier: 0.0,
+            per_class: false,
+        };
+        let loss = RobustLoss::Interval;
+        // Floor 1: every robust error violates the constraint (allowed 0), and overlapping classes at
+        // eps 0.5 always have some.
+        let strict = run(&settings(
+            loss,
+            Constraint::RobustError {
+                floor: 1.0,
+                slack: 0.0,
+            },
+            dual,
+        ));
+        assert!(strict.last().expect("epoch").multipliers[0] > 0.0);
+        assert!(strict.iter().all(|e| (0.0..=1.0).contains(&e.robust_error)));
+        let certified = strict
+            .last()
+            .expect("epoch")
+            .validation_certified_accuracy
+            .expect("measured");
+        assert!((0.0..=1.0).contains(&certified));
+        // Floor 0: allowed error 1, never exceeded, so λ is projected back to 0 every step.
+        let loose = run(&settings(
+            loss,
+            Constraint::RobustError {
+                floor: 0.0,
+                slack: 0.0,
+            },
+            dual,
+        ));
+        assert!(loose.iter().all(|e| e.multipliers[0].abs() < 1e-300));
+        // Per class: one multiplier per class, all ≥ 0.
+        let per_class = Formulation::PrimalDual {
+            dual_step: 0.1,
+            initial_multiplier: 0.0,
+            per_class: true,
+        };
+        let classes = run(&settings(
+            loss,
+            Constraint::RobustLossLevel { level: 0.0 },
+            per_class,
+        ));
+        let last = classes.last().expect("epoch");
+        assert_eq!(last.multipliers.len(), 3);
+        assert!(
+            last.multipliers.iter().all(|m| *m > 0.0),
+            "{:?}",
+            last.multipliers
+        );
+        // Fixed penalty: the weight never moves.
+        let fixed = run(&settings(
+            RobustLoss::Adversarial { steps: 3 },
+            Constraint::RobustError {
+                floor: 1.0,
+                slack: 0.0,
+            },
+            Formulation::Penalty { weight: 0.7 },
+        ));
+        assert!(fixed.iter().all(|e| (e.multipliers[0] - 0.7).abs() < 1e-12));
+        assert!(fixed
+            .iter()
+            .all(|e| e.robust_loss.is_finite() && e.robust_loss > 0.0));
     }
 }

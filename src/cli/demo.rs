@@ -24,6 +24,9 @@ pub struct Args {
 
 /// Runs `ballast demo`.
 pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
+    if args.out.exists() && !args.out.is_dir() {
+        anyhow::bail!("--out: {} exists and is not a folder", args.out.display());
+    }
     let options = DemoOptions {
         out: args.out.clone(),
         quick: args.quick,

@@ -75,16 +75,16 @@ pub fn write_all<'a>(
     folder: &Path,
     files: impl IntoIterator<Item = (&'a str, &'a str)>,
 ) -> Result<Vec<PathBuf>, DemoError> {
-    std::fs::create_dir_all(folder).map_err(|source| DemoError::Io {
+    std::fs::create_dir_all(folder).map_err(|cause| DemoError::Io {
         path: folder.display().to_string(),
-        source,
+        cause,
     })?;
     let mut written = Vec::new();
     for (name, text) in files {
         let path = folder.join(name);
-        crate::atomic::write_file(&path, text.as_bytes()).map_err(|source| DemoError::Io {
+        crate::atomic::write_file(&path, text.as_bytes()).map_err(|cause| DemoError::Io {
             path: path.display().to_string(),
-            source,
+            cause,
         })?;
         written.push(path);
     }

@@ -18,12 +18,12 @@ pub mod scenario;
 #[derive(Debug, thiserror::Error)]
 pub enum DemoError {
     /// A file or folder could not be written or read.
-    #[error("{path}: {source}")]
+    #[error("{path}: {cause}")]
     Io {
         /// The file or folder.
         path: String,
         /// What the system said.
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     /// Training a demo model failed.
     #[error("training the demo model: {0}")]

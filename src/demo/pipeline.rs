@@ -265,14 +265,14 @@ fn certify_model(
     command_line: &[String],
     first_rows_only: Option<usize>,
 ) -> Result<CertifiedModel, DemoError> {
-    std::fs::create_dir_all(folder).map_err(|source| DemoError::Io {
+    std::fs::create_dir_all(folder).map_err(|cause| DemoError::Io {
         path: folder.display().to_string(),
-        source,
+        cause,
     })?;
     let mut sources =
-        Sources::from_files(model_path, data_path).map_err(|source| DemoError::Io {
+        Sources::from_files(model_path, data_path).map_err(|cause| DemoError::Io {
             path: model_path.display().to_string(),
-            source,
+            cause,
         })?;
     if let Some(rows) = first_rows_only {
         sources.data_path = format!("{} (first {rows} rows, --quick)", data_path.display());
@@ -291,9 +291,9 @@ fn certify_model(
         report.counterexamples = Some("report.counterexamples.csv".into());
     }
     crate::atomic::write_file(&report_path, report.to_json_string().as_bytes()).map_err(
-        |source| DemoError::Io {
+        |cause| DemoError::Io {
             path: report_path.display().to_string(),
-            source,
+            cause,
         },
     )?;
     let (sheet_markdown, sheet_html) = crate::sheet::write_sheet(&report, folder)?;

@@ -8,7 +8,7 @@ const WIDTH: f64 = 640.0;
 const HEIGHT: f64 = 300.0;
 const LEFT: f64 = 60.0;
 const RIGHT: f64 = 20.0;
-const TOP: f64 = 20.0;
+const TOP: f64 = 36.0;
 const BOTTOM: f64 = 50.0;
 
 fn short(v: f64) -> String {
@@ -134,19 +134,18 @@ pub fn sweep_plot(plot: &SweepPlot) -> String {
             y(*a)
         ));
     }
+    // Legend above the plot area, clear of every line.
+    let ly = TOP - 12.0;
     s.push_str(&format!(
-        "<g font-size=\"11\"><line x1=\"{lx}\" x2=\"{}\" y1=\"{ly}\" y2=\"{ly}\" stroke=\"#1f5fa8\" stroke-width=\"2.5\"/><text x=\"{}\" y=\"{}\">certified (lower bound)</text>\
-<line x1=\"{lx}\" x2=\"{}\" y1=\"{}\" y2=\"{}\" stroke=\"#c06000\" stroke-width=\"2\" stroke-dasharray=\"6 4\"/><text x=\"{}\" y=\"{}\">empirical (upper bound)</text></g>\n",
-        LEFT + 34.0,
-        LEFT + 40.0,
-        TOP + plot_h - 26.0,
-        LEFT + 34.0,
-        TOP + plot_h - 12.0,
-        TOP + plot_h - 12.0,
-        LEFT + 40.0,
-        TOP + plot_h - 8.0,
-        lx = LEFT + 10.0,
-        ly = TOP + plot_h - 30.0,
+        "<g font-size=\"11\"><line x1=\"{LEFT}\" x2=\"{}\" y1=\"{ly}\" y2=\"{ly}\" stroke=\"#1f5fa8\" stroke-width=\"2.5\"/><text x=\"{}\" y=\"{}\">certified (lower bound)</text>\
+<line x1=\"{}\" x2=\"{}\" y1=\"{ly}\" y2=\"{ly}\" stroke=\"#c06000\" stroke-width=\"2\" stroke-dasharray=\"6 4\"/><text x=\"{}\" y=\"{}\">empirical (upper bound)</text></g>\n",
+        LEFT + 24.0,
+        LEFT + 30.0,
+        ly + 4.0,
+        LEFT + 190.0,
+        LEFT + 214.0,
+        LEFT + 220.0,
+        ly + 4.0,
     ));
     s.push_str("</svg>\n");
     s
