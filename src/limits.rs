@@ -49,3 +49,37 @@ pub fn read_text_file(path: &Path, max_bytes: u64) -> std::io::Result<String> {
         .map(str::to_owned)
         .unwrap_or(text))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn file_with(bytes: &[u8]) -> tempfile::NamedTempFile {
+        let file = tempfile::NamedTempFile::new().expect("temporary file");
+        std::fs::write(file.path(), bytes).expect("write");
+        file
+    }
+
+    #[test]
+    fn refuses_files_above_the_limit_before_reading() {
+        let file = file_with(b"0123456789");
+        let error = read_text_file(file.path(), 9).expect_err("10 bytes > 9");
+        assert!(error.to_string().contains("above the limit of 9 bytes"), "{error}");
+        assert_eq!(read_text_file(file.path(), 10).expect("at the limit"), "0123456789");
+    }
+
+    #[test]
+    fn the_unlimited_setting_does_not_overflow() {
+        let file = file_with(b"label\n1\n");
+        assert_eq!(read_text_file(file.path(), u64::MAX).expect("no limit"), "label\n1\n");
+    }
+
+    #[test]
+    fn names_the_offset_of_invalid_utf8_and_skips_a_bom() {
+        let file = file_with(b"abc\xffdef");
+        let error = read_text_file(file.path(), 100).expect_err("invalid UTF-8");
+        assert!(error.to_string().contains("offset 3"), "{error}");
+        let file = file_with(b"\xef\xbb\xbflabel");
+        assert_eq!(read_text_file(file.path(), 100).expect("BOM"), "label");
+    }
+}

@@ -13,7 +13,11 @@ use crate::threat::{Budget, Norm};
 pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
     let model = if crate::model::onnx::is_onnx_path(path) {
         // ONNX is converted in memory; its input range is unbounded unless the file's metadata says so.
-        let max_bytes = if allow_large { u64::MAX } else { crate::limits::MAX_MODEL_FILE_BYTES };
+        let max_bytes = if allow_large {
+            u64::MAX
+        } else {
+            crate::limits::MAX_MODEL_FILE_BYTES
+        };
         crate::model::onnx::load_onnx(path, max_bytes, &Default::default())?
     } else {
         Model::load(path)?

@@ -254,6 +254,86 @@ fn kkt_multipliers(region: &Region, piece: &AffinePiece, x: &[f64]) -> Vec<f64> 
     multipliers
 }
 
+/// A sound bound for a sub-domain the primal LP found empty, from the phase-one LP
+/// `min Σ s_r` s.t. `S x + s ≥ t`, `s ≥ 0`, `x` in the box. Its KKT multipliers `y ∈ [0, 1]` (1 on rows
+/// with positive slack, least squares on the active rows so that `Sᵀy` vanishes on free coordinates)
+/// give `φ(y) = min_{x ∈ region} yᵀ(t − S x)`; when `φ(y) > 0` no region input meets the rows, and the
+/// Lagrangian with multipliers `cap · y` is a sound (very large) bound. `None` when the certificate fails.
+fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, SearchError> {
+    let n = piece.gradient.len();
+    let rows = piece.rows.len();
+    let mut program = LinearProgram::default();
+    for i in 0..n {
+        program.add_variable(0.0, region.lower[i], region.upper[i]);
+    }
+    for (r, (row, t)) in piece.rows.iter().zip(&piece.right_hand_sides).enumerate() {
+        let slack = program.add_variable(1.0, 0.0, f64::INFINITY);
+        let mut coefficients: Vec<(usize, f64)> = row
+            .iter()
+            .enumerate()
+            .filter(|(_, v)| **v != 0.0)
+            .map(|(i, v)| (i, *v))
+            .collect();
+        coefficients.push((slack, 1.0));
+        debug_assert_eq!(slack, n + r);
+        program.rows.push(Row {
+            coefficients,
+            lower: *t,
+            upper: f64::INFINITY,
+        });
+    }
+    let LpOutcome::Optimal { point, .. } = minimise(&program, None)? else {
+        return Ok(None);
+    };
+    let x = &point[..n];
+    let scale = 1e-7;
+    let mut y = vec![0.0; rows];
+    let mut active = Vec::new();
+    for r in 0..rows {
+        let slack = point[n + r];
+        let value: f64 = piece.rows[r].iter().zip(x).map(|(a, b)| a * b).sum();
+        let tolerance = scale * (1.0 + piece.right_hand_sides[r].abs());
+        if slack > tolerance {
+            y[r] = 1.0;
+        } else if value - piece.right_hand_sides[r] <= tolerance {
+            active.push(r);
+        }
+    }
+    let free: Vec<usize> = (0..n)
+        .filter(|&i| {
+            let width = region.upper[i] - region.lower[i];
+            x[i] > region.lower[i] + scale * (1.0 + width)
+                && x[i] < region.upper[i] - scale * (1.0 + width)
+        })
+        .collect();
+    if !active.is_empty() && !free.is_empty() {
+        let matrix = DMatrix::from_fn(free.len(), active.len(), |i, r| piece.rows[active[r]][free[i]]);
+        let target = DVector::from_fn(free.len(), |i, _| {
+            -(0..rows).map(|r| y[r] * piece.rows[r][free[i]]).sum::<f64>()
+        });
+        if let Ok(solution) = matrix.svd(true, true).solve(&target, 1e-12) {
+            for (r, value) in active.iter().zip(solution.iter()) {
+                y[*r] = value.clamp(0.0, 1.0);
+            }
+        }
+    }
+    // φ(y) = yᵀt + min_x (−Sᵀy)ᵀx
+    let mut coefficients = vec![0.0; n];
+    let mut constant = 0.0;
+    for r in 0..rows {
+        constant += y[r] * piece.right_hand_sides[r];
+        for (c, s) in coefficients.iter_mut().zip(&piece.rows[r]) {
+            *c -= y[r] * s;
+        }
+    }
+    let certificate = concretise::minimum(region, &coefficients) + constant;
+    if certificate <= 0.0 {
+        return Ok(None);
+    }
+    let multipliers: Vec<f64> = y.iter().map(|v| v * MULTIPLIER_CAP).collect();
+    Ok(Some(lagrangian_bound(region, piece, &multipliers)))
+}
+
 /// Solves a leaf: the primal LP for the minimiser and value, then a sound Lagrangian bound from the KKT
 /// multipliers at the optimum; when that bound is not within `1e-7` of the LP value (degenerate optimum,
 /// solver noise, an L2 region) and does not exceed `threshold`, the multipliers of the dual LP are tried
@@ -269,6 +349,11 @@ pub(crate) fn solve_leaf(
     if let Some(x) = &point {
         value = piece.gradient.iter().zip(x).map(|(g, v)| g * v).sum::<f64>() + piece.constant;
         lower = lagrangian_bound(region, piece, &kkt_multipliers(region, piece, x));
+    }
+    if point.is_none() {
+        if let Some(bound) = emptiness_bound(region, piece)? {
+            lower = bound;
+        }
     }
     let tight = point.is_some() && lower >= value - 1e-7 * (1.0 + value.abs());
     if !(tight || lower > threshold) {

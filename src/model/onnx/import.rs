@@ -840,6 +840,13 @@ impl<'a> Converter<'a> {
         path.labels = labels;
         path.single_logit = rows == 1;
         let transform = string_attribute(node, "post_transform").unwrap_or_else(|| "NONE".into());
+        if rows == 1 && !matches!(transform.as_str(), "NONE" | "LOGISTIC") {
+            // Only these two were checked against onnxruntime's one-row binary convention.
+            return Err(self.unsupported(
+                index,
+                format!("a single coefficient row with post_transform {transform} is not supported (expected NONE or LOGISTIC)"),
+            ));
+        }
         match transform.as_str() {
             "NONE" => {}
             "LOGISTIC" | "SOFTMAX" | "PROBIT" => {
