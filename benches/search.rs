@@ -96,9 +96,15 @@ fn main() {
             let seconds = start.elapsed().as_secs_f64();
             let finished = outcomes
                 .iter()
-                .filter(|o| o.as_ref().is_ok_and(|o| o.targets.iter().all(|t| t.finished)))
+                .filter(|o| {
+                    o.as_ref()
+                        .is_ok_and(|o| o.targets.iter().all(|t| t.finished))
+                })
                 .count();
-            println!("  optimality mode: {finished}/{} samples exact, {seconds:.3} s with rayon", problems.len());
+            println!(
+                "  optimality mode: {finished}/{} samples exact, {seconds:.3} s with rayon",
+                problems.len()
+            );
         }
     }
 }

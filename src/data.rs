@@ -14,7 +14,7 @@ use crate::model::Model;
 #[derive(Debug, thiserror::Error)]
 pub enum DataError {
     /// The file could not be read.
-    #[error("{path}: {source}")]
+    #[error("{path}")]
     Io {
         /// The file.
         path: String,

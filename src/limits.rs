@@ -1,12 +1,16 @@
 //! Resource limits on what ballast reads, checked before anything is allocated from a size in a file.
 //!
-//! Every limit can be lifted with `--allow-large`; the defaults keep a hostile or mistaken file from
-//! exhausting memory or time.
+//! File sizes are checked from the file's metadata before reading, and reading stops one byte past the
+//! limit in case the file grows meanwhile. The parameter limit is checked by the command line
+//! (`cli::common::load_model`) against the larger of a model's layout parameter count and the size of its
+//! folded network (`Model::network_parameter_count`), which is computed from the shapes before anything is
+//! built. `--allow-large` lifts the data-size and parameter limits (and the ONNX file size); the JSON model
+//! file size and the small-file limit always apply. docs/hardening.md lists them all. Nothing here parses.
 
 use std::io::Read;
 use std::path::Path;
 
-/// Largest model file read without `--allow-large` (bytes).
+/// Largest JSON model file read (bytes).
 pub const MAX_MODEL_FILE_BYTES: u64 = 512 * 1024 * 1024;
 /// Largest data file read without `--allow-large` (bytes).
 pub const MAX_DATA_FILE_BYTES: u64 = 1024 * 1024 * 1024;
@@ -64,14 +68,23 @@ mod tests {
     fn refuses_files_above_the_limit_before_reading() {
         let file = file_with(b"0123456789");
         let error = read_text_file(file.path(), 9).expect_err("10 bytes > 9");
-        assert!(error.to_string().contains("above the limit of 9 bytes"), "{error}");
-        assert_eq!(read_text_file(file.path(), 10).expect("at the limit"), "0123456789");
+        assert!(
+            error.to_string().contains("above the limit of 9 bytes"),
+            "{error}"
+        );
+        assert_eq!(
+            read_text_file(file.path(), 10).expect("at the limit"),
+            "0123456789"
+        );
     }
 
     #[test]
     fn the_unlimited_setting_does_not_overflow() {
         let file = file_with(b"label\n1\n");
-        assert_eq!(read_text_file(file.path(), u64::MAX).expect("no limit"), "label\n1\n");
+        assert_eq!(
+            read_text_file(file.path(), u64::MAX).expect("no limit"),
+            "label\n1\n"
+        );
     }
 
     #[test]

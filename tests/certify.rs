@@ -657,6 +657,22 @@ fn shards_merge_into_the_single_run() {
         serde_json::to_string(&a.per_class).unwrap(),
         serde_json::to_string(&b.per_class).unwrap()
     );
+    // A shard of another requirement is refused, naming what differs.
+    let other = dir.path().join("other.json");
+    let mut args = common.to_vec();
+    args[6] = "0.01,0.04";
+    args.extend(["--shard", "3/3", "--report", other.to_str().unwrap()]);
+    run(&args);
+    let (code, _, err) = run(&[
+        "merge",
+        &shard_files[0],
+        &shard_files[1],
+        other.to_str().unwrap(),
+        "--out",
+        merged.to_str().unwrap(),
+    ]);
+    assert_eq!(code, 2);
+    assert!(err.contains("requirement"), "{err}");
     // A missing shard is refused.
     let (code, _, err) = run(&[
         "merge",

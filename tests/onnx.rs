@@ -230,6 +230,49 @@ fn sklearn_binary_pipeline_with_string_labels_matches_onnxruntime() {
     report_largest("sklearn_breast_cancer_logreg (probabilities)");
 }
 
+// Source: scikit-learn Pipeline(StandardScaler, MLPClassifier) on load_breast_cancer (binary), which
+// skl2onnx writes as Sigmoid(z), 1 − p and Concat([1 − p, p]); run by onnxruntime.
+#[test]
+fn sklearn_binary_mlp_with_sigmoid_output_becomes_a_one_logit_model() {
+    let f = fixture("sklearn_breast_cancer_mlp");
+    let model = import(f["file"].as_str().unwrap(), &ImportOptions::default());
+    assert_eq!(model.output_dim(), 1);
+    assert_eq!(
+        model.classes,
+        Some(vec!["benign".to_string(), "malignant".to_string()]),
+        "labels from the ArgMax / ArrayFeatureExtractor branch"
+    );
+    let dropped = model.provenance.as_ref().unwrap()["dropped_final_steps"].to_string();
+    assert!(
+        dropped.contains("Sigmoid") && dropped.contains("Concat"),
+        "{dropped}"
+    );
+    let inputs = matrix(&f["inputs"]);
+    let probabilities = matrix(&f["ort"]["probabilities"]);
+    let labels = f["ort"]["label"].as_array().unwrap();
+    let mut positives = 0;
+    for (i, z) in logits(&model, &inputs).iter().enumerate() {
+        let p = sigmoid(z[0]);
+        assert_close(
+            &format!("row {i}"),
+            &[1.0 - p, p],
+            &probabilities[i],
+            TOLERANCE,
+        );
+        assert_eq!(
+            predicted_name(&model, &inputs[i]),
+            label_text(&labels[i]),
+            "row {i} label"
+        );
+        positives += usize::from(z[0] > 0.0);
+    }
+    assert!(
+        positives > 0 && positives < inputs.len(),
+        "both classes occur"
+    );
+    report_largest("sklearn_breast_cancer_mlp (probabilities)");
+}
+
 // Source: hand-built graph (onnx.helper): Flatten, Sub/Div, Gemm(transB=1, alpha=0.8, beta=1.5),
 // BatchNormalization, Relu, Identity, Constant, MatMul+Add, Cast, Reshape, Gemm, Softmax; run by
 // onnxruntime in float32 and float64.

@@ -93,7 +93,10 @@ fn digits_verdicts_match_highs_milp() {
     for budget in budgets {
         let robust = budget["robust"].as_u64().unwrap();
         let lp_proved = budget["lp_proved"].as_u64().unwrap();
-        assert!(lp_proved < robust, "fixture budget where LP and exact agree");
+        assert!(
+            lp_proved < robust,
+            "fixture budget where LP and exact agree"
+        );
         lp_gap += robust - lp_proved;
         let set = problems(&f, budget);
         let list: Vec<SearchProblem> = set.iter().map(|(p, _)| p.clone()).collect();
@@ -103,17 +106,33 @@ fn digits_verdicts_match_highs_milp() {
             let min_exact = exact.iter().map(|(_, v)| *v).fold(f64::INFINITY, f64::min);
             match &outcome.verdict {
                 Verdict::Proved { min_margin_lower } => {
-                    assert!(min_exact > 0.0, "sample {} proved, HiGHS says not robust", problem.index);
+                    assert!(
+                        min_exact > 0.0,
+                        "sample {} proved, HiGHS says not robust",
+                        problem.index
+                    );
                     // sound: the proven bound is below the exact minimum
                     assert!(*min_margin_lower <= min_exact + 1e-6);
                 }
                 Verdict::Counterexample(c) => {
-                    assert!(min_exact <= 0.0, "sample {} refuted, HiGHS says robust", problem.index);
-                    let again = validate(&f.network, &problem.region, problem.label, &problem.targets, &c.input);
+                    assert!(
+                        min_exact <= 0.0,
+                        "sample {} refuted, HiGHS says robust",
+                        problem.index
+                    );
+                    let again = validate(
+                        &f.network,
+                        &problem.region,
+                        problem.label,
+                        &problem.targets,
+                        &c.input,
+                    );
                     assert!(again.is_some());
                     assert!(problem.region.contains(&c.input));
                 }
-                Verdict::Unresolved { .. } => panic!("sample {} unresolved: {outcome:?}", problem.index),
+                Verdict::Unresolved { .. } => {
+                    panic!("sample {} unresolved: {outcome:?}", problem.index)
+                }
             }
         }
     }
@@ -147,7 +166,11 @@ fn digits_minimum_margins_match_highs_milp() {
                     "sample {} target {target}: ballast {found}, HiGHS {value}",
                     problem.index
                 );
-                let summary = outcome.targets.iter().find(|t| t.target == *target).unwrap();
+                let summary = outcome
+                    .targets
+                    .iter()
+                    .find(|t| t.target == *target)
+                    .unwrap();
                 assert!(summary.lower <= value + 1e-6);
                 checked += 1;
             }
@@ -213,9 +236,19 @@ fn planted_counterexamples_are_found_never_certified() {
         let (network, center, corner) = planted(seed, dim, hidden, epsilon);
         let clean = network.forward(&center);
         let flipped = network.forward(&corner);
-        assert!(clean[0] > clean[1], "construction: centre must be class 0 (seed {seed})");
-        assert!(flipped[1] > flipped[0], "construction: corner must be class 1 (seed {seed})");
-        let region = Budget::uniform(Norm::Linf, epsilon, dim).region(&center, &vec![0.0; dim], &vec![1.0; dim]);
+        assert!(
+            clean[0] > clean[1],
+            "construction: centre must be class 0 (seed {seed})"
+        );
+        assert!(
+            flipped[1] > flipped[0],
+            "construction: corner must be class 1 (seed {seed})"
+        );
+        let region = Budget::uniform(Norm::Linf, epsilon, dim).region(
+            &center,
+            &vec![0.0; dim],
+            &vec![1.0; dim],
+        );
         assert!(region.contains(&corner));
         let quiet = SearchSettings {
             root_attack: None,
@@ -258,17 +291,30 @@ fn optimality_mode_matches_the_big_m_milp_on_small_networks() {
         ..SearchSettings::default()
     };
     for case in 0..10 {
-        let sizes: &[usize] = if case % 2 == 0 { &[3, 6, 3] } else { &[3, 4, 4, 3] };
+        let sizes: &[usize] = if case % 2 == 0 {
+            &[3, 6, 3]
+        } else {
+            &[3, 4, 4, 3]
+        };
         let network = random_network(&mut rng, sizes);
         let center: Vec<f64> = (0..3).map(|_| rng.gen_range(0.2..0.8)).collect();
         let label = ballast::model::predicted_class(network.forward(&center).as_slice());
         let targets: Vec<usize> = (0..3).filter(|j| *j != label).collect();
         let region = Budget::uniform(Norm::Linf, 0.3, 3).region(&center, &[0.0; 3], &[1.0; 3]);
         let outcome = verify_sample(&network, &region, label, &targets, &settings).unwrap();
-        let decision = verify_sample(&network, &region, label, &targets, &SearchSettings::default()).unwrap();
+        let decision = verify_sample(
+            &network,
+            &region,
+            label,
+            &targets,
+            &SearchSettings::default(),
+        )
+        .unwrap();
         let mut min_exact = f64::INFINITY;
         for &j in &targets {
-            let reference = milp::minimum_margin(&network, &region, label, j).unwrap().unwrap();
+            let reference = milp::minimum_margin(&network, &region, label, j)
+                .unwrap()
+                .unwrap();
             let found = outcome.minimum_margin(j).expect("finished");
             assert!(
                 (found - reference.value).abs() < 1e-6,
@@ -306,7 +352,14 @@ fn exhausted_budgets_are_unresolved() {
         node_limit: 1,
         ..SearchSettings::default()
     };
-    let outcome = verify_sample(&f.network, &problem.region, problem.label, &problem.targets, &settings).unwrap();
+    let outcome = verify_sample(
+        &f.network,
+        &problem.region,
+        problem.label,
+        &problem.targets,
+        &settings,
+    )
+    .unwrap();
     let min_exact = exact.iter().map(|(_, v)| *v).fold(f64::INFINITY, f64::min);
     match outcome.verdict {
         Verdict::Unresolved { best_lower, .. } => assert!(best_lower <= min_exact + 1e-9),
@@ -318,21 +371,13 @@ fn exhausted_budgets_are_unresolved() {
         root_attack: None,
         ..SearchSettings::default()
     };
-    let outcome = verify_sample(&f.network, &problem.region, problem.label, &problem.targets, &past).unwrap();
+    let outcome = verify_sample(
+        &f.network,
+        &problem.region,
+        problem.label,
+        &problem.targets,
+        &past,
+    )
+    .unwrap();
     assert!(!matches!(outcome.verdict, Verdict::Counterexample(_)));
-}
-
-#[test]
-#[ignore]
-fn scratch_profile() {
-    let f = fixture();
-    let settings = SearchSettings { optimality: true, node_limit: 200_000, ..SearchSettings::default() };
-    for budget in f.reference["budgets"].as_array().unwrap() {
-        let set = problems(&f, budget);
-        for (problem, _) in set.iter().step_by(4) {
-            let o = verify_sample(&f.network, &problem.region, problem.label, &problem.targets, &settings).unwrap();
-            let leaves: usize = o.targets.iter().map(|t| t.leaves).sum();
-            println!("eps {} sample {} nodes {} leaves {} seconds {:.3}", budget["epsilon"], problem.index, o.nodes, leaves, o.seconds);
-        }
-    }
 }

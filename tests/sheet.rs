@@ -108,6 +108,11 @@ fn verdict_comes_first_and_sweeps_are_plotted() {
     let md = markdown::render(&c);
     let first_heading = md.lines().find(|l| l.starts_with("## ")).unwrap();
     assert!(first_heading.starts_with("## Verdict"));
+    // An interrupted run's sheet says so.
+    let mut partial = report.clone();
+    partial.complete = false;
+    let page = html::render(&content::build(&partial));
+    assert!(page.contains("INCOMPLETE"));
     // One epsilon: no plot.
     let single = hostile_report(vec![0.1]);
     let page = html::render(&content::build(&single));

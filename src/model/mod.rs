@@ -12,7 +12,7 @@ pub use network::{predicted_class, Dense, Network, Normalization};
 #[derive(Debug, thiserror::Error)]
 pub enum ModelError {
     /// The file could not be read or written.
-    #[error("{path}: {source}")]
+    #[error("{path}")]
     Io {
         /// The file.
         path: String,

@@ -236,14 +236,17 @@ fn kkt_multipliers(region: &Region, piece: &AffinePiece, x: &[f64]) -> Vec<f64> 
     let free: Vec<usize> = (0..x.len())
         .filter(|&i| {
             let width = region.upper[i] - region.lower[i];
-            x[i] > region.lower[i] + scale * (1.0 + width) && x[i] < region.upper[i] - scale * (1.0 + width)
+            x[i] > region.lower[i] + scale * (1.0 + width)
+                && x[i] < region.upper[i] - scale * (1.0 + width)
         })
         .collect();
     if active.is_empty() || free.is_empty() {
         return multipliers;
     }
     // (S_{A,F})ᵀ λ_A = g_F in the least-squares sense.
-    let matrix = DMatrix::from_fn(free.len(), active.len(), |i, r| piece.rows[active[r]][free[i]]);
+    let matrix = DMatrix::from_fn(free.len(), active.len(), |i, r| {
+        piece.rows[active[r]][free[i]]
+    });
     let target = DVector::from_fn(free.len(), |i, _| piece.gradient[free[i]]);
     let Ok(solution) = matrix.svd(true, true).solve(&target, 1e-12) else {
         return multipliers;
@@ -307,9 +310,13 @@ fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, 
         })
         .collect();
     if !active.is_empty() && !free.is_empty() {
-        let matrix = DMatrix::from_fn(free.len(), active.len(), |i, r| piece.rows[active[r]][free[i]]);
+        let matrix = DMatrix::from_fn(free.len(), active.len(), |i, r| {
+            piece.rows[active[r]][free[i]]
+        });
         let target = DVector::from_fn(free.len(), |i, _| {
-            -(0..rows).map(|r| y[r] * piece.rows[r][free[i]]).sum::<f64>()
+            -(0..rows)
+                .map(|r| y[r] * piece.rows[r][free[i]])
+                .sum::<f64>()
         });
         if let Ok(solution) = matrix.svd(true, true).solve(&target, 1e-12) {
             for (r, value) in active.iter().zip(solution.iter()) {
@@ -347,7 +354,13 @@ pub(crate) fn solve_leaf(
     let mut lower = f64::NEG_INFINITY;
     let mut value = f64::NEG_INFINITY;
     if let Some(x) = &point {
-        value = piece.gradient.iter().zip(x).map(|(g, v)| g * v).sum::<f64>() + piece.constant;
+        value = piece
+            .gradient
+            .iter()
+            .zip(x)
+            .map(|(g, v)| g * v)
+            .sum::<f64>()
+            + piece.constant;
         lower = lagrangian_bound(region, piece, &kkt_multipliers(region, piece, x));
     }
     if point.is_none() {
@@ -391,7 +404,12 @@ mod tests {
             let pattern = vec![z[0].iter().map(|v| *v >= 0.0).collect::<Vec<_>>()];
             let piece = affine_piece(&network, &pattern, &|_, _| true, 0, 1);
             let logits = network.forward(&x);
-            let margin: f64 = piece.gradient.iter().zip(&x).map(|(g, v)| g * v).sum::<f64>()
+            let margin: f64 = piece
+                .gradient
+                .iter()
+                .zip(&x)
+                .map(|(g, v)| g * v)
+                .sum::<f64>()
                 + piece.constant;
             assert!((margin - (logits[0] - logits[1])).abs() < 1e-12);
             // the point satisfies its own pattern's half-spaces
@@ -412,7 +430,12 @@ mod tests {
             let piece = affine_piece(&network, &pattern, &|_, _| true, 0, 1);
             let solution = solve_leaf(&region, &piece, f64::INFINITY).unwrap();
             if let Some(point) = solution.point {
-                let value: f64 = piece.gradient.iter().zip(&point).map(|(g, v)| g * v).sum::<f64>()
+                let value: f64 = piece
+                    .gradient
+                    .iter()
+                    .zip(&point)
+                    .map(|(g, v)| g * v)
+                    .sum::<f64>()
                     + piece.constant;
                 // weak duality: bound ≤ primal value; strong duality for LPs: equal.
                 assert!(solution.lower <= value + 1e-7);

@@ -85,7 +85,9 @@ pub fn minimum_margin(
                 let d = program.add_binary(0.0);
                 program.rows.push(at_least(vec![(a, 1.0), (z, -1.0)], 0.0));
                 program.rows.push(at_most(vec![(a, 1.0), (d, -u)], 0.0));
-                program.rows.push(at_most(vec![(a, 1.0), (z, -1.0), (d, -l)], -l));
+                program
+                    .rows
+                    .push(at_most(vec![(a, 1.0), (z, -1.0), (d, -l)], -l));
             }
             outputs.push(a);
         }
@@ -93,8 +95,7 @@ pub fn minimum_margin(
     }
     let final_layer = &network.layers[last];
     for (j, p) in previous.iter().enumerate() {
-        program.objective[*p] =
-            final_layer.weights[(label, j)] - final_layer.weights[(target, j)];
+        program.objective[*p] = final_layer.weights[(label, j)] - final_layer.weights[(target, j)];
     }
     let constant = final_layer.bias[label] - final_layer.bias[target];
     match minimise(&program, None)? {

@@ -224,10 +224,7 @@ fn search(
     let verdict = if let Some(c) = found {
         Verdict::Counterexample(c)
     } else if let Some(reason) = stopped {
-        Verdict::Unresolved {
-            best_lower,
-            reason,
-        }
+        Verdict::Unresolved { best_lower, reason }
     } else if best_lower > CERTIFY_TOLERANCE {
         Verdict::Proved {
             min_margin_lower: best_lower,

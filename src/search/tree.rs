@@ -306,7 +306,11 @@ impl<'a> TargetTree<'a> {
         if ranked.is_empty() {
             return self.solve_leaf(node);
         }
-        let candidates = problem.settings.branching_candidates.max(1).min(ranked.len());
+        let candidates = problem
+            .settings
+            .branching_candidates
+            .max(1)
+            .min(ranked.len());
         let mut best: Option<(f64, Vec<Node>)> = None;
         for (unit, _) in ranked.iter().take(candidates) {
             let mut children = Vec::with_capacity(2);
@@ -430,7 +434,11 @@ mod tests {
                 let mut pattern = Vec::new();
                 let mut position = 0;
                 for size in &sizes {
-                    pattern.push((0..*size).map(|i| bits >> (position + i) & 1 == 1).collect());
+                    pattern.push(
+                        (0..*size)
+                            .map(|i| bits >> (position + i) & 1 == 1)
+                            .collect(),
+                    );
                     position += size;
                 }
                 let piece = affine_piece(network, &pattern, &|_, _| true, label, target);
@@ -478,7 +486,11 @@ mod tests {
     fn node_bounds_and_optimum_against_pattern_enumeration() {
         let mut rng = ChaCha8Rng::seed_from_u64(11);
         for case in 0..6 {
-            let sizes: &[usize] = if case % 2 == 0 { &[3, 6, 3] } else { &[2, 4, 4, 3] };
+            let sizes: &[usize] = if case % 2 == 0 {
+                &[3, 6, 3]
+            } else {
+                &[2, 4, 4, 3]
+            };
             let network = random_network(&mut rng, sizes);
             let dim = sizes[0];
             let center: Vec<f64> = (0..dim).map(|_| rng.gen_range(0.3..0.7)).collect();
@@ -528,7 +540,10 @@ mod tests {
             while tree.has_open_nodes() {
                 for node in tree.queue.iter() {
                     let truth = exact_over(&minima, &node.splits);
-                    assert!(node.lower <= truth + 1e-7, "case {case}: node bound above its minimum");
+                    assert!(
+                        node.lower <= truth + 1e-7,
+                        "case {case}: node bound above its minimum"
+                    );
                 }
                 if tree.step().unwrap() == Step::Finished {
                     break;
@@ -536,7 +551,11 @@ mod tests {
                 steps += 1;
                 assert!(steps < 10_000);
             }
-            assert!((tree.incumbent - exact).abs() < 1e-6, "case {case}: {} vs {exact}", tree.incumbent);
+            assert!(
+                (tree.incumbent - exact).abs() < 1e-6,
+                "case {case}: {} vs {exact}",
+                tree.incumbent
+            );
             assert!(tree.lower() <= exact + 1e-9);
             // Random partial split states: the bound module's bound under splits is below the minimum.
             for _ in 0..20 {
@@ -563,7 +582,10 @@ mod tests {
                 if let Domain::Feasible = bound.domain {
                     assert!(bound.lower[0] <= truth + 1e-7);
                 } else {
-                    assert!(truth.is_infinite(), "an emptied domain must hold no pattern");
+                    assert!(
+                        truth.is_infinite(),
+                        "an emptied domain must hold no pattern"
+                    );
                 }
             }
         }

@@ -23,6 +23,8 @@ Sources of the models:
     load_breast_cancer (binary, string labels "malignant"/"benign"), skl2onnx
     with zipmap=False;
   - scikit-learn LogisticRegression on load_digits (10 classes), skl2onnx;
+  - scikit-learn Pipeline(StandardScaler, MLPClassifier) on load_breast_cancer
+    (binary: skl2onnx writes Sigmoid, 1 - p and a Concat), zipmap=False;
   - a hand-built graph (onnx.helper): Sub/Div normalisation, Gemm with
     transB=1 and alpha/beta, BatchNormalization (inference), Relu, MatMul+Add,
     Identity, Cast, Flatten, Reshape, a Constant node, final Softmax; float32
@@ -137,6 +139,17 @@ def sklearn_fixtures(out):
         "sklearn_predicted": [str(v) for v in pipe.predict(Xb)],
         "classes": [str(c) for c in pipe.classes_],
         "source": "scikit-learn load_breast_cancer, Pipeline(StandardScaler, LogisticRegression(max_iter=2000)), string labels, skl2onnx zipmap=False",
+    }
+
+    mlp2 = make_pipeline(StandardScaler(), MLPClassifier(hidden_layer_sizes=(8,), random_state=0, max_iter=1000))
+    mlp2.fit(Xb_train, yb_train)
+    path = save(to_onnx(mlp2, Xb_train[:1].astype(np.float32), target_opset=15, options={"zipmap": False}),
+                "sklearn_breast_cancer_mlp.onnx")
+    out["sklearn_breast_cancer_mlp"] = {
+        "file": path, "inputs": rows(Xb), "ort": run_ort(path, Xb),
+        "sklearn_predicted": [str(v) for v in mlp2.predict(Xb)],
+        "classes": [str(c) for c in mlp2.classes_],
+        "source": "scikit-learn load_breast_cancer, Pipeline(StandardScaler, MLPClassifier(hidden_layer_sizes=(8,), random_state=0, max_iter=1000)), binary (Sigmoid + Concat output), string labels, skl2onnx zipmap=False",
     }
 
 

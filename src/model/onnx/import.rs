@@ -92,6 +92,8 @@ struct DataPath {
     labels: Option<Vec<String>>,
     /// Set when a one-row binary LinearClassifier produced a single logit.
     single_logit: bool,
+    /// After a final Sigmoid on one logit: the Sigmoid node and whether the value is `1 − σ(z)`.
+    sigmoid: Option<(usize, bool)>,
 }
 
 #[derive(Debug, Clone)]
@@ -365,6 +367,7 @@ impl<'a> Converter<'a> {
                 positive: false,
                 labels: None,
                 single_logit: false,
+                sigmoid: None,
             })),
         );
 
@@ -523,10 +526,14 @@ impl<'a> Converter<'a> {
         let second = inputs.next().flatten();
         let rest: Vec<Option<Symbol>> = inputs.collect();
 
+        if op == "Concat" && !ml {
+            return self
+                .binary_pair(index, first, second, rest.len(), dropped)
+                .map(|p| vec![(out(0), Symbol::Data(Box::new(p)))]);
+        }
         // Exactly one operand may depend on the data.
         let (mut path, constant, data_first) = match (first, second) {
-            (Some(Symbol::Data(p)), Some(Symbol::Data(_))) => {
-                let _ = p;
+            (Some(Symbol::Data(_)), Some(Symbol::Data(_))) => {
                 return Err(self.unsupported(
                     index,
                     "both operands depend on the data input; only operations with constant operands are affine",
@@ -672,6 +679,27 @@ impl<'a> Converter<'a> {
                 let weights = DMatrix::from_fn(k, d, |r, col| b.values[col * k + r]);
                 path.linear(weights, DVector::zeros(k));
             }
+            (false, "Sigmoid") => {
+                if is_final || path.pending_width() != 1 {
+                    return Err(self.unsupported(
+                        index,
+                        "Sigmoid is supported only as the final step on a single logit (binary: class 1 iff the logit > 0)",
+                    ));
+                }
+                path.finished_by = Some(format!("Sigmoid '{}'", self.node_label(index)));
+                path.positive = true;
+                path.single_logit = true;
+                path.sigmoid = Some((index, false));
+                dropped.push(format!("Sigmoid '{}'", self.node_label(index)));
+            }
+            (false, "Sub") if matches!(path.sigmoid, Some((_, false))) && !data_first => {
+                // 1 − σ(z): the probability of class 0, kept only to pair it with σ(z) in a Concat.
+                let one = constant.ok_or_else(|| self.unsupported(index, "the constant operand is missing"))?;
+                if one.values.len() != 1 || one.values[0] != 1.0 {
+                    return Err(self.unsupported(index, "only 1 − sigmoid is supported after a final Sigmoid"));
+                }
+                path.sigmoid = path.sigmoid.map(|(node, _)| (node, true));
+            }
             (false, "Add") | (false, "Sub") | (false, "Mul") | (false, "Div") => {
                 if is_final {
                     return Err(after_final(op));
@@ -777,11 +805,45 @@ impl<'a> Converter<'a> {
             _ => {
                 return Err(self.unsupported(
                     index,
-                    "this operation is not supported on the score path (supported: Gemm, MatMul, Add, Sub, Mul, Div, BatchNormalization, Relu, Flatten, Reshape, Identity, Cast, Dropout, final Softmax; ai.onnx.ml Scaler, LinearClassifier, Normalizer)",
+                    "this operation is not supported on the score path (supported: Gemm, MatMul, Add, Sub, Mul, Div, BatchNormalization, Relu, Flatten, Reshape, Identity, Cast, Dropout, final Softmax, final Sigmoid on one logit; ai.onnx.ml Scaler, LinearClassifier, Normalizer)",
                 ))
             }
         }
         Ok(vec![(out(0), Symbol::Data(Box::new(path)))])
+    }
+
+    /// `Concat([1 − σ(z), σ(z)], axis=1)` after a final Sigmoid: the usual two-column probabilities of
+    /// a binary classifier, whose argmax is class 1 iff `z > 0` (ties at `z = 0` go to class 0 in
+    /// both), so the model stays the single logit `z`.
+    fn binary_pair(
+        &self,
+        index: usize,
+        first: Option<Symbol>,
+        second: Option<Symbol>,
+        more: usize,
+        dropped: &mut Vec<String>,
+    ) -> Result<DataPath, OnnxError> {
+        let axis = int_attribute(&self.graph.node[index], "axis", 1);
+        let refuse = || {
+            self.unsupported(
+                index,
+                "Concat is supported only as [1 − sigmoid(z), sigmoid(z)] along axis 1 after a final Sigmoid",
+            )
+        };
+        match (first, second) {
+            (Some(Symbol::Data(low)), Some(Symbol::Data(high)))
+                if more == 0 && (axis == 1 || axis == -1) =>
+            {
+                match (low.sigmoid, high.sigmoid) {
+                    (Some((a, true)), Some((b, false))) if a == b => {
+                        dropped.push(format!("Concat '{}'", self.node_label(index)));
+                        Ok(*high)
+                    }
+                    _ => Err(refuse()),
+                }
+            }
+            _ => Err(refuse()),
+        }
     }
 
     fn linear_classifier(

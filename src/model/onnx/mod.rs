@@ -28,7 +28,7 @@ use super::{Model, ModelError};
 #[derive(Debug, thiserror::Error)]
 pub enum OnnxError {
     /// The file could not be read or written.
-    #[error("{path}: {source}")]
+    #[error("{path}")]
     Io {
         /// The file.
         path: String,
