@@ -74,15 +74,15 @@ pub(crate) fn affine_piece(
     let mut offset: DVector<f64> = network.layers[0].bias.clone();
     let mut rows = Vec::new();
     let mut right_hand_sides = Vec::new();
-    for k in 0..last {
-        for i in 0..linear.nrows() {
+    for (k, layer_pattern) in pattern.iter().enumerate().take(last) {
+        for (i, &active) in layer_pattern.iter().enumerate() {
             if constrained(k, i) {
                 // active: z_i = A_i x + a_i ≥ 0  ⇔  A_i x ≥ −a_i; inactive: −A_i x ≥ a_i.
-                let sign = if pattern[k][i] { 1.0 } else { -1.0 };
+                let sign = if active { 1.0 } else { -1.0 };
                 rows.push(linear.row(i).iter().map(|v| sign * v).collect());
                 right_hand_sides.push(-sign * offset[i]);
             }
-            if !pattern[k][i] {
+            if !active {
                 linear.row_mut(i).fill(0.0);
                 offset[i] = 0.0;
             }
@@ -327,10 +327,10 @@ fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, 
     // φ(y) = yᵀt + min_x (−Sᵀy)ᵀx
     let mut coefficients = vec![0.0; n];
     let mut constant = 0.0;
-    for r in 0..rows {
-        constant += y[r] * piece.right_hand_sides[r];
-        for (c, s) in coefficients.iter_mut().zip(&piece.rows[r]) {
-            *c -= y[r] * s;
+    for ((row, t), weight) in piece.rows.iter().zip(&piece.right_hand_sides).zip(&y) {
+        constant += weight * t;
+        for (c, s) in coefficients.iter_mut().zip(row) {
+            *c -= weight * s;
         }
     }
     let certificate = concretise::minimum(region, &coefficients) + constant;

@@ -145,8 +145,8 @@ fn search(
             AttackOutcome::NotFound { best_input, .. } => best_attack_point = Some(best_input),
         }
     }
-    if found.is_some() && !settings.optimality {
-        let verdict = Verdict::Counterexample(found.expect("checked"));
+    if let (Some(c), false) = (&found, settings.optimality) {
+        let verdict = Verdict::Counterexample(c.clone());
         return Ok(finish(verdict, summaries, nodes));
     }
     let problem = Problem {

@@ -96,10 +96,9 @@ impl Region {
         let n = center.len();
         let mut lo = Vec::with_capacity(n);
         let mut hi = Vec::with_capacity(n);
-        for i in 0..n {
-            let r = budget.radii[i];
-            lo.push((center[i] - r).max(lower[i]).min(center[i]));
-            hi.push((center[i] + r).min(upper[i]).max(center[i]));
+        for (i, (&c, &r)) in center.iter().zip(&budget.radii).enumerate() {
+            lo.push((c - r).max(lower[i]).min(c));
+            hi.push((c + r).min(upper[i]).max(c));
         }
         Region {
             center: center.to_vec(),
@@ -120,9 +119,9 @@ impl Region {
         if x.len() != self.center.len() {
             return false;
         }
-        for i in 0..x.len() {
+        for (i, &v) in x.iter().enumerate() {
             let slack = MEMBERSHIP_TOLERANCE * (1.0 + self.center[i].abs());
-            if !(x[i] >= self.lower[i] - slack && x[i] <= self.upper[i] + slack) {
+            if !(v >= self.lower[i] - slack && v <= self.upper[i] + slack) {
                 return false;
             }
         }
@@ -135,8 +134,8 @@ impl Region {
     /// `‖D⁻¹(x − c)‖` in the region's norm: ≤ 1 inside the ball. A change in a fixed feature gives ∞.
     pub fn scaled_norm(&self, x: &[f64]) -> f64 {
         let mut acc: f64 = 0.0;
-        for i in 0..x.len() {
-            let d = x[i] - self.center[i];
+        for (i, &v) in x.iter().enumerate() {
+            let d = v - self.center[i];
             let r = self.radii[i];
             let q = if r > 0.0 {
                 d.abs() / r
@@ -166,22 +165,21 @@ impl Region {
     pub fn project(&self, x: &mut [f64]) {
         if self.norm == Norm::L2 {
             let mut acc = 0.0;
-            for i in 0..x.len() {
-                let r = self.radii[i];
+            for ((&v, &c), &r) in x.iter().zip(&self.center).zip(&self.radii) {
                 if r > 0.0 {
-                    let q = (x[i] - self.center[i]) / r;
+                    let q = (v - c) / r;
                     acc += q * q;
                 }
             }
             let length = acc.sqrt();
             if length > 1.0 {
-                for i in 0..x.len() {
-                    x[i] = self.center[i] + (x[i] - self.center[i]) / length;
+                for (v, &c) in x.iter_mut().zip(&self.center) {
+                    *v = c + (*v - c) / length;
                 }
             }
         }
-        for i in 0..x.len() {
-            x[i] = x[i].clamp(self.lower[i], self.upper[i]);
+        for ((v, &lo), &hi) in x.iter_mut().zip(&self.lower).zip(&self.upper) {
+            *v = v.clamp(lo, hi);
         }
     }
 }

@@ -1511,6 +1511,20 @@ mod tests {
                 vec![node("Tanh", "squash", &["x"], "y", vec![])],
                 "node 'squash' (Tanh)",
             ),
+            (
+                vec![node("Sigmoid", "two", &["x"], "y", vec![])],
+                "only as the final step on a single logit",
+            ),
+            (
+                vec![node(
+                    "Concat",
+                    "cat",
+                    &["x", "x"],
+                    "y",
+                    vec![int("axis", 1)],
+                )],
+                "Concat is supported only as [1 − sigmoid(z), sigmoid(z)]",
+            ),
         ];
         for (nodes, expected) in cases {
             let e = import(nodes, vec![w()], 2, "y").unwrap_err().to_string();
