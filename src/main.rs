@@ -8,7 +8,11 @@ fn main() -> ExitCode {
     let cli = match ballast::cli::Cli::try_parse() {
         Ok(cli) => cli,
         Err(e) => {
-            let code = if e.use_stderr() { ballast::cli::EXIT_INPUT_ERROR } else { 0 };
+            let code = if e.use_stderr() {
+                ballast::cli::EXIT_INPUT_ERROR
+            } else {
+                0
+            };
             let _ = e.print();
             return ExitCode::from(code);
         }

@@ -43,7 +43,11 @@ fn the_layout_example_loads_and_folds() {
     assert_eq!(model.class_count(), 2);
     assert_eq!(model.parameter_count(), 6 + 2 + 4 + 2);
     let network = model.network();
-    assert_eq!(network.layers.len(), 2, "normalize folds into the first dense map");
+    assert_eq!(
+        network.layers.len(),
+        2,
+        "normalize folds into the first dense map"
+    );
     // Hand computation from the layout's definition: normalize, dense, relu, dense.
     let x = [0.7, 0.1, 3.0];
     let z: [f64; 3] = [(0.7 - 0.5) / 0.2, (0.1 - 0.5) / 0.2, (3.0 - 2.0) / 1.0];
@@ -93,7 +97,11 @@ fn binary_model_decides_on_the_sign_of_its_logit() {
     // logit = x0 − 2 x1 + 0.5
     assert_eq!(predicted_class(network.forward(&[1.0, 0.0]).as_slice()), 1);
     assert_eq!(predicted_class(network.forward(&[0.0, 1.0]).as_slice()), 0);
-    assert_eq!(predicted_class(network.forward(&[0.0, 0.25]).as_slice()), 0, "logit 0 is class 0");
+    assert_eq!(
+        predicted_class(network.forward(&[0.0, 0.25]).as_slice()),
+        0,
+        "logit 0 is class 0"
+    );
 }
 
 /// Each malformed case must fail with a message naming the place.
@@ -127,7 +135,10 @@ fn malformed_models_name_the_field() {
     cases.push((format, "format"));
     for (value, expected) in cases {
         let error = load_value(&value).expect_err(expected);
-        assert!(error.contains(expected), "error {error:?} should contain {expected:?}");
+        assert!(
+            error.contains(expected),
+            "error {error:?} should contain {expected:?}"
+        );
     }
 }
 
@@ -147,25 +158,48 @@ fn malformed_model_files_exit_2_without_panic() {
     let dir = tempfile::tempdir().unwrap();
     let cases: Vec<(&str, String, &str)> = vec![
         ("empty.json", String::new(), "empty file"),
-        ("truncated.json", small_model_json().to_string()[..80].to_string(), "line 1"),
+        (
+            "truncated.json",
+            small_model_json().to_string()[..80].to_string(),
+            "line 1",
+        ),
         ("array.json", "[1, 2, 3]".into(), "expected a JSON object"),
-        ("nan.json", small_model_json().to_string().replace("0.1,", "NaN,"), "line 1"),
-        ("ragged.json", {
-            let mut v = small_model_json();
-            v["layers"][3]["weights"][0] = serde_json::json!([1.0]);
-            v.to_string()
-        }, "layers[3].weights: row 0 has 1 values, expected 2"),
+        (
+            "nan.json",
+            small_model_json().to_string().replace("0.1,", "NaN,"),
+            "line 1",
+        ),
+        (
+            "ragged.json",
+            {
+                let mut v = small_model_json();
+                v["layers"][3]["weights"][0] = serde_json::json!([1.0]);
+                v.to_string()
+            },
+            "layers[3].weights: row 0 has 1 values, expected 2",
+        ),
     ];
     for (name, text, expected) in cases {
         let path = dir.path().join(name);
         std::fs::write(&path, text).unwrap();
-        let out = Command::new(binary()).arg("inspect").arg(&path).output().unwrap();
+        let out = Command::new(binary())
+            .arg("inspect")
+            .arg(&path)
+            .output()
+            .unwrap();
         let stderr = String::from_utf8_lossy(&out.stderr);
         assert_eq!(out.status.code(), Some(2), "{name}: {stderr}");
         assert!(stderr.contains(expected), "{name}: {stderr}");
-        assert!(stderr.contains(name), "{name}: message names the file: {stderr}");
+        assert!(
+            stderr.contains(name),
+            "{name}: message names the file: {stderr}"
+        );
         assert!(!stderr.contains("panicked"), "{name}: {stderr}");
-        assert_eq!(stderr.trim().lines().count(), 1, "{name}: one line: {stderr}");
+        assert_eq!(
+            stderr.trim().lines().count(),
+            1,
+            "{name}: one line: {stderr}"
+        );
     }
 }
 
@@ -180,7 +214,10 @@ fn reference() -> serde_json::Value {
 #[test]
 fn forward_pass_matches_scikit_learn_on_digits() {
     let reference = reference();
-    for (key, path) in [("digits_mlp", DIGITS_MODEL), ("digits_mlp_deep", DIGITS_DEEP_MODEL)] {
+    for (key, path) in [
+        ("digits_mlp", DIGITS_MODEL),
+        ("digits_mlp_deep", DIGITS_DEEP_MODEL),
+    ] {
         let model = Model::load(Path::new(path)).unwrap();
         let data = load_csv(Path::new(DIGITS_TEST), &model, &DataOptions::default()).unwrap();
         let expected = &reference["models"][key];
@@ -194,8 +231,14 @@ fn forward_pass_matches_scikit_learn_on_digits() {
             let row = logits[i].as_array().unwrap();
             for (c, value) in row.iter().enumerate() {
                 let want = value.as_f64().unwrap();
-                assert!((single[c] - want).abs() <= 1e-9, "{key} sample {i} logit {c}");
-                assert!((batch[(c, i)] - want).abs() <= 1e-9, "{key} batch sample {i} logit {c}");
+                assert!(
+                    (single[c] - want).abs() <= 1e-9,
+                    "{key} sample {i} logit {c}"
+                );
+                assert!(
+                    (batch[(c, i)] - want).abs() <= 1e-9,
+                    "{key} batch sample {i} logit {c}"
+                );
             }
             assert_eq!(
                 predicted_class(single.as_slice()) as u64,
@@ -213,10 +256,19 @@ fn data_errors_name_row_and_column() {
     let cases = [
         ("label,a,b,c\nnormal,0.1,0.2\n", "row 2"),
         ("label,a,b,c\nbroken,0.1,0.2,1\n", "row 2, column \"label\""),
-        ("label,a,b,c\n7,0.1,0.2,1\n", "class index 7 is out of range"),
+        (
+            "label,a,b,c\n7,0.1,0.2,1\n",
+            "class index 7 is out of range",
+        ),
         ("label,a,b,c\n0,0.1,x,1\n", "row 2, column \"b\""),
-        ("label,a,b,c\n0,0.1,0.2,9\n", "outside the model's input range"),
-        ("label,a,b,c,d\n0,0.1,0.2,1,3\n", "column \"d\" is not an input"),
+        (
+            "label,a,b,c\n0,0.1,0.2,9\n",
+            "outside the model's input range",
+        ),
+        (
+            "label,a,b,c,d\n0,0.1,0.2,1,3\n",
+            "column \"d\" is not an input",
+        ),
         ("label,a,a,c\n0,0.1,0.2,1\n", "appears twice"),
         ("a,b,c\n0.1,0.2,1\n", "no label column"),
         ("label,a,b,c\n", "no data rows"),
@@ -225,7 +277,10 @@ fn data_errors_name_row_and_column() {
     for (text, expected) in cases {
         let (place, message) = parse_csv(text, &model, &options).expect_err(expected);
         let full = format!("{place}: {message}");
-        assert!(full.contains(expected), "{full:?} should contain {expected:?}");
+        assert!(
+            full.contains(expected),
+            "{full:?} should contain {expected:?}"
+        );
     }
 }
 

@@ -7,7 +7,9 @@ use crate::model::{predicted_class, Model};
 
 /// Arguments of `ballast evaluate`.
 #[derive(Debug, clap::Args)]
-#[command(after_help = "Example: ballast evaluate --model models/pump-mlp.json --data demo-data/acceptance.csv")]
+#[command(
+    after_help = "Example: ballast evaluate --model models/pump-mlp.json --data demo-data/acceptance.csv"
+)]
 pub struct Args {
     /// The model file.
     #[arg(long)]
@@ -60,7 +62,9 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     println!("samples: {}", data.len());
     println!("clean accuracy: {:.4}", result.accuracy);
     println!("confusion matrix (rows: true class, columns: predicted):");
-    let names: Vec<String> = (0..model.class_count()).map(|c| model.class_name(c)).collect();
+    let names: Vec<String> = (0..model.class_count())
+        .map(|c| model.class_name(c))
+        .collect();
     let width = names.iter().map(|n| n.len()).max().unwrap_or(1).max(5);
     print!("{:>width$} ", "");
     for n in &names {

@@ -35,7 +35,12 @@ pub fn describe(model: &Model) -> String {
                 let _ = writeln!(s, "  layers[{i}] normalize ({width})");
             }
             Layer::Dense { weights, .. } => {
-                let _ = writeln!(s, "  layers[{i}] dense {} -> {}", weights.ncols(), weights.nrows());
+                let _ = writeln!(
+                    s,
+                    "  layers[{i}] dense {} -> {}",
+                    weights.ncols(),
+                    weights.nrows()
+                );
                 width = weights.nrows();
             }
             Layer::Relu => {
@@ -46,9 +51,15 @@ pub fn describe(model: &Model) -> String {
     let network = model.network();
     let _ = writeln!(s, "parameters: {}", model.parameter_count());
     let _ = writeln!(s, "relu units: {}", network.relu_count());
-    let kind = if model.output_dim() == 1 { " (binary: class 1 iff logit > 0)" } else { "" };
+    let kind = if model.output_dim() == 1 {
+        " (binary: class 1 iff logit > 0)"
+    } else {
+        ""
+    };
     let _ = writeln!(s, "outputs: {}{kind}", model.output_dim());
-    let classes: Vec<String> = (0..model.class_count()).map(|c| model.class_name(c)).collect();
+    let classes: Vec<String> = (0..model.class_count())
+        .map(|c| model.class_name(c))
+        .collect();
     let _ = writeln!(s, "classes: {}", classes.join(", "));
     let _ = writeln!(s, "input range:");
     for i in 0..model.input.dim {

@@ -70,9 +70,16 @@ pub struct Network {
 impl Network {
     /// Builds a network, checking that consecutive sizes agree.
     pub fn new(layers: Vec<Dense>) -> Network {
-        assert!(!layers.is_empty(), "a network needs at least one affine map");
+        assert!(
+            !layers.is_empty(),
+            "a network needs at least one affine map"
+        );
         for pair in layers.windows(2) {
-            assert_eq!(pair[0].output_dim(), pair[1].input_dim(), "layer sizes must chain");
+            assert_eq!(
+                pair[0].output_dim(),
+                pair[1].input_dim(),
+                "layer sizes must chain"
+            );
         }
         Network { layers }
     }

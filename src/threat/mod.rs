@@ -227,7 +227,11 @@ impl Targets {
                 if !applies {
                     return (0..class_count).filter(|j| *j != y).collect();
                 }
-                classes.iter().copied().filter(|j| *j != y && *j < class_count).collect()
+                classes
+                    .iter()
+                    .copied()
+                    .filter(|j| *j != y && *j < class_count)
+                    .collect()
             }
         }
     }
