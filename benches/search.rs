@@ -101,6 +101,15 @@ fn main() {
                         .is_ok_and(|o| o.targets.iter().all(|t| t.finished))
                 })
                 .count();
+            if let Some(problem) = outcomes.iter().find(|o| {
+                o.as_ref()
+                    .map_or(true, |o| !o.targets.iter().all(|t| t.finished))
+            }) {
+                match problem {
+                    Err(e) => println!("  first unfinished: error {e}"),
+                    Ok(o) => println!("  first unfinished: {:?}", o.verdict),
+                }
+            }
             println!(
                 "  optimality mode: {finished}/{} samples exact, {seconds:.3} s with rayon",
                 problems.len()

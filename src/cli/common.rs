@@ -88,7 +88,10 @@ pub enum EpsilonArgument {
 /// Parses `--eps`: a number, a list `0.01,0.02,0.05`, a range `0.01:0.05:0.01`, or a tolerance file.
 pub fn parse_epsilon_argument(text: &str) -> anyhow::Result<EpsilonArgument> {
     let trimmed = text.trim();
-    let looks_like_file = {
+    let is_number_list = trimmed
+        .chars()
+        .all(|c| c.is_ascii_digit() || matches!(c, '.' | ',' | ':' | 'e' | 'E' | '-' | '+' | ' '));
+    let looks_like_file = !is_number_list && {
         let lower = trimmed.to_ascii_lowercase();
         lower.ends_with(".json") || lower.ends_with(".csv") || Path::new(trimmed).is_file()
     };

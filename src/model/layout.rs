@@ -15,8 +15,6 @@ use super::ModelError;
 /// The format tag every model file carries.
 pub const MODEL_FORMAT: &str = "ballast.model/1";
 
-/// Largest parameter count accepted without `--allow-large` (weights and biases together).
-pub const DEFAULT_MAX_PARAMETERS: usize = 20_000_000;
 
 /// The valid input range and naming of a model's input features (raw units, before any normalize layer).
 #[derive(Debug, Clone, PartialEq)]

@@ -128,9 +128,18 @@ impl RequirementSpec {
             .map(|e| e.to_string_lossy().to_ascii_lowercase())
             .unwrap_or_default();
         let raw: RawRequirement = match extension.as_str() {
-            "toml" => toml::from_str(&text)
-                .map_err(|e| invalid(&shown, e.to_string().trim().to_string()))?,
-            "json" => serde_json::from_str(&text).map_err(|e| invalid(&shown, e.to_string()))?,
+            "toml" => toml::from_str(&text).map_err(|e| invalid(&shown, one_line_toml_error(&e)))?,
+            "json" => {
+                let value: serde_json::Value =
+                    serde_json::from_str(&text).map_err(|e| invalid(&shown, e.to_string()))?;
+                if !value.is_object() {
+                    return Err(invalid(
+                        &shown,
+                        "expected a JSON object with the requirement's keys".to_string(),
+                    ));
+                }
+                serde_json::from_value(value).map_err(|e| invalid(&shown, e.to_string()))?
+            }
             other => {
                 return Err(invalid(
                     &shown,
@@ -372,6 +381,16 @@ pub fn load_tolerances(path: &Path, model: &Model) -> Result<Vec<f64>, Requireme
     .map(|t| t.values)
 }
 
+/// toml's messages span several lines (a source excerpt with a caret); keep the position and the reason
+/// on one line.
+fn one_line_toml_error(error: &toml::de::Error) -> String {
+    let reason = error.message().trim().replace('\n', " ");
+    match error.span() {
+        Some(span) => format!("{reason} (at byte {})", span.start),
+        None => reason,
+    }
+}
+
 fn resolve_tolerances(
     source: &ToleranceSource,
     place: &str,
@@ -388,7 +407,7 @@ fn resolve_tolerances(
             let shown = path.display().to_string();
             let text = crate::limits::read_text_file(path, crate::limits::MAX_SMALL_FILE_BYTES)
                 .map_err(|e| RequirementError::Io {
-                    path: shown.clone(),
+                    path: format!("{place}: tolerance file {shown}"),
                     message: e.to_string(),
                 })?;
             let is_json = path
