@@ -180,10 +180,14 @@ fn dual_multipliers(region: &Region, piece: &AffinePiece) -> Result<Vec<f64>, Se
             upper: piece.gradient[i],
         });
     }
-    match minimise(&program, None)? {
-        LpOutcome::Optimal { point, .. } => Ok(point[..rows].to_vec()),
-        // The dual is feasible (λ = 0 with μ − ν = g) and bounded by the cap; fall back to λ = 0.
-        LpOutcome::Infeasible | LpOutcome::Unbounded => Ok(vec![0.0; rows]),
+    match minimise(&program, None) {
+        Ok(LpOutcome::Optimal { point, .. }) => Ok(point[..rows].to_vec()),
+        // The dual is feasible (λ = 0 with μ − ν = g) and bounded by the cap; on any solver trouble fall
+        // back to λ = 0 (the box minimum: sound, possibly loose).
+        Ok(LpOutcome::Infeasible | LpOutcome::Unbounded) | Err(SearchError::Solver { .. }) => {
+            Ok(vec![0.0; rows])
+        }
+        Err(other) => Err(other),
     }
 }
 
@@ -210,12 +214,15 @@ pub(crate) fn primal_point(
             upper: f64::INFINITY,
         });
     }
-    match minimise(&program, None)? {
-        LpOutcome::Optimal { mut point, .. } => {
+    match minimise(&program, None) {
+        Ok(LpOutcome::Optimal { mut point, .. }) => {
             region.project(&mut point);
             Ok(Some(point))
         }
-        LpOutcome::Infeasible | LpOutcome::Unbounded => Ok(None),
+        Ok(LpOutcome::Infeasible | LpOutcome::Unbounded) => Ok(None),
+        // A numerical failure gives no point; the bound falls back to the dual side.
+        Err(SearchError::Solver { .. }) => Ok(None),
+        Err(other) => Err(other),
     }
 }
 
@@ -285,7 +292,7 @@ fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, 
             upper: f64::INFINITY,
         });
     }
-    let LpOutcome::Optimal { point, .. } = minimise(&program, None)? else {
+    let Ok(LpOutcome::Optimal { point, .. }) = minimise(&program, None) else {
         return Ok(None);
     };
     let x = &point[..n];

@@ -37,6 +37,10 @@ use crate::attack::{AttackError, AttackSettings, Counterexample};
 use crate::bound::{BoundError, Method};
 use crate::threat::Region;
 
+/// An optimality search counts as exact when its sound lower bound and its achieved margin differ by at
+/// most this (relative to `1 + |margin|`).
+pub const EXACT_TOLERANCE: f64 = 1e-7;
+
 /// How to search one sample.
 #[derive(Debug, Clone, PartialEq)]
 pub struct SearchSettings {
@@ -126,8 +130,8 @@ pub struct TargetSummary {
     pub upper: f64,
     /// Where `upper` was reached.
     pub upper_point: Option<Vec<f64>>,
-    /// True when the tree closed every sub-domain (in the optimality mode: `upper` is the minimum, up to
-    /// the optimality gap and the LP's rounding).
+    /// True when the tree closed every sub-domain (in the optimality mode `upper` is then the minimum when
+    /// `lower` is within [`EXACT_TOLERANCE`] of it; see [`SearchOutcome::minimum_margin`]).
     pub finished: bool,
     /// Sub-domains bounded for this class (the root counts once).
     pub nodes: usize,
@@ -149,12 +153,17 @@ pub struct SearchOutcome {
 }
 
 impl SearchOutcome {
-    /// The exact minimum of `logit_label − logit_target` when an optimality search finished for that
-    /// class (within the optimality gap; `None` otherwise).
+    /// The exact minimum of `logit_label − logit_target` when an optimality search closed that class
+    /// with its sound lower bound within [`EXACT_TOLERANCE`] of the achieved margin (`None` otherwise).
     pub fn minimum_margin(&self, target: usize) -> Option<f64> {
         self.targets
             .iter()
-            .find(|t| t.target == target && t.finished && t.upper.is_finite())
+            .find(|t| {
+                t.target == target
+                    && t.finished
+                    && t.upper.is_finite()
+                    && t.upper - t.lower <= EXACT_TOLERANCE * (1.0 + t.upper.abs())
+            })
             .map(|t| t.upper)
     }
 }

@@ -73,7 +73,36 @@ pub(crate) enum LpOutcome {
 }
 
 /// Solves `program` (to optimality; MILPs with a zero gap), within `time_limit` seconds when given.
+/// When the solver fails numerically (e.g. a singular basis), it is retried once with every row scaled
+/// to a largest coefficient of 1 (the same feasible set, a different basis history).
 pub(crate) fn minimise(
+    program: &LinearProgram,
+    time_limit: Option<f64>,
+) -> Result<LpOutcome, SearchError> {
+    match minimise_once(program, time_limit) {
+        Err(SearchError::Solver { .. }) => {
+            let mut scaled = program.clone();
+            for row in &mut scaled.rows {
+                let largest = row
+                    .coefficients
+                    .iter()
+                    .map(|(_, c)| c.abs())
+                    .fold(0.0, f64::max);
+                if largest > 0.0 {
+                    for (_, c) in &mut row.coefficients {
+                        *c /= largest;
+                    }
+                    row.lower /= largest;
+                    row.upper /= largest;
+                }
+            }
+            minimise_once(&scaled, time_limit)
+        }
+        other => other,
+    }
+}
+
+fn minimise_once(
     program: &LinearProgram,
     time_limit: Option<f64>,
 ) -> Result<LpOutcome, SearchError> {

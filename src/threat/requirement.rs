@@ -128,7 +128,7 @@ impl RequirementSpec {
             .map(|e| e.to_string_lossy().to_ascii_lowercase())
             .unwrap_or_default();
         let raw: RawRequirement = match extension.as_str() {
-            "toml" => toml::from_str(&text).map_err(|e| invalid(&shown, one_line_toml_error(&e)))?,
+            "toml" => toml::from_str(&text).map_err(|e| invalid(&shown, one_line_toml_error(&e, &text)))?,
             "json" => {
                 let value: serde_json::Value =
                     serde_json::from_str(&text).map_err(|e| invalid(&shown, e.to_string()))?;
@@ -383,10 +383,16 @@ pub fn load_tolerances(path: &Path, model: &Model) -> Result<Vec<f64>, Requireme
 
 /// toml's messages span several lines (a source excerpt with a caret); keep the position and the reason
 /// on one line.
-fn one_line_toml_error(error: &toml::de::Error) -> String {
+fn one_line_toml_error(error: &toml::de::Error, text: &str) -> String {
     let reason = error.message().trim().replace('\n', " ");
     match error.span() {
-        Some(span) => format!("{reason} (at byte {})", span.start),
+        Some(span) => {
+            let start = span.start.min(text.len());
+            let line_number = text[..start].matches('\n').count() + 1;
+            let line = text.lines().nth(line_number - 1).unwrap_or("").trim();
+            let excerpt: String = line.chars().take(60).collect();
+            format!("line {line_number} (`{excerpt}`): {reason}")
+        }
         None => reason,
     }
 }

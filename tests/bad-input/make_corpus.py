@@ -361,6 +361,13 @@ CASES = [
     ("data/for_certify_duplicate_columns.csv", b"label,x0,x0,x2\n0,0,0,0\n",
      "certify --model {plain} --data {bad} --eps 0.1 --report {out}/r.json --sheet {out}/sheet",
      "column name \"x0\" appears twice"),
+    # ---- requirement files: syntax and shape ------------------------------------------------------
+    ("requirement/truncated.toml", b"epsilon = [0.1,\n", REQUIREMENT, "truncated.toml: line 2"),
+    ("requirement/unknown_key.toml", b"epsilonn = 0.1\n", REQUIREMENT, "unknown field `epsilonn`"),
+    ("requirement/eps_wrong_type.toml", b"epsilon = true\n", REQUIREMENT, "epsilon = true"),
+    ("requirement/not_an_object.json", b"[0.1]", REQUIREMENT, "not_an_object.json: expected a JSON object"),
+    ("requirement/tolerance_file_missing.toml", b'tolerances = "no-such-tolerances.csv"\n', REQUIREMENT,
+     "tolerance_file_missing.toml: tolerances"),
     # ---- arguments ---------------------------------------------------------------------------------
     ("data/good_but_label_column_missing.csv", (HEADER3 + "0,0,0,0\n").encode(),
      "evaluate --model {plain} --data {bad} --label-column target", "no label column \"target\""),
@@ -369,17 +376,6 @@ CASES = [
 # Cases that still break the contract because of a known bug in code this corpus does not own. Each is
 # run too; the test fails once one of them passes, so it gets moved into CASES.
 KNOWN_BUGS = [
-    ("requirement/truncated.toml", b"epsilon = [0.1,\n", REQUIREMENT, "truncated.toml",
-     "TOML syntax errors span several lines (src/threat/requirement.rs passes toml's multi-line message on)"),
-    ("requirement/unknown_key.toml", b"epsilonn = 0.1\n", REQUIREMENT, "unknown field `epsilonn`",
-     "TOML errors span several lines (src/threat/requirement.rs)"),
-    ("requirement/eps_wrong_type.toml", b"epsilon = true\n", REQUIREMENT, "epsilon",
-     "TOML errors span several lines (src/threat/requirement.rs)"),
-    ("requirement/not_an_object.json", b"[0.1]", REQUIREMENT, "not_an_object.json",
-     "a JSON array is accepted as the requirement's fields in order (serde's struct-from-sequence), the run goes ahead"),
-    ("requirement/tolerance_file_missing.toml", b'tolerances = "no-such-tolerances.csv"\n', REQUIREMENT,
-     "tolerance_file_missing.toml: tolerances",
-     "a missing tolerance file named in a requirement file is reported without the requirement file and field"),
 ]
 
 
