@@ -96,10 +96,11 @@ impl Default for DataOptions {
 
 /// Reads a CSV file for `model`.
 pub fn load_csv(path: &Path, model: &Model, options: &DataOptions) -> Result<Dataset, DataError> {
-    let text = crate::limits::read_text_file(path, options.max_bytes).map_err(|source| DataError::Io {
-        path: path.display().to_string(),
-        source,
-    })?;
+    let text =
+        crate::limits::read_text_file(path, options.max_bytes).map_err(|source| DataError::Io {
+            path: path.display().to_string(),
+            source,
+        })?;
     parse_csv(&text, model, options).map_err(|(place, message)| DataError::Invalid {
         path: path.display().to_string(),
         place,
@@ -123,14 +124,20 @@ pub fn parse_csv(
         .map_err(|e| ("row 1 (header)".to_string(), e.to_string()))?
         .clone();
     if headers.is_empty() || (headers.len() == 1 && headers[0].is_empty()) {
-        return Err(("row 1 (header)".into(), "empty file, expected a header row".into()));
+        return Err((
+            "row 1 (header)".into(),
+            "empty file, expected a header row".into(),
+        ));
     }
     let mut seen = std::collections::HashMap::new();
     for (i, h) in headers.iter().enumerate() {
         if let Some(first) = seen.insert(h.to_string(), i) {
             return Err((
                 format!("row 1 (header), column {}", i + 1),
-                format!("column name \"{h}\" appears twice (also column {})", first + 1),
+                format!(
+                    "column name \"{h}\" appears twice (also column {})",
+                    first + 1
+                ),
             ));
         }
     }
@@ -140,7 +147,10 @@ pub fn parse_csv(
         .ok_or_else(|| {
             (
                 "row 1 (header)".to_string(),
-                format!("no label column \"{}\" (use --label-column to name it)", options.label_column),
+                format!(
+                    "no label column \"{}\" (use --label-column to name it)",
+                    options.label_column
+                ),
             )
         })?;
     let dim = model.input.dim;
@@ -150,7 +160,10 @@ pub fn parse_csv(
             let mut columns = Vec::with_capacity(dim);
             for name in names {
                 let c = headers.iter().position(|h| h == name).ok_or_else(|| {
-                    ("row 1 (header)".to_string(), format!("missing feature column \"{name}\""))
+                    (
+                        "row 1 (header)".to_string(),
+                        format!("missing feature column \"{name}\""),
+                    )
                 })?;
                 columns.push(c);
             }
@@ -171,7 +184,10 @@ pub fn parse_csv(
             if columns.len() != dim {
                 return Err((
                     "row 1 (header)".into(),
-                    format!("{} feature columns, expected {dim} (the model's input.dim)", columns.len()),
+                    format!(
+                        "{} feature columns, expected {dim} (the model's input.dim)",
+                        columns.len()
+                    ),
                 ));
             }
             columns
@@ -189,13 +205,16 @@ pub fn parse_csv(
         if record.len() != headers.len() {
             return Err((
                 format!("row {row}"),
-                format!("has {} fields, expected {} (as in the header)", record.len(), headers.len()),
+                format!(
+                    "has {} fields, expected {} (as in the header)",
+                    record.len(),
+                    headers.len()
+                ),
             ));
         }
         let label_text = &record[label_index];
-        let label = parse_label(label_text, model, classes).map_err(|m| {
-            (format!("row {row}, column \"{}\"", options.label_column), m)
-        })?;
+        let label = parse_label(label_text, model, classes)
+            .map_err(|m| (format!("row {row}, column \"{}\"", options.label_column), m))?;
         labels.push(label);
         for (k, &c) in feature_columns.iter().enumerate() {
             let field = &record[c];
@@ -211,7 +230,8 @@ pub fn parse_csv(
                     format!("\"{field}\" is not a finite number"),
                 ));
             }
-            if !options.allow_out_of_range && (v < model.input.lower[k] || v > model.input.upper[k]) {
+            if !options.allow_out_of_range && (v < model.input.lower[k] || v > model.input.upper[k])
+            {
                 return Err((
                     format!("row {row}, column \"{}\"", &headers[c]),
                     format!(
@@ -240,7 +260,10 @@ fn parse_label(text: &str, model: &Model, classes: usize) -> Result<usize, Strin
     }
     match text.parse::<usize>() {
         Ok(i) if i < classes => Ok(i),
-        Ok(i) => Err(format!("class index {i} is out of range, expected 0..{}", classes - 1)),
+        Ok(i) => Err(format!(
+            "class index {i} is out of range, expected 0..{}",
+            classes - 1
+        )),
         Err(_) => Err(match &model.classes {
             Some(names) => format!(
                 "\"{text}\" is neither a class index nor one of the classes {}",

@@ -11,16 +11,16 @@ use crate::threat::{Budget, Norm};
 
 /// Loads a model file (the JSON layout, or ONNX when the name ends in `.onnx`), refusing models above the parameter limit unless allowed.
 pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
+    let max_bytes = if allow_large {
+        u64::MAX
+    } else {
+        crate::limits::MAX_MODEL_FILE_BYTES
+    };
     let model = if crate::model::onnx::is_onnx_path(path) {
         // ONNX is converted in memory; its input range is unbounded unless the file's metadata says so.
-        let max_bytes = if allow_large {
-            u64::MAX
-        } else {
-            crate::limits::MAX_MODEL_FILE_BYTES
-        };
         crate::model::onnx::load_onnx(path, max_bytes, &Default::default())?
     } else {
-        Model::load(path)?
+        Model::load_with_limit(path, max_bytes)?
     };
     let parameters = model.parameter_count().max(model.network_parameter_count());
     if !allow_large && parameters > crate::limits::MAX_PARAMETERS {
@@ -34,10 +34,19 @@ pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
 }
 
 /// Loads a data file for `model`.
-pub fn load_data(path: &Path, model: &Model, label_column: &str, allow_large: bool) -> anyhow::Result<Dataset> {
+pub fn load_data(
+    path: &Path,
+    model: &Model,
+    label_column: &str,
+    allow_large: bool,
+) -> anyhow::Result<Dataset> {
     let options = DataOptions {
         label_column: label_column.to_owned(),
-        max_bytes: if allow_large { u64::MAX } else { crate::limits::MAX_DATA_FILE_BYTES },
+        max_bytes: if allow_large {
+            u64::MAX
+        } else {
+            crate::limits::MAX_DATA_FILE_BYTES
+        },
         ..DataOptions::default()
     };
     Ok(load_csv(path, model, &options)?)
@@ -45,7 +54,8 @@ pub fn load_data(path: &Path, model: &Model, label_column: &str, allow_large: bo
 
 /// Parses `--norm`.
 pub fn parse_norm(text: &str) -> anyhow::Result<Norm> {
-    text.parse::<Norm>().map_err(|m| anyhow::anyhow!("--norm: {m}"))
+    text.parse::<Norm>()
+        .map_err(|m| anyhow::anyhow!("--norm: {m}"))
 }
 
 /// Parses `--eps` as one non-negative finite number for all features.
@@ -62,7 +72,11 @@ pub fn parse_epsilon(text: &str) -> anyhow::Result<f64> {
 
 /// The uniform budget of `--eps E --norm N` for `model`.
 pub fn uniform_budget(eps: &str, norm: &str, model: &Model) -> anyhow::Result<Budget> {
-    Ok(Budget::uniform(parse_norm(norm)?, parse_epsilon(eps)?, model.input.dim))
+    Ok(Budget::uniform(
+        parse_norm(norm)?,
+        parse_epsilon(eps)?,
+        model.input.dim,
+    ))
 }
 
 /// Checks `--floor` lies in [0, 1].

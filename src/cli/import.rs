@@ -81,7 +81,10 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
         }
     }
     let model = load_onnx(&args.onnx, max_bytes, &options)?;
-    if !args.allow_large && model.parameter_count() > crate::limits::MAX_PARAMETERS {
+    if !args.allow_large
+        && model.parameter_count().max(model.network_parameter_count())
+            > crate::limits::MAX_PARAMETERS
+    {
         bail!(
             "{}: the model has {} parameters, above the limit of {} (use --allow-large)",
             args.onnx.display(),

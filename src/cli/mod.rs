@@ -49,7 +49,9 @@ pub const EXIT_INPUT_ERROR: u8 = 2;
 /// ballast certifies small linear and ReLU classifiers against a robustness requirement.
 #[derive(Debug, Parser)]
 #[command(name = "ballast", version, about, long_about = None)]
-#[command(after_help = "Exit codes: 0 requirement met (or finished), 1 not met, 2 usage or input error, 3 undecided.")]
+#[command(
+    after_help = "Exit codes: 0 requirement met (or finished), 1 not met, 2 usage or input error, 3 undecided."
+)]
 pub struct Cli {
     /// The subcommand.
     #[command(subcommand)]

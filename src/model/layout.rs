@@ -15,7 +15,6 @@ use super::ModelError;
 /// The format tag every model file carries.
 pub const MODEL_FORMAT: &str = "ballast.model/1";
 
-
 /// The valid input range and naming of a model's input features (raw units, before any normalize layer).
 #[derive(Debug, Clone, PartialEq)]
 pub struct InputSpec {
@@ -101,20 +100,30 @@ enum RawRange {
 #[derive(Deserialize, Serialize)]
 #[serde(tag = "kind", rename_all = "lowercase", deny_unknown_fields)]
 enum RawLayer {
-    Normalize { mean: Vec<f64>, std: Vec<f64> },
-    Dense { weights: Vec<Vec<f64>>, bias: Vec<f64> },
+    Normalize {
+        mean: Vec<f64>,
+        std: Vec<f64>,
+    },
+    Dense {
+        weights: Vec<Vec<f64>>,
+        bias: Vec<f64>,
+    },
     Relu,
 }
 
 impl Model {
-    /// Reads and validates a model file.
+    /// Reads and validates a model file of at most [`crate::limits::MAX_MODEL_FILE_BYTES`].
     pub fn load(path: &Path) -> Result<Model, ModelError> {
-        let text = crate::limits::read_text_file(path, crate::limits::MAX_MODEL_FILE_BYTES).map_err(
-            |source| ModelError::Io {
+        Model::load_with_limit(path, crate::limits::MAX_MODEL_FILE_BYTES)
+    }
+
+    /// Reads and validates a model file of at most `max_bytes` bytes.
+    pub fn load_with_limit(path: &Path, max_bytes: u64) -> Result<Model, ModelError> {
+        let text =
+            crate::limits::read_text_file(path, max_bytes).map_err(|source| ModelError::Io {
                 path: path.display().to_string(),
                 source,
-            },
-        )?;
+            })?;
         Model::from_json_str(&text).map_err(|e| e.in_file(path))
     }
 
@@ -173,7 +182,10 @@ impl Model {
             }
         }
         if raw.layers.is_empty() {
-            return Err(invalid("layers", "is empty, expected at least one layer".into()));
+            return Err(invalid(
+                "layers",
+                "is empty, expected at least one layer".into(),
+            ));
         }
         let mut layers = Vec::with_capacity(raw.layers.len().min(1024));
         let mut width = dim;
@@ -184,7 +196,9 @@ impl Model {
                 invalid(
                     &place,
                     match kind {
-                        None => format!("{e} (expected an object with \"kind\": dense, relu or normalize)"),
+                        None => format!(
+                            "{e} (expected an object with \"kind\": dense, relu or normalize)"
+                        ),
                         Some(_) => e.to_string(),
                     },
                 )
@@ -246,7 +260,12 @@ impl Model {
                 "has no dense layer, expected at least one".into(),
             ));
         }
-        let lower = expand_range(raw.input.lower.as_ref(), dim, f64::NEG_INFINITY, "input.lower")?;
+        let lower = expand_range(
+            raw.input.lower.as_ref(),
+            dim,
+            f64::NEG_INFINITY,
+            "input.lower",
+        )?;
         let upper = expand_range(raw.input.upper.as_ref(), dim, f64::INFINITY, "input.upper")?;
         for i in 0..dim {
             if lower[i] > upper[i] {
@@ -267,7 +286,11 @@ impl Model {
                     format!(
                         "has {} names, expected {expected} (the model has {width} output{})",
                         classes.len(),
-                        if width == 1 { ", a binary classifier" } else { "s" }
+                        if width == 1 {
+                            ", a binary classifier"
+                        } else {
+                            "s"
+                        }
                     ),
                 ));
             }
@@ -408,7 +431,10 @@ impl Model {
         if let Some(name) = &self.name {
             object.insert("name".into(), Value::from(name.clone()));
         }
-        object.insert("input".into(), serde_json::to_value(input).expect("input serialises"));
+        object.insert(
+            "input".into(),
+            serde_json::to_value(input).expect("input serialises"),
+        );
         if let Some(classes) = &self.classes {
             object.insert("classes".into(), Value::from(classes.clone()));
         }
@@ -421,7 +447,8 @@ impl Model {
 
     /// The model as pretty-printed JSON text in the layout.
     pub fn to_json_string(&self) -> String {
-        let mut text = serde_json::to_string_pretty(&self.to_json_value()).expect("model serialises");
+        let mut text =
+            serde_json::to_string_pretty(&self.to_json_value()).expect("model serialises");
         text.push('\n');
         text
     }

@@ -128,7 +128,8 @@ impl RequirementSpec {
             .map(|e| e.to_string_lossy().to_ascii_lowercase())
             .unwrap_or_default();
         let raw: RawRequirement = match extension.as_str() {
-            "toml" => toml::from_str(&text).map_err(|e| invalid(&shown, one_line_toml_error(&e, &text)))?,
+            "toml" => toml::from_str(&text)
+                .map_err(|e| invalid(&shown, one_line_toml_error(&e, &text)))?,
             "json" => {
                 let value: serde_json::Value =
                     serde_json::from_str(&text).map_err(|e| invalid(&shown, e.to_string()))?;
