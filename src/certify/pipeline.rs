@@ -507,11 +507,11 @@ fn decide_region(
         add_time(stage_seconds, Stage::Search, t);
         last = Stage::Search;
         match found {
-            super::search_stage::Found::Proved => {
+            super::search_stage::Found::Proved(proven) => {
                 return Ok(Attempt {
                     status: Status::Certified,
                     stage: Stage::Search,
-                    margin_lower: margin,
+                    margin_lower: best(margin, proven),
                     counterexample: None,
                 })
             }
@@ -525,7 +525,11 @@ fn decide_region(
                     });
                 }
             }
-            super::search_stage::Found::Open => {}
+            super::search_stage::Found::Open(found) => {
+                if let Some(found) = found {
+                    margin = best(margin, found);
+                }
+            }
         }
     }
     Ok(Attempt {

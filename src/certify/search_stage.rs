@@ -15,12 +15,14 @@ use crate::threat::Region;
 /// What the search established within its deadline.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Found {
-    /// Every branch was closed by a sound bound: no forbidden class is reachable.
-    Proved,
+    /// Every branch was closed by a sound bound: no forbidden class is reachable. Holds the sound
+    /// lower bound on the smallest margin that the closed tree proves (> the tolerance).
+    Proved(f64),
     /// A candidate counterexample (to be re-validated by the caller).
     Counterexample(Vec<f64>),
-    /// The deadline or node limit came first, or a sub-domain stayed undecided.
-    Open,
+    /// The deadline or node limit came first, or a sub-domain stayed undecided; holds the best sound
+    /// lower bound on the smallest margin the search found, when it has one.
+    Open(Option<f64>),
 }
 
 /// Runs branch and bound on one sample until `deadline`; `seed` is the sample's own attack seed.
@@ -44,7 +46,7 @@ pub fn run(
         // sample stays open (unresolved).
         Err(SearchError::Solver { .. })
         | Err(SearchError::Bound(BoundError::Solver { .. }))
-        | Err(SearchError::Unsupported(_)) => return Ok(Found::Open),
+        | Err(SearchError::Unsupported(_)) => return Ok(Found::Open(None)),
         Err(e) => {
             return Err(CertifyError::Search {
                 index,
@@ -53,8 +55,10 @@ pub fn run(
         }
     };
     Ok(match outcome.verdict {
-        Verdict::Proved { .. } => Found::Proved,
+        Verdict::Proved { min_margin_lower } => Found::Proved(min_margin_lower),
         Verdict::Counterexample(c) => Found::Counterexample(c.input),
-        Verdict::Unresolved { .. } => Found::Open,
+        Verdict::Unresolved { best_lower, .. } => {
+            Found::Open(Some(best_lower).filter(|b| b.is_finite()))
+        }
     })
 }
