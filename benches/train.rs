@@ -12,19 +12,28 @@
 use std::path::Path;
 use std::time::Instant;
 
-use ballast::certify::PipelineOptions;
+use ballast::certify::{certify, CertifyOptions, PipelineOptions, Sources};
 use ballast::data::{load_csv, DataOptions, Dataset};
 use ballast::model::Model;
-use ballast::threat::requirement::RequirementSpec;
+use ballast::threat::requirement::Requirement;
 use ballast::threat::{Budget, Norm, Targets};
 use ballast::train::constrained::{
     train_constrained_epochs, ConstrainedSettings, ConstrainedState, Constraint, Formulation,
 };
 use ballast::train::curves::{plot_svg, Series};
-use ballast::train::plain::{split_validation, TrainableModel};
+use ballast::train::plain::TrainableModel;
 use ballast::train::retrain::{retrain, RetrainSettings};
 use ballast::train::robust::RobustLoss;
-use ballast::train::{OptimizerKind, TrainSettings};
+use ballast::train::{
+    he_network, train_cross_entropy_with_validation, OptimizerKind, TrainSettings,
+};
+
+/// L-inf radius of the trade-off benchmark (digits pixels in [0, 1]).
+const EPSILON: f64 = 0.04;
+/// Epochs of the plain (clean-only) model.
+const PLAIN_EPOCHS: usize = 60;
+/// First-round epochs of every retraining run.
+const EPOCHS: usize = 30;
 
 fn constrained_settings(
     epochs: usize,
@@ -117,48 +126,101 @@ struct Run {
     seconds: f64,
 }
 
+/// Clean and certified accuracy of `model` on `data` from the certify pipeline (bounds only).
+fn certify_figures(model: &Model, data: &Dataset, requirement: &Requirement) -> (f64, f64) {
+    let options = CertifyOptions {
+        pipeline: PipelineOptions::default(),
+        label_column: "label".into(),
+        ..CertifyOptions::default()
+    };
+    let report = certify(
+        model,
+        data,
+        requirement,
+        &Sources::in_memory(model, data),
+        &options,
+    )
+    .expect("certify runs");
+    (
+        report.summary.clean_accuracy,
+        report.summary.certified_accuracy,
+    )
+}
+
 fn tradeoff() {
-    let model = Model::load(Path::new("models/pump-mlp.json")).expect("demo model");
+    let fixture = Model::load(Path::new("tests/data/digits_mlp.model.json")).expect("fixture");
     let options = DataOptions::default();
-    let all = load_csv(Path::new("demo-data/train.csv"), &model, &options).expect("demo train");
-    let acceptance =
-        load_csv(Path::new("demo-data/acceptance.csv"), &model, &options).expect("demo acceptance");
-    let (train, validation) = split_validation(&all, 0.2, 5);
-    let validation = validation.expect("validation");
-    let spec =
-        RequirementSpec::from_file(Path::new("demo-data/requirement.toml")).expect("requirement");
-    let base = spec.resolve(&model).expect("requirement resolves");
-    let budget = base.budget(base.epsilon(), model.input.dim);
-    let epochs = 30;
+    let train =
+        load_csv(Path::new("tests/data/digits_train.csv"), &fixture, &options).expect("data");
+    let held_out =
+        load_csv(Path::new("tests/data/digits_test.csv"), &fixture, &options).expect("data");
+    let epsilon: f64 = std::env::var("PE").map(|v| v.parse().unwrap()).unwrap_or(EPSILON);
+    let plain_epochs: usize = std::env::var("PP").map(|v| v.parse().unwrap()).unwrap_or(PLAIN_EPOCHS);
+    let mut base = Requirement::uniform(Norm::Linf, epsilon);
+    // The plain model: the fixture's 64-32-10 layout (no normalize layer) trained from scratch with
+    // clean cross-entropy only, no weight decay.
+    let start = Instant::now();
+    let scratch = TrainableModel::new(&fixture).model_with(&he_network(64, &[32], 10, 3));
+    let (plain, _) = train_cross_entropy_with_validation(
+        &scratch,
+        &train,
+        None,
+        &TrainSettings {
+            epochs: plain_epochs,
+            batch_size: 64,
+            optimizer: OptimizerKind::adam(0.002),
+            weight_decay: 0.0,
+            seed: 3,
+            validation_fraction: 0.0,
+            patience: None,
+        },
+    )
+    .expect("plain training runs");
+    let plain_seconds = start.elapsed().as_secs_f64();
+    for probe in [0.04, 0.05, 0.06, 0.07, 0.08] {
+        let (clean, certified) =
+            certify_figures(&plain, &held_out, &Requirement::uniform(Norm::Linf, probe));
+        println!("plain model at eps {probe}: clean {clean:.4}, certified {certified:.4}");
+    }
+    for probe in [0.06] {
+        let (clean, certified) =
+            certify_figures(&fixture, &held_out, &Requirement::uniform(Norm::Linf, probe));
+        println!("fixture at eps {probe}: clean {clean:.4}, certified {certified:.4}");
+    }
+    let (plain_clean, plain_certified) = certify_figures(&plain, &held_out, &base);
+    println!(
+        "plain model ({PLAIN_EPOCHS} epochs, {plain_seconds:.1} s) at eps {epsilon}: clean {plain_clean:.4}, certified {plain_certified:.4}"
+    );
+    let budget = base.budget(epsilon, fixture.input.dim);
+    let epochs: usize = std::env::var("PN").map(|v| v.parse().unwrap()).unwrap_or(EPOCHS);
     let mut runs = Vec::new();
     let mut run = |label: String,
                    formulation: Formulation,
                    floor: f64,
                    rounds: usize,
                    penalty: Option<f64>| {
-        let mut requirement = base.clone();
-        requirement.floor = Some(floor);
+        base.floor = Some(floor);
         let settings = RetrainSettings {
             constrained: constrained_settings(
                 epochs,
                 7,
                 budget.clone(),
-                base.targets.clone(),
+                Targets::Any,
                 formulation,
                 floor,
             ),
-            round_epochs: 15,
+            round_epochs: epochs / 2,
             max_rounds: rounds,
             slack_step: 0.03,
             pipeline: PipelineOptions::default(),
         };
         let start = Instant::now();
         let result = retrain(
-            &model,
+            &plain,
             &train,
-            Some(&validation),
-            &acceptance,
-            &requirement,
+            None,
+            &held_out,
+            &base,
             &settings,
             &mut |_| {},
         )
@@ -211,7 +273,7 @@ fn tradeoff() {
             .collect()
     };
     let svg = plot_svg(
-        "Demo: clean vs certified accuracy (acceptance data)",
+        &format!("Digits, L-inf eps {epsilon}: clean vs certified accuracy (held-out test rows)"),
         "certified accuracy",
         "clean accuracy",
         &[
@@ -225,10 +287,18 @@ fn tradeoff() {
                 points: points(&|r| r.penalty.is_some()),
                 markers_only: true,
             },
+            Series {
+                name: "plain model".into(),
+                points: vec![(plain_certified, plain_clean)],
+                markers_only: true,
+            },
         ],
     );
     std::fs::write(folder.join("tradeoff.svg"), svg).expect("svg");
     let mut table = String::from("| run | floor | penalty | clean accuracy | certified accuracy | rounds | seconds |\n| --- | --- | --- | --- | --- | --- | --- |\n");
+    table.push_str(&format!(
+        "| plain model (clean only) |  |  | {plain_clean:.4} | {plain_certified:.4} |  | {plain_seconds:.1} |\n"
+    ));
     for r in &runs {
         table.push_str(&format!(
             "| {} | {} | {} | {:.4} | {:.4} | {} | {:.1} |\n",
