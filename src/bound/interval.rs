@@ -14,8 +14,8 @@ use nalgebra::DMatrix;
 use rayon::prelude::*;
 
 use super::{
-    clip_to_splits, validate, validate_network, validate_sample, BoundError, Domain, LayerBounds,
-    MarginBounds, Method, SplitState,
+    clip_to_splits, validate, validate_batch, BoundError, Domain, LayerBounds, MarginBounds,
+    Method, SplitState,
 };
 use crate::model::{Dense, Network};
 use crate::threat::Region;
@@ -165,19 +165,7 @@ pub fn batch_margin_lower_bounds(
 ) -> Result<BatchIntervalBounds, BoundError> {
     let network = network.as_classifier();
     let samples = regions.len();
-    for (what, found) in [("labels", labels.len()), ("target lists", targets.len())] {
-        if found != samples {
-            return Err(BoundError::DimensionMismatch {
-                what: format!("number of {what}"),
-                expected: samples,
-                found,
-            });
-        }
-    }
-    validate_network(&network)?;
-    for s in 0..samples {
-        validate_sample(&network, &regions[s], labels[s], &targets[s], None)?;
-    }
+    validate_batch(&network, regions, labels, targets)?;
     let dim = network.input_dim();
     let mut last_lower = DMatrix::zeros(dim, samples);
     let mut last_upper = DMatrix::zeros(dim, samples);

@@ -22,8 +22,8 @@ use rayon::prelude::*;
 
 use super::interval::{activation_box, affine_box, margin_over_box};
 use super::{
-    clip_to_splits, concretise, validate, validate_network, validate_sample, BoundError, Domain,
-    LayerBounds, MarginBounds, Method, ReluSplit, SplitState,
+    clip_to_splits, concretise, validate, validate_batch, BoundError, Domain, LayerBounds,
+    MarginBounds, Method, ReluSplit, SplitState,
 };
 use crate::model::Network;
 use crate::threat::{Norm, Region};
@@ -367,19 +367,7 @@ pub fn batch_margin_lower_bounds(
 ) -> Result<BatchLinearBounds, BoundError> {
     let network = network.as_classifier();
     let samples = regions.len();
-    for (what, found) in [("labels", labels.len()), ("target lists", targets.len())] {
-        if found != samples {
-            return Err(BoundError::DimensionMismatch {
-                what: format!("number of {what}"),
-                expected: samples,
-                found,
-            });
-        }
-    }
-    validate_network(&network)?;
-    for s in 0..samples {
-        validate_sample(&network, &regions[s], labels[s], &targets[s], None)?;
-    }
+    validate_batch(&network, regions, labels, targets)?;
     let results: Vec<(MarginBounds, u64)> = (0..samples)
         .into_par_iter()
         .map(|s| bounds_checked(&network, &regions[s], labels[s], &targets[s], None))

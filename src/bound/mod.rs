@@ -347,6 +347,30 @@ pub(crate) fn validate<'a>(
     Ok(network)
 }
 
+/// Checks a batch: one label and one target list per region, a valid network, and every sample valid.
+pub(crate) fn validate_batch(
+    network: &Network,
+    regions: &[Region],
+    labels: &[usize],
+    targets: &[Vec<usize>],
+) -> Result<(), BoundError> {
+    let samples = regions.len();
+    for (what, found) in [("labels", labels.len()), ("target lists", targets.len())] {
+        if found != samples {
+            return Err(BoundError::DimensionMismatch {
+                what: format!("number of {what}"),
+                expected: samples,
+                found,
+            });
+        }
+    }
+    validate_network(network)?;
+    for s in 0..samples {
+        validate_sample(network, &regions[s], labels[s], &targets[s], None)?;
+    }
+    Ok(())
+}
+
 /// Checks that every parameter is finite.
 pub(crate) fn validate_network(network: &Network) -> Result<(), BoundError> {
     for (k, layer) in network.layers.iter().enumerate() {
