@@ -1,6 +1,6 @@
 //! The certified training loss and its exact gradient: cross-entropy on worst-case logits built from
 //! sound margin lower bounds, by interval bound propagation (Gowal et al., 2018) or a mix of interval
-//! and linear-relaxation bounds (Zhang et al., 2020, "CROWN-IBP": interval bounds for the hidden layers,
+//! and linear-relaxation bounds (Zhang et al., 2020: interval bounds for the hidden layers,
 //! a backward linear relaxation for the margins, `β · linear + (1 − β) · interval`).
 //!
 //! For a sample with label `y`, forbidden classes `j` and margin lower bounds `b_j ≤ z_y − z_j` over the
