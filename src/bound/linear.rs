@@ -286,19 +286,63 @@ pub fn margin_lower_bounds_from(
     pre_activation: &[LayerBounds],
     splits: Option<&SplitState>,
 ) -> Result<MarginBounds, BoundError> {
+    match prepare_given(
+        network,
+        region,
+        label,
+        targets,
+        pre_activation,
+        splits,
+        Method::Linear,
+    )? {
+        GivenBounds::Empty(result) => Ok(result),
+        GivenBounds::Ready {
+            network,
+            bounds,
+            relaxations,
+        } => Ok(final_pass(&network, region, label, targets, bounds, &relaxations).0),
+    }
+}
+
+/// The start of every bound computed on given pre-activation bounds: the checked network, the bounds
+/// clipped by the split constraints with their relaxations, or the result for an empty domain.
+pub(crate) enum GivenBounds<'a> {
+    /// The split constraints leave inputs: bound them with these.
+    Ready {
+        /// The checked classifier network.
+        network: std::borrow::Cow<'a, Network>,
+        /// Pre-activation bounds clipped by the splits.
+        bounds: Vec<LayerBounds>,
+        /// The ReLU relaxation of every hidden layer.
+        relaxations: Vec<Relaxation>,
+    },
+    /// The split constraints contradict the bounds: the finished (prunable) result.
+    Empty(MarginBounds),
+}
+
+/// Validates the inputs and relaxes the given pre-activation bounds under `splits` for `method`.
+pub(crate) fn prepare_given<'a>(
+    network: &'a Network,
+    region: &Region,
+    label: usize,
+    targets: &[usize],
+    pre_activation: &[LayerBounds],
+    splits: Option<&SplitState>,
+    method: Method,
+) -> Result<GivenBounds<'a>, BoundError> {
     let network = validate(network, region, label, targets, splits)?;
     let bounds = checked_layer_bounds(&network, pre_activation)?;
     let (bounds, relaxations, domain) = relax_given(bounds, splits);
     if let Domain::Empty { layer, unit } = domain {
-        return Ok(MarginBounds::empty(
-            Method::Linear,
-            targets,
-            bounds,
-            layer,
-            unit,
-        ));
+        return Ok(GivenBounds::Empty(MarginBounds::empty(
+            method, targets, bounds, layer, unit,
+        )));
     }
-    Ok(final_pass(&network, region, label, targets, bounds, &relaxations).0)
+    Ok(GivenBounds::Ready {
+        network,
+        bounds,
+        relaxations,
+    })
 }
 
 /// Checks that given pre-activation bounds match the hidden layers and are finite, and copies them.

@@ -17,9 +17,7 @@
 //! solver's word; likewise if the reported optimum exceeds the true margin at the solver's own input
 //! point (which a sound bound never does), the linear bound is used.
 
-use super::linear::{
-    backward, checked_layer_bounds, intermediate_bounds, margin_rows, relax_given,
-};
+use super::linear::{backward, intermediate_bounds, margin_rows, prepare_given, GivenBounds};
 use super::linear::{Relaxation, Unit};
 use super::solver::{self, LinearProgram, Outcome, Sense};
 use super::{
@@ -88,27 +86,30 @@ pub fn margin_lower_bounds_from(
     pre_activation: &[LayerBounds],
     splits: Option<&SplitState>,
 ) -> Result<MarginBounds, BoundError> {
-    let network = validate(network, region, label, targets, splits)?;
-    let bounds = checked_layer_bounds(&network, pre_activation)?;
-    let (bounds, relaxations, domain) = relax_given(bounds, splits);
-    if let Domain::Empty { layer, unit } = domain {
-        return Ok(MarginBounds::empty(
-            Method::Lp,
-            targets,
-            bounds,
-            layer,
-            unit,
-        ));
-    }
-    solve(
-        &network,
+    match prepare_given(
+        network,
         region,
         label,
         targets,
-        bounds,
-        &relaxations,
+        pre_activation,
         splits,
-    )
+        Method::Lp,
+    )? {
+        GivenBounds::Empty(result) => Ok(result),
+        GivenBounds::Ready {
+            network,
+            bounds,
+            relaxations,
+        } => solve(
+            &network,
+            region,
+            label,
+            targets,
+            bounds,
+            &relaxations,
+            splits,
+        ),
+    }
 }
 
 /// The triangle-relaxation LP without objective, with the variable index (if any) of each unit of the
