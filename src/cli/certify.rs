@@ -12,7 +12,8 @@ use std::sync::Arc;
 use anyhow::{bail, Context};
 
 use super::common::{
-    load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument,
+    add_class_change_flags, load_data, load_model, parse_epsilon_argument, parse_norm,
+    resolve_requirement, EpsilonArgument,
 };
 use super::Outcome;
 use crate::certify::journal::journal_path;
@@ -139,18 +140,11 @@ fn flags_spec(args: &Args) -> anyhow::Result<RequirementSpec> {
         .min_clean_accuracy
         .map(|v| (v, "--min-clean-accuracy".to_string()));
     spec.confidence = args.confidence.map(|v| (v, "--confidence".to_string()));
-    if let Some(f) = &args.forbid_into {
-        spec.forbid_into = Some((
-            parse_class_list(f, "--forbid-into")?,
-            "--forbid-into".into(),
-        ));
-    }
-    if let Some(f) = &args.forbid_from {
-        spec.forbid_from = Some((
-            parse_class_list(f, "--forbid-from")?,
-            "--forbid-from".into(),
-        ));
-    }
+    add_class_change_flags(
+        &mut spec,
+        args.forbid_into.as_deref(),
+        args.forbid_from.as_deref(),
+    )?;
     Ok(spec)
 }
 
@@ -188,13 +182,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     let shard = args.shard.as_deref().map(parse_shard).transpose()?;
     let model = load_model(&args.model, args.allow_large)?;
     let data = load_data(&args.data, &model, &args.label_column, args.allow_large)?;
-    let file_spec = match &args.requirement {
-        Some(p) => RequirementSpec::from_file(p)?,
-        None => RequirementSpec::default(),
-    };
-    let requirement = file_spec
-        .overridden_by(flags_spec(&args)?)
-        .resolve(&model)?;
+    let requirement = resolve_requirement(args.requirement.as_deref(), flags_spec(&args)?, &model)?;
     if let Some(report) = &args.report {
         check_writable_folder(report)?;
         if args.resume && !journal_path(report).is_file() {

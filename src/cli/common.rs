@@ -132,3 +132,38 @@ pub fn parse_class_list(text: &str, flag: &str) -> anyhow::Result<Vec<String>> {
     }
     Ok(list)
 }
+
+/// Adds `--forbid-into` / `--forbid-from` (comma-separated class names or indices) to a flag spec.
+pub fn add_class_change_flags(
+    spec: &mut crate::threat::requirement::RequirementSpec,
+    forbid_into: Option<&str>,
+    forbid_from: Option<&str>,
+) -> anyhow::Result<()> {
+    if let Some(f) = forbid_into {
+        spec.forbid_into = Some((
+            parse_class_list(f, "--forbid-into")?,
+            "--forbid-into".into(),
+        ));
+    }
+    if let Some(f) = forbid_from {
+        spec.forbid_from = Some((
+            parse_class_list(f, "--forbid-from")?,
+            "--forbid-from".into(),
+        ));
+    }
+    Ok(())
+}
+
+/// The requirement of a run: the requirement file's values (if a file is given), overridden by the
+/// command-line flags, resolved against `model`.
+pub fn resolve_requirement(
+    file: Option<&Path>,
+    flags: crate::threat::requirement::RequirementSpec,
+    model: &Model,
+) -> anyhow::Result<crate::threat::requirement::Requirement> {
+    let file_spec = match file {
+        Some(p) => crate::threat::requirement::RequirementSpec::from_file(p)?,
+        None => crate::threat::requirement::RequirementSpec::default(),
+    };
+    Ok(file_spec.overridden_by(flags).resolve(model)?)
+}

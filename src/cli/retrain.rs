@@ -9,7 +9,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{bail, Context};
 
 use super::common::{
-    load_data, load_model, parse_class_list, parse_epsilon_argument, parse_norm, EpsilonArgument,
+    add_class_change_flags, load_data, load_model, parse_epsilon_argument, parse_norm,
+    resolve_requirement, EpsilonArgument,
 };
 use super::Outcome;
 use crate::certify::PipelineOptions;
@@ -248,23 +249,12 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         spec.norm = Some((parse_norm(norm)?, "--norm".into()));
     }
     spec.floor = args.floor.map(|f| (f, "--floor".to_string()));
-    if let Some(f) = &args.forbid_into {
-        spec.forbid_into = Some((
-            parse_class_list(f, "--forbid-into")?,
-            "--forbid-into".into(),
-        ));
-    }
-    if let Some(f) = &args.forbid_from {
-        spec.forbid_from = Some((
-            parse_class_list(f, "--forbid-from")?,
-            "--forbid-from".into(),
-        ));
-    }
-    let file_spec = match &args.requirement {
-        Some(p) => RequirementSpec::from_file(p)?,
-        None => RequirementSpec::default(),
-    };
-    let requirement = file_spec.overridden_by(spec).resolve(&parent)?;
+    add_class_change_flags(
+        &mut spec,
+        args.forbid_into.as_deref(),
+        args.forbid_from.as_deref(),
+    )?;
+    let requirement = resolve_requirement(args.requirement.as_deref(), spec, &parent)?;
     let Some(floor) = requirement.floor else {
         bail!("--floor: retraining needs a floor (give --floor or a requirement file with floor)");
     };
