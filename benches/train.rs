@@ -23,15 +23,18 @@ use ballast::train::constrained::{
     train_constrained_epochs, ConstrainedSettings, ConstrainedState, Constraint, Formulation,
 };
 use ballast::train::curves::{plot_svg, Series};
+use ballast::train::plain::split_validation;
 use ballast::train::plain::TrainableModel;
-use ballast::train::retrain::{retrain, RetrainSettings};
+use ballast::train::retrain::{retrain, Keep, RetrainSettings};
 use ballast::train::robust::RobustLoss;
 use ballast::train::{
     he_network, train_cross_entropy_with_validation, OptimizerKind, TrainSettings,
 };
 
-/// L-inf radius of the trade-off benchmark (digits pixels in [0, 1]).
+/// L-inf radius of the trade-off benchmark (digits pixels in [0, 1]); `BALLAST_BENCH_EPS` overrides.
 const EPSILON: f64 = 0.07;
+/// Hidden layer sizes of the plain model; `BALLAST_BENCH_HIDDEN` (e.g. `128` or `64,32`) overrides.
+const HIDDEN: &[usize] = &[32];
 /// Epochs of the plain (clean-only) model.
 const PLAIN_EPOCHS: usize = 200;
 /// First-round epochs of every retraining run.
@@ -127,10 +130,22 @@ struct Run {
     label: String,
     penalty: Option<f64>,
     floor: Option<f64>,
+    /// Clean and certified accuracy on the validation rows (the retrainer's acceptance data).
     clean: f64,
     certified: f64,
+    /// The same on the held-out test rows (never seen by training or selection).
+    test_clean: f64,
+    test_certified: f64,
+    kept_epoch: usize,
     rounds: usize,
     seconds: f64,
+}
+
+fn env_or<T: std::str::FromStr>(name: &str, default: T) -> T {
+    std::env::var(name)
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(default)
 }
 
 /// Clean and certified accuracy of `model` on `data` from the certify pipeline (bounds only).
@@ -157,16 +172,29 @@ fn certify_figures(model: &Model, data: &Dataset, requirement: &Requirement) -> 
 fn tradeoff() {
     let fixture = Model::load(Path::new("tests/data/digits_mlp.model.json")).expect("fixture");
     let options = DataOptions::default();
-    let train =
+    let all_train =
         load_csv(Path::new("tests/data/digits_train.csv"), &fixture, &options).expect("data");
     let held_out =
         load_csv(Path::new("tests/data/digits_test.csv"), &fixture, &options).expect("data");
-    let epsilon = EPSILON;
+    // 20% of the training rows are validation data: the retrainer steers and selects on them and
+    // certifies them as its acceptance set (the CLI's default); the test rows are only measured.
+    let (train, validation) = split_validation(&all_train, 0.2, 5);
+    let validation = validation.expect("enough rows");
+    let epsilon = env_or("BALLAST_BENCH_EPS", EPSILON);
+    let hidden: Vec<usize> = std::env::var("BALLAST_BENCH_HIDDEN")
+        .ok()
+        .map(|v| {
+            v.split(',')
+                .map(|h| h.trim().parse().expect("hidden size"))
+                .collect()
+        })
+        .unwrap_or_else(|| HIDDEN.to_vec());
+    let epochs = env_or("BALLAST_BENCH_EPOCHS", EPOCHS);
     let mut base = Requirement::uniform(Norm::Linf, epsilon);
     // The plain model: the fixture's 64-32-10 layout (no normalize layer) trained from scratch with
     // clean cross-entropy only, no weight decay.
     let start = Instant::now();
-    let scratch = TrainableModel::new(&fixture).model_with(&he_network(64, &[32], 10, 3));
+    let scratch = TrainableModel::new(&fixture).model_with(&he_network(64, &hidden, 10, 3));
     let (plain, _) = train_cross_entropy_with_validation(
         &scratch,
         &train,
@@ -186,22 +214,14 @@ fn tradeoff() {
     for probe in [0.04, 0.05, 0.06, 0.07, 0.08] {
         let (clean, certified) =
             certify_figures(&plain, &held_out, &Requirement::uniform(Norm::Linf, probe));
-        println!("plain model at eps {probe}: clean {clean:.4}, certified {certified:.4}");
+        println!("plain model at eps {probe}: test clean {clean:.4}, certified {certified:.4}");
     }
-    for probe in [0.04, 0.07] {
-        let (clean, certified) = certify_figures(
-            &fixture,
-            &held_out,
-            &Requirement::uniform(Norm::Linf, probe),
-        );
-        println!("fixture at eps {probe}: clean {clean:.4}, certified {certified:.4}");
-    }
-    let (plain_clean, plain_certified) = certify_figures(&plain, &held_out, &base);
+    let (plain_clean, plain_certified) = certify_figures(&plain, &validation, &base);
+    let (plain_test_clean, plain_test_certified) = certify_figures(&plain, &held_out, &base);
     println!(
-        "plain model ({PLAIN_EPOCHS} epochs, {plain_seconds:.1} s) at eps {epsilon}: clean {plain_clean:.4}, certified {plain_certified:.4}"
+        "plain model {hidden:?} ({PLAIN_EPOCHS} epochs, {plain_seconds:.1} s) at eps {epsilon}: validation clean {plain_clean:.4}, certified {plain_certified:.4}; test clean {plain_test_clean:.4}, certified {plain_test_certified:.4}"
     );
     let budget = base.budget(epsilon, fixture.input.dim);
-    let epochs = EPOCHS;
     let mut runs = Vec::new();
     let mut run = |label: String,
                    formulation: Formulation,
@@ -223,31 +243,37 @@ fn tradeoff() {
             max_rounds: rounds,
             slack_step: 0.03,
             pipeline: PipelineOptions::default(),
+            keep: Keep::BestFeasible,
         };
         let start = Instant::now();
         let result = retrain(
             &plain,
             &train,
-            None,
-            &held_out,
+            Some(&validation),
+            &validation,
             &base,
             &settings,
             &mut |_| {},
         )
         .expect("retrain runs");
+        let seconds = start.elapsed().as_secs_f64();
         let last = result.rounds.last().expect("a round");
+        let (test_clean, test_certified) = certify_figures(&result.model, &held_out, &base);
         let r = Run {
             label,
             penalty,
             floor: penalty.is_none().then_some(floor),
             clean: last.clean_accuracy,
             certified: last.certified_accuracy,
+            test_clean,
+            test_certified,
+            kept_epoch: last.selected_epoch,
             rounds: result.rounds.len(),
-            seconds: start.elapsed().as_secs_f64(),
+            seconds,
         };
         println!(
-            "{}: clean {:.4}, certified {:.4}, rounds {}, {:.1} s",
-            r.label, r.clean, r.certified, r.rounds, r.seconds
+            "{}: validation clean {:.4}, certified {:.4}; test clean {:.4}, certified {:.4}; kept epoch {}, rounds {}, {:.1} s",
+            r.label, r.clean, r.certified, r.test_clean, r.test_certified, r.kept_epoch, r.rounds, r.seconds
         );
         runs.push(r);
     };
@@ -265,7 +291,7 @@ fn tradeoff() {
             None,
         );
     }
-    for weight in [0.1, 0.3, 1.0, 3.0, 10.0] {
+    for weight in [0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0] {
         run(
             format!("penalty {weight}"),
             Formulation::Penalty { weight },
@@ -276,47 +302,72 @@ fn tradeoff() {
     }
     let folder = Path::new("target/bench-train");
     std::fs::create_dir_all(folder).expect("folder");
-    let points = |keep: &dyn Fn(&Run) -> bool| -> Vec<(f64, f64)> {
-        runs.iter()
-            .filter(|r| keep(r))
-            .map(|r| (r.certified, r.clean))
-            .collect()
-    };
-    let svg = plot_svg(
-        &format!("Digits, L-inf eps {epsilon}: clean vs certified accuracy (held-out test rows)"),
-        "certified accuracy",
-        "clean accuracy",
-        &[
-            Series {
-                name: "primal-dual".into(),
-                points: points(&|r| r.penalty.is_none()),
-                markers_only: true,
-            },
-            Series {
-                name: "fixed penalty".into(),
-                points: points(&|r| r.penalty.is_some()),
-                markers_only: true,
-            },
-            Series {
-                name: "plain model".into(),
-                points: vec![(plain_certified, plain_clean)],
-                markers_only: true,
-            },
-        ],
+    for (file, which, plain_point) in [
+        (
+            "tradeoff.svg",
+            "validation rows = acceptance data",
+            (plain_certified, plain_clean),
+        ),
+        (
+            "tradeoff-test.svg",
+            "held-out test rows",
+            (plain_test_certified, plain_test_clean),
+        ),
+    ] {
+        let test = file.contains("test");
+        let points = |keep: &dyn Fn(&Run) -> bool| -> Vec<(f64, f64)> {
+            runs.iter()
+                .filter(|r| keep(r))
+                .map(|r| {
+                    if test {
+                        (r.test_certified, r.test_clean)
+                    } else {
+                        (r.certified, r.clean)
+                    }
+                })
+                .collect()
+        };
+        let svg = plot_svg(
+            &format!("Digits, L-inf eps {epsilon}: clean vs certified accuracy ({which})"),
+            "certified accuracy",
+            "clean accuracy",
+            &[
+                Series {
+                    name: "primal-dual".into(),
+                    points: points(&|r| r.penalty.is_none()),
+                    markers_only: true,
+                },
+                Series {
+                    name: "fixed penalty".into(),
+                    points: points(&|r| r.penalty.is_some()),
+                    markers_only: true,
+                },
+                Series {
+                    name: "plain model".into(),
+                    points: vec![plain_point],
+                    markers_only: true,
+                },
+            ],
+        );
+        std::fs::write(folder.join(file), svg).expect("svg");
+    }
+    let mut table = String::from(
+        "| run | floor | penalty | kept epoch | validation clean | validation certified | test clean | test certified | rounds | seconds |\n| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |\n",
     );
-    std::fs::write(folder.join("tradeoff.svg"), svg).expect("svg");
-    let mut table = String::from("| run | floor | penalty | clean accuracy | certified accuracy | rounds | seconds |\n| --- | --- | --- | --- | --- | --- | --- |\n");
     table.push_str(&format!(
-        "| plain model (clean only) |  |  | {plain_clean:.4} | {plain_certified:.4} |  | {plain_seconds:.1} |\n"
+        "| plain model (clean only) |  |  |  | {plain_clean:.4} | {plain_certified:.4} | {plain_test_clean:.4} | {plain_test_certified:.4} |  | {plain_seconds:.1} |\n"
     ));
     for r in &runs {
         table.push_str(&format!(
-            "| {} | {} | {} | {:.4} | {:.4} | {} | {:.1} |\n",
+            "| {} | {} | {} | {} | {:.4} | {:.4} | {:.4} | {:.4} | {} | {:.1} |\n",
             r.label,
             r.floor.map(|f| f.to_string()).unwrap_or_default(),
             r.penalty.map(|p| p.to_string()).unwrap_or_default(),
+            r.kept_epoch,
             r.clean,
             r.certified,
+            r.test_clean,
+            r.test_certified,
             r.rounds,
             r.seconds
         ));

@@ -683,4 +683,179 @@ mod primal_dual {
             .iter()
             .all(|e| e.robust_loss.is_finite() && e.robust_loss > 0.0));
     }
+
+    // The constraint is measured by sound linear bounds, not by the loss's own (interval) bound: with
+    // one batch holding every sample and no epsilon ramp, the epoch's measured robust error is the
+    // error before the only step, i.e. one minus the linear-bound certified accuracy of the starting
+    // network (computed here by the separate `certified_accuracy`), and never above the interval
+    // bound's error rate (linear bounds are at least as tight; common practice).
+    #[test]
+    fn constraint_is_measured_by_linear_bounds() {
+        use ballast::train::constrained::certified_accuracy;
+        let data = three_classes(240);
+        let input = InputSpec {
+            dim: 2,
+            names: None,
+            lower: vec![-3.0; 2],
+            upper: vec![3.0; 2],
+        };
+        let model = new_mlp(&input, 3, &[8], &data, 4).expect("model");
+        let trainable = TrainableModel::new(&model);
+        let mut one_batch = settings(
+            RobustLoss::Interval,
+            Constraint::RobustError {
+                floor: 0.5,
+                slack: 0.0,
+            },
+            Formulation::PrimalDual {
+                dual_step: 0.1,
+                initial_multiplier: 0.0,
+                per_class: false,
+            },
+        );
+        one_batch.train.batch_size = 240;
+        one_batch.budget = Budget::uniform(Norm::Linf, 0.2, 2);
+        let before = certified_accuracy(
+            &trainable,
+            &trainable.network,
+            &data,
+            &one_batch.budget,
+            &Targets::Any,
+        )
+        .expect("linear bounds");
+        let mut state = ConstrainedState::new(&trainable, &one_batch, 3);
+        let records = train_constrained_epochs(
+            &trainable,
+            &mut state,
+            &data,
+            None,
+            &one_batch,
+            1,
+            &mut |_| {},
+        )
+        .expect("training runs");
+        assert!(
+            (records[0].robust_error - (1.0 - before)).abs() < 1e-12,
+            "measured {} vs 1 − certified {}",
+            records[0].robust_error,
+            1.0 - before
+        );
+        let interval = ballast::train::robust::robust_loss(
+            RobustLoss::Interval,
+            &trainable.network,
+            &(0..data.len())
+                .map(|i| {
+                    ballast::train::robust::RegionMap::new(&model, trainable.normalization.as_ref())
+                        .region(data.sample(i), &one_batch.budget)
+                })
+                .collect::<Vec<_>>(),
+            &data.labels,
+            &vec![vec![0, 1, 2]; data.len()]
+                .iter()
+                .zip(&data.labels)
+                .map(|(all, &y)| all.iter().copied().filter(|&j| j != y).collect())
+                .collect::<Vec<Vec<usize>>>(),
+            &vec![1.0; data.len()],
+            0.0,
+            0,
+        )
+        .expect("interval loss");
+        let interval_error =
+            interval.errors.iter().filter(|e| **e).count() as f64 / data.len() as f64;
+        assert!(records[0].robust_error <= interval_error + 1e-12);
+    }
+
+    // Best feasible iterate: the kept epoch is the one with the lowest validation clean loss among
+    // the epochs whose validation certified accuracy reaches the floor, and the returned model is
+    // that epoch's (its certified accuracy, recomputed here, equals the logged one). `Keep::Last`
+    // returns the last epoch.
+    #[test]
+    fn retrain_keeps_the_best_feasible_iterate() {
+        use ballast::certify::PipelineOptions;
+        use ballast::threat::requirement::Requirement;
+        use ballast::train::constrained::certified_accuracy;
+        use ballast::train::retrain::{retrain, Keep, RetrainSettings};
+        let train = three_classes(240);
+        let validation = {
+            let mut v = three_classes(480);
+            v.features = v.features.columns(240, 240).into_owned();
+            v.labels = v.labels[240..].to_vec();
+            v
+        };
+        let input = InputSpec {
+            dim: 2,
+            names: None,
+            lower: vec![-3.0; 2],
+            upper: vec![3.0; 2],
+        };
+        let model = new_mlp(&input, 3, &[8], &train, 4).expect("model");
+        let mut requirement = Requirement::uniform(Norm::Linf, 0.1);
+        requirement.floor = Some(0.3);
+        let mut constrained = settings(
+            RobustLoss::Interval,
+            Constraint::RobustError {
+                floor: 0.3,
+                slack: 0.0,
+            },
+            Formulation::PrimalDual {
+                dual_step: 0.1,
+                initial_multiplier: 0.0,
+                per_class: false,
+            },
+        );
+        constrained.train.epochs = 12;
+        let run = |keep: Keep| {
+            let retrain_settings = RetrainSettings {
+                constrained: constrained.clone(),
+                round_epochs: 1,
+                max_rounds: 1,
+                slack_step: 0.0,
+                pipeline: PipelineOptions::default(),
+                keep,
+            };
+            retrain(
+                &model,
+                &train,
+                Some(&validation),
+                &validation,
+                &requirement,
+                &retrain_settings,
+                &mut |_| {},
+            )
+            .expect("retrain runs")
+        };
+        let best = run(Keep::BestFeasible);
+        let kept = best.rounds[0].selected_epoch;
+        let feasible: Vec<_> = best
+            .epochs
+            .iter()
+            .filter(|e| e.validation_certified_accuracy.expect("measured") >= 0.3)
+            .collect();
+        assert!(!feasible.is_empty(), "the floor is easy here");
+        let expected = feasible
+            .iter()
+            .min_by(|a, b| {
+                a.validation_clean_loss
+                    .expect("measured")
+                    .total_cmp(&b.validation_clean_loss.expect("measured"))
+            })
+            .expect("one");
+        assert_eq!(kept, expected.epoch);
+        let trainable = TrainableModel::new(&best.model);
+        let recomputed = certified_accuracy(
+            &trainable,
+            &trainable.network,
+            &validation,
+            &Budget::uniform(Norm::Linf, 0.1, 2), // the requirement's budget replaces the settings'
+            &Targets::Any,
+        )
+        .expect("bounds");
+        let logged = expected.validation_certified_accuracy.expect("measured");
+        assert!(
+            (recomputed - logged).abs() < 1e-9,
+            "{recomputed} vs {logged}"
+        );
+        let last = run(Keep::Last);
+        assert_eq!(last.rounds[0].selected_epoch, 12);
+    }
 }

@@ -18,7 +18,7 @@ use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::curves::{plot_svg, Series};
 use crate::train::plain::split_validation;
-use crate::train::retrain::{retrain, RetrainResult, RetrainSettings, RetrainVerdict};
+use crate::train::retrain::{retrain, Keep, RetrainResult, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
 use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 
@@ -92,6 +92,10 @@ pub struct Args {
     /// One constraint and multiplier per class.
     #[arg(long)]
     pub per_class: bool,
+    /// Which epoch's weights each round returns: best-feasible (lowest validation clean loss among
+    /// epochs whose validation certified accuracy reaches the floor; primal-dual only) or last.
+    #[arg(long, default_value = "best-feasible")]
+    pub keep: String,
     /// Dual step size of the multiplier update.
     #[arg(long, default_value_t = 0.05)]
     pub dual_step: f64,
@@ -206,6 +210,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         },
         other => bail!("--constraint: \"{other}\" is not allowed, expected error or loss"),
     };
+    let keep = match args.keep.as_str() {
+        "best-feasible" => Keep::BestFeasible,
+        "last" => Keep::Last,
+        other => bail!("--keep: \"{other}\" is not allowed, expected best-feasible or last"),
+    };
     let hidden = args.hidden.as_deref().map(parse_hidden).transpose()?;
     if let Some(parent) = args.out.parent() {
         if !parent.as_os_str().is_empty() && !parent.is_dir() {
@@ -306,6 +315,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             seed: args.seed,
             ..PipelineOptions::default()
         },
+        keep,
     };
     let mut print_epoch = |e: &ConstrainedEpoch| {
         eprintln!(
@@ -398,22 +408,23 @@ fn option(v: Option<f64>) -> String {
 }
 
 /// The per-epoch log as CSV (epoch, epsilon scale, clean loss, robust loss, robust error, λ, validation
-/// clean and certified accuracy); per-class multipliers are joined with `;`.
+/// clean loss, clean and certified accuracy); per-class multipliers are joined with `;`.
 pub fn log_csv(result: &RetrainResult) -> String {
     let mut text = String::from(
-        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,val_clean_accuracy,val_certified_accuracy\n",
+        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,val_clean_loss,val_clean_accuracy,val_certified_accuracy\n",
     );
     for e in &result.epochs {
         let lambda: Vec<String> = e.multipliers.iter().map(|m| format!("{m:.6}")).collect();
         let _ = writeln!(
             text,
-            "{},{:.4},{:.6},{:.6},{:.6},{},{},{}",
+            "{},{:.4},{:.6},{:.6},{:.6},{},{},{},{}",
             e.epoch,
             e.epsilon_scale,
             e.clean_loss,
             e.robust_loss,
             e.robust_error,
             lambda.join(";"),
+            option(e.validation_clean_loss),
             option(e.validation_clean_accuracy),
             option(e.validation_certified_accuracy)
         );
@@ -484,15 +495,16 @@ fn sheet_markdown(
     let _ = writeln!(md, "- loss: {}, {formulation}", args.loss);
     let _ = writeln!(md, "- acceptance samples: {acceptance}");
     let _ = writeln!(md, "- verdict: {verdict}\n");
-    let _ = writeln!(md, "| round | slack | epochs | clean accuracy | certified accuracy | empirical robust accuracy | pipeline verdict |");
-    let _ = writeln!(md, "| --- | --- | --- | --- | --- | --- | --- |");
+    let _ = writeln!(md, "| round | slack | epochs | kept epoch | clean accuracy | certified accuracy | empirical robust accuracy | pipeline verdict |");
+    let _ = writeln!(md, "| --- | --- | --- | --- | --- | --- | --- | --- |");
     for r in &result.rounds {
         let _ = writeln!(
             md,
-            "| {} | {:.3} | {} | {:.4} | {:.4} | {:.4} | {:?} |",
+            "| {} | {:.3} | {} | {} | {:.4} | {:.4} | {:.4} | {:?} |",
             r.round,
             r.slack,
             r.epochs,
+            r.selected_epoch,
             r.clean_accuracy,
             r.certified_accuracy,
             r.empirical_robust_accuracy,

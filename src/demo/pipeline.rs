@@ -18,7 +18,7 @@ use crate::model::Model;
 use crate::threat::requirement::{Requirement, RequirementSpec};
 use crate::threat::{Budget, Norm, Targets};
 use crate::train::constrained::{ConstrainedSettings, Constraint, Formulation};
-use crate::train::retrain::{retrain, RetrainSettings, RetrainVerdict};
+use crate::train::retrain::{retrain, Keep, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
 use crate::train::{OptimizerKind, TrainSettings};
 
@@ -250,6 +250,7 @@ pub fn retrain_settings(
         max_rounds: if quick { 1 } else { 3 },
         slack_step: 0.02,
         pipeline,
+        keep: Keep::BestFeasible,
     }
 }
 

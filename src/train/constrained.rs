@@ -5,8 +5,9 @@
 //! Per mini-batch the primal step follows the gradient of `clean loss + Σ_c λ_c · robust loss_c` (the
 //! robust loss of [`super::robust`] is the differentiable surrogate), then each multiplier takes a
 //! projected ascent step `λ_c ← max(0, λ_c + η · (measured_c − allowed_c))` on the batch's measured
-//! constraint value: either the robust error rate (bound not above the tolerance, or PGD point wrong)
-//! against `1 − floor − slack`, or the robust loss itself against a level. Constraints are one global
+//! constraint value: either the robust error rate (for the bound-based losses: sound linear bounds do
+//! not prove the sample at the batch's epsilon, whatever bound the loss uses; for PGD: the PGD point
+//! is wrong) against `1 − floor − slack`, or the robust loss itself against a level. Constraints are one global
 //! constraint or one per class (each class's samples against the same allowance). With a fixed
 //! [`Formulation::Penalty`] weight no multiplier moves (the comparison baseline). Epsilon ramps
 //! linearly from 0 to the full budget over the first epochs; the linear-bound weight `β` ramps with it.
@@ -190,6 +191,8 @@ pub struct ConstrainedEpoch {
     pub robust_error: f64,
     /// The multipliers at the end of the epoch (one, or one per class).
     pub multipliers: Vec<f64>,
+    /// Mean clean cross-entropy on the validation data (the objective's held-out estimate).
+    pub validation_clean_loss: Option<f64>,
     /// Clean accuracy on the validation data.
     pub validation_clean_accuracy: Option<f64>,
     /// Certified accuracy on the validation data by sound linear bounds at the full budget.
@@ -330,11 +333,15 @@ pub fn train_constrained_epochs(
             if !robust.loss.is_finite() {
                 return Err(TrainError::Diverged { epoch });
             }
+            let errors = if settings.loss.is_certified() {
+                linear_bound_errors(&state.network, &regions, &labels, &batch_targets)?
+            } else {
+                robust.errors.clone()
+            };
             add_scaled(&mut gradient, &robust.gradient, 1.0);
             state.optimizer.step(&mut state.network, &gradient, 1.0);
             let mean_robust = robust.sample_losses.iter().sum::<f64>() / chunk.len() as f64;
-            let error_rate =
-                robust.errors.iter().filter(|e| **e).count() as f64 / chunk.len() as f64;
+            let error_rate = errors.iter().filter(|e| **e).count() as f64 / chunk.len() as f64;
             clean_total += clean * chunk.len() as f64;
             robust_total += mean_robust * chunk.len() as f64;
             error_total += error_rate * chunk.len() as f64;
@@ -349,7 +356,7 @@ pub fn train_constrained_epochs(
                             (0..labels.len()).filter(|&s| labels[s] == c).collect();
                         let measured = match settings.constraint {
                             Constraint::RobustError { .. } => {
-                                members.iter().filter(|&&s| robust.errors[s]).count() as f64
+                                members.iter().filter(|&&s| errors[s]).count() as f64
                                     / members.len() as f64
                             }
                             Constraint::RobustLossLevel { .. } => {
@@ -381,13 +388,15 @@ pub fn train_constrained_epochs(
             robust_loss: robust_total / n,
             robust_error: error_total / n,
             multipliers: state.multipliers.clone(),
+            validation_clean_loss: None,
             validation_clean_accuracy: None,
             validation_certified_accuracy: None,
         };
         if let Some(v) = validation {
             let vf = trainable.to_network_units(&v.features);
-            record.validation_clean_accuracy =
-                Some(loss_and_accuracy(&state.network, &vf, &v.labels).1);
+            let (loss, accuracy) = loss_and_accuracy(&state.network, &vf, &v.labels);
+            record.validation_clean_loss = Some(loss);
+            record.validation_clean_accuracy = Some(accuracy);
             if settings.measure_certified {
                 record.validation_certified_accuracy = Some(certified_accuracy(
                     trainable,
@@ -402,6 +411,22 @@ pub fn train_constrained_epochs(
         records.push(record);
     }
     Ok(records)
+}
+
+/// Per sample of a batch: true when sound linear-relaxation bounds (the certify pipeline's first
+/// linear stage) do not prove the margin over every forbidden class. This is the constraint's measure
+/// for the bound-based losses, whatever bound the loss itself uses, so the multiplier is steered by a
+/// figure close to what certification will find (the surrogate and the measured constraint are kept
+/// apart as in the proxy-Lagrangian of Cotter, Jiang & Sridharan, 2019).
+fn linear_bound_errors(
+    network: &Network,
+    regions: &[Region],
+    labels: &[usize],
+    targets: &[Vec<usize>],
+) -> Result<Vec<bool>, TrainError> {
+    let bounds = linear_batch(network, regions, labels, targets)
+        .map_err(|e| TrainError::Data(format!("linear bounds: {e}")))?;
+    Ok(bounds.samples.iter().map(|b| !b.certified()).collect())
 }
 
 /// Fraction of `data` predicted correctly and certified by sound linear-relaxation bounds (at least as

@@ -3,6 +3,15 @@
 //! data; if the floor is not proven, the next round continues training with a raised slack, up to a
 //! round limit.
 //!
+//! Which weights a round hands to the check is set by [`Keep`]. With [`Keep::BestFeasible`] (primal-dual
+//! runs with validation data) it is the *best feasible iterate*: among the epochs whose validation
+//! certified accuracy (sound linear bounds at the full budget) reaches the round's threshold (the
+//! floor, plus the slack added by later rounds), the one with the lowest validation clean loss. The
+//! last iterate of a primal-dual loop is not itself the constrained optimum; the best feasible iterate
+//! is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019). When the clean loss barely changes with
+//! robustness, the last iterate can sit well above the floor; the best feasible one is the least
+//! robust model that still meets it, which is what the constrained problem asks for.
+//!
 //! It guarantees an honest verdict: [`RetrainVerdict::Met`] only when the certify pipeline's verdict is
 //! `pass` for the returned model on the acceptance data; anything else (refuted, or not proven because
 //! samples stay unresolved) is [`RetrainVerdict::NotMet`]. It never reads the training loss as evidence.
@@ -12,8 +21,11 @@ use crate::data::Dataset;
 use crate::model::Model;
 use crate::threat::requirement::Requirement;
 
+use crate::model::Network;
+
 use super::constrained::{
     train_constrained_epochs, ConstrainedEpoch, ConstrainedSettings, ConstrainedState, Constraint,
+    Formulation,
 };
 use super::plain::TrainableModel;
 use super::TrainError;
@@ -32,6 +44,56 @@ pub struct RetrainSettings {
     pub slack_step: f64,
     /// The certify pipeline's options for the check after each round.
     pub pipeline: PipelineOptions,
+    /// Which epoch's weights each round returns.
+    pub keep: Keep,
+}
+
+/// Which epoch's weights a round hands to the certify check.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Keep {
+    /// The weights after the last epoch.
+    Last,
+    /// The best feasible iterate (primal-dual with validation data; otherwise the last epoch): the
+    /// lowest validation clean loss among epochs whose validation certified accuracy reaches the
+    /// round's threshold; the last epoch when none does.
+    BestFeasible,
+}
+
+/// An epoch's weights kept as a candidate for [`Keep::BestFeasible`].
+#[derive(Debug, Clone)]
+struct Candidate {
+    epoch: usize,
+    certified: f64,
+    clean_loss: f64,
+    network: Network,
+}
+
+/// The candidates no other candidate beats on both validation figures (higher certified accuracy
+/// and lower clean loss): the only ones any threshold can select.
+#[derive(Debug, Clone, Default)]
+struct Frontier {
+    candidates: Vec<Candidate>,
+}
+
+impl Frontier {
+    fn offer(&mut self, candidate: Candidate) {
+        let dominated = |a: &Candidate, b: &Candidate| {
+            b.certified >= a.certified && b.clean_loss <= a.clean_loss
+        };
+        if self.candidates.iter().any(|c| dominated(&candidate, c)) {
+            return;
+        }
+        self.candidates.retain(|c| !dominated(c, &candidate));
+        self.candidates.push(candidate);
+    }
+
+    fn best_at(&self, threshold: f64) -> Option<&Candidate> {
+        self.candidates
+            .iter()
+            .filter(|c| c.certified >= threshold)
+            .min_by(|a, b| a.clean_loss.total_cmp(&b.clean_loss))
+    }
 }
 
 /// The final answer of a retraining run.
@@ -53,6 +115,8 @@ pub struct RoundRecord {
     pub slack: f64,
     /// Epochs run in total at the end of the round.
     pub epochs: usize,
+    /// The epoch whose weights the round returned (see [`Keep`]).
+    pub selected_epoch: usize,
     /// Clean accuracy on the acceptance data.
     pub clean_accuracy: f64,
     /// Certified accuracy on the acceptance data (certify pipeline, sound).
@@ -115,6 +179,11 @@ pub fn retrain(
     let mut state = ConstrainedState::new(&trainable, &constrained, initial.class_count());
     let mut epochs = Vec::new();
     let mut rounds = Vec::new();
+    let selecting = settings.keep == Keep::BestFeasible
+        && validation.is_some()
+        && constrained.measure_certified
+        && matches!(constrained.formulation, Formulation::PrimalDual { .. });
+    let mut frontier = Frontier::default();
     let options = CertifyOptions {
         pipeline: settings.pipeline.clone(),
         label_column: "label".into(),
@@ -138,16 +207,39 @@ pub fn retrain(
             Constraint::RobustError { slack, .. } => slack,
             Constraint::RobustLossLevel { .. } => 0.0,
         };
-        epochs.extend(train_constrained_epochs(
-            &trainable,
-            &mut state,
-            train,
-            validation,
-            &constrained,
-            count,
-            observer,
-        )?);
-        let model = trainable.model_with(&state.network);
+        for _ in 0..count {
+            let record = train_constrained_epochs(
+                &trainable,
+                &mut state,
+                train,
+                validation,
+                &constrained,
+                1,
+                observer,
+            )?
+            .pop()
+            .expect("one epoch was run");
+            if let (true, Some(certified), Some(clean_loss)) = (
+                selecting,
+                record.validation_certified_accuracy,
+                record.validation_clean_loss,
+            ) {
+                frontier.offer(Candidate {
+                    epoch: record.epoch,
+                    certified,
+                    clean_loss,
+                    network: state.network.clone(),
+                });
+            }
+            epochs.push(record);
+        }
+        // Later rounds demand the slack they added on validation too, so they can select anew.
+        let threshold = floor + (round - 1) as f64 * settings.slack_step;
+        let (network, selected_epoch) = match frontier.best_at(threshold) {
+            Some(best) => (&best.network, best.epoch),
+            None => (&state.network, state.epochs_done),
+        };
+        let model = trainable.model_with(network);
         let sources = Sources::in_memory(&model, acceptance);
         let report = certify(&model, acceptance, requirement, &sources, &options)
             .map_err(|e| TrainError::Data(format!("certifying the retrained model: {e}")))?;
@@ -156,6 +248,7 @@ pub fn retrain(
             round,
             slack,
             epochs: state.epochs_done,
+            selected_epoch,
             clean_accuracy: summary.clean_accuracy,
             certified_accuracy: summary.certified_accuracy,
             empirical_robust_accuracy: summary.empirical_robust_accuracy,
@@ -177,4 +270,33 @@ pub fn retrain(
         }
     }
     unreachable!("the loop returns in its last round")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn candidate(epoch: usize, certified: f64, clean_loss: f64) -> Candidate {
+        Candidate {
+            epoch,
+            certified,
+            clean_loss,
+            network: Network { layers: Vec::new() },
+        }
+    }
+
+    #[test]
+    fn frontier_keeps_only_undominated_candidates_and_picks_the_lowest_loss_above_a_threshold() {
+        let mut frontier = Frontier::default();
+        frontier.offer(candidate(1, 0.60, 0.30));
+        frontier.offer(candidate(2, 0.70, 0.40));
+        frontier.offer(candidate(3, 0.65, 0.50)); // beaten by epoch 2 on both figures
+        frontier.offer(candidate(4, 0.62, 0.20)); // beats epoch 1
+        let mut epochs: Vec<usize> = frontier.candidates.iter().map(|c| c.epoch).collect();
+        epochs.sort_unstable();
+        assert_eq!(epochs, vec![2, 4]);
+        assert_eq!(frontier.best_at(0.6).map(|c| c.epoch), Some(4));
+        assert_eq!(frontier.best_at(0.63).map(|c| c.epoch), Some(2));
+        assert!(frontier.best_at(0.71).is_none());
+    }
 }
