@@ -70,7 +70,9 @@ fn constrained_settings(
         constraint: Constraint::RobustError { floor, slack: 0.02 },
         formulation,
         ramp_epochs: (epochs * 2) / 5,
-        measure_certified: false,
+        measure_certified: true,
+        // `BALLAST_BENCH_GAP_CORRECTION=0` turns the generalisation-gap correction off.
+        gap_correction: env_or("BALLAST_BENCH_GAP_CORRECTION", 1u8) == 1,
     }
 }
 
@@ -257,6 +259,23 @@ fn tradeoff() {
         )
         .expect("retrain runs");
         let seconds = start.elapsed().as_secs_f64();
+        let folder = Path::new("target/bench-train");
+        std::fs::create_dir_all(folder).expect("folder");
+        let mut epochs_csv = String::from("epoch,lambda,val_clean_loss,val_certified_linear\n");
+        for e in &result.epochs {
+            epochs_csv.push_str(&format!(
+                "{},{:.6},{:.6},{:.4}\n",
+                e.epoch,
+                e.multipliers[0],
+                e.validation_clean_loss.unwrap_or(f64::NAN),
+                e.validation_certified_accuracy.unwrap_or(f64::NAN)
+            ));
+        }
+        std::fs::write(
+            folder.join(format!("epochs-{}.csv", label.replace(' ', "-"))),
+            epochs_csv,
+        )
+        .expect("epoch log");
         let last = result.rounds.last().expect("a round");
         let (test_clean, test_certified) = certify_figures(&result.model, &held_out, &base);
         let r = Run {

@@ -587,6 +587,7 @@ mod primal_dual {
             formulation,
             ramp_epochs: 0,
             measure_certified: true,
+            gap_correction: false,
         }
     }
 

@@ -307,6 +307,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             formulation,
             ramp_epochs: args.ramp_epochs.unwrap_or((args.epochs * 2) / 5),
             measure_certified: true,
+            gap_correction: true,
         },
         round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
         max_rounds: args.max_rounds,
@@ -407,23 +408,24 @@ fn option(v: Option<f64>) -> String {
     v.map(|x| format!("{x:.6}")).unwrap_or_default()
 }
 
-/// The per-epoch log as CSV (epoch, epsilon scale, clean loss, robust loss, robust error, λ, validation
-/// clean loss, clean and certified accuracy); per-class multipliers are joined with `;`.
+/// The per-epoch log as CSV (epoch, epsilon scale, clean loss, robust loss, robust error, λ, gap
+/// correction, validation clean loss, clean and certified accuracy); per-class multipliers are joined with `;`.
 pub fn log_csv(result: &RetrainResult) -> String {
     let mut text = String::from(
-        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,val_clean_loss,val_clean_accuracy,val_certified_accuracy\n",
+        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,gap_correction,val_clean_loss,val_clean_accuracy,val_certified_accuracy\n",
     );
     for e in &result.epochs {
         let lambda: Vec<String> = e.multipliers.iter().map(|m| format!("{m:.6}")).collect();
         let _ = writeln!(
             text,
-            "{},{:.4},{:.6},{:.6},{:.6},{},{},{},{}",
+            "{},{:.4},{:.6},{:.6},{:.6},{},{:.6},{},{},{}",
             e.epoch,
             e.epsilon_scale,
             e.clean_loss,
             e.robust_loss,
             e.robust_error,
             lambda.join(";"),
+            e.gap_correction,
             option(e.validation_clean_loss),
             option(e.validation_clean_accuracy),
             option(e.validation_certified_accuracy)

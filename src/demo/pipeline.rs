@@ -18,6 +18,7 @@ use crate::model::Model;
 use crate::threat::requirement::{Requirement, RequirementSpec};
 use crate::threat::{Budget, Norm, Targets};
 use crate::train::constrained::{ConstrainedSettings, Constraint, Formulation};
+use crate::train::plain::split_validation;
 use crate::train::retrain::{retrain, Keep, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
 use crate::train::{OptimizerKind, TrainSettings};
@@ -129,10 +130,12 @@ pub fn run_demo(
 
     progress("retraining pump-mlp toward the floor (constrained primal-dual trainer)");
     let settings = retrain_settings(&requirement, options.quick, pipeline.clone());
+    // As `ballast retrain` does by default: 20% of the training rows steer and select (validation).
+    let (train, validation) = split_validation(&train, 0.2, super::scenario::DEFAULT_SEED);
     let result = retrain(
         &mlp,
         &train,
-        None,
+        validation.as_ref(),
         &acceptance,
         &requirement,
         &settings,
@@ -244,7 +247,8 @@ pub fn retrain_settings(
                 per_class: false,
             },
             ramp_epochs: if quick { 1 } else { 20 },
-            measure_certified: false,
+            measure_certified: true,
+            gap_correction: true,
         },
         round_epochs: if quick { 1 } else { 20 },
         max_rounds: if quick { 1 } else { 3 },

@@ -12,6 +12,10 @@
 //! [`Formulation::Penalty`] weight no multiplier moves (the comparison baseline). Epsilon ramps
 //! linearly from 0 to the full budget over the first epochs; the linear-bound weight `β` ramps with it.
 //!
+//! With [`ConstrainedSettings::gap_correction`] the robust-error allowance is tightened by the
+//! measured gap between the training batches' and the validation data's certified accuracy
+//! ([`GapCorrection`]), so the floor is aimed at on held-out data.
+//!
 //! The loop never claims the constraint holds: its figures are training measurements; the floor is
 //! checked afterwards with sound bounds ([`super::retrain`]).
 
@@ -102,6 +106,34 @@ pub struct ConstrainedSettings {
     pub ramp_epochs: usize,
     /// Measure certified accuracy on the validation data after every epoch (sound linear bounds).
     pub measure_certified: bool,
+    /// Tighten the robust-error allowance by the measured generalisation gap (see [`GapCorrection`]);
+    /// needs validation data and `measure_certified`.
+    pub gap_correction: bool,
+}
+
+/// How far the training data's certified accuracy runs ahead of the validation data's, measured after
+/// every full-budget epoch: the training batches' linear-bound certified rate (the constraint's own
+/// measure) minus the validation data's (sound linear bounds at the full budget), smoothed over epochs
+/// and clamped to `[0, MAX]`. The robust-error allowance becomes `1 − floor − slack − gap`, so the
+/// floor is aimed at on data the model was not trained on rather than on the training batches.
+#[derive(Debug, Clone, Copy, PartialEq, Default, serde::Serialize)]
+pub struct GapCorrection {
+    /// The current smoothed gap (0 until the first full-budget epoch with validation figures).
+    pub gap: f64,
+}
+
+impl GapCorrection {
+    /// Largest correction (a gap beyond this means the constraint cannot be steered by it).
+    pub const MAX: f64 = 0.2;
+    /// Weight of the newest epoch in the exponential smoothing.
+    pub const SMOOTHING: f64 = 0.5;
+
+    /// Folds in one epoch's training and validation certified fractions.
+    pub fn update(&mut self, training_certified: f64, validation_certified: f64) {
+        let measured = training_certified - validation_certified;
+        let smoothed = Self::SMOOTHING * measured + (1.0 - Self::SMOOTHING) * self.gap;
+        self.gap = smoothed.clamp(0.0, Self::MAX);
+    }
 }
 
 impl ConstrainedSettings {
@@ -191,6 +223,8 @@ pub struct ConstrainedEpoch {
     pub robust_error: f64,
     /// The multipliers at the end of the epoch (one, or one per class).
     pub multipliers: Vec<f64>,
+    /// The generalisation-gap correction of the allowance after the epoch (0 when not in use).
+    pub gap_correction: f64,
     /// Mean clean cross-entropy on the validation data (the objective's held-out estimate).
     pub validation_clean_loss: Option<f64>,
     /// Clean accuracy on the validation data.
@@ -210,6 +244,8 @@ pub struct ConstrainedState {
     pub multipliers: Vec<f64>,
     /// Epochs run so far.
     pub epochs_done: usize,
+    /// The allowance correction carried across epochs and rounds.
+    pub correction: GapCorrection,
 }
 
 impl ConstrainedState {
@@ -236,6 +272,7 @@ impl ConstrainedState {
             ),
             multipliers,
             epochs_done: 0,
+            correction: GapCorrection::default(),
         }
     }
 }
@@ -346,7 +383,12 @@ pub fn train_constrained_epochs(
             robust_total += mean_robust * chunk.len() as f64;
             error_total += error_rate * chunk.len() as f64;
             if let Formulation::PrimalDual { dual_step, .. } = settings.formulation {
-                let allowed = settings.constraint.allowed();
+                let allowed = match settings.constraint {
+                    Constraint::RobustError { .. } => {
+                        (settings.constraint.allowed() - state.correction.gap).max(0.0)
+                    }
+                    Constraint::RobustLossLevel { .. } => settings.constraint.allowed(),
+                };
                 if per_class {
                     for (c, &count) in class_counts.iter().enumerate() {
                         if count == 0 {
@@ -388,6 +430,7 @@ pub fn train_constrained_epochs(
             robust_loss: robust_total / n,
             robust_error: error_total / n,
             multipliers: state.multipliers.clone(),
+            gap_correction: state.correction.gap,
             validation_clean_loss: None,
             validation_clean_accuracy: None,
             validation_certified_accuracy: None,
@@ -398,13 +441,22 @@ pub fn train_constrained_epochs(
             record.validation_clean_loss = Some(loss);
             record.validation_clean_accuracy = Some(accuracy);
             if settings.measure_certified {
-                record.validation_certified_accuracy = Some(certified_accuracy(
+                let certified = certified_accuracy(
                     trainable,
                     &state.network,
                     v,
                     &settings.budget,
                     &settings.targets,
-                )?);
+                )?;
+                record.validation_certified_accuracy = Some(certified);
+                // Only epochs at the full budget throughout measure the gap the floor is stated at.
+                let full_epoch = ramp_steps <= (epoch - 1) * batches_per_epoch;
+                if settings.gap_correction && full_epoch && settings.loss.is_certified() {
+                    state
+                        .correction
+                        .update(1.0 - record.robust_error, certified);
+                    record.gap_correction = state.correction.gap;
+                }
             }
         }
         observer(&record);
@@ -462,4 +514,25 @@ pub fn certified_accuracy(
         .map_err(|e| TrainError::Data(format!("linear bounds: {e}")))?;
     let certified = bounds.samples.iter().filter(|b| b.certified()).count();
     Ok(certified as f64 / data.len() as f64)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use approx::assert_relative_eq;
+
+    #[test]
+    fn gap_correction_smooths_and_clamps_the_measured_gap() {
+        let mut correction = GapCorrection::default();
+        correction.update(0.80, 0.70); // gap 0.10, half of it after one epoch
+        assert_relative_eq!(correction.gap, 0.05, epsilon = 1e-12);
+        correction.update(0.80, 0.70);
+        assert_relative_eq!(correction.gap, 0.075, epsilon = 1e-12);
+        correction.update(0.60, 0.70); // validation ahead: the smoothed gap shrinks, never below 0
+        assert_relative_eq!(correction.gap, 0.0, epsilon = 1e-12);
+        for _ in 0..20 {
+            correction.update(1.0, 0.0);
+        }
+        assert_relative_eq!(correction.gap, GapCorrection::MAX, epsilon = 1e-12);
+    }
 }
