@@ -7,8 +7,8 @@
 //! projected ascent step `λ_c ← max(0, λ_c + η · (measured_c − allowed_c))` on the batch's measured
 //! constraint value: either the robust error rate (for the bound-based losses: sound linear bounds do
 //! not prove the sample at the batch's epsilon, whatever bound the loss uses; for PGD: the PGD point
-//! is wrong) against `1 − floor − slack`, or the robust loss itself against a level. Constraints are one global
-//! constraint or one per class (each class's samples against the same allowance). With a fixed
+//! is wrong) against `1 − floor − slack`, or the robust loss itself against a level. Constraints are
+//! one global constraint or one per class (each class's samples against the same allowance). With a fixed
 //! [`Formulation::Penalty`] weight no multiplier moves (the comparison baseline). Epsilon ramps
 //! linearly from 0 to the full budget over the first epochs; the linear-bound weight `β` ramps with it.
 //!

@@ -8,9 +8,8 @@
 //! certified accuracy (sound linear bounds at the full budget) reaches the round's threshold (the
 //! floor, plus the slack added by later rounds), the one with the lowest validation clean loss. The
 //! last iterate of a primal-dual loop is not itself the constrained optimum; the best feasible iterate
-//! is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019). When the clean loss barely changes with
-//! robustness, the last iterate can sit well above the floor; the best feasible one is the least
-//! robust model that still meets it, which is what the constrained problem asks for.
+//! is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019): the model with the lowest validation
+//! clean loss that still meets the floor, which is what the constrained problem asks for.
 //!
 //! It guarantees an honest verdict: [`RetrainVerdict::Met`] only when the certify pipeline's verdict is
 //! `pass` for the returned model on the acceptance data; anything else (refuted, or not proven because
@@ -18,10 +17,8 @@
 
 use crate::certify::{certify, CertifyOptions, PipelineOptions, Report, Sources, Verdict};
 use crate::data::Dataset;
-use crate::model::Model;
+use crate::model::{Model, Network};
 use crate::threat::requirement::Requirement;
-
-use crate::model::Network;
 
 use super::constrained::{
     train_constrained_epochs, ConstrainedEpoch, ConstrainedSettings, ConstrainedState, Constraint,
