@@ -197,10 +197,13 @@ fn tradeoff() {
     // clean cross-entropy only, no weight decay.
     let start = Instant::now();
     let scratch = TrainableModel::new(&fixture).model_with(&he_network(64, &hidden, 10, 3));
-    let (plain, _) = train_cross_entropy_with_validation(
+    // `BALLAST_BENCH_PLAIN_EARLY_STOP=1`: keep the plain model's epoch of lowest validation loss
+    // (patience 20) instead of the last of all epochs.
+    let early_stop = env_or("BALLAST_BENCH_PLAIN_EARLY_STOP", 0u8) == 1;
+    let (plain, plain_log) = train_cross_entropy_with_validation(
         &scratch,
         &train,
-        None,
+        early_stop.then_some(&validation),
         &TrainSettings {
             epochs: PLAIN_EPOCHS,
             batch_size: 64,
@@ -208,10 +211,11 @@ fn tradeoff() {
             weight_decay: 0.0,
             seed: 3,
             validation_fraction: 0.0,
-            patience: None,
+            patience: early_stop.then_some(20),
         },
     )
     .expect("plain training runs");
+    println!("plain model: best epoch {}", plain_log.best_epoch);
     let plain_seconds = start.elapsed().as_secs_f64();
     // `BALLAST_BENCH_PROBES=0.05,0.06` (or empty) limits the probes: the LP stage is slow on wide models.
     let probes: Vec<f64> = std::env::var("BALLAST_BENCH_PROBES")

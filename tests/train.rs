@@ -766,8 +766,9 @@ mod primal_dual {
         assert!(records[0].robust_error <= interval_error + 1e-12);
     }
 
-    // Best feasible iterate: the kept epoch is the one with the lowest validation clean loss among
-    // the epochs whose validation certified accuracy reaches the floor, and the returned model is
+    // Best feasible iterate under the one-standard-error rule (Breiman et al., 1984): among the epochs
+    // whose validation certified accuracy reaches the floor, the kept one is the earliest whose
+    // validation clean loss is within one standard error of the lowest, and the returned model is
     // that epoch's (its certified accuracy, recomputed here, equals the logged one). `Keep::Last`
     // returns the last epoch.
     #[test]
@@ -833,7 +834,7 @@ mod primal_dual {
             .filter(|e| e.validation_certified_accuracy.expect("measured") >= 0.3)
             .collect();
         assert!(!feasible.is_empty(), "the floor is easy here");
-        let expected = feasible
+        let lowest = feasible
             .iter()
             .min_by(|a, b| {
                 a.validation_clean_loss
@@ -841,6 +842,12 @@ mod primal_dual {
                     .total_cmp(&b.validation_clean_loss.expect("measured"))
             })
             .expect("one");
+        let window = lowest.validation_clean_loss.expect("measured")
+            + lowest.validation_clean_loss_error.expect("measured");
+        let expected = feasible
+            .iter()
+            .find(|e| e.validation_clean_loss.expect("measured") <= window)
+            .expect("the best itself is inside");
         assert_eq!(kept, expected.epoch);
         let trainable = TrainableModel::new(&best.model);
         let recomputed = certified_accuracy(

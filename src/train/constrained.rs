@@ -19,6 +19,7 @@
 //! The loop never claims the constraint holds: its figures are training measurements; the floor is
 //! checked afterwards with sound bounds ([`super::retrain`]).
 
+use nalgebra::DMatrix;
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
@@ -28,7 +29,7 @@ use crate::data::Dataset;
 use crate::model::{predicted_class, Network};
 use crate::threat::{Budget, Region, Targets};
 
-use super::backprop::add_scaled;
+use super::backprop::{add_scaled, classifier_logits, cross_entropy_one};
 use super::optimizer::Optimizer;
 use super::plain::{
     check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainSettings,
@@ -227,6 +228,8 @@ pub struct ConstrainedEpoch {
     pub gap_correction: f64,
     /// Mean clean cross-entropy on the validation data (the objective's held-out estimate).
     pub validation_clean_loss: Option<f64>,
+    /// Standard error of that mean (sample standard deviation of the per-sample losses / √n).
+    pub validation_clean_loss_error: Option<f64>,
     /// Clean accuracy on the validation data.
     pub validation_clean_accuracy: Option<f64>,
     /// Certified accuracy on the validation data by sound linear bounds at the full budget.
@@ -432,6 +435,7 @@ pub fn train_constrained_epochs(
             multipliers: state.multipliers.clone(),
             gap_correction: state.correction.gap,
             validation_clean_loss: None,
+            validation_clean_loss_error: None,
             validation_clean_accuracy: None,
             validation_certified_accuracy: None,
         };
@@ -439,6 +443,9 @@ pub fn train_constrained_epochs(
             let vf = trainable.to_network_units(&v.features);
             let (loss, accuracy) = loss_and_accuracy(&state.network, &vf, &v.labels);
             record.validation_clean_loss = Some(loss);
+            record.validation_clean_loss_error = Some(mean_standard_error(
+                &per_sample_cross_entropy(&state.network, &vf, &v.labels),
+            ));
             record.validation_clean_accuracy = Some(accuracy);
             if settings.measure_certified {
                 let certified = certified_accuracy(
@@ -463,6 +470,29 @@ pub fn train_constrained_epochs(
         records.push(record);
     }
     Ok(records)
+}
+
+/// Cross-entropy of every sample (columns of `features`, network units) under `network`.
+fn per_sample_cross_entropy(
+    network: &Network,
+    features: &DMatrix<f64>,
+    labels: &[usize],
+) -> Vec<f64> {
+    let logits = classifier_logits(&network.forward_batch(features));
+    (0..labels.len())
+        .map(|i| cross_entropy_one(logits.column(i).as_slice(), labels[i]).0)
+        .collect()
+}
+
+/// Standard error of the mean of `values`: sample standard deviation / √n (0 for fewer than 2).
+fn mean_standard_error(values: &[f64]) -> f64 {
+    let n = values.len();
+    if n < 2 {
+        return 0.0;
+    }
+    let mean = values.iter().sum::<f64>() / n as f64;
+    let variance = values.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (n - 1) as f64;
+    (variance / n as f64).sqrt()
 }
 
 /// Per sample of a batch: true when sound linear-relaxation bounds (the certify pipeline's first
@@ -520,6 +550,17 @@ pub fn certified_accuracy(
 mod tests {
     use super::*;
     use approx::assert_relative_eq;
+
+    #[test]
+    fn standard_error_of_the_mean() {
+        // Values 1, 2, 3, 4: sample variance 5/3, so the standard error is sqrt(5/12).
+        assert_relative_eq!(
+            mean_standard_error(&[1.0, 2.0, 3.0, 4.0]),
+            (5.0f64 / 12.0).sqrt(),
+            epsilon = 1e-12
+        );
+        assert_eq!(mean_standard_error(&[7.0]), 0.0);
+    }
 
     #[test]
     fn gap_correction_smooths_and_clamps_the_measured_gap() {

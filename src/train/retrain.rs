@@ -6,10 +6,11 @@
 //! Which weights a round hands to the check is set by [`Keep`]. With [`Keep::BestFeasible`] (primal-dual
 //! runs with validation data) it is the *best feasible iterate*: among the epochs whose validation
 //! certified accuracy (sound linear bounds at the full budget) reaches the round's threshold (the
-//! floor, plus the slack added by later rounds), the one with the lowest validation clean loss. The
-//! last iterate of a primal-dual loop is not itself the constrained optimum; the best feasible iterate
-//! is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019): the model with the lowest validation
-//! clean loss that still meets the floor, which is what the constrained problem asks for.
+//! floor, plus the slack added by later rounds), the best on validation clean loss, read with the
+//! one-standard-error rule: the earliest epoch whose loss is within one standard error of the lowest.
+//! The last iterate of a primal-dual loop is not itself the constrained optimum; a best feasible
+//! iterate is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019). The rule keeps the retrained
+//! model as close to its parent as the validation data allows when robustness costs no clean loss.
 //!
 //! It guarantees an honest verdict: [`RetrainVerdict::Met`] only when the certify pipeline's verdict is
 //! `pass` for the returned model on the acceptance data; anything else (refuted, or not proven because
@@ -51,9 +52,10 @@ pub struct RetrainSettings {
 pub enum Keep {
     /// The weights after the last epoch.
     Last,
-    /// The best feasible iterate (primal-dual with validation data; otherwise the last epoch): the
-    /// lowest validation clean loss among epochs whose validation certified accuracy reaches the
-    /// round's threshold; the last epoch when none does.
+    /// The best feasible iterate (primal-dual with validation data; otherwise the last epoch): among
+    /// epochs whose validation certified accuracy reaches the round's threshold, the earliest whose
+    /// validation clean loss is within one standard error of the lowest; the last epoch when none
+    /// reaches it.
     BestFeasible,
 }
 
@@ -63,33 +65,48 @@ struct Candidate {
     epoch: usize,
     certified: f64,
     clean_loss: f64,
+    loss_error: f64,
     network: Network,
 }
 
-/// The candidates no other candidate beats on both validation figures (higher certified accuracy
-/// and lower clean loss): the only ones any threshold can select.
+/// Feasible epochs for the one-standard-error rule (Breiman, Friedman, Olshen & Stone, 1984): among
+/// the epochs that reach the threshold, the lowest validation clean loss sets a window of one standard
+/// error above it, and the earliest epoch inside the window is chosen: the smallest departure from
+/// the parent model that the validation data cannot tell apart from the best.
 #[derive(Debug, Clone, Default)]
-struct Frontier {
-    candidates: Vec<Candidate>,
+struct Candidates {
+    kept: Vec<Candidate>,
 }
 
-impl Frontier {
-    fn offer(&mut self, candidate: Candidate) {
-        let dominated = |a: &Candidate, b: &Candidate| {
-            b.certified >= a.certified && b.clean_loss <= a.clean_loss
-        };
-        if self.candidates.iter().any(|c| dominated(&candidate, c)) {
-            return;
-        }
-        self.candidates.retain(|c| !dominated(c, &candidate));
-        self.candidates.push(candidate);
+impl Candidates {
+    /// Windows wider than the rule's (in standard errors of the current best) whose candidates are
+    /// kept; beyond it a candidate is dropped to bound memory.
+    const KEEP_WITHIN: f64 = 2.0;
+
+    fn best(&self) -> Option<&Candidate> {
+        self.kept
+            .iter()
+            .min_by(|a, b| a.clean_loss.total_cmp(&b.clean_loss))
     }
 
-    fn best_at(&self, threshold: f64) -> Option<&Candidate> {
-        self.candidates
+    /// Adds a feasible epoch and drops the ones that can no longer be chosen.
+    fn offer(&mut self, candidate: Candidate) {
+        self.kept.push(candidate);
+        if let Some(best) = self.best() {
+            let limit = best.clean_loss + Self::KEEP_WITHIN * best.loss_error;
+            self.kept.retain(|c| c.clean_loss <= limit);
+        }
+    }
+
+    /// Drops the candidates below `threshold` (thresholds only rise) and returns the rule's choice.
+    fn choose(&mut self, threshold: f64) -> Option<&Candidate> {
+        self.kept.retain(|c| c.certified >= threshold);
+        let best = self.best()?;
+        let window = best.clean_loss + best.loss_error;
+        self.kept
             .iter()
-            .filter(|c| c.certified >= threshold)
-            .min_by(|a, b| a.clean_loss.total_cmp(&b.clean_loss))
+            .filter(|c| c.clean_loss <= window)
+            .min_by_key(|c| c.epoch)
     }
 }
 
@@ -180,7 +197,7 @@ pub fn retrain(
         && validation.is_some()
         && constrained.measure_certified
         && matches!(constrained.formulation, Formulation::PrimalDual { .. });
-    let mut frontier = Frontier::default();
+    let mut candidates = Candidates::default();
     let options = CertifyOptions {
         pipeline: settings.pipeline.clone(),
         label_column: "label".into(),
@@ -204,6 +221,8 @@ pub fn retrain(
             Constraint::RobustError { slack, .. } => slack,
             Constraint::RobustLossLevel { .. } => 0.0,
         };
+        // Later rounds demand the slack they added on validation too, so they can select anew.
+        let threshold = floor + (round - 1) as f64 * settings.slack_step;
         for _ in 0..count {
             let record = train_constrained_epochs(
                 &trainable,
@@ -216,23 +235,25 @@ pub fn retrain(
             )?
             .pop()
             .expect("one epoch was run");
-            if let (true, Some(certified), Some(clean_loss)) = (
+            if let (true, Some(certified), Some(clean_loss), Some(loss_error)) = (
                 selecting,
                 record.validation_certified_accuracy,
                 record.validation_clean_loss,
+                record.validation_clean_loss_error,
             ) {
-                frontier.offer(Candidate {
-                    epoch: record.epoch,
-                    certified,
-                    clean_loss,
-                    network: state.network.clone(),
-                });
+                if certified >= threshold {
+                    candidates.offer(Candidate {
+                        epoch: record.epoch,
+                        certified,
+                        clean_loss,
+                        loss_error,
+                        network: state.network.clone(),
+                    });
+                }
             }
             epochs.push(record);
         }
-        // Later rounds demand the slack they added on validation too, so they can select anew.
-        let threshold = floor + (round - 1) as f64 * settings.slack_step;
-        let (network, selected_epoch) = match frontier.best_at(threshold) {
+        let (network, selected_epoch) = match candidates.choose(threshold) {
             Some(best) => (&best.network, best.epoch),
             None => (&state.network, state.epochs_done),
         };
@@ -273,27 +294,29 @@ pub fn retrain(
 mod tests {
     use super::*;
 
-    fn candidate(epoch: usize, certified: f64, clean_loss: f64) -> Candidate {
+    fn candidate(epoch: usize, certified: f64, clean_loss: f64, loss_error: f64) -> Candidate {
         Candidate {
             epoch,
             certified,
             clean_loss,
+            loss_error,
             network: Network { layers: Vec::new() },
         }
     }
 
     #[test]
-    fn frontier_keeps_only_undominated_candidates_and_picks_the_lowest_loss_above_a_threshold() {
-        let mut frontier = Frontier::default();
-        frontier.offer(candidate(1, 0.60, 0.30));
-        frontier.offer(candidate(2, 0.70, 0.40));
-        frontier.offer(candidate(3, 0.65, 0.50)); // beaten by epoch 2 on both figures
-        frontier.offer(candidate(4, 0.62, 0.20)); // beats epoch 1
-        let mut epochs: Vec<usize> = frontier.candidates.iter().map(|c| c.epoch).collect();
-        epochs.sort_unstable();
-        assert_eq!(epochs, vec![2, 4]);
-        assert_eq!(frontier.best_at(0.6).map(|c| c.epoch), Some(4));
-        assert_eq!(frontier.best_at(0.63).map(|c| c.epoch), Some(2));
-        assert!(frontier.best_at(0.71).is_none());
+    fn one_standard_error_rule_picks_the_earliest_epoch_near_the_best_loss() {
+        let mut candidates = Candidates::default();
+        candidates.offer(candidate(3, 0.61, 0.50, 0.02)); // far above the best: dropped
+        candidates.offer(candidate(4, 0.62, 0.215, 0.02)); // within one error of the best
+        candidates.offer(candidate(5, 0.70, 0.20, 0.02)); // the best loss
+        candidates.offer(candidate(6, 0.72, 0.23, 0.02)); // within two errors: kept, not chosen
+        let epochs: Vec<usize> = candidates.kept.iter().map(|c| c.epoch).collect();
+        assert_eq!(epochs, vec![4, 5, 6]);
+        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(4));
+        // A higher threshold drops epoch 4 for good; 5 is then the earliest in the window.
+        assert_eq!(candidates.choose(0.65).map(|c| c.epoch), Some(5));
+        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(5));
+        assert!(candidates.choose(0.8).is_none());
     }
 }
