@@ -73,6 +73,7 @@ fn constrained_settings(
         measure_certified: true,
         // `BALLAST_BENCH_GAP_CORRECTION=0` turns the generalisation-gap correction off.
         gap_correction: env_or("BALLAST_BENCH_GAP_CORRECTION", 1u8) == 1,
+        checks_per_epoch: env_or("BALLAST_BENCH_CHECKS", 4usize),
     }
 }
 
@@ -138,7 +139,7 @@ struct Run {
     /// The same on the held-out test rows (never seen by training or selection).
     test_clean: f64,
     test_certified: f64,
-    kept_epoch: usize,
+    kept_epoch: f64,
     rounds: usize,
     seconds: f64,
 }

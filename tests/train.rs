@@ -588,6 +588,7 @@ mod primal_dual {
             ramp_epochs: 0,
             measure_certified: true,
             gap_correction: false,
+            checks_per_epoch: 1,
         }
     }
 
@@ -848,7 +849,7 @@ mod primal_dual {
             .iter()
             .find(|e| e.validation_clean_loss.expect("measured") <= window)
             .expect("the best itself is inside");
-        assert_eq!(kept, expected.epoch);
+        assert_eq!(kept, expected.epoch as f64);
         let trainable = TrainableModel::new(&best.model);
         let recomputed = certified_accuracy(
             &trainable,
@@ -864,6 +865,80 @@ mod primal_dual {
             "{recomputed} vs {logged}"
         );
         let last = run(Keep::Last);
-        assert_eq!(last.rounds[0].selected_epoch, 12);
+        assert_eq!(last.rounds[0].selected_epoch, 12.0);
+    }
+
+    // Validation checks inside epochs: `checks_per_epoch` per epoch at evenly spread batches (the last
+    // at the epoch's end), each with the weights of that moment: recomputing certified accuracy from
+    // the handed weights gives the reported figure, and the end-of-epoch check agrees with the record.
+    #[test]
+    fn validation_checks_run_inside_epochs_with_their_weights() {
+        use ballast::train::constrained::{
+            certified_accuracy, train_constrained_epochs_with_checks,
+        };
+        let data = three_classes(240);
+        let input = InputSpec {
+            dim: 2,
+            names: None,
+            lower: vec![-3.0; 2],
+            upper: vec![3.0; 2],
+        };
+        let model = new_mlp(&input, 3, &[8], &data, 4).expect("model");
+        let trainable = TrainableModel::new(&model);
+        let mut four = settings(
+            RobustLoss::Interval,
+            Constraint::RobustError {
+                floor: 0.5,
+                slack: 0.0,
+            },
+            Formulation::PrimalDual {
+                dual_step: 0.1,
+                initial_multiplier: 0.0,
+                per_class: false,
+            },
+        );
+        four.checks_per_epoch = 4; // 240 samples in batches of 32: 8 batches, checks after 2, 4, 6, 8
+        let mut state = ConstrainedState::new(&trainable, &four, 3);
+        let mut seen = Vec::new();
+        let records = train_constrained_epochs_with_checks(
+            &trainable,
+            &mut state,
+            &data,
+            Some(&data),
+            &four,
+            2,
+            &mut |_| {},
+            &mut |check, network| {
+                let again =
+                    certified_accuracy(&trainable, network, &data, &four.budget, &Targets::Any)
+                        .expect("bounds");
+                assert!((again - check.certified_accuracy).abs() < 1e-12);
+                seen.push(*check);
+            },
+        )
+        .expect("training runs");
+        let positions: Vec<f64> = seen.iter().map(|c| c.epoch_position).collect();
+        assert_eq!(positions, vec![0.25, 0.5, 0.75, 1.0, 1.25, 1.5, 1.75, 2.0]);
+        for (record, check) in records.iter().zip([seen[3], seen[7]]) {
+            assert_eq!(
+                record.validation_certified_accuracy,
+                Some(check.certified_accuracy)
+            );
+            assert!(
+                (record.validation_clean_loss.expect("measured") - check.clean_loss).abs() < 1e-9
+            );
+        }
+        four.checks_per_epoch = 0;
+        let mut state = ConstrainedState::new(&trainable, &four, 3);
+        assert!(train_constrained_epochs(
+            &trainable,
+            &mut state,
+            &data,
+            None,
+            &four,
+            1,
+            &mut |_| {}
+        )
+        .is_err());
     }
 }

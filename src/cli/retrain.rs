@@ -92,8 +92,9 @@ pub struct Args {
     /// One constraint and multiplier per class.
     #[arg(long)]
     pub per_class: bool,
-    /// Which epoch's weights each round returns: best-feasible (lowest validation clean loss among
-    /// epochs whose validation certified accuracy reaches the floor; primal-dual only) or last.
+    /// Which epoch's weights each round returns: best-feasible (among epochs whose validation
+    /// certified accuracy reaches the floor, the earliest within one standard error of the lowest
+    /// validation clean loss; primal-dual only) or last.
     #[arg(long, default_value = "best-feasible")]
     pub keep: String,
     /// Dual step size of the multiplier update.
@@ -308,6 +309,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             ramp_epochs: args.ramp_epochs.unwrap_or((args.epochs * 2) / 5),
             measure_certified: true,
             gap_correction: true,
+            checks_per_epoch: 4,
         },
         round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
         max_rounds: args.max_rounds,
@@ -409,16 +411,16 @@ fn option(v: Option<f64>) -> String {
 }
 
 /// The per-epoch log as CSV (epoch, epsilon scale, clean loss, robust loss, robust error, λ, gap
-/// correction, validation clean loss, clean and certified accuracy); per-class multipliers are joined with `;`.
+/// correction, validation clean loss and its standard error, clean and certified accuracy); per-class multipliers are joined with `;`.
 pub fn log_csv(result: &RetrainResult) -> String {
     let mut text = String::from(
-        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,gap_correction,val_clean_loss,val_clean_accuracy,val_certified_accuracy\n",
+        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,gap_correction,val_clean_loss,val_clean_loss_error,val_clean_accuracy,val_certified_accuracy\n",
     );
     for e in &result.epochs {
         let lambda: Vec<String> = e.multipliers.iter().map(|m| format!("{m:.6}")).collect();
         let _ = writeln!(
             text,
-            "{},{:.4},{:.6},{:.6},{:.6},{},{:.6},{},{},{}",
+            "{},{:.4},{:.6},{:.6},{:.6},{},{:.6},{},{},{},{}",
             e.epoch,
             e.epsilon_scale,
             e.clean_loss,
@@ -427,6 +429,7 @@ pub fn log_csv(result: &RetrainResult) -> String {
             lambda.join(";"),
             e.gap_correction,
             option(e.validation_clean_loss),
+            option(e.validation_clean_loss_error),
             option(e.validation_clean_accuracy),
             option(e.validation_certified_accuracy)
         );

@@ -249,6 +249,7 @@ pub fn retrain_settings(
             ramp_epochs: if quick { 1 } else { 20 },
             measure_certified: true,
             gap_correction: true,
+            checks_per_epoch: 4,
         },
         round_epochs: if quick { 1 } else { 20 },
         max_rounds: if quick { 1 } else { 3 },

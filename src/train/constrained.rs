@@ -110,6 +110,23 @@ pub struct ConstrainedSettings {
     /// Tighten the robust-error allowance by the measured generalisation gap (see [`GapCorrection`]);
     /// needs validation data and `measure_certified`.
     pub gap_correction: bool,
+    /// Validation checks per epoch (≥ 1, the last at the epoch's end) reported to the check sink of
+    /// [`train_constrained_epochs_with_checks`]; more checks give the selection of a best feasible
+    /// iterate a finer choice.
+    pub checks_per_epoch: usize,
+}
+
+/// One validation measurement during training (see [`ConstrainedSettings::checks_per_epoch`]).
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct ValidationCheck {
+    /// Position in epochs counted across rounds (e.g. 24.25 = a quarter into epoch 25).
+    pub epoch_position: f64,
+    /// Mean clean cross-entropy on the validation data.
+    pub clean_loss: f64,
+    /// Standard error of that mean.
+    pub clean_loss_error: f64,
+    /// Certified accuracy on the validation data (sound linear bounds at the full budget).
+    pub certified_accuracy: f64,
 }
 
 /// How far the training data's certified accuracy runs ahead of the validation data's, measured after
@@ -142,6 +159,9 @@ impl ConstrainedSettings {
     pub fn validate(&self) -> Result<(), TrainError> {
         self.train.validate()?;
         let bad = |m: String| Err(TrainError::Settings(m));
+        if self.checks_per_epoch == 0 {
+            return bad("validation checks per epoch must be at least 1".into());
+        }
         if let Some(r) = self
             .budget
             .radii
@@ -281,7 +301,7 @@ impl ConstrainedState {
 }
 
 /// Runs `epochs` epochs of constrained training from `state` on `train` (validating on `validation`).
-/// `ramp` controls whether the epsilon ramp applies (only in the first round).
+/// `observer` sees every epoch's record.
 pub fn train_constrained_epochs(
     trainable: &TrainableModel,
     state: &mut ConstrainedState,
@@ -290,6 +310,32 @@ pub fn train_constrained_epochs(
     settings: &ConstrainedSettings,
     epochs: usize,
     observer: &mut dyn FnMut(&ConstrainedEpoch),
+) -> Result<Vec<ConstrainedEpoch>, TrainError> {
+    train_constrained_epochs_with_checks(
+        trainable,
+        state,
+        train,
+        validation,
+        settings,
+        epochs,
+        observer,
+        &mut |_, _| {},
+    )
+}
+
+/// [`train_constrained_epochs`] that also hands every validation check (with validation data and
+/// `measure_certified`: `checks_per_epoch` per epoch, the last at its end) and the weights at that
+/// moment to `checks`.
+#[allow(clippy::too_many_arguments)]
+pub fn train_constrained_epochs_with_checks(
+    trainable: &TrainableModel,
+    state: &mut ConstrainedState,
+    train: &Dataset,
+    validation: Option<&Dataset>,
+    settings: &ConstrainedSettings,
+    epochs: usize,
+    observer: &mut dyn FnMut(&ConstrainedEpoch),
+    checks: &mut dyn FnMut(&ValidationCheck, &Network),
 ) -> Result<Vec<ConstrainedEpoch>, TrainError> {
     settings.validate()?;
     let model = &trainable.template;
@@ -312,6 +358,15 @@ pub fn train_constrained_epochs(
     );
     let mut order: Vec<usize> = (0..train.len()).collect();
     let mut records = Vec::with_capacity(epochs);
+    // Batches after which a mid-epoch check runs (the epoch's end has its own).
+    let mid_checks: Vec<usize> = if settings.measure_certified {
+        (1..settings.checks_per_epoch)
+            .map(|k| (k * batches_per_epoch / settings.checks_per_epoch).max(1) - 1)
+            .filter(|&b| b + 1 < batches_per_epoch)
+            .collect()
+    } else {
+        Vec::new()
+    };
     for _ in 0..epochs {
         state.epochs_done += 1;
         let epoch = state.epochs_done;
@@ -380,6 +435,16 @@ pub fn train_constrained_epochs(
             };
             add_scaled(&mut gradient, &robust.gradient, 1.0);
             state.optimizer.step(&mut state.network, &gradient, 1.0);
+            if let (Some(v), true) = (validation, mid_checks.contains(&b)) {
+                let check = validation_check(
+                    trainable,
+                    &state.network,
+                    v,
+                    settings,
+                    (epoch - 1) as f64 + (b + 1) as f64 / batches_per_epoch as f64,
+                )?;
+                checks(&check, &state.network);
+            }
             let mean_robust = robust.sample_losses.iter().sum::<f64>() / chunk.len() as f64;
             let error_rate = errors.iter().filter(|e| **e).count() as f64 / chunk.len() as f64;
             clean_total += clean * chunk.len() as f64;
@@ -448,13 +513,9 @@ pub fn train_constrained_epochs(
             ));
             record.validation_clean_accuracy = Some(accuracy);
             if settings.measure_certified {
-                let certified = certified_accuracy(
-                    trainable,
-                    &state.network,
-                    v,
-                    &settings.budget,
-                    &settings.targets,
-                )?;
+                let check = validation_check(trainable, &state.network, v, settings, epoch as f64)?;
+                checks(&check, &state.network);
+                let certified = check.certified_accuracy;
                 record.validation_certified_accuracy = Some(certified);
                 // Only epochs at the full budget throughout measure the gap the floor is stated at.
                 let full_epoch = ramp_steps <= (epoch - 1) * batches_per_epoch;
@@ -470,6 +531,30 @@ pub fn train_constrained_epochs(
         records.push(record);
     }
     Ok(records)
+}
+
+/// The validation figures of `network` at `epoch_position`.
+fn validation_check(
+    trainable: &TrainableModel,
+    network: &Network,
+    validation: &Dataset,
+    settings: &ConstrainedSettings,
+    epoch_position: f64,
+) -> Result<ValidationCheck, TrainError> {
+    let features = trainable.to_network_units(&validation.features);
+    let losses = per_sample_cross_entropy(network, &features, &validation.labels);
+    Ok(ValidationCheck {
+        epoch_position,
+        clean_loss: losses.iter().sum::<f64>() / losses.len().max(1) as f64,
+        clean_loss_error: mean_standard_error(&losses),
+        certified_accuracy: certified_accuracy(
+            trainable,
+            network,
+            validation,
+            &settings.budget,
+            &settings.targets,
+        )?,
+    })
 }
 
 /// Cross-entropy of every sample (columns of `features`, network units) under `network`.

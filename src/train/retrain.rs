@@ -22,8 +22,8 @@ use crate::model::{Model, Network};
 use crate::threat::requirement::Requirement;
 
 use super::constrained::{
-    train_constrained_epochs, ConstrainedEpoch, ConstrainedSettings, ConstrainedState, Constraint,
-    Formulation,
+    train_constrained_epochs_with_checks, ConstrainedEpoch, ConstrainedSettings, ConstrainedState,
+    Constraint, Formulation, ValidationCheck,
 };
 use super::plain::TrainableModel;
 use super::TrainError;
@@ -62,7 +62,7 @@ pub enum Keep {
 /// An epoch's weights kept as a candidate for [`Keep::BestFeasible`].
 #[derive(Debug, Clone)]
 struct Candidate {
-    epoch: usize,
+    epoch: f64,
     certified: f64,
     clean_loss: f64,
     loss_error: f64,
@@ -106,7 +106,7 @@ impl Candidates {
         self.kept
             .iter()
             .filter(|c| c.clean_loss <= window)
-            .min_by_key(|c| c.epoch)
+            .min_by(|a, b| a.epoch.total_cmp(&b.epoch))
     }
 }
 
@@ -129,8 +129,9 @@ pub struct RoundRecord {
     pub slack: f64,
     /// Epochs run in total at the end of the round.
     pub epochs: usize,
-    /// The epoch whose weights the round returned (see [`Keep`]).
-    pub selected_epoch: usize,
+    /// Where in training the returned weights were taken, in epochs (see [`Keep`]; e.g. 24.25 = a
+    /// quarter into epoch 25).
+    pub selected_epoch: f64,
     /// Clean accuracy on the acceptance data.
     pub clean_accuracy: f64,
     /// Certified accuracy on the acceptance data (certify pipeline, sound).
@@ -223,39 +224,29 @@ pub fn retrain(
         };
         // Later rounds demand the slack they added on validation too, so they can select anew.
         let threshold = floor + (round - 1) as f64 * settings.slack_step;
-        for _ in 0..count {
-            let record = train_constrained_epochs(
-                &trainable,
-                &mut state,
-                train,
-                validation,
-                &constrained,
-                1,
-                observer,
-            )?
-            .pop()
-            .expect("one epoch was run");
-            if let (true, Some(certified), Some(clean_loss), Some(loss_error)) = (
-                selecting,
-                record.validation_certified_accuracy,
-                record.validation_clean_loss,
-                record.validation_clean_loss_error,
-            ) {
-                if certified >= threshold {
+        epochs.extend(train_constrained_epochs_with_checks(
+            &trainable,
+            &mut state,
+            train,
+            validation,
+            &constrained,
+            count,
+            observer,
+            &mut |check: &ValidationCheck, network: &Network| {
+                if selecting && check.certified_accuracy >= threshold {
                     candidates.offer(Candidate {
-                        epoch: record.epoch,
-                        certified,
-                        clean_loss,
-                        loss_error,
-                        network: state.network.clone(),
+                        epoch: check.epoch_position,
+                        certified: check.certified_accuracy,
+                        clean_loss: check.clean_loss,
+                        loss_error: check.clean_loss_error,
+                        network: network.clone(),
                     });
                 }
-            }
-            epochs.push(record);
-        }
+            },
+        )?);
         let (network, selected_epoch) = match candidates.choose(threshold) {
             Some(best) => (&best.network, best.epoch),
-            None => (&state.network, state.epochs_done),
+            None => (&state.network, state.epochs_done as f64),
         };
         let model = trainable.model_with(network);
         let sources = Sources::in_memory(&model, acceptance);
@@ -294,7 +285,7 @@ pub fn retrain(
 mod tests {
     use super::*;
 
-    fn candidate(epoch: usize, certified: f64, clean_loss: f64, loss_error: f64) -> Candidate {
+    fn candidate(epoch: f64, certified: f64, clean_loss: f64, loss_error: f64) -> Candidate {
         Candidate {
             epoch,
             certified,
@@ -307,16 +298,16 @@ mod tests {
     #[test]
     fn one_standard_error_rule_picks_the_earliest_epoch_near_the_best_loss() {
         let mut candidates = Candidates::default();
-        candidates.offer(candidate(3, 0.61, 0.50, 0.02)); // far above the best: dropped
-        candidates.offer(candidate(4, 0.62, 0.215, 0.02)); // within one error of the best
-        candidates.offer(candidate(5, 0.70, 0.20, 0.02)); // the best loss
-        candidates.offer(candidate(6, 0.72, 0.23, 0.02)); // within two errors: kept, not chosen
-        let epochs: Vec<usize> = candidates.kept.iter().map(|c| c.epoch).collect();
-        assert_eq!(epochs, vec![4, 5, 6]);
-        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(4));
+        candidates.offer(candidate(3.0, 0.61, 0.50, 0.02)); // far above the best: dropped
+        candidates.offer(candidate(4.0, 0.62, 0.215, 0.02)); // within one error of the best
+        candidates.offer(candidate(5.0, 0.70, 0.20, 0.02)); // the best loss
+        candidates.offer(candidate(6.0, 0.72, 0.23, 0.02)); // within two errors: kept, not chosen
+        let epochs: Vec<f64> = candidates.kept.iter().map(|c| c.epoch).collect();
+        assert_eq!(epochs, vec![4.0, 5.0, 6.0]);
+        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(4.0));
         // A higher threshold drops epoch 4 for good; 5 is then the earliest in the window.
-        assert_eq!(candidates.choose(0.65).map(|c| c.epoch), Some(5));
-        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(5));
+        assert_eq!(candidates.choose(0.65).map(|c| c.epoch), Some(5.0));
+        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(5.0));
         assert!(candidates.choose(0.8).is_none());
     }
 }
