@@ -254,7 +254,12 @@ fn tradeoff() {
             max_rounds: rounds,
             slack_step: 0.03,
             pipeline: PipelineOptions::default(),
-            keep: Keep::BestFeasible,
+            // `BALLAST_BENCH_KEEP=best` keeps the lowest-loss feasible epoch instead.
+            keep: if std::env::var("BALLAST_BENCH_KEEP").as_deref() == Ok("best") {
+                Keep::BestFeasible
+            } else {
+                Keep::EarliestFeasible
+            },
         };
         let start = Instant::now();
         let result = retrain(

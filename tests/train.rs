@@ -767,11 +767,11 @@ mod primal_dual {
         assert!(records[0].robust_error <= interval_error + 1e-12);
     }
 
-    // Best feasible iterate under the one-standard-error rule (Breiman et al., 1984): among the epochs
+    // Earliest feasible iterate, the one-standard-error rule (Breiman et al., 1984): among the epochs
     // whose validation certified accuracy reaches the floor, the kept one is the earliest whose
     // validation clean loss is within one standard error of the lowest, and the returned model is
-    // that epoch's (its certified accuracy, recomputed here, equals the logged one). `Keep::Last`
-    // returns the last epoch.
+    // that epoch's (its certified accuracy, recomputed here, equals the logged one).
+    // `Keep::BestFeasible` keeps the lowest loss, `Keep::Last` the last epoch.
     #[test]
     fn retrain_keeps_the_best_feasible_iterate() {
         use ballast::certify::PipelineOptions;
@@ -827,7 +827,7 @@ mod primal_dual {
             )
             .expect("retrain runs")
         };
-        let best = run(Keep::BestFeasible);
+        let best = run(Keep::EarliestFeasible);
         let kept = best.rounds[0].selected_epoch;
         let feasible: Vec<_> = best
             .epochs
@@ -864,6 +864,9 @@ mod primal_dual {
             (recomputed - logged).abs() < 1e-9,
             "{recomputed} vs {logged}"
         );
+        // The same training without the rule keeps the lowest loss itself.
+        let lowest_loss = run(Keep::BestFeasible);
+        assert_eq!(lowest_loss.rounds[0].selected_epoch, lowest.epoch as f64);
         let last = run(Keep::Last);
         assert_eq!(last.rounds[0].selected_epoch, 12.0);
     }

@@ -92,9 +92,9 @@ pub struct Args {
     /// One constraint and multiplier per class.
     #[arg(long)]
     pub per_class: bool,
-    /// Which epoch's weights each round returns: best-feasible (among epochs whose validation
-    /// certified accuracy reaches the floor, the earliest within one standard error of the lowest
-    /// validation clean loss; primal-dual only) or last.
+    /// Which epoch's weights each round returns: best-feasible (lowest validation clean loss among
+    /// epochs whose validation certified accuracy reaches the floor), earliest-feasible (the earliest
+    /// of them within one standard error of that loss), both primal-dual only; or last.
     #[arg(long, default_value = "best-feasible")]
     pub keep: String,
     /// Dual step size of the multiplier update.
@@ -213,8 +213,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     };
     let keep = match args.keep.as_str() {
         "best-feasible" => Keep::BestFeasible,
+        "earliest-feasible" => Keep::EarliestFeasible,
         "last" => Keep::Last,
-        other => bail!("--keep: \"{other}\" is not allowed, expected best-feasible or last"),
+        other => bail!(
+            "--keep: \"{other}\" is not allowed, expected best-feasible, earliest-feasible or last"
+        ),
     };
     let hidden = args.hidden.as_deref().map(parse_hidden).transpose()?;
     if let Some(parent) = args.out.parent() {

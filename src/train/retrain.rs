@@ -6,11 +6,12 @@
 //! Which weights a round hands to the check is set by [`Keep`]. With [`Keep::BestFeasible`] (primal-dual
 //! runs with validation data) it is the *best feasible iterate*: among the epochs whose validation
 //! certified accuracy (sound linear bounds at the full budget) reaches the round's threshold (the
-//! floor, plus the slack added by later rounds), the best on validation clean loss, read with the
-//! one-standard-error rule: the earliest epoch whose loss is within one standard error of the lowest.
-//! The last iterate of a primal-dual loop is not itself the constrained optimum; a best feasible
-//! iterate is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019). The rule keeps the retrained
-//! model as close to its parent as the validation data allows when robustness costs no clean loss.
+//! floor, plus the slack added by later rounds), the one with the lowest validation clean loss. The
+//! last iterate of a primal-dual loop is not itself the constrained optimum; a best feasible iterate
+//! is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019). [`Keep::EarliestFeasible`] reads the
+//! same candidates with the one-standard-error rule (the earliest epoch whose loss is within one
+//! standard error of the lowest), which keeps the model as close to its parent, and to the floor, as
+//! the validation data allows when robustness costs no clean loss.
 //!
 //! It guarantees an honest verdict: [`RetrainVerdict::Met`] only when the certify pipeline's verdict is
 //! `pass` for the returned model on the acceptance data; anything else (refuted, or not proven because
@@ -53,10 +54,12 @@ pub enum Keep {
     /// The weights after the last epoch.
     Last,
     /// The best feasible iterate (primal-dual with validation data; otherwise the last epoch): among
-    /// epochs whose validation certified accuracy reaches the round's threshold, the earliest whose
-    /// validation clean loss is within one standard error of the lowest; the last epoch when none
-    /// reaches it.
+    /// epochs whose validation certified accuracy reaches the round's threshold, the one with the
+    /// lowest validation clean loss; the last epoch when none reaches it.
     BestFeasible,
+    /// Like [`Keep::BestFeasible`] but read with the one-standard-error rule: the earliest feasible
+    /// epoch whose validation clean loss is within one standard error of the lowest.
+    EarliestFeasible,
 }
 
 /// An epoch's weights kept as a candidate for [`Keep::BestFeasible`].
@@ -69,10 +72,10 @@ struct Candidate {
     network: Network,
 }
 
-/// Feasible epochs for the one-standard-error rule (Breiman, Friedman, Olshen & Stone, 1984): among
-/// the epochs that reach the threshold, the lowest validation clean loss sets a window of one standard
-/// error above it, and the earliest epoch inside the window is chosen: the smallest departure from
-/// the parent model that the validation data cannot tell apart from the best.
+/// Feasible epochs, chosen by the lowest validation clean loss or by the one-standard-error rule
+/// (Breiman, Friedman, Olshen & Stone, 1984): the lowest loss sets a window of one standard error
+/// above it, and the earliest epoch inside the window is chosen, the smallest departure from the
+/// parent model that the validation data cannot tell apart from the best.
 #[derive(Debug, Clone, Default)]
 struct Candidates {
     kept: Vec<Candidate>,
@@ -98,10 +101,14 @@ impl Candidates {
         }
     }
 
-    /// Drops the candidates below `threshold` (thresholds only rise) and returns the rule's choice.
-    fn choose(&mut self, threshold: f64) -> Option<&Candidate> {
+    /// Drops the candidates below `threshold` (thresholds only rise) and returns the choice: the
+    /// lowest loss, or with `earliest` the one-standard-error rule's.
+    fn choose(&mut self, threshold: f64, earliest: bool) -> Option<&Candidate> {
         self.kept.retain(|c| c.certified >= threshold);
         let best = self.best()?;
+        if !earliest {
+            return Some(best);
+        }
         let window = best.clean_loss + best.loss_error;
         self.kept
             .iter()
@@ -194,7 +201,7 @@ pub fn retrain(
     let mut state = ConstrainedState::new(&trainable, &constrained, initial.class_count());
     let mut epochs = Vec::new();
     let mut rounds = Vec::new();
-    let selecting = settings.keep == Keep::BestFeasible
+    let selecting = settings.keep != Keep::Last
         && validation.is_some()
         && constrained.measure_certified
         && matches!(constrained.formulation, Formulation::PrimalDual { .. });
@@ -244,7 +251,8 @@ pub fn retrain(
                 }
             },
         )?);
-        let (network, selected_epoch) = match candidates.choose(threshold) {
+        let earliest = settings.keep == Keep::EarliestFeasible;
+        let (network, selected_epoch) = match candidates.choose(threshold, earliest) {
             Some(best) => (&best.network, best.epoch),
             None => (&state.network, state.epochs_done as f64),
         };
@@ -296,7 +304,7 @@ mod tests {
     }
 
     #[test]
-    fn one_standard_error_rule_picks_the_earliest_epoch_near_the_best_loss() {
+    fn feasible_epochs_by_lowest_loss_or_by_the_one_standard_error_rule() {
         let mut candidates = Candidates::default();
         candidates.offer(candidate(3.0, 0.61, 0.50, 0.02)); // far above the best: dropped
         candidates.offer(candidate(4.0, 0.62, 0.215, 0.02)); // within one error of the best
@@ -304,10 +312,12 @@ mod tests {
         candidates.offer(candidate(6.0, 0.72, 0.23, 0.02)); // within two errors: kept, not chosen
         let epochs: Vec<f64> = candidates.kept.iter().map(|c| c.epoch).collect();
         assert_eq!(epochs, vec![4.0, 5.0, 6.0]);
-        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(4.0));
+        assert_eq!(candidates.choose(0.6, true).map(|c| c.epoch), Some(4.0));
+        assert_eq!(candidates.choose(0.6, false).map(|c| c.epoch), Some(5.0));
         // A higher threshold drops epoch 4 for good; 5 is then the earliest in the window.
-        assert_eq!(candidates.choose(0.65).map(|c| c.epoch), Some(5.0));
-        assert_eq!(candidates.choose(0.6).map(|c| c.epoch), Some(5.0));
-        assert!(candidates.choose(0.8).is_none());
+        assert_eq!(candidates.choose(0.65, true).map(|c| c.epoch), Some(5.0));
+        assert_eq!(candidates.choose(0.6, true).map(|c| c.epoch), Some(5.0));
+        assert_eq!(candidates.choose(0.71, false).map(|c| c.epoch), Some(6.0));
+        assert!(candidates.choose(0.8, true).is_none());
     }
 }
