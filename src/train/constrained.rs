@@ -506,16 +506,27 @@ pub fn train_constrained_epochs_with_checks(
         };
         if let Some(v) = validation {
             let vf = trainable.to_network_units(&v.features);
-            let (loss, accuracy) = loss_and_accuracy(&state.network, &vf, &v.labels);
-            record.validation_clean_loss = Some(loss);
-            record.validation_clean_loss_error = Some(mean_standard_error(
-                &per_sample_cross_entropy(&state.network, &vf, &v.labels),
-            ));
+            let (clean_loss, accuracy) = loss_and_accuracy(&state.network, &vf, &v.labels);
+            let clean_loss_error =
+                mean_standard_error(&per_sample_cross_entropy(&state.network, &vf, &v.labels));
+            record.validation_clean_loss = Some(clean_loss);
+            record.validation_clean_loss_error = Some(clean_loss_error);
             record.validation_clean_accuracy = Some(accuracy);
             if settings.measure_certified {
-                let check = validation_check(trainable, &state.network, v, settings, epoch as f64)?;
+                let certified = certified_accuracy(
+                    trainable,
+                    &state.network,
+                    v,
+                    &settings.budget,
+                    &settings.targets,
+                )?;
+                let check = ValidationCheck {
+                    epoch_position: epoch as f64,
+                    clean_loss,
+                    clean_loss_error,
+                    certified_accuracy: certified,
+                };
                 checks(&check, &state.network);
-                let certified = check.certified_accuracy;
                 record.validation_certified_accuracy = Some(certified);
                 // Only epochs at the full budget throughout measure the gap the floor is stated at.
                 let full_epoch = ramp_steps <= (epoch - 1) * batches_per_epoch;
@@ -533,7 +544,7 @@ pub fn train_constrained_epochs_with_checks(
     Ok(records)
 }
 
-/// The validation figures of `network` at `epoch_position`.
+/// The validation figures of `network` at `epoch_position` (a check inside an epoch).
 fn validation_check(
     trainable: &TrainableModel,
     network: &Network,
