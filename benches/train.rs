@@ -243,7 +243,8 @@ fn tradeoff() {
         let settings = RetrainSettings {
             constrained: constrained_settings(
                 epochs,
-                7,
+                // `BALLAST_BENCH_SEED` changes the retraining seed (shuffling, attacks).
+                env_or("BALLAST_BENCH_SEED", 7u64),
                 budget.clone(),
                 Targets::Any,
                 formulation,
