@@ -592,15 +592,36 @@ mod primal_dual {
         }
     }
 
-    fn run(settings: &ConstrainedSettings) -> Vec<ballast::train::constrained::ConstrainedEpoch> {
-        let data = three_classes(240);
+    /// The 2-8-3 MLP (normalize layer fitted to `data`, seed 4) every primal-dual test starts from.
+    fn small_mlp(data: &Dataset) -> Model {
         let input = InputSpec {
             dim: 2,
             names: None,
             lower: vec![-3.0; 2],
             upper: vec![3.0; 2],
         };
-        let model = new_mlp(&input, 3, &[8], &data, 4).expect("model");
+        new_mlp(&input, 3, &[8], data, 4).expect("model")
+    }
+
+    /// Interval loss, robust-error floor 0.5 without slack, primal-dual with dual step 0.1.
+    fn interval_floor_half() -> ConstrainedSettings {
+        settings(
+            RobustLoss::Interval,
+            Constraint::RobustError {
+                floor: 0.5,
+                slack: 0.0,
+            },
+            Formulation::PrimalDual {
+                dual_step: 0.1,
+                initial_multiplier: 0.0,
+                per_class: false,
+            },
+        )
+    }
+
+    fn run(settings: &ConstrainedSettings) -> Vec<ballast::train::constrained::ConstrainedEpoch> {
+        let data = three_classes(240);
+        let model = small_mlp(&data);
         let trainable = TrainableModel::new(&model);
         let mut state = ConstrainedState::new(&trainable, settings, 3);
         train_constrained_epochs(
@@ -695,26 +716,9 @@ mod primal_dual {
     fn constraint_is_measured_by_linear_bounds() {
         use ballast::train::constrained::certified_accuracy;
         let data = three_classes(240);
-        let input = InputSpec {
-            dim: 2,
-            names: None,
-            lower: vec![-3.0; 2],
-            upper: vec![3.0; 2],
-        };
-        let model = new_mlp(&input, 3, &[8], &data, 4).expect("model");
+        let model = small_mlp(&data);
         let trainable = TrainableModel::new(&model);
-        let mut one_batch = settings(
-            RobustLoss::Interval,
-            Constraint::RobustError {
-                floor: 0.5,
-                slack: 0.0,
-            },
-            Formulation::PrimalDual {
-                dual_step: 0.1,
-                initial_multiplier: 0.0,
-                per_class: false,
-            },
-        );
+        let mut one_batch = interval_floor_half();
         one_batch.train.batch_size = 240;
         one_batch.budget = Budget::uniform(Norm::Linf, 0.2, 2);
         let before = certified_accuracy(
@@ -785,13 +789,7 @@ mod primal_dual {
             v.labels = v.labels[240..].to_vec();
             v
         };
-        let input = InputSpec {
-            dim: 2,
-            names: None,
-            lower: vec![-3.0; 2],
-            upper: vec![3.0; 2],
-        };
-        let model = new_mlp(&input, 3, &[8], &train, 4).expect("model");
+        let model = small_mlp(&train);
         let mut requirement = Requirement::uniform(Norm::Linf, 0.1);
         requirement.floor = Some(0.3);
         let mut constrained = settings(
@@ -880,26 +878,9 @@ mod primal_dual {
             certified_accuracy, train_constrained_epochs_with_checks,
         };
         let data = three_classes(240);
-        let input = InputSpec {
-            dim: 2,
-            names: None,
-            lower: vec![-3.0; 2],
-            upper: vec![3.0; 2],
-        };
-        let model = new_mlp(&input, 3, &[8], &data, 4).expect("model");
+        let model = small_mlp(&data);
         let trainable = TrainableModel::new(&model);
-        let mut four = settings(
-            RobustLoss::Interval,
-            Constraint::RobustError {
-                floor: 0.5,
-                slack: 0.0,
-            },
-            Formulation::PrimalDual {
-                dual_step: 0.1,
-                initial_multiplier: 0.0,
-                per_class: false,
-            },
-        );
+        let mut four = interval_floor_half();
         four.checks_per_epoch = 4; // 240 samples in batches of 32: 8 batches, checks after 2, 4, 6, 8
         let mut state = ConstrainedState::new(&trainable, &four, 3);
         let mut seen = Vec::new();
