@@ -67,7 +67,11 @@ fn constrained_settings(
         loss: RobustLoss::LinearInterval {
             final_linear_weight,
         },
-        constraint: Constraint::RobustError { floor, slack: 0.02 },
+        // `BALLAST_BENCH_SLACK` overrides the first round's constraint slack.
+        constraint: Constraint::RobustError {
+            floor,
+            slack: env_or("BALLAST_BENCH_SLACK", 0.02),
+        },
         formulation,
         ramp_epochs: (epochs * 2) / 5,
         measure_certified: true,
@@ -151,6 +155,13 @@ fn env_or<T: std::str::FromStr>(name: &str, default: T) -> T {
         .unwrap_or(default)
 }
 
+/// The comma-separated numbers in the environment variable `name` (empty for none), else `default`.
+fn env_list(name: &str, default: &[f64]) -> Vec<f64> {
+    std::env::var(name)
+        .map(|v| v.split(',').filter_map(|p| p.trim().parse().ok()).collect())
+        .unwrap_or_else(|_| default.to_vec())
+}
+
 /// Clean and certified accuracy of `model` on `data` from the certify pipeline (bounds only).
 fn certify_figures(model: &Model, data: &Dataset, requirement: &Requirement) -> (f64, f64) {
     let options = CertifyOptions {
@@ -219,10 +230,7 @@ fn tradeoff() {
     println!("plain model: best epoch {}", plain_log.best_epoch);
     let plain_seconds = start.elapsed().as_secs_f64();
     // `BALLAST_BENCH_PROBES=0.05,0.06` (or empty) limits the probes: the LP stage is slow on wide models.
-    let probes: Vec<f64> = std::env::var("BALLAST_BENCH_PROBES")
-        .map(|v| v.split(',').filter_map(|p| p.trim().parse().ok()).collect())
-        .unwrap_or_else(|_| vec![0.04, 0.05, 0.06, 0.07, 0.08]);
-    for probe in probes {
+    for probe in env_list("BALLAST_BENCH_PROBES", &[0.04, 0.05, 0.06, 0.07, 0.08]) {
         let (clean, certified) =
             certify_figures(&plain, &held_out, &Requirement::uniform(Norm::Linf, probe));
         println!("plain model at eps {probe}: test clean {clean:.4}, certified {certified:.4}");
@@ -311,7 +319,8 @@ fn tradeoff() {
         );
         runs.push(r);
     };
-    for floor in [0.6, 0.7, 0.8, 0.9] {
+    // `BALLAST_BENCH_FLOORS` and `BALLAST_BENCH_PENALTIES` (comma lists, empty for none) pick the runs.
+    for floor in env_list("BALLAST_BENCH_FLOORS", &[0.6, 0.7, 0.8, 0.9]) {
         let formulation = Formulation::PrimalDual {
             dual_step: 0.05,
             initial_multiplier: 0.0,
@@ -325,7 +334,10 @@ fn tradeoff() {
             None,
         );
     }
-    for weight in [0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0] {
+    for weight in env_list(
+        "BALLAST_BENCH_PENALTIES",
+        &[0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0],
+    ) {
         run(
             format!("penalty {weight}"),
             Formulation::Penalty { weight },

@@ -6,7 +6,8 @@
 //! Which weights a round hands to the check is set by [`Keep`]. With [`Keep::BestFeasible`] (primal-dual
 //! runs with validation data) it is the *best feasible iterate*: among the epochs whose validation
 //! certified accuracy (sound linear bounds at the full budget) reaches the round's threshold (the
-//! floor, plus the slack added by later rounds), the one with the lowest validation clean loss. The
+//! floor, plus one slack step for each earlier round whose kept weights reached it on validation but
+//! failed the acceptance check), the one with the lowest validation clean loss. The
 //! last iterate of a primal-dual loop is not itself the constrained optimum; a best feasible iterate
 //! is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019). [`Keep::EarliestFeasible`] reads the
 //! same candidates with the one-standard-error rule (the earliest epoch whose loss is within one
@@ -117,6 +118,39 @@ impl Candidates {
     }
 }
 
+/// The validation certified accuracy a candidate must reach. It starts at the floor; a round whose
+/// kept weights reached it on validation but failed the acceptance check shows that validation
+/// overstates the acceptance figure, so later rounds demand one more slack step. A round that kept no
+/// such weights has not shown that and leaves the threshold where it was.
+#[derive(Debug, Clone, Copy)]
+struct SelectionThreshold {
+    floor: f64,
+    step: f64,
+    misses: usize,
+}
+
+impl SelectionThreshold {
+    fn new(floor: f64, step: f64) -> Self {
+        Self {
+            floor,
+            step,
+            misses: 0,
+        }
+    }
+
+    fn value(&self) -> f64 {
+        self.floor + self.misses as f64 * self.step
+    }
+
+    /// Accounts for a finished round: whether its kept weights were feasible on validation and
+    /// whether the acceptance check passed.
+    fn record_round(&mut self, feasible_on_validation: bool, met: bool) {
+        if feasible_on_validation && !met {
+            self.misses += 1;
+        }
+    }
+}
+
 /// The final answer of a retraining run.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -206,6 +240,7 @@ pub fn retrain(
         && constrained.measure_certified
         && matches!(constrained.formulation, Formulation::PrimalDual { .. });
     let mut candidates = Candidates::default();
+    let mut selection = SelectionThreshold::new(floor, settings.slack_step);
     let options = CertifyOptions {
         pipeline: settings.pipeline.clone(),
         label_column: "label".into(),
@@ -229,8 +264,7 @@ pub fn retrain(
             Constraint::RobustError { slack, .. } => slack,
             Constraint::RobustLossLevel { .. } => 0.0,
         };
-        // Later rounds demand the slack they added on validation too, so they can select anew.
-        let threshold = floor + (round - 1) as f64 * settings.slack_step;
+        let threshold = selection.value();
         epochs.extend(train_constrained_epochs_with_checks(
             &trainable,
             &mut state,
@@ -252,7 +286,9 @@ pub fn retrain(
             },
         )?);
         let earliest = settings.keep == Keep::EarliestFeasible;
-        let (network, selected_epoch) = match candidates.choose(threshold, earliest) {
+        let chosen = candidates.choose(threshold, earliest);
+        let feasible_on_validation = chosen.is_some();
+        let (network, selected_epoch) = match chosen {
             Some(best) => (&best.network, best.epoch),
             None => (&state.network, state.epochs_done as f64),
         };
@@ -272,6 +308,7 @@ pub fn retrain(
             verdict: summary.verdict,
         });
         let met = summary.verdict == Verdict::Pass;
+        selection.record_round(feasible_on_validation, met);
         if met || round == settings.max_rounds {
             return Ok(RetrainResult {
                 model,
@@ -301,6 +338,18 @@ mod tests {
             loss_error,
             network: Network { layers: Vec::new() },
         }
+    }
+
+    #[test]
+    fn the_threshold_rises_only_after_a_validation_pass_that_failed_acceptance() {
+        let mut threshold = SelectionThreshold::new(0.8, 0.03);
+        assert_eq!(threshold.value(), 0.8);
+        threshold.record_round(false, false); // nothing feasible: training fell short
+        assert_eq!(threshold.value(), 0.8);
+        threshold.record_round(true, false); // validation passed, acceptance did not
+        assert!((threshold.value() - 0.83).abs() < 1e-12);
+        threshold.record_round(true, true);
+        assert!((threshold.value() - 0.83).abs() < 1e-12);
     }
 
     #[test]
