@@ -538,6 +538,24 @@ mod retraining {
         ]);
         let error = run(cli).unwrap_err().to_string();
         assert!(error.contains("--loss"), "{error}");
+        let cli = Cli::parse_from([
+            "ballast",
+            "retrain",
+            "--model",
+            "tests/data/digits_mlp.model.json",
+            "--train",
+            "tests/data/digits_test.csv",
+            "--eps",
+            "0.01",
+            "--floor",
+            "0.5",
+            "--checks-per-epoch",
+            "0",
+            "--out",
+            "x.json",
+        ]);
+        let error = run(cli).unwrap_err().to_string();
+        assert!(error.contains("--checks-per-epoch"), "{error}");
     }
 }
 

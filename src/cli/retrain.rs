@@ -97,6 +97,11 @@ pub struct Args {
     /// of them within one standard error of that loss), both primal-dual only; or last.
     #[arg(long, default_value = "best-feasible")]
     pub keep: String,
+    /// Validation checks per epoch (≥ 1): each is a candidate for --keep; more checks follow
+    /// certified accuracy more finely at the cost of one linear-bound pass over the validation data
+    /// each.
+    #[arg(long, default_value_t = 4)]
+    pub checks_per_epoch: usize,
     /// Dual step size of the multiplier update.
     #[arg(long, default_value_t = 0.05)]
     pub dual_step: f64,
@@ -175,6 +180,9 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         && args.slack_step >= 0.0)
     {
         bail!("--slack / --slack-step: expected finite numbers ≥ 0");
+    }
+    if args.checks_per_epoch == 0 {
+        bail!("--checks-per-epoch: 0 is not allowed, expected a whole number ≥ 1");
     }
     if !(args.dual_step.is_finite() && args.dual_step > 0.0) {
         bail!(
@@ -312,7 +320,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             ramp_epochs: args.ramp_epochs.unwrap_or((args.epochs * 2) / 5),
             measure_certified: true,
             gap_correction: true,
-            checks_per_epoch: 4,
+            checks_per_epoch: args.checks_per_epoch,
         },
         round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
         max_rounds: args.max_rounds,
@@ -361,6 +369,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "targets": format!("{:?}", requirement.targets),
                 "constrained": settings.constrained, "round_epochs": settings.round_epochs,
                 "max_rounds": settings.max_rounds, "slack_step": settings.slack_step,
+                "keep": settings.keep,
             },
             "rounds": result.rounds,
             "final": {
