@@ -469,6 +469,13 @@ mod retraining {
         let folder = dir.path().join("retrained.retrain");
         let log = std::fs::read_to_string(folder.join("log.csv")).expect("log");
         assert!(log.lines().count() >= 13, "{log}");
+        // Four validation checks per epoch (the default) on the held-out part of the training rows.
+        let checks = std::fs::read_to_string(folder.join("checks.csv")).expect("checks");
+        assert!(checks.lines().count() > 12 * 4, "{checks}");
+        for row in checks.lines().skip(1) {
+            let certified: f64 = row.rsplit(',').next().unwrap().parse().expect("number");
+            assert!((0.0..=1.0).contains(&certified), "{row}");
+        }
         assert!(std::fs::read_to_string(folder.join("accuracy.svg"))
             .expect("svg")
             .contains("<polyline"));

@@ -386,6 +386,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     std::fs::create_dir_all(&folder)
         .with_context(|| format!("{}: creating the folder", folder.display()))?;
     write(&folder.join("log.csv"), &log_csv(&result))?;
+    write(&folder.join("checks.csv"), &checks_csv(&result))?;
     let (accuracy_svg, multiplier_svg) = curves(&result);
     write(&folder.join("accuracy.svg"), &accuracy_svg)?;
     write(&folder.join("loss_and_multiplier.svg"), &multiplier_svg)?;
@@ -444,6 +445,21 @@ pub fn log_csv(result: &RetrainResult) -> String {
             option(e.validation_clean_loss_error),
             option(e.validation_clean_accuracy),
             option(e.validation_certified_accuracy)
+        );
+    }
+    text
+}
+
+/// The validation checks as CSV: position in epochs, validation clean loss and its standard error,
+/// validation certified accuracy (sound linear bounds at the full budget).
+pub fn checks_csv(result: &RetrainResult) -> String {
+    let mut text =
+        String::from("epoch_position,val_clean_loss,val_clean_loss_error,val_certified_accuracy\n");
+    for c in &result.checks {
+        let _ = writeln!(
+            text,
+            "{},{:.6},{:.6},{:.6}",
+            c.epoch_position, c.clean_loss, c.clean_loss_error, c.certified_accuracy
         );
     }
     text
@@ -533,6 +549,9 @@ fn sheet_markdown(
         md,
         "![accuracy](accuracy.svg)\n\n![losses and multiplier](loss_and_multiplier.svg)\n"
     );
-    let _ = writeln!(md, "Per-epoch figures: `log.csv`.");
+    let _ = writeln!(
+        md,
+        "Per-epoch figures: `log.csv`; every validation check (the candidates for the kept weights): `checks.csv`."
+    );
     md
 }

@@ -190,6 +190,8 @@ pub struct RetrainResult {
     pub model: Model,
     /// Every epoch of every round.
     pub epochs: Vec<ConstrainedEpoch>,
+    /// Every validation check of every round, in order (empty without validation data).
+    pub checks: Vec<ValidationCheck>,
     /// One record per round.
     pub rounds: Vec<RoundRecord>,
     /// The final verdict.
@@ -241,6 +243,7 @@ pub fn retrain(
         && matches!(constrained.formulation, Formulation::PrimalDual { .. });
     let mut candidates = Candidates::default();
     let mut selection = SelectionThreshold::new(floor, settings.slack_step);
+    let mut checks = Vec::new();
     let options = CertifyOptions {
         pipeline: settings.pipeline.clone(),
         label_column: "label".into(),
@@ -274,6 +277,7 @@ pub fn retrain(
             count,
             observer,
             &mut |check: &ValidationCheck, network: &Network| {
+                checks.push(*check);
                 if selecting && check.certified_accuracy >= threshold {
                     candidates.offer(Candidate {
                         epoch: check.epoch_position,
@@ -313,6 +317,7 @@ pub fn retrain(
             return Ok(RetrainResult {
                 model,
                 epochs,
+                checks,
                 rounds,
                 verdict: if met {
                     RetrainVerdict::Met
