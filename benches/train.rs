@@ -78,6 +78,8 @@ fn constrained_settings(
         // `BALLAST_BENCH_GAP_CORRECTION=0` turns the generalisation-gap correction off.
         gap_correction: env_or("BALLAST_BENCH_GAP_CORRECTION", 1u8) == 1,
         checks_per_epoch: env_or("BALLAST_BENCH_CHECKS", 4usize),
+        // `BALLAST_BENCH_FINAL_RATE` sets the step-size factor reached at the end of the first round.
+        final_rate_factor: env_or("BALLAST_BENCH_FINAL_RATE", 1.0),
     }
 }
 

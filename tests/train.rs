@@ -563,6 +563,24 @@ mod retraining {
         ]);
         let error = run(cli).unwrap_err().to_string();
         assert!(error.contains("--checks-per-epoch"), "{error}");
+        let cli = Cli::parse_from([
+            "ballast",
+            "retrain",
+            "--model",
+            "tests/data/digits_mlp.model.json",
+            "--train",
+            "tests/data/digits_test.csv",
+            "--eps",
+            "0.01",
+            "--floor",
+            "0.5",
+            "--final-rate",
+            "0",
+            "--out",
+            "x.json",
+        ]);
+        let error = run(cli).unwrap_err().to_string();
+        assert!(error.contains("--final-rate"), "{error}");
     }
 }
 
@@ -614,6 +632,7 @@ mod primal_dual {
             measure_certified: true,
             gap_correction: false,
             checks_per_epoch: 1,
+            final_rate_factor: 1.0,
         }
     }
 

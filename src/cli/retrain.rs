@@ -102,6 +102,10 @@ pub struct Args {
     /// each.
     #[arg(long, default_value_t = 4)]
     pub checks_per_epoch: usize,
+    /// Step-size factor at the end of --epochs: the rate is held through the epsilon ramp, then
+    /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
+    #[arg(long, default_value_t = 1.0)]
+    pub final_rate: f64,
     /// Dual step size of the multiplier update.
     #[arg(long, default_value_t = 0.05)]
     pub dual_step: f64,
@@ -180,6 +184,12 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         && args.slack_step >= 0.0)
     {
         bail!("--slack / --slack-step: expected finite numbers ≥ 0");
+    }
+    if !(args.final_rate > 0.0 && args.final_rate <= 1.0) {
+        bail!(
+            "--final-rate: {} is not allowed, expected a number in (0, 1]",
+            args.final_rate
+        );
     }
     if args.checks_per_epoch == 0 {
         bail!("--checks-per-epoch: 0 is not allowed, expected a whole number ≥ 1");
@@ -321,6 +331,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             measure_certified: true,
             gap_correction: true,
             checks_per_epoch: args.checks_per_epoch,
+            final_rate_factor: args.final_rate,
         },
         round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
         max_rounds: args.max_rounds,

@@ -114,6 +114,10 @@ pub struct ConstrainedSettings {
     /// [`train_constrained_epochs_with_checks`]; more checks give the selection of a best feasible
     /// iterate a finer choice.
     pub checks_per_epoch: usize,
+    /// Step-size factor at the end of the first `train.epochs` epochs, in (0, 1]: the optimiser's
+    /// rate is held through the epsilon ramp, then decays linearly to this fraction of the configured
+    /// rate by the last of those epochs and stays there (later rounds); 1 keeps it constant.
+    pub final_rate_factor: f64,
 }
 
 /// One validation measurement during training (see [`ConstrainedSettings::checks_per_epoch`]).
@@ -161,6 +165,12 @@ impl ConstrainedSettings {
         let bad = |m: String| Err(TrainError::Settings(m));
         if self.checks_per_epoch == 0 {
             return bad("validation checks per epoch must be at least 1".into());
+        }
+        if !(self.final_rate_factor > 0.0 && self.final_rate_factor <= 1.0) {
+            return bad(format!(
+                "final rate factor {} must lie in (0, 1]",
+                self.final_rate_factor
+            ));
         }
         if let Some(r) = self
             .budget
@@ -434,7 +444,13 @@ pub fn train_constrained_epochs_with_checks(
                 robust.errors.clone()
             };
             add_scaled(&mut gradient, &robust.gradient, 1.0);
-            state.optimizer.step(&mut state.network, &gradient, 1.0);
+            let rate = rate_factor(
+                step,
+                ramp_steps,
+                settings.train.epochs * batches_per_epoch,
+                settings.final_rate_factor,
+            );
+            state.optimizer.step(&mut state.network, &gradient, rate);
             if let (Some(v), true) = (validation, mid_checks.contains(&b)) {
                 let check = validation_check(
                     trainable,
@@ -544,6 +560,19 @@ pub fn train_constrained_epochs_with_checks(
     Ok(records)
 }
 
+/// The step-size factor of 1-based `step`: 1 through the ramp's `ramp_steps`, then linear down to
+/// `final_factor` at `end_steps`, and `final_factor` after it.
+fn rate_factor(step: usize, ramp_steps: usize, end_steps: usize, final_factor: f64) -> f64 {
+    if step <= ramp_steps {
+        return 1.0;
+    }
+    if step >= end_steps {
+        return final_factor;
+    }
+    let t = (step - ramp_steps) as f64 / (end_steps - ramp_steps) as f64;
+    1.0 - t * (1.0 - final_factor)
+}
+
 /// The validation figures of `network` at `epoch_position` (a check inside an epoch).
 fn validation_check(
     trainable: &TrainableModel,
@@ -646,6 +675,18 @@ pub fn certified_accuracy(
 mod tests {
     use super::*;
     use approx::assert_relative_eq;
+
+    #[test]
+    fn the_rate_is_held_through_the_ramp_then_decays_linearly() {
+        assert_eq!(rate_factor(1, 10, 30, 0.1), 1.0);
+        assert_eq!(rate_factor(10, 10, 30, 0.1), 1.0);
+        assert!((rate_factor(20, 10, 30, 0.1) - 0.55).abs() < 1e-12);
+        assert_eq!(rate_factor(30, 10, 30, 0.1), 0.1);
+        assert_eq!(rate_factor(45, 10, 30, 0.1), 0.1);
+        // A ramp as long as training (or longer) leaves the rate alone until the end.
+        assert_eq!(rate_factor(29, 30, 30, 0.1), 1.0);
+        assert_eq!(rate_factor(5, 0, 30, 1.0), 1.0);
+    }
 
     #[test]
     fn standard_error_of_the_mean() {
