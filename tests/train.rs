@@ -509,9 +509,10 @@ mod retraining {
         assert_eq!(outcome, Outcome::Met, "certified fraction {fraction}");
     }
 
-    #[test]
-    fn bad_arguments_are_clear_errors() {
-        let cli = Cli::parse_from([
+    /// The error message of `ballast retrain` on the digits fixture with `flags` (floor 0.5 unless
+    /// `flags` gives one).
+    fn retrain_error(flags: &[&str]) -> String {
+        let mut args = vec![
             "ballast",
             "retrain",
             "--model",
@@ -520,67 +521,27 @@ mod retraining {
             "tests/data/digits_test.csv",
             "--eps",
             "0.01",
-            "--floor",
-            "1.5",
             "--out",
             "/nonexistent/x.json",
-        ]);
-        let error = run(cli).unwrap_err().to_string();
-        assert!(error.contains("--floor"), "{error}");
-        let cli = Cli::parse_from([
-            "ballast",
-            "retrain",
-            "--model",
-            "tests/data/digits_mlp.model.json",
-            "--train",
-            "tests/data/digits_test.csv",
-            "--eps",
-            "0.01",
-            "--floor",
-            "0.5",
-            "--loss",
-            "magic",
-            "--out",
-            "x.json",
-        ]);
-        let error = run(cli).unwrap_err().to_string();
-        assert!(error.contains("--loss"), "{error}");
-        let cli = Cli::parse_from([
-            "ballast",
-            "retrain",
-            "--model",
-            "tests/data/digits_mlp.model.json",
-            "--train",
-            "tests/data/digits_test.csv",
-            "--eps",
-            "0.01",
-            "--floor",
-            "0.5",
-            "--checks-per-epoch",
-            "0",
-            "--out",
-            "x.json",
-        ]);
-        let error = run(cli).unwrap_err().to_string();
-        assert!(error.contains("--checks-per-epoch"), "{error}");
-        let cli = Cli::parse_from([
-            "ballast",
-            "retrain",
-            "--model",
-            "tests/data/digits_mlp.model.json",
-            "--train",
-            "tests/data/digits_test.csv",
-            "--eps",
-            "0.01",
-            "--floor",
-            "0.5",
-            "--final-rate",
-            "0",
-            "--out",
-            "x.json",
-        ]);
-        let error = run(cli).unwrap_err().to_string();
-        assert!(error.contains("--final-rate"), "{error}");
+        ];
+        if !flags.contains(&"--floor") {
+            args.extend(["--floor", "0.5"]);
+        }
+        args.extend(flags);
+        run(Cli::parse_from(args)).unwrap_err().to_string()
+    }
+
+    #[test]
+    fn bad_arguments_are_clear_errors() {
+        for (flags, named) in [
+            (&["--floor", "1.5"][..], "--floor"),
+            (&["--loss", "magic"][..], "--loss"),
+            (&["--checks-per-epoch", "0"][..], "--checks-per-epoch"),
+            (&["--final-rate", "0"][..], "--final-rate"),
+        ] {
+            let error = retrain_error(flags);
+            assert!(error.contains(named), "{flags:?}: {error}");
+        }
     }
 }
 
