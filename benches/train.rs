@@ -304,16 +304,9 @@ fn tradeoff() {
             epochs_csv,
         )
         .expect("epoch log");
-        let mut checks_csv = String::from("epoch_position,val_clean_loss,val_certified_linear\n");
-        for c in &result.checks {
-            checks_csv.push_str(&format!(
-                "{},{:.6},{:.4}\n",
-                c.epoch_position, c.clean_loss, c.certified_accuracy
-            ));
-        }
         std::fs::write(
             folder.join(format!("checks-{}.csv", label.replace(' ', "-"))),
-            checks_csv,
+            ballast::cli::retrain::checks_csv(&result),
         )
         .expect("check log");
         let last = result.rounds.last().expect("a round");
