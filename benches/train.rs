@@ -27,7 +27,7 @@ use ballast::train::constrained::{
 use ballast::train::curves::{plot_svg, Series};
 use ballast::train::plain::split_validation;
 use ballast::train::plain::TrainableModel;
-use ballast::train::retrain::{retrain, Keep, RetrainSettings};
+use ballast::train::retrain::{retrain, Keep, NearMisses, RetrainSettings};
 use ballast::train::robust::RobustLoss;
 use ballast::train::{
     he_network, train_cross_entropy_with_validation, OptimizerKind, TrainSettings,
@@ -274,6 +274,11 @@ fn tradeoff() {
             } else {
                 Keep::EarliestFeasible
             },
+            // `BALLAST_BENCH_NEAR_MISS` (margin, default 0 = off) and `_NEAR_MISS_TRIES` (default 3).
+            near_misses: NearMisses {
+                margin: env_or("BALLAST_BENCH_NEAR_MISS", 0.0),
+                tries: env_or("BALLAST_BENCH_NEAR_MISS_TRIES", 3usize),
+            },
         };
         let start = Instant::now();
         let result = retrain(
@@ -323,9 +328,11 @@ fn tradeoff() {
             rounds: result.rounds.len(),
             seconds,
         };
+        let judged: usize = result.rounds.iter().map(|r| r.near_misses_judged).sum();
         println!(
-            "{}: validation clean {:.4}, certified {:.4}; test clean {:.4}, certified {:.4}; kept epoch {}, rounds {}, {:.1} s",
-            r.label, r.clean, r.certified, r.test_clean, r.test_certified, r.kept_epoch, r.rounds, r.seconds
+            "{}: validation clean {:.4}, certified {:.4}; test clean {:.4}, certified {:.4}; kept epoch {}{}, rounds {}, near misses judged {judged}, {:.1} s",
+            r.label, r.clean, r.certified, r.test_clean, r.test_certified, r.kept_epoch,
+            if last.near_miss { " (near miss)" } else { "" }, r.rounds, r.seconds
         );
         runs.push(r);
     };

@@ -786,7 +786,7 @@ mod primal_dual {
         use ballast::certify::PipelineOptions;
         use ballast::threat::requirement::Requirement;
         use ballast::train::constrained::certified_accuracy;
-        use ballast::train::retrain::{retrain, Keep, RetrainSettings};
+        use ballast::train::retrain::{retrain, Keep, NearMisses, RetrainSettings};
         let train = three_classes(240);
         let validation = {
             let mut v = three_classes(480);
@@ -818,6 +818,7 @@ mod primal_dual {
                 slack_step: 0.0,
                 pipeline: PipelineOptions::default(),
                 keep,
+                near_misses: NearMisses::OFF,
             };
             retrain(
                 &model,

@@ -18,7 +18,9 @@ use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::curves::{plot_svg, Series};
 use crate::train::plain::split_validation;
-use crate::train::retrain::{retrain, Keep, RetrainResult, RetrainSettings, RetrainVerdict};
+use crate::train::retrain::{
+    retrain, Keep, NearMisses, RetrainResult, RetrainSettings, RetrainVerdict,
+};
 use crate::train::robust::RobustLoss;
 use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 
@@ -102,6 +104,13 @@ pub struct Args {
     /// each.
     #[arg(long, default_value_t = 4)]
     pub checks_per_epoch: usize,
+    /// Checks up to this fraction below the floor by linear bounds are candidates for --keep too,
+    /// kept only when the certify pipeline proves the floor for them on the validation data; 0 = off.
+    #[arg(long, default_value_t = 0.0)]
+    pub near_miss: f64,
+    /// Most certify runs on the validation data per round to judge near misses.
+    #[arg(long, default_value_t = 3)]
+    pub near_miss_tries: usize,
     /// Step-size factor at the end of --epochs: the rate is held through the epsilon ramp, then
     /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
     #[arg(long, default_value_t = 1.0)]
@@ -189,6 +198,12 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         bail!(
             "--final-rate: {} is not allowed, expected a number in (0, 1]",
             args.final_rate
+        );
+    }
+    if !(args.near_miss.is_finite() && (0.0..1.0).contains(&args.near_miss)) {
+        bail!(
+            "--near-miss: {} is not allowed, expected a fraction in [0, 1)",
+            args.near_miss
         );
     }
     if args.checks_per_epoch == 0 {
@@ -341,6 +356,10 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             ..PipelineOptions::default()
         },
         keep,
+        near_misses: NearMisses {
+            margin: args.near_miss,
+            tries: args.near_miss_tries,
+        },
     };
     let mut print_epoch = |e: &ConstrainedEpoch| {
         eprintln!(
@@ -380,7 +399,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "targets": format!("{:?}", requirement.targets),
                 "constrained": settings.constrained, "round_epochs": settings.round_epochs,
                 "max_rounds": settings.max_rounds, "slack_step": settings.slack_step,
-                "keep": settings.keep,
+                "keep": settings.keep, "near_misses": settings.near_misses,
             },
             "rounds": result.rounds,
             "final": {

@@ -19,7 +19,7 @@ use crate::threat::requirement::{Requirement, RequirementSpec};
 use crate::threat::{Budget, Norm, Targets};
 use crate::train::constrained::{ConstrainedSettings, Constraint, Formulation};
 use crate::train::plain::split_validation;
-use crate::train::retrain::{retrain, Keep, RetrainSettings, RetrainVerdict};
+use crate::train::retrain::{retrain, Keep, NearMisses, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
 use crate::train::{OptimizerKind, TrainSettings};
 
@@ -257,6 +257,7 @@ pub fn retrain_settings(
         slack_step: 0.02,
         pipeline,
         keep: Keep::BestFeasible,
+        near_misses: NearMisses::OFF,
     }
 }
 

@@ -46,6 +46,28 @@ pub struct RetrainSettings {
     pub pipeline: PipelineOptions,
     /// Which epoch's weights each round returns.
     pub keep: Keep,
+    /// Near-miss candidates (see [`NearMisses`]).
+    pub near_misses: NearMisses,
+}
+
+/// Validation checks just below the round's threshold by linear bounds that may still be kept when
+/// the certify pipeline (optimised linear bounds, LP) proves the threshold on the validation data.
+/// The checks use plain linear bounds, which the pipeline can raise by a few points; without this a
+/// candidate whose pipeline figure reaches the floor is passed over for a later, more robust one.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct NearMisses {
+    /// How far below the threshold (a fraction) a check's linear-bound figure may lie; 0 = off.
+    pub margin: f64,
+    /// Most certify-pipeline runs on the validation data per round to judge them.
+    pub tries: usize,
+}
+
+impl NearMisses {
+    /// No near-miss candidates.
+    pub const OFF: NearMisses = NearMisses {
+        margin: 0.0,
+        tries: 0,
+    };
 }
 
 /// Which epoch's weights a round hands to the certify check.
@@ -63,58 +85,151 @@ pub enum Keep {
     EarliestFeasible,
 }
 
+/// What judging a near miss gives: the certify pipeline's report on the validation data (a bare
+/// figure in the unit tests).
+trait Judgement {
+    /// Certified accuracy on the validation data.
+    fn certified(&self) -> f64;
+}
+
+impl Judgement for Report {
+    fn certified(&self) -> f64 {
+        self.summary.certified_accuracy
+    }
+}
+
 /// An epoch's weights kept as a candidate for [`Keep::BestFeasible`].
 #[derive(Debug, Clone)]
-struct Candidate {
+struct Candidate<J = Report> {
     epoch: f64,
+    /// Validation certified accuracy by the check's linear bounds.
     certified: f64,
     clean_loss: f64,
     loss_error: f64,
     network: Network,
+    /// The certify pipeline's judgement on the validation data, once a near miss was judged.
+    judged: Option<Box<J>>,
+}
+
+/// Where a candidate stands against a threshold.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Standing {
+    /// Proven to reach it (by the check's linear bounds or by the pipeline).
+    Feasible,
+    /// Below it by linear bounds but within the near-miss margin and not yet judged.
+    Open,
+    /// Cannot be chosen.
+    Out,
+}
+
+impl<J: Judgement> Candidate<J> {
+    /// The best proven validation figure: the pipeline's when judged, else the check's.
+    fn proven(&self) -> f64 {
+        match &self.judged {
+            Some(judgement) => judgement.certified().max(self.certified),
+            None => self.certified,
+        }
+    }
+
+    fn standing(&self, threshold: f64, margin: f64) -> Standing {
+        if self.proven() >= threshold {
+            Standing::Feasible
+        } else if self.judged.is_none() && self.certified >= threshold - margin {
+            Standing::Open
+        } else {
+            Standing::Out
+        }
+    }
 }
 
 /// Feasible epochs, chosen by the lowest validation clean loss or by the one-standard-error rule
 /// (Breiman, Friedman, Olshen & Stone, 1984): the lowest loss sets a window of one standard error
 /// above it, and the earliest epoch inside the window is chosen, the smallest departure from the
 /// parent model that the validation data cannot tell apart from the best.
-#[derive(Debug, Clone, Default)]
-struct Candidates {
-    kept: Vec<Candidate>,
+#[derive(Debug, Clone)]
+struct Candidates<J = Report> {
+    kept: Vec<Candidate<J>>,
 }
 
-impl Candidates {
+impl<J> Default for Candidates<J> {
+    fn default() -> Self {
+        Self { kept: Vec::new() }
+    }
+}
+
+impl<J: Judgement> Candidates<J> {
     /// Windows wider than the rule's (in standard errors of the current best) whose candidates are
     /// kept; beyond it a candidate is dropped to bound memory.
     const KEEP_WITHIN: f64 = 2.0;
 
-    fn best(&self) -> Option<&Candidate> {
-        self.kept
-            .iter()
-            .min_by(|a, b| a.clean_loss.total_cmp(&b.clean_loss))
-    }
-
-    /// Adds a feasible epoch and drops the ones that can no longer be chosen.
-    fn offer(&mut self, candidate: Candidate) {
+    /// Adds a candidate and drops the ones that can no longer be chosen: those above the window of
+    /// the lowest-loss candidate that is feasible at `threshold` by its check alone (an open near miss
+    /// never drops others, as the pipeline may refute it).
+    fn offer(&mut self, candidate: Candidate<J>, threshold: f64) {
         self.kept.push(candidate);
-        if let Some(best) = self.best() {
+        let best = self
+            .kept
+            .iter()
+            .filter(|c| c.certified >= threshold)
+            .min_by(|a, b| a.clean_loss.total_cmp(&b.clean_loss));
+        if let Some(best) = best {
             let limit = best.clean_loss + Self::KEEP_WITHIN * best.loss_error;
             self.kept.retain(|c| c.clean_loss <= limit);
         }
     }
 
-    /// Drops the candidates below `threshold` (thresholds only rise) and returns the choice: the
-    /// lowest loss, or with `earliest` the one-standard-error rule's.
-    fn choose(&mut self, threshold: f64, earliest: bool) -> Option<&Candidate> {
-        self.kept.retain(|c| c.certified >= threshold);
-        let best = self.best()?;
+    /// The rule's choice among the candidates whose standing passes `admit`: the lowest loss, or
+    /// with `earliest` the one-standard-error rule's. Returns an index into `kept`.
+    fn rule(&self, earliest: bool, admit: impl Fn(&Candidate<J>) -> bool) -> Option<usize> {
+        let admitted = || self.kept.iter().enumerate().filter(|(_, c)| admit(c));
+        let (best_index, best) =
+            admitted().min_by(|a, b| a.1.clean_loss.total_cmp(&b.1.clean_loss))?;
         if !earliest {
-            return Some(best);
+            return Some(best_index);
         }
         let window = best.clean_loss + best.loss_error;
+        admitted()
+            .filter(|(_, c)| c.clean_loss <= window)
+            .min_by(|a, b| a.1.epoch.total_cmp(&b.1.epoch))
+            .map(|(i, _)| i)
+    }
+
+    /// Drops the candidates that cannot reach `threshold` (thresholds only rise) and returns the
+    /// rule's choice among the feasible ones, judging open near misses (`margin` below the
+    /// threshold) with `judge` on the way, at most `tries` times: while the rule would pick an open
+    /// candidate, it is judged, and the choice is made again. `judge` returns the certify
+    /// pipeline's judgement on the validation data. Returns the index and the number of judgements.
+    fn choose<E>(
+        &mut self,
+        threshold: f64,
+        near_misses: NearMisses,
+        earliest: bool,
+        judge: &mut dyn FnMut(&Network) -> Result<J, E>,
+    ) -> Result<(Option<usize>, usize), E> {
+        let margin = near_misses.margin;
         self.kept
-            .iter()
-            .filter(|c| c.clean_loss <= window)
-            .min_by(|a, b| a.epoch.total_cmp(&b.epoch))
+            .retain(|c| c.standing(threshold, margin) != Standing::Out);
+        let mut judged = 0;
+        loop {
+            let open_allowed = judged < near_misses.tries;
+            let pick = self.rule(earliest, |c| match c.standing(threshold, margin) {
+                Standing::Feasible => true,
+                Standing::Open => open_allowed,
+                Standing::Out => false,
+            });
+            let Some(index) = pick else {
+                return Ok((None, judged));
+            };
+            if self.kept[index].standing(threshold, margin) == Standing::Feasible {
+                return Ok((Some(index), judged));
+            }
+            let report = judge(&self.kept[index].network)?;
+            judged += 1;
+            self.kept[index].judged = Some(Box::new(report));
+            if self.kept[index].standing(threshold, margin) == Standing::Out {
+                self.kept.remove(index);
+            }
+        }
     }
 }
 
@@ -173,6 +288,11 @@ pub struct RoundRecord {
     /// Where in training the returned weights were taken, in epochs (see [`Keep`]; e.g. 24.25 = a
     /// quarter into epoch 25).
     pub selected_epoch: f64,
+    /// Near misses judged by the certify pipeline on the validation data in this round.
+    pub near_misses_judged: usize,
+    /// The returned weights are a near miss: below the threshold by the check's linear bounds,
+    /// proven by the pipeline.
+    pub near_miss: bool,
     /// Clean accuracy on the acceptance data.
     pub clean_accuracy: f64,
     /// Certified accuracy on the acceptance data (certify pipeline, sound).
@@ -224,6 +344,13 @@ pub fn retrain(
         return Err(TrainError::Settings(format!(
             "slack step {} must be a finite number ≥ 0",
             settings.slack_step
+        )));
+    }
+    let near_misses = settings.near_misses;
+    if !(near_misses.margin.is_finite() && (0.0..1.0).contains(&near_misses.margin)) {
+        return Err(TrainError::Settings(format!(
+            "near-miss margin {} must lie in [0, 1)",
+            near_misses.margin
         )));
     }
     let mut constrained = settings.constrained.clone();
@@ -278,34 +405,63 @@ pub fn retrain(
             observer,
             &mut |check: &ValidationCheck, network: &Network| {
                 checks.push(*check);
-                if selecting && check.certified_accuracy >= threshold {
-                    candidates.offer(Candidate {
-                        epoch: check.epoch_position,
-                        certified: check.certified_accuracy,
-                        clean_loss: check.clean_loss,
-                        loss_error: check.clean_loss_error,
-                        network: network.clone(),
-                    });
+                if selecting && check.certified_accuracy >= threshold - near_misses.margin {
+                    candidates.offer(
+                        Candidate {
+                            epoch: check.epoch_position,
+                            certified: check.certified_accuracy,
+                            clean_loss: check.clean_loss,
+                            loss_error: check.clean_loss_error,
+                            network: network.clone(),
+                            judged: None,
+                        },
+                        threshold,
+                    );
                 }
             },
         )?);
         let earliest = settings.keep == Keep::EarliestFeasible;
-        let chosen = candidates.choose(threshold, earliest);
+        let (chosen, judged) = match validation {
+            Some(validation) => {
+                let mut judge = |network: &Network| {
+                    let model = trainable.model_with(network);
+                    let sources = Sources::in_memory(&model, validation);
+                    certify(&model, validation, requirement, &sources, &options)
+                };
+                candidates
+                    .choose(threshold, near_misses, earliest, &mut judge)
+                    .map_err(|e| TrainError::Data(format!("judging a near miss: {e}")))?
+            }
+            None => (None, 0),
+        };
+        let chosen = chosen.map(|i| &candidates.kept[i]);
         let feasible_on_validation = chosen.is_some();
         let (network, selected_epoch) = match chosen {
             Some(best) => (&best.network, best.epoch),
             None => (&state.network, state.epochs_done as f64),
         };
+        let near_miss = chosen.is_some_and(|c| c.certified < threshold);
         let model = trainable.model_with(network);
-        let sources = Sources::in_memory(&model, acceptance);
-        let report = certify(&model, acceptance, requirement, &sources, &options)
-            .map_err(|e| TrainError::Data(format!("certifying the retrained model: {e}")))?;
+        // A judged candidate's validation report is the acceptance verdict when both are the same data.
+        let reusable = chosen
+            .and_then(|c| c.judged.as_deref())
+            .filter(|_| validation == Some(acceptance));
+        let report = match reusable {
+            Some(report) => report.clone(),
+            None => {
+                let sources = Sources::in_memory(&model, acceptance);
+                certify(&model, acceptance, requirement, &sources, &options)
+                    .map_err(|e| TrainError::Data(format!("certifying the retrained model: {e}")))?
+            }
+        };
         let summary = &report.summary;
         rounds.push(RoundRecord {
             round,
             slack,
             epochs: state.epochs_done,
             selected_epoch,
+            near_misses_judged: judged,
+            near_miss,
             clean_accuracy: summary.clean_accuracy,
             certified_accuracy: summary.certified_accuracy,
             empirical_robust_accuracy: summary.empirical_robust_accuracy,
@@ -335,14 +491,37 @@ pub fn retrain(
 mod tests {
     use super::*;
 
-    fn candidate(epoch: f64, certified: f64, clean_loss: f64, loss_error: f64) -> Candidate {
+    impl Judgement for f64 {
+        fn certified(&self) -> f64 {
+            *self
+        }
+    }
+
+    fn candidate(epoch: f64, certified: f64, clean_loss: f64, loss_error: f64) -> Candidate<f64> {
         Candidate {
             epoch,
             certified,
             clean_loss,
             loss_error,
             network: Network { layers: Vec::new() },
+            judged: None,
         }
+    }
+
+    /// The chosen epoch and the judgements used, with a judge that answers `figures` in turn.
+    fn choose(
+        candidates: &mut Candidates<f64>,
+        threshold: f64,
+        near_misses: NearMisses,
+        earliest: bool,
+        figures: &[f64],
+    ) -> (Option<f64>, usize) {
+        let mut answers = figures.iter().copied();
+        let mut judge = |_: &Network| answers.next().ok_or("judged more often than expected");
+        let (index, judged) = candidates
+            .choose(threshold, near_misses, earliest, &mut judge)
+            .expect("the judge has answers");
+        (index.map(|i| candidates.kept[i].epoch), judged)
     }
 
     #[test]
@@ -360,18 +539,110 @@ mod tests {
     #[test]
     fn feasible_epochs_by_lowest_loss_or_by_the_one_standard_error_rule() {
         let mut candidates = Candidates::default();
-        candidates.offer(candidate(3.0, 0.61, 0.50, 0.02)); // far above the best: dropped
-        candidates.offer(candidate(4.0, 0.62, 0.215, 0.02)); // within one error of the best
-        candidates.offer(candidate(5.0, 0.70, 0.20, 0.02)); // the best loss
-        candidates.offer(candidate(6.0, 0.72, 0.23, 0.02)); // within two errors: kept, not chosen
+        let off = NearMisses::OFF;
+        candidates.offer(candidate(3.0, 0.61, 0.50, 0.02), 0.6); // far above the best: dropped
+        candidates.offer(candidate(4.0, 0.62, 0.215, 0.02), 0.6); // within one error of the best
+        candidates.offer(candidate(5.0, 0.70, 0.20, 0.02), 0.6); // the best loss
+        candidates.offer(candidate(6.0, 0.72, 0.23, 0.02), 0.6); // within two errors: kept, not chosen
         let epochs: Vec<f64> = candidates.kept.iter().map(|c| c.epoch).collect();
         assert_eq!(epochs, vec![4.0, 5.0, 6.0]);
-        assert_eq!(candidates.choose(0.6, true).map(|c| c.epoch), Some(4.0));
-        assert_eq!(candidates.choose(0.6, false).map(|c| c.epoch), Some(5.0));
+        assert_eq!(choose(&mut candidates, 0.6, off, true, &[]), (Some(4.0), 0));
+        assert_eq!(
+            choose(&mut candidates, 0.6, off, false, &[]),
+            (Some(5.0), 0)
+        );
         // A higher threshold drops epoch 4 for good; 5 is then the earliest in the window.
-        assert_eq!(candidates.choose(0.65, true).map(|c| c.epoch), Some(5.0));
-        assert_eq!(candidates.choose(0.6, true).map(|c| c.epoch), Some(5.0));
-        assert_eq!(candidates.choose(0.71, false).map(|c| c.epoch), Some(6.0));
-        assert!(candidates.choose(0.8, true).is_none());
+        assert_eq!(
+            choose(&mut candidates, 0.65, off, true, &[]),
+            (Some(5.0), 0)
+        );
+        assert_eq!(choose(&mut candidates, 0.6, off, true, &[]), (Some(5.0), 0));
+        assert_eq!(
+            choose(&mut candidates, 0.71, off, false, &[]),
+            (Some(6.0), 0)
+        );
+        assert_eq!(choose(&mut candidates, 0.8, off, true, &[]), (None, 0));
+    }
+
+    #[test]
+    fn a_near_miss_is_kept_only_when_the_pipeline_proves_the_threshold() {
+        let near = NearMisses {
+            margin: 0.03,
+            tries: 3,
+        };
+        let build = || {
+            let mut candidates = Candidates::default();
+            candidates.offer(candidate(2.0, 0.55, 0.19, 0.02), 0.6); // beyond the margin: never kept
+            candidates.offer(candidate(3.0, 0.585, 0.20, 0.02), 0.6); // a near miss, the lowest loss
+            candidates.offer(candidate(4.0, 0.61, 0.26, 0.02), 0.6); // feasible by its check
+            candidates
+        };
+        let epochs = |c: &Candidates<f64>| c.kept.iter().map(|c| c.epoch).collect::<Vec<_>>();
+        // An open near miss never drops others: epoch 4 lies beyond two errors of epoch 3's loss.
+        assert_eq!(epochs(&build()), vec![2.0, 3.0, 4.0]);
+        // Proven by the pipeline: kept, after one judgement.
+        let mut proven = build();
+        assert_eq!(
+            choose(&mut proven, 0.6, near, false, &[0.603]),
+            (Some(3.0), 1)
+        );
+        assert_eq!(epochs(&proven), vec![3.0, 4.0]);
+        // Proven once, it is not judged again; a higher threshold than its figure drops it.
+        assert_eq!(choose(&mut proven, 0.6, near, true, &[]), (Some(3.0), 0));
+        assert_eq!(choose(&mut proven, 0.605, near, true, &[]), (Some(4.0), 0));
+        assert_eq!(epochs(&proven), vec![4.0]);
+        // Refuted by the pipeline: dropped, and the feasible epoch 4 is kept.
+        let mut refuted = build();
+        assert_eq!(
+            choose(&mut refuted, 0.6, near, false, &[0.59]),
+            (Some(4.0), 1)
+        );
+        assert_eq!(epochs(&refuted), vec![4.0]);
+        // Without tries (or without a margin) a near miss is not judged.
+        let no_tries = NearMisses { tries: 0, ..near };
+        assert_eq!(
+            choose(&mut build(), 0.6, no_tries, false, &[]),
+            (Some(4.0), 0)
+        );
+        assert_eq!(
+            choose(&mut build(), 0.6, NearMisses::OFF, false, &[]),
+            (Some(4.0), 0)
+        );
+    }
+
+    #[test]
+    fn near_misses_are_judged_in_the_rules_order_up_to_the_tries() {
+        let near = NearMisses {
+            margin: 0.05,
+            tries: 2,
+        };
+        let build = || {
+            let mut candidates = Candidates::default();
+            candidates.offer(candidate(3.0, 0.58, 0.20, 0.02), 0.6);
+            candidates.offer(candidate(4.0, 0.57, 0.21, 0.02), 0.6);
+            candidates.offer(candidate(5.0, 0.59, 0.22, 0.02), 0.6);
+            candidates.offer(candidate(6.0, 0.62, 0.23, 0.02), 0.6);
+            candidates
+        };
+        // Lowest loss first: 3 and 4 refuted, the tries are spent, 5 stays unjudged, 6 is kept.
+        assert_eq!(
+            choose(&mut build(), 0.6, near, false, &[0.59, 0.595]),
+            (Some(6.0), 2)
+        );
+        // The second try proves epoch 4.
+        assert_eq!(
+            choose(&mut build(), 0.6, near, false, &[0.59, 0.61]),
+            (Some(4.0), 2)
+        );
+        // One-standard-error rule: the window is 0.20 + 0.02; epoch 3 is the earliest in it.
+        assert_eq!(
+            choose(&mut build(), 0.6, near, true, &[0.6]),
+            (Some(3.0), 1)
+        );
+        // Once 3 is refuted the lowest loss is 4's (window 0.23): 4 is judged next, then kept.
+        assert_eq!(
+            choose(&mut build(), 0.6, near, true, &[0.58, 0.6]),
+            (Some(4.0), 2)
+        );
     }
 }
