@@ -328,9 +328,20 @@ fn tradeoff() {
             rounds: result.rounds.len(),
             seconds,
         };
-        let judged: usize = result.rounds.iter().map(|r| r.near_misses_judged).sum();
+        let judged: Vec<String> = result
+            .rounds
+            .iter()
+            .flat_map(|r| &r.near_misses_judged)
+            .map(|j| {
+                format!(
+                    "{} {:.4}→{:.4}",
+                    j.epoch, j.linear_certified, j.pipeline_certified
+                )
+            })
+            .collect();
+        let judged = judged.join(", ");
         println!(
-            "{}: validation clean {:.4}, certified {:.4}; test clean {:.4}, certified {:.4}; kept epoch {}{}, rounds {}, near misses judged {judged}, {:.1} s",
+            "{}: validation clean {:.4}, certified {:.4}; test clean {:.4}, certified {:.4}; kept epoch {}{}, rounds {}, near misses judged [{judged}], {:.1} s",
             r.label, r.clean, r.certified, r.test_clean, r.test_certified, r.kept_epoch,
             if last.near_miss { " (near miss)" } else { "" }, r.rounds, r.seconds
         );

@@ -198,20 +198,20 @@ impl<J: Judgement> Candidates<J> {
     /// rule's choice among the feasible ones, judging open near misses (`margin` below the
     /// threshold) with `judge` on the way, at most `tries` times: while the rule would pick an open
     /// candidate, it is judged, and the choice is made again. `judge` returns the certify
-    /// pipeline's judgement on the validation data. Returns the index and the number of judgements.
+    /// pipeline's judgement on the validation data. Returns the index and the judgements made.
     fn choose<E>(
         &mut self,
         threshold: f64,
         near_misses: NearMisses,
         earliest: bool,
         judge: &mut dyn FnMut(&Network) -> Result<J, E>,
-    ) -> Result<(Option<usize>, usize), E> {
+    ) -> Result<(Option<usize>, Vec<JudgedNearMiss>), E> {
         let margin = near_misses.margin;
         self.kept
             .retain(|c| c.standing(threshold, margin) != Standing::Out);
-        let mut judged = 0;
+        let mut judged = Vec::new();
         loop {
-            let open_allowed = judged < near_misses.tries;
+            let open_allowed = judged.len() < near_misses.tries;
             let pick = self.rule(earliest, |c| match c.standing(threshold, margin) {
                 Standing::Feasible => true,
                 Standing::Open => open_allowed,
@@ -223,9 +223,14 @@ impl<J: Judgement> Candidates<J> {
             if self.kept[index].standing(threshold, margin) == Standing::Feasible {
                 return Ok((Some(index), judged));
             }
-            let report = judge(&self.kept[index].network)?;
-            judged += 1;
-            self.kept[index].judged = Some(Box::new(report));
+            let candidate = &mut self.kept[index];
+            let judgement = judge(&candidate.network)?;
+            judged.push(JudgedNearMiss {
+                epoch: candidate.epoch,
+                linear_certified: candidate.certified,
+                pipeline_certified: judgement.certified(),
+            });
+            candidate.judged = Some(Box::new(judgement));
             if self.kept[index].standing(threshold, margin) == Standing::Out {
                 self.kept.remove(index);
             }
@@ -288,8 +293,8 @@ pub struct RoundRecord {
     /// Where in training the returned weights were taken, in epochs (see [`Keep`]; e.g. 24.25 = a
     /// quarter into epoch 25).
     pub selected_epoch: f64,
-    /// Near misses judged by the certify pipeline on the validation data in this round.
-    pub near_misses_judged: usize,
+    /// Near misses judged by the certify pipeline on the validation data in this round, in order.
+    pub near_misses_judged: Vec<JudgedNearMiss>,
     /// The returned weights are a near miss: below the threshold by the check's linear bounds,
     /// proven by the pipeline.
     pub near_miss: bool,
@@ -301,6 +306,17 @@ pub struct RoundRecord {
     pub empirical_robust_accuracy: f64,
     /// The pipeline's verdict (`pass`, `fail`, `undecided`).
     pub verdict: Verdict,
+}
+
+/// A near miss judged by the certify pipeline (see [`NearMisses`]).
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct JudgedNearMiss {
+    /// The check's position in epochs.
+    pub epoch: f64,
+    /// Validation certified accuracy by the check's linear bounds.
+    pub linear_certified: f64,
+    /// Validation certified accuracy by the certify pipeline.
+    pub pipeline_certified: f64,
 }
 
 /// The result of [`retrain`].
@@ -432,7 +448,7 @@ pub fn retrain(
                     .choose(threshold, near_misses, earliest, &mut judge)
                     .map_err(|e| TrainError::Data(format!("judging a near miss: {e}")))?
             }
-            None => (None, 0),
+            None => (None, Vec::new()),
         };
         let chosen = chosen.map(|i| &candidates.kept[i]);
         let feasible_on_validation = chosen.is_some();
@@ -521,7 +537,7 @@ mod tests {
         let (index, judged) = candidates
             .choose(threshold, near_misses, earliest, &mut judge)
             .expect("the judge has answers");
-        (index.map(|i| candidates.kept[i].epoch), judged)
+        (index.map(|i| candidates.kept[i].epoch), judged.len())
     }
 
     #[test]
