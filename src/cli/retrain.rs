@@ -563,16 +563,26 @@ fn sheet_markdown(
     for r in &result.rounds {
         let _ = writeln!(
             md,
-            "| {} | {:.3} | {} | {} | {:.4} | {:.4} | {:.4} | {:?} |",
+            "| {} | {:.3} | {} | {}{} | {:.4} | {:.4} | {:.4} | {:?} |",
             r.round,
             r.slack,
             r.epochs,
             r.selected_epoch,
+            if r.near_miss { " (near miss)" } else { "" },
             r.clean_accuracy,
             r.certified_accuracy,
             r.empirical_robust_accuracy,
             r.verdict
         );
+    }
+    for r in &result.rounds {
+        for j in &r.near_misses_judged {
+            let _ = writeln!(
+                md,
+                "\nRound {}: near miss at epoch {} judged by the certify pipeline on the validation data: {:.4} by linear bounds, {:.4} by the pipeline.",
+                r.round, j.epoch, j.linear_certified, j.pipeline_certified
+            );
+        }
     }
     let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
     let _ = writeln!(
