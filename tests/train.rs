@@ -777,6 +777,73 @@ mod primal_dual {
         assert!(records[0].robust_error <= interval_error + 1e-12);
     }
 
+    /// One-round retraining on three classes toward `floor` at L-inf 0.1: 240 training rows, 240
+    /// held-out validation rows (also the acceptance data), 12 primal-dual epochs.
+    struct RetrainSetup {
+        train: Dataset,
+        validation: Dataset,
+        model: ballast::model::Model,
+        requirement: ballast::threat::requirement::Requirement,
+        constrained: ConstrainedSettings,
+    }
+
+    impl RetrainSetup {
+        fn new(floor: f64, checks_per_epoch: usize) -> Self {
+            let train = three_classes(240);
+            let mut validation = three_classes(480);
+            validation.features = validation.features.columns(240, 240).into_owned();
+            validation.labels = validation.labels[240..].to_vec();
+            let model = small_mlp(&train);
+            let mut requirement =
+                ballast::threat::requirement::Requirement::uniform(Norm::Linf, 0.1);
+            requirement.floor = Some(floor);
+            let mut constrained = settings(
+                RobustLoss::Interval,
+                Constraint::RobustError { floor, slack: 0.0 },
+                Formulation::PrimalDual {
+                    dual_step: 0.1,
+                    initial_multiplier: 0.0,
+                    per_class: false,
+                },
+            );
+            constrained.train.epochs = 12;
+            constrained.checks_per_epoch = checks_per_epoch;
+            Self {
+                train,
+                validation,
+                model,
+                requirement,
+                constrained,
+            }
+        }
+
+        fn run(
+            &self,
+            keep: ballast::train::retrain::Keep,
+            near_misses: ballast::train::retrain::NearMisses,
+        ) -> ballast::train::retrain::RetrainResult {
+            let settings = ballast::train::retrain::RetrainSettings {
+                constrained: self.constrained.clone(),
+                round_epochs: 1,
+                max_rounds: 1,
+                slack_step: 0.0,
+                pipeline: ballast::certify::PipelineOptions::default(),
+                keep,
+                near_misses,
+            };
+            ballast::train::retrain::retrain(
+                &self.model,
+                &self.train,
+                Some(&self.validation),
+                &self.validation,
+                &self.requirement,
+                &settings,
+                &mut |_| {},
+            )
+            .expect("retrain runs")
+        }
+    }
+
     // Earliest feasible iterate, the one-standard-error rule (Breiman et al., 1984): among the epochs
     // whose validation certified accuracy reaches the floor, the kept one is the earliest whose
     // validation clean loss is within one standard error of the lowest, and the returned model is
@@ -784,54 +851,11 @@ mod primal_dual {
     // `Keep::BestFeasible` keeps the lowest loss, `Keep::Last` the last epoch.
     #[test]
     fn retrain_keeps_the_best_feasible_iterate() {
-        use ballast::certify::PipelineOptions;
-        use ballast::threat::requirement::Requirement;
         use ballast::train::constrained::certified_accuracy;
-        use ballast::train::retrain::{retrain, Keep, NearMisses, RetrainSettings};
-        let train = three_classes(240);
-        let validation = {
-            let mut v = three_classes(480);
-            v.features = v.features.columns(240, 240).into_owned();
-            v.labels = v.labels[240..].to_vec();
-            v
-        };
-        let model = small_mlp(&train);
-        let mut requirement = Requirement::uniform(Norm::Linf, 0.1);
-        requirement.floor = Some(0.3);
-        let mut constrained = settings(
-            RobustLoss::Interval,
-            Constraint::RobustError {
-                floor: 0.3,
-                slack: 0.0,
-            },
-            Formulation::PrimalDual {
-                dual_step: 0.1,
-                initial_multiplier: 0.0,
-                per_class: false,
-            },
-        );
-        constrained.train.epochs = 12;
-        let run = |keep: Keep| {
-            let retrain_settings = RetrainSettings {
-                constrained: constrained.clone(),
-                round_epochs: 1,
-                max_rounds: 1,
-                slack_step: 0.0,
-                pipeline: PipelineOptions::default(),
-                keep,
-                near_misses: NearMisses::OFF,
-            };
-            retrain(
-                &model,
-                &train,
-                Some(&validation),
-                &validation,
-                &requirement,
-                &retrain_settings,
-                &mut |_| {},
-            )
-            .expect("retrain runs")
-        };
+        use ballast::train::retrain::{Keep, NearMisses};
+        let setup = RetrainSetup::new(0.3, 1);
+        let validation = &setup.validation;
+        let run = |keep: Keep| setup.run(keep, NearMisses::OFF);
         let best = run(Keep::EarliestFeasible);
         let kept = best.rounds[0].selected_epoch;
         let feasible: Vec<_> = best
@@ -859,7 +883,7 @@ mod primal_dual {
         let recomputed = certified_accuracy(
             &trainable,
             &trainable.network,
-            &validation,
+            validation,
             &Budget::uniform(Norm::Linf, 0.1, 2), // the requirement's budget replaces the settings'
             &Targets::Any,
         )
@@ -882,52 +906,10 @@ mod primal_dual {
     // rule the candidates only grow, so the kept validation loss cannot rise.
     #[test]
     fn retrain_near_misses_are_proven_before_they_are_kept() {
-        use ballast::certify::PipelineOptions;
-        use ballast::threat::requirement::Requirement;
-        use ballast::train::retrain::{retrain, Keep, NearMisses, RetrainSettings};
-        let train = three_classes(240);
-        let validation = {
-            let mut v = three_classes(480);
-            v.features = v.features.columns(240, 240).into_owned();
-            v.labels = v.labels[240..].to_vec();
-            v
-        };
-        let model = small_mlp(&train);
+        use ballast::train::retrain::{Keep, NearMisses};
         let floor = 0.56;
-        let mut requirement = Requirement::uniform(Norm::Linf, 0.1);
-        requirement.floor = Some(floor);
-        let mut constrained = settings(
-            RobustLoss::Interval,
-            Constraint::RobustError { floor, slack: 0.0 },
-            Formulation::PrimalDual {
-                dual_step: 0.1,
-                initial_multiplier: 0.0,
-                per_class: false,
-            },
-        );
-        constrained.train.epochs = 12;
-        constrained.checks_per_epoch = 2;
-        let run = |near_misses: NearMisses| {
-            let retrain_settings = RetrainSettings {
-                constrained: constrained.clone(),
-                round_epochs: 1,
-                max_rounds: 1,
-                slack_step: 0.0,
-                pipeline: PipelineOptions::default(),
-                keep: Keep::BestFeasible,
-                near_misses,
-            };
-            retrain(
-                &model,
-                &train,
-                Some(&validation),
-                &validation,
-                &requirement,
-                &retrain_settings,
-                &mut |_| {},
-            )
-            .expect("retrain runs")
-        };
+        let setup = RetrainSetup::new(floor, 2);
+        let run = |near_misses: NearMisses| setup.run(Keep::BestFeasible, near_misses);
         let loss_at = |result: &ballast::train::retrain::RetrainResult| {
             let kept = result.rounds[0].selected_epoch;
             result
