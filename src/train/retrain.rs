@@ -392,6 +392,15 @@ pub fn retrain(
         label_column: "label".into(),
         ..CertifyOptions::default()
     };
+    let certify_on = |model: &Model, data: &Dataset| {
+        certify(
+            model,
+            data,
+            requirement,
+            &Sources::in_memory(model, data),
+            &options,
+        )
+    };
     for round in 1..=settings.max_rounds {
         let count = if round == 1 {
             constrained.train.epochs
@@ -439,11 +448,8 @@ pub fn retrain(
         let earliest = settings.keep == Keep::EarliestFeasible;
         let (chosen, judged) = match validation {
             Some(validation) => {
-                let mut judge = |network: &Network| {
-                    let model = trainable.model_with(network);
-                    let sources = Sources::in_memory(&model, validation);
-                    certify(&model, validation, requirement, &sources, &options)
-                };
+                let mut judge =
+                    |network: &Network| certify_on(&trainable.model_with(network), validation);
                 candidates
                     .choose(threshold, near_misses, earliest, &mut judge)
                     .map_err(|e| TrainError::Data(format!("judging a near miss: {e}")))?
@@ -464,11 +470,8 @@ pub fn retrain(
             .filter(|_| validation == Some(acceptance));
         let report = match reusable {
             Some(report) => report.clone(),
-            None => {
-                let sources = Sources::in_memory(&model, acceptance);
-                certify(&model, acceptance, requirement, &sources, &options)
-                    .map_err(|e| TrainError::Data(format!("certifying the retrained model: {e}")))?
-            }
+            None => certify_on(&model, acceptance)
+                .map_err(|e| TrainError::Data(format!("certifying the retrained model: {e}")))?,
         };
         let summary = &report.summary;
         rounds.push(RoundRecord {
