@@ -414,9 +414,15 @@ mod retraining {
 
     // End to end: after `ballast retrain --floor F`, either the exit code says "not met" or sound
     // bounds (bound/, computed here independently of the trainer) certify at least F of the acceptance
-    // data.
+    // data. Run with the default formulation and with the normalised robust gradient.
     #[test]
     fn retrain_meets_the_floor_or_says_it_did_not() {
+        for extra in [&[][..], &["--normalise-robust", "--dual-step", "1"][..]] {
+            retrain_blobs_and_check(extra);
+        }
+    }
+
+    fn retrain_blobs_and_check(extra: &[&str]) {
         let dir = tempfile::tempdir().expect("temp dir");
         let model_path = dir.path().join("start.json");
         std::fs::write(
@@ -431,9 +437,10 @@ mod retraining {
         std::fs::write(&train, blobs(400, 1)).expect("write");
         std::fs::write(&acceptance, blobs(200, 2)).expect("write");
         let out = dir.path().join("retrained.json");
-        let floor = 0.56;
+        let floor = 0.85;
         let eps = 0.3;
-        let cli = Cli::parse_from([
+        let (floor_text, eps_text) = (floor.to_string(), eps.to_string());
+        let mut args = vec![
             "ballast",
             "retrain",
             "--model",
@@ -443,9 +450,9 @@ mod retraining {
             "--acceptance",
             acceptance.to_str().unwrap(),
             "--eps",
-            "0.3",
+            &eps_text,
             "--floor",
-            "0.85",
+            &floor_text,
             "--hidden",
             "8",
             "--epochs",
@@ -456,8 +463,9 @@ mod retraining {
             "3",
             "--out",
             out.to_str().unwrap(),
-        ]);
-        let outcome = run(cli).expect("retrain runs");
+        ];
+        args.extend(extra);
+        let outcome = run(Cli::parse_from(args)).expect("retrain runs");
         let model = Model::load(&out).expect("retrained model written");
         let provenance = model.provenance.as_ref().expect("provenance");
         assert_eq!(
@@ -466,7 +474,15 @@ mod retraining {
                 .expect("digest"),
             ballast::digest::sha256_file(&model_path).expect("digest")
         );
+        let normalised = extra.contains(&"--normalise-robust");
+        assert_eq!(
+            provenance["retrain"]["settings"]["constrained"]["normalise_robust_gradient"],
+            serde_json::Value::Bool(normalised),
+            "{provenance}"
+        );
         let folder = dir.path().join("retrained.retrain");
+        let sheet = std::fs::read_to_string(folder.join("retrain.md")).expect("sheet");
+        assert_eq!(sheet.contains("robust gradient normalised"), normalised);
         let log = std::fs::read_to_string(folder.join("log.csv")).expect("log");
         assert!(log.lines().count() >= 13, "{log}");
         // Four validation checks per epoch (the default) on the held-out part of the training rows.
@@ -479,7 +495,6 @@ mod retraining {
         assert!(std::fs::read_to_string(folder.join("accuracy.svg"))
             .expect("svg")
             .contains("<polyline"));
-        assert!(folder.join("retrain.md").is_file());
         let data = load_csv(&acceptance, &model, &DataOptions::default()).expect("acceptance");
         let network = model.classifier();
         let budget = Budget::uniform(Norm::Linf, eps, 2);
