@@ -83,8 +83,6 @@ fn constrained_settings(
         checks_per_epoch: env_or("BALLAST_BENCH_CHECKS", 16usize),
         // `BALLAST_BENCH_FINAL_RATE` sets the step-size factor reached at the end of the first round.
         final_rate_factor: env_or("BALLAST_BENCH_FINAL_RATE", 0.1),
-        // `BALLAST_BENCH_NORMALISE=1` rescales the robust gradient to the clean gradient's norm.
-        normalise_robust_gradient: env_or("BALLAST_BENCH_NORMALISE", 0u8) == 1,
     }
 }
 
@@ -352,8 +350,7 @@ fn tradeoff() {
     // `BALLAST_BENCH_FLOORS` and `BALLAST_BENCH_PENALTIES` (comma lists, empty for none) pick the runs.
     for floor in env_list("BALLAST_BENCH_FLOORS", &[0.6, 0.7, 0.8, 0.9]) {
         let formulation = Formulation::PrimalDual {
-            // `BALLAST_BENCH_DUAL_STEP` overrides the dual step size.
-            dual_step: env_or("BALLAST_BENCH_DUAL_STEP", 0.05),
+            dual_step: 0.05,
             initial_multiplier: 0.0,
             per_class: false,
         };

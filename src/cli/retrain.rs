@@ -118,10 +118,6 @@ pub struct Args {
     /// Dual step size of the multiplier update.
     #[arg(long, default_value_t = 0.05)]
     pub dual_step: f64,
-    /// Rescale each batch's robust gradient to the clean gradient's norm before the multiplier
-    /// weighs it, so λ = 1 pulls as hard as the clean loss (a --dual-step near 1 suits it).
-    #[arg(long)]
-    pub normalise_robust: bool,
     /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
     #[arg(long)]
     pub hidden: Option<String>,
@@ -351,7 +347,6 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             gap_correction: true,
             checks_per_epoch: args.checks_per_epoch,
             final_rate_factor: args.final_rate,
-            normalise_robust_gradient: args.normalise_robust,
         },
         round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
         max_rounds: args.max_rounds,
@@ -552,7 +547,7 @@ fn sheet_markdown(
     let _ = writeln!(md, "- parent model: `{}`", args.model.display());
     let _ = writeln!(md, "- retrained model: `{}`", args.out.display());
     let _ = writeln!(md, "- requirement (floor {floor}): {requirement}");
-    let mut formulation = match args.penalty {
+    let formulation = match args.penalty {
         Some(w) => format!("fixed penalty weight {w}"),
         None => format!(
             "primal-dual (dual step {}{})",
@@ -560,9 +555,6 @@ fn sheet_markdown(
             if args.per_class { ", per class" } else { "" }
         ),
     };
-    if args.normalise_robust {
-        formulation.push_str(", robust gradient normalised to the clean gradient's norm");
-    }
     let _ = writeln!(md, "- loss: {}, {formulation}", args.loss);
     let _ = writeln!(md, "- acceptance samples: {acceptance}");
     let _ = writeln!(md, "- verdict: {verdict}\n");

@@ -251,7 +251,6 @@ pub fn retrain_settings(
             gap_correction: true,
             checks_per_epoch: 4,
             final_rate_factor: 1.0,
-            normalise_robust_gradient: false,
         },
         round_epochs: if quick { 1 } else { 20 },
         max_rounds: if quick { 1 } else { 3 },

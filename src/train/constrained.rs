@@ -118,10 +118,6 @@ pub struct ConstrainedSettings {
     /// rate is held through the epsilon ramp, then decays linearly to this fraction of the configured
     /// rate by the last of those epochs and stays there (later rounds); 1 keeps it constant.
     pub final_rate_factor: f64,
-    /// Rescale the robust gradient of every batch to the clean gradient's norm before the
-    /// multipliers weigh it (see [`robust_term_scale`]), so that `λ = 1` pulls as hard as the clean
-    /// loss does whatever the bound's gradient size; off: `λ` weighs the robust loss as it is.
-    pub normalise_robust_gradient: bool,
 }
 
 /// One validation measurement during training (see [`ConstrainedSettings::checks_per_epoch`]).
@@ -447,12 +443,7 @@ pub fn train_constrained_epochs_with_checks(
             } else {
                 robust.errors.clone()
             };
-            let robust_scale = if settings.normalise_robust_gradient {
-                robust_term_scale(&gradient, &robust.gradient, &weights)
-            } else {
-                1.0
-            };
-            add_scaled(&mut gradient, &robust.gradient, robust_scale);
+            add_scaled(&mut gradient, &robust.gradient, 1.0);
             let rate = rate_factor(
                 step,
                 ramp_steps,
@@ -567,30 +558,6 @@ pub fn train_constrained_epochs_with_checks(
         records.push(record);
     }
     Ok(records)
-}
-
-/// The factor applied to a batch's weighted robust gradient `Σ_s w_s ∇ℓ_s / B` when it is
-/// normalised: `‖∇clean‖ · w̄ / ‖weighted robust gradient‖` with `w̄` the mean sample weight, so the
-/// added term has norm `w̄ · ‖∇clean‖` (one global multiplier: exactly `λ · ‖∇clean‖`). A positive
-/// per-batch factor does not move the stationary points of the Lagrangian, only the units of `λ`.
-/// 0 when the robust gradient vanishes (nothing to scale).
-fn robust_term_scale(clean: &Network, weighted_robust: &Network, weights: &[f64]) -> f64 {
-    let robust_norm = parameter_norm(weighted_robust);
-    if robust_norm == 0.0 || weights.is_empty() {
-        return 0.0;
-    }
-    let mean_weight = weights.iter().sum::<f64>() / weights.len() as f64;
-    parameter_norm(clean) * mean_weight / robust_norm
-}
-
-/// Euclidean norm of all weights and biases of `network` (a gradient, here).
-fn parameter_norm(network: &Network) -> f64 {
-    network
-        .layers
-        .iter()
-        .map(|l| l.weights.norm_squared() + l.bias.norm_squared())
-        .sum::<f64>()
-        .sqrt()
 }
 
 /// The step-size factor of 1-based `step`: 1 through the ramp's `ramp_steps`, then linear down to
@@ -719,27 +686,6 @@ mod tests {
         // A ramp as long as training (or longer) leaves the rate alone until the end.
         assert_eq!(rate_factor(29, 30, 30, 0.1), 1.0);
         assert_eq!(rate_factor(5, 0, 30, 1.0), 1.0);
-    }
-
-    fn two_parameters(w: f64, b: f64) -> Network {
-        Network::new(vec![crate::model::Dense {
-            weights: DMatrix::from_element(1, 1, w),
-            bias: nalgebra::DVector::from_element(1, b),
-        }])
-    }
-
-    #[test]
-    fn a_normalised_robust_term_has_the_clean_gradients_norm_times_the_mean_weight() {
-        let clean = two_parameters(3.0, 4.0); // norm 5
-        let robust = two_parameters(0.0, 200.0); // norm 200
-        let weights = [0.2, 0.4]; // mean 0.3
-        let scale = robust_term_scale(&clean, &robust, &weights);
-        assert_relative_eq!(scale * parameter_norm(&robust), 0.3 * 5.0, epsilon = 1e-12);
-        // A vanishing robust gradient (λ = 0, or every sample far from its bound) adds nothing.
-        assert_eq!(
-            robust_term_scale(&clean, &two_parameters(0.0, 0.0), &weights),
-            0.0
-        );
     }
 
     #[test]
