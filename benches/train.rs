@@ -274,9 +274,10 @@ fn tradeoff() {
             } else {
                 Keep::EarliestFeasible
             },
-            // `BALLAST_BENCH_NEAR_MISS` (margin, default 0 = off) and `_NEAR_MISS_TRIES` (default 3).
+            // `BALLAST_BENCH_NEAR_MISS`: near-miss margin (default 0.03; 0 = off);
+            // `BALLAST_BENCH_NEAR_MISS_TRIES`: pipeline runs per round (default 3).
             near_misses: NearMisses {
-                margin: env_or("BALLAST_BENCH_NEAR_MISS", 0.0),
+                margin: env_or("BALLAST_BENCH_NEAR_MISS", 0.03),
                 tries: env_or("BALLAST_BENCH_NEAR_MISS_TRIES", 3usize),
             },
         };
