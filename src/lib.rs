@@ -13,6 +13,7 @@ pub mod cli;
 pub mod data;
 pub mod demo;
 pub mod digest;
+pub mod engine;
 pub mod limits;
 pub mod model;
 pub mod search;

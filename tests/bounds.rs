@@ -8,7 +8,7 @@
 use std::path::Path;
 
 use ballast::bound::{
-    self, interval, linear, lp, optimised, Domain, LayerBounds, MarginBounds, Method, ReluSplit,
+    self, interval, linear, optimised, Domain, LayerBounds, MarginBounds, Method, ReluSplit,
     SplitState, CERTIFY_TOLERANCE,
 };
 use ballast::data::{load_csv, DataOptions};
@@ -252,8 +252,7 @@ fn all_points(
 /// Soundness property test (common practice for bound code): no sampled or attacked point of the
 /// region has a margin below any method's bound, for random networks of depth 1–4, both norms,
 /// per-feature radii with zeros and sometimes-binding input ranges. Also checks the ordering
-/// interval ≤ linear ≤ optimised ≤ LP (L-inf; for L2 the LP is only guaranteed ≥ linear) and that the LP is
-/// ≤ the smallest margin found.
+/// interval ≤ linear ≤ optimised and that every bound is ≤ the smallest margin found.
 #[test]
 fn bounds_are_sound_and_ordered_on_random_networks() {
     let mut rng = ChaCha8Rng::seed_from_u64(7);
@@ -269,14 +268,8 @@ fn bounds_are_sound_and_ordered_on_random_networks() {
         let label = ballast::model::predicted_class(network.forward(&region.center).as_slice());
         let targets: Vec<usize> = (0..classes).filter(|j| *j != label).collect();
         let mut results = Vec::new();
-        for method in [
-            Method::Interval,
-            Method::Linear,
-            Method::OptimisedLinear,
-            Method::Lp,
-        ] {
+        for method in [Method::Interval, Method::Linear, Method::OptimisedLinear] {
             let options = optimised::SlopeOptions {
-                stop_when_certified: false,
                 ..Default::default()
             };
             let result = if method == Method::OptimisedLinear {
@@ -298,21 +291,14 @@ fn bounds_are_sound_and_ordered_on_random_networks() {
             let (smallest, admitted) =
                 check_sound(&network, &region, label, result, &points, None, &context);
             checked_points += admitted;
-            if result.method == Method::Lp {
-                for t in 0..targets.len() {
-                    assert!(result.lower[t] <= smallest[t] + CERTIFY_TOLERANCE);
-                }
+            for t in 0..targets.len() {
+                assert!(result.lower[t] <= smallest[t]);
             }
         }
         for t in 0..targets.len() {
-            let [i, l, o, p] = [0, 1, 2, 3].map(|m| results[m].lower[t]);
-            let slack = 1e-7 * (1.0 + p.abs());
-            assert!(i <= l + slack, "case {case}: interval {i} > linear {l}");
-            assert!(l <= o + slack, "case {case}: linear {l} > optimised {o}");
-            assert!(l <= p + slack, "case {case}: linear {l} > LP {p}");
-            if norm == Norm::Linf {
-                assert!(o <= p + slack, "case {case}: optimised {o} > LP {p}");
-            }
+            let [i, l, o] = [0, 1, 2].map(|m| results[m].lower[t]);
+            assert!(i <= l, "case {case}: interval {i} > linear {l}");
+            assert!(l <= o, "case {case}: linear {l} > optimised {o}");
             if l > 0.0 {
                 positive_bounds += 1;
             }
@@ -387,16 +373,10 @@ fn bounds_are_sound_under_split_constraints() {
             points.push(x);
         }
         let mut results = Vec::new();
-        for method in [
-            Method::Interval,
-            Method::Linear,
-            Method::OptimisedLinear,
-            Method::Lp,
-        ] {
+        for method in [Method::Interval, Method::Linear, Method::OptimisedLinear] {
             let constrained = if method == Method::OptimisedLinear {
                 let options = optimised::SlopeOptions {
                     iterations: 40,
-                    stop_when_certified: false,
                     ..Default::default()
                 };
                 optimised::margin_lower_bounds(
@@ -478,12 +458,7 @@ fn splits_clip_bounds_and_detect_empty_domains() {
     let active = free.with(0, 0, ReluSplit::Active);
     let inactive = free.with(0, 0, ReluSplit::Inactive);
     let impossible = free.with(0, 1, ReluSplit::Inactive); // unit 1 is in [4, 6]
-    for method in [
-        Method::Interval,
-        Method::Linear,
-        Method::OptimisedLinear,
-        Method::Lp,
-    ] {
+    for method in [Method::Interval, Method::Linear, Method::OptimisedLinear] {
         let a =
             bound::margin_lower_bounds(&network, &region, 0, &[1], method, Some(&active)).unwrap();
         assert!(a.pre_activation[0].lower[0] >= 0.0);
@@ -535,7 +510,7 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
                 radii: radii.clone(),
             }
             .region(&center, &unbounded.0, &unbounded.1);
-            for method in [Method::Linear, Method::OptimisedLinear, Method::Lp] {
+            for method in [Method::Linear, Method::OptimisedLinear] {
                 let result =
                     bound::margin_lower_bounds(&network, &region, label, &targets, method, None)
                         .unwrap();
@@ -555,7 +530,7 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
                             .sqrt(),
                     };
                     let expected = at_center - penalty;
-                    let tolerance = if method == Method::Lp { 1e-7 } else { 1e-9 };
+                    let tolerance = 1e-9;
                     assert!(
                         (result.lower[t] - expected).abs() <= tolerance * (1.0 + expected.abs()),
                         "case {case} {norm} {method:?}: {} vs closed form {expected}",
@@ -564,12 +539,10 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
                     // The minimiser attains the bound (common practice: the dual-norm optimum is attained).
                     let x = result.minimisers[t].as_ref().unwrap();
                     assert!(region.contains(x));
-                    if method != Method::Lp {
-                        assert!(
-                            (margin(&network, x, label, j) - expected).abs()
-                                < 1e-8 * (1.0 + expected.abs())
-                        );
-                    }
+                    assert!(
+                        (margin(&network, x, label, j) - expected).abs()
+                            < 1e-8 * (1.0 + expected.abs())
+                    );
                 }
             }
             if norm == Norm::Linf {
@@ -609,12 +582,7 @@ fn binary_single_logit_models_use_the_classifier_form() {
     }]);
     let region = Budget::uniform(Norm::Linf, 0.1, 2).region(&[1.0, 1.0], &[0.0, 0.0], &[1.05, 1.0]);
     // z at centre = 1.5; box: x0 ∈ [0.9, 1.05], x1 ∈ [0.9, 1.0]: min z = 1.8 − 1.0 + 0.5 = 1.3.
-    for method in [
-        Method::Interval,
-        Method::Linear,
-        Method::OptimisedLinear,
-        Method::Lp,
-    ] {
+    for method in [Method::Interval, Method::Linear, Method::OptimisedLinear] {
         let class_one =
             bound::margin_lower_bounds(&network, &region, 1, &[0], method, None).unwrap();
         assert!(
@@ -638,12 +606,7 @@ fn bad_arguments_are_errors() {
     let network = random_network(&mut rng, 2, 3, 3);
     let region = random_region(&mut rng, 3, Norm::Linf);
     let wrong = random_region(&mut rng, 4, Norm::Linf);
-    for method in [
-        Method::Interval,
-        Method::Linear,
-        Method::OptimisedLinear,
-        Method::Lp,
-    ] {
+    for method in [Method::Interval, Method::Linear, Method::OptimisedLinear] {
         let call = |r: &Region, label: usize, targets: &[usize], s: Option<&SplitState>| {
             bound::margin_lower_bounds(&network, r, label, targets, method, s)
         };
@@ -680,7 +643,6 @@ fn bad_arguments_are_errors() {
         lower: vec![0.0],
         upper: vec![1.0],
     }];
-    assert!(lp::margin_lower_bounds_from(&network, &region, 0, &[1], &given, None).is_err());
     assert!(linear::margin_lower_bounds_from(&network, &region, 0, &[1], &given, None).is_err());
 }
 
@@ -728,7 +690,6 @@ fn batch_bounds_agree_with_single_sample_bounds() {
             interval::batch_margin_lower_bounds(&network, &regions, &labels, &targets).unwrap();
         let batch_linear =
             linear::batch_margin_lower_bounds(&network, &regions, &labels, &targets).unwrap();
-        assert!(batch_linear.multiply_adds > 0);
         for s in 0..rows.len() {
             let single_interval =
                 interval::margin_lower_bounds(&network, &regions[s], labels[s], &targets[s], None)
@@ -788,10 +749,11 @@ struct LpSample {
 
 /// Outside reference: tests/reference/lp_reference.py solves the triangle-relaxation LP on numpy interval
 /// bounds with scipy.optimize.linprog (HiGHS) for the first 100 digits test rows at L-inf ε ∈ {0.01, 0.02,
-/// 0.05} (tests/reference/out/lp_digits.json). ballast's interval bounds must equal numpy's, its LP on those
-/// bounds must match HiGHS within 1e-6 (relative), and the certified counts must match.
+/// 0.05} (tests/reference/out/lp_digits.json). ballast's interval bounds must equal numpy's; on a one-hidden-
+/// layer network its linear bound on the same intermediate bounds is a feasible point of that LP's dual, so
+/// it never exceeds the HiGHS optimum and never certifies more samples.
 #[test]
-fn lp_matches_scipy_highs_on_digits() {
+fn linear_bounds_stay_below_scipy_highs_lp_on_digits() {
     let text = std::fs::read_to_string("tests/reference/out/lp_digits.json").unwrap();
     let reference: LpReference = serde_json::from_str(&text).unwrap();
     assert!((reference.certify_tolerance - CERTIFY_TOLERANCE).abs() < 1e-15);
@@ -820,7 +782,7 @@ fn lp_matches_scipy_highs_on_digits() {
                 lower: sample.lower.clone(),
                 upper: sample.upper.clone(),
             }];
-            let result = lp::margin_lower_bounds_from(
+            let result = linear::margin_lower_bounds_from(
                 &network,
                 &region,
                 sample.label,
@@ -830,21 +792,21 @@ fn lp_matches_scipy_highs_on_digits() {
             )
             .unwrap();
             for (t, expected) in sample.values.iter().enumerate() {
-                let got = result.lower[t];
                 assert!(
-                    (got - expected).abs() <= 1e-6 * (1.0 + expected.abs()),
-                    "eps {} row {} target {}: ballast {got}, HiGHS {expected}",
+                    result.lower[t] <= *expected + 1e-7 * (1.0 + expected.abs()),
+                    "eps {} row {} target {}: linear {} above the LP optimum {expected}",
                     case.epsilon,
                     sample.row,
-                    sample.targets[t]
+                    sample.targets[t],
+                    result.lower[t]
                 );
             }
             if result.certified() {
                 certified += 1;
             }
         }
-        assert_eq!(
-            certified, case.certified,
+        assert!(
+            certified <= case.certified,
             "certified count at eps {}",
             case.epsilon
         );
@@ -932,12 +894,7 @@ fn bounds_hold_for_layout_models_with_normalize_and_one_logit() {
         let other = 1 - label;
         let mut points = sample_points(&mut rng, &region, 400);
         points.extend(attack(&classifier, &region, label, other, &center));
-        for method in [
-            Method::Interval,
-            Method::Linear,
-            Method::OptimisedLinear,
-            Method::Lp,
-        ] {
+        for method in [Method::Interval, Method::Linear, Method::OptimisedLinear] {
             let result =
                 bound::margin_lower_bounds(&network, &region, label, &[other], method, None)
                     .unwrap();

@@ -19,12 +19,11 @@
 //! Xu et al., 2021) and [`lp`] (triangle relaxation, Ehlers, 2017). Minimising a linear function over a
 //! region lives in [`concretise`]; the LP solver sits behind the narrow seam in `solver`.
 
+mod batch;
 pub mod concretise;
 pub mod interval;
 pub mod linear;
-pub mod lp;
 pub mod optimised;
-mod solver;
 
 use std::borrow::Cow;
 
@@ -46,10 +45,9 @@ pub enum Method {
     Interval,
     /// Backward linear relaxation with adaptive lower slopes.
     Linear,
-    /// Linear relaxation with lower slopes optimised by projected gradient ascent.
+    /// Linear relaxation with lower slopes (and split multipliers) optimised by projected gradient
+    /// ascent.
     OptimisedLinear,
-    /// LP with the triangle relaxation of every unstable ReLU, on linear-relaxation intermediate bounds.
-    Lp,
 }
 
 impl Method {
@@ -59,7 +57,6 @@ impl Method {
             Method::Interval => "interval",
             Method::Linear => "linear",
             Method::OptimisedLinear => "optimised_linear",
-            Method::Lp => "lp",
         }
     }
 }
@@ -325,7 +322,6 @@ pub fn margin_lower_bounds(
             splits,
             &optimised::SlopeOptions::default(),
         ),
-        Method::Lp => lp::margin_lower_bounds(network, region, label, targets, splits),
     }
 }
 
@@ -466,37 +462,4 @@ pub(crate) fn validate_sample(
         }
     }
     Ok(())
-}
-
-/// Relative slack under which a clipped interval with `lower > upper` is treated as rounding noise
-/// (the interval is kept, widened to `[upper, lower]`) instead of an empty domain.
-const EMPTY_SLACK: f64 = 1e-9;
-
-/// Applies the split constraints of one hidden layer to its bounds, then checks every unit: an interval
-/// with `lower > upper` beyond rounding slack means no domain input exists (the bounds hold for every
-/// domain input). Returns the first such unit, if any.
-pub(crate) fn clip_to_splits(
-    bounds: &mut LayerBounds,
-    splits: Option<&[ReluSplit]>,
-) -> Option<usize> {
-    if let Some(splits) = splits {
-        for (i, split) in splits.iter().enumerate() {
-            match split {
-                ReluSplit::Free => {}
-                ReluSplit::Active => bounds.lower[i] = bounds.lower[i].max(0.0),
-                ReluSplit::Inactive => bounds.upper[i] = bounds.upper[i].min(0.0),
-            }
-        }
-    }
-    for i in 0..bounds.len() {
-        let (l, u) = (bounds.lower[i], bounds.upper[i]);
-        if l > u {
-            if l - u > EMPTY_SLACK * (1.0 + l.abs() + u.abs()) {
-                return Some(i);
-            }
-            bounds.lower[i] = u;
-            bounds.upper[i] = l;
-        }
-    }
-    None
 }

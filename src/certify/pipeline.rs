@@ -69,7 +69,7 @@ impl Default for PipelineOptions {
             budget_seconds: 0.0,
             seed: 0,
             radius: false,
-            methods: vec![Method::Linear, Method::OptimisedLinear, Method::Lp],
+            methods: vec![Method::Linear, Method::OptimisedLinear],
             attack: true,
         }
     }
@@ -95,7 +95,6 @@ fn stage_of(method: Method) -> Stage {
         Method::Interval => Stage::Interval,
         Method::Linear => Stage::Linear,
         Method::OptimisedLinear => Stage::OptimisedLinear,
-        Method::Lp => Stage::Lp,
     }
 }
 
@@ -556,14 +555,7 @@ fn bounds_certify(
         &model.input.upper,
     );
     let mut methods = vec![Method::Interval];
-    methods.extend(
-        context
-            .options
-            .methods
-            .iter()
-            .copied()
-            .filter(|m| *m != Method::Lp),
-    );
+    methods.extend(context.options.methods.iter().copied());
     for method in methods {
         match bound::margin_lower_bounds(&context.network, &region, label, forbidden, method, None)
         {

@@ -59,7 +59,7 @@ pub enum Stage {
     Linear,
     /// Linear relaxation with optimised slopes.
     OptimisedLinear,
-    /// LP relaxation.
+    /// The LP relaxation stage of earlier versions (read from their reports; no longer run).
     Lp,
     /// Branch and bound.
     Search,

@@ -4,10 +4,17 @@
 //! are composed into their neighbours, runs of affine maps are multiplied out, and a ReLU at either end gets
 //! an identity map beside it. All later stages (attack, bounds, search, training) work on this form.
 //! Batches are matrices with **one column per sample**.
+//!
+//! Folding is done in f64 and so changes the function slightly; every folded layer carries a
+//! [`FoldError`]: entrywise bounds on the difference between the stored and the exact (real-number)
+//! weights and biases, from the standard error model of each product (Higham, *Accuracy and Stability
+//! of Numerical Algorithms*, §3.1). Sound bounds add it ([`crate::engine`]); layers copied unchanged
+//! from the model file are exact (`None`).
 
 use nalgebra::{DMatrix, DVector};
 
 use super::layout::{Layer, Model};
+use crate::engine::rounding::{gamma, UNIT_ROUNDOFF_F64};
 
 /// An affine map `x ↦ W x + b` with `W` of shape out × in.
 #[derive(Debug, Clone, PartialEq)]
@@ -60,11 +67,24 @@ impl Dense {
     }
 }
 
+/// Entrywise bounds on how far a stored (folded) affine map is from the exact one the model file
+/// describes: `|W_exact − W| ≤ weights`, `|b_exact − b| ≤ bias`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FoldError {
+    /// Bound per weight (out × in, non-negative).
+    pub weights: DMatrix<f64>,
+    /// Bound per bias entry (non-negative).
+    pub bias: DVector<f64>,
+}
+
 /// A ReLU network in canonical form: `layers[0]`, ReLU, `layers[1]`, ReLU, …, `layers[last]`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Network {
     /// The affine maps; a ReLU sits between every consecutive pair, none after the last.
     pub layers: Vec<Dense>,
+    /// Per layer, how far it may be from the model's exact layer (`None` = exact); empty when every
+    /// layer is exact.
+    pub fold_error: Vec<Option<FoldError>>,
 }
 
 impl Network {
@@ -81,7 +101,15 @@ impl Network {
                 "layer sizes must chain"
             );
         }
-        Network { layers }
+        Network {
+            layers,
+            fold_error: Vec::new(),
+        }
+    }
+
+    /// The fold error of layer `k` (`None` when exact).
+    pub fn fold_error_of(&self, k: usize) -> Option<&FoldError> {
+        self.fold_error.get(k).and_then(Option::as_ref)
     }
 
     /// Input size.
@@ -167,7 +195,16 @@ impl Network {
         let mut bias = DVector::zeros(2);
         bias[1] = last.bias[0];
         *last = Dense { weights, bias };
-        Network { layers }
+        let mut fold_error = self.fold_error.clone();
+        let k = layers.len() - 1;
+        if let Some(Some(e)) = fold_error.get_mut(k) {
+            let mut weights = DMatrix::zeros(2, inputs);
+            weights.row_mut(1).copy_from(&e.weights.row(0));
+            let mut bias = DVector::zeros(2);
+            bias[1] = e.bias[0];
+            *e = FoldError { weights, bias };
+        }
+        Network { layers, fold_error }
     }
 }
 
@@ -256,8 +293,8 @@ impl Model {
 }
 
 fn fold_layers(input_dim: usize, layers: &[Layer]) -> Network {
-    let mut done: Vec<Dense> = Vec::new();
-    let mut pending: Option<Dense> = None;
+    let mut done: Vec<Folded> = Vec::new();
+    let mut pending: Option<Folded> = None;
     let mut width = input_dim;
     let mut last_was_relu = false;
     for layer in layers {
@@ -268,7 +305,12 @@ fn fold_layers(input_dim: usize, layers: &[Layer]) -> Network {
                     std: std.clone(),
                 }
                 .as_dense();
-                pending = Some(compose(pending, map));
+                // One rounding per entry: 1/std, and mean/std.
+                let error = FoldError {
+                    weights: map.weights.abs() * (2.0 * UNIT_ROUNDOFF_F64),
+                    bias: map.bias.abs() * (2.0 * UNIT_ROUNDOFF_F64),
+                };
+                pending = Some(compose(pending, (map, Some(error))));
                 last_was_relu = false;
             }
             Layer::Dense { weights, bias } => {
@@ -277,25 +319,70 @@ fn fold_layers(input_dim: usize, layers: &[Layer]) -> Network {
                     bias: bias.clone(),
                 };
                 width = map.output_dim();
-                pending = Some(compose(pending, map));
+                pending = Some(compose(pending, (map, None)));
                 last_was_relu = false;
             }
             Layer::Relu => {
                 if last_was_relu {
                     continue; // relu ∘ relu = relu
                 }
-                done.push(pending.take().unwrap_or_else(|| Dense::identity(width)));
+                done.push(
+                    pending
+                        .take()
+                        .unwrap_or_else(|| (Dense::identity(width), None)),
+                );
                 last_was_relu = true;
             }
         }
     }
-    done.push(pending.unwrap_or_else(|| Dense::identity(width)));
-    Network::new(done)
+    done.push(pending.unwrap_or_else(|| (Dense::identity(width), None)));
+    let exact = done.iter().all(|(_, e)| e.is_none());
+    let (layers, errors): (Vec<Dense>, Vec<Option<FoldError>>) = done.into_iter().unzip();
+    let mut network = Network::new(layers);
+    if !exact {
+        network.fold_error = errors;
+    }
+    network
 }
 
-fn compose(pending: Option<Dense>, next: Dense) -> Dense {
-    match pending {
-        None => next,
-        Some(inner) => next.after(&inner),
+/// An affine map with the bound on its distance from the exact map.
+type Folded = (Dense, Option<FoldError>);
+
+/// `next ∘ inner` with its error: `|ΔW| ≤ γ_m|Wn||Wi| + En|Wi| + |Wn|Ei + En Ei` and likewise for the
+/// bias (`m` the inner dimension), each product's rounding bounded by Higham's `γ_m`.
+fn compose(pending: Option<Folded>, next: Folded) -> Folded {
+    let Some((inner, inner_error)) = pending else {
+        return next;
+    };
+    let (outer, outer_error) = next;
+    let product = outer.after(&inner);
+    let m = inner.output_dim();
+    let g = gamma(m + 1, UNIT_ROUNDOFF_F64);
+    let outer_abs = outer.weights.abs();
+    let inner_abs = inner.weights.abs();
+    let mut weights = (&outer_abs * &inner_abs) * g;
+    let mut bias = (&outer_abs * inner.bias.abs() + outer.bias.abs()) * g;
+    if let Some(e) = &inner_error {
+        weights += &outer_abs * &e.weights;
+        bias += &outer_abs * &e.bias;
     }
+    if let Some(e) = &outer_error {
+        let inner_weights = match &inner_error {
+            Some(i) => &inner_abs + &i.weights,
+            None => inner_abs.clone(),
+        };
+        let inner_bias = match &inner_error {
+            Some(i) => inner.bias.abs() + &i.bias,
+            None => inner.bias.abs(),
+        };
+        weights += &e.weights * inner_weights;
+        bias += &e.weights * inner_bias + &e.bias;
+    }
+    // The error terms are sums of non-negative products: enlarge for their own rounding.
+    let scale = 1.0 + gamma(2 * m + 4, UNIT_ROUNDOFF_F64);
+    let error = FoldError {
+        weights: weights * scale,
+        bias: bias * scale,
+    };
+    (product, Some(error))
 }

@@ -11,8 +11,8 @@ use crate::model::{Dense, Network};
 
 /// A network of the same shape as `network`, all zeros (used to accumulate gradients).
 pub fn zeros_like(network: &Network) -> Network {
-    Network {
-        layers: network
+    Network::new(
+        network
             .layers
             .iter()
             .map(|l| Dense {
@@ -20,7 +20,7 @@ pub fn zeros_like(network: &Network) -> Network {
                 bias: DVector::zeros(l.output_dim()),
             })
             .collect(),
-    }
+    )
 }
 
 /// `target += factor · addend`, layer by layer (shapes must agree).

@@ -522,7 +522,10 @@ mod tests {
             certified,
             clean_loss,
             loss_error,
-            network: Network { layers: Vec::new() },
+            network: Network {
+                layers: Vec::new(),
+                fold_error: Vec::new(),
+            },
             judged: None,
         }
     }

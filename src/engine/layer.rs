@@ -1,0 +1,130 @@
+//! The linear layers the engine runs, behind one small set of batched operations.
+//!
+//! Every algorithm of the engine (forward pass, gradients, interval and linear bounds, rounding
+//! allowances) touches a layer only through [`LinearLayer`]: the map on a batch, its transpose, the
+//! map of the entrywise magnitudes, and the interval image of a box. A new layer kind (a convolution, a
+//! pooling average) implements these operations and no algorithm changes. Batches are matrices with
+//! one column per sub-problem. All operations are plain floating-point products; the engine accounts
+//! for their rounding (see [`super::rounding`]).
+
+use nalgebra::{DMatrix, DVector};
+
+use crate::model::Dense;
+
+/// A possibly inexact affine layer `x ↦ W x + b` as the engine sees it.
+pub trait LinearLayer: Send + Sync {
+    /// Input size.
+    fn input_dim(&self) -> usize;
+    /// Output size.
+    fn output_dim(&self) -> usize;
+    /// The longest dot product the layer evaluates (its fan-in).
+    fn fan_in(&self) -> usize;
+    /// `W X + b 1ᵀ` (one column per sub-problem).
+    fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64>;
+    /// `Wᵀ A`: pulls output coefficients (one column per sub-problem) back to input coefficients.
+    fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64>;
+    /// `bᵀ A`: the constant each column of output coefficients picks up from the bias.
+    fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64>;
+    /// `|W| X + |b| 1ᵀ` for non-negative `X` (magnitudes for error bounds).
+    fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64>;
+    /// The box image `W⁺L + W⁻U + b` and `W⁺U + W⁻L + b` of the boxes `[L, U]` (columns), as computed
+    /// (no rounding allowance).
+    fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>);
+}
+
+/// A dense layer with its positive, negative and magnitude parts cached.
+#[derive(Debug, Clone)]
+pub struct DenseLayer {
+    weights: DMatrix<f64>,
+    bias: DVector<f64>,
+    positive: DMatrix<f64>,
+    negative: DMatrix<f64>,
+    magnitude: DMatrix<f64>,
+    bias_magnitude: DVector<f64>,
+}
+
+impl DenseLayer {
+    /// Caches the parts of `dense`.
+    pub fn new(dense: &Dense) -> DenseLayer {
+        DenseLayer {
+            weights: dense.weights.clone(),
+            bias: dense.bias.clone(),
+            positive: dense.weights.map(|w| w.max(0.0)),
+            negative: dense.weights.map(|w| w.min(0.0)),
+            magnitude: dense.weights.abs(),
+            bias_magnitude: dense.bias.abs(),
+        }
+    }
+}
+
+fn add_bias(mut out: DMatrix<f64>, bias: &DVector<f64>) -> DMatrix<f64> {
+    for mut column in out.column_iter_mut() {
+        column += bias;
+    }
+    out
+}
+
+impl LinearLayer for DenseLayer {
+    fn input_dim(&self) -> usize {
+        self.weights.ncols()
+    }
+
+    fn output_dim(&self) -> usize {
+        self.weights.nrows()
+    }
+
+    fn fan_in(&self) -> usize {
+        self.weights.ncols() + 1
+    }
+
+    fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
+        add_bias(&self.weights * xs, &self.bias)
+    }
+
+    fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
+        self.weights.tr_mul(coefficients)
+    }
+
+    fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {
+        coefficients.tr_mul(&self.bias)
+    }
+
+    fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        add_bias(&self.magnitude * magnitudes, &self.bias_magnitude)
+    }
+
+    fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {
+        let low = &self.positive * lower + &self.negative * upper;
+        let high = &self.positive * upper + &self.negative * lower;
+        (add_bias(low, &self.bias), add_bias(high, &self.bias))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn interval_contains_every_image_of_the_box() {
+        let dense = Dense {
+            weights: DMatrix::from_row_slice(2, 2, &[1.0, -2.0, 0.5, 3.0]),
+            bias: DVector::from_vec(vec![0.1, -0.2]),
+        };
+        let layer = DenseLayer::new(&dense);
+        let lower = DMatrix::from_column_slice(2, 1, &[-1.0, 0.0]);
+        let upper = DMatrix::from_column_slice(2, 1, &[1.0, 2.0]);
+        let (lo, hi) = layer.interval(&lower, &upper);
+        for corner in [[-1.0, 0.0], [-1.0, 2.0], [1.0, 0.0], [1.0, 2.0]] {
+            let y = layer.apply(&DMatrix::from_column_slice(2, 1, &corner));
+            for i in 0..2 {
+                assert!(lo[i] <= y[i] && y[i] <= hi[i]);
+            }
+        }
+        // transpose: (Wᵀ a)ᵀ x = aᵀ (W x)
+        let a = DMatrix::from_column_slice(2, 1, &[2.0, -1.0]);
+        let x = DMatrix::from_column_slice(2, 1, &[0.3, 0.7]);
+        let left = (layer.transpose_apply(&a).transpose() * &x)[0];
+        let right = (a.transpose() * (&dense.weights * &x))[0];
+        assert!((left - right).abs() < 1e-12);
+    }
+}
