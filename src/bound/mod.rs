@@ -19,7 +19,7 @@
 //! Xu et al., 2021) and [`lp`] (triangle relaxation, Ehlers, 2017). Minimising a linear function over a
 //! region lives in [`concretise`]; the LP solver sits behind the narrow seam in `solver`.
 
-mod batch;
+pub(crate) mod batch;
 pub mod concretise;
 pub mod interval;
 pub mod linear;

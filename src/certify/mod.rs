@@ -12,8 +12,10 @@ pub mod journal;
 pub mod merge;
 pub mod pipeline;
 pub mod progress;
+mod radius;
 pub mod report;
 mod search_stage;
+mod stages;
 pub mod statistics;
 
 use std::path::Path;
