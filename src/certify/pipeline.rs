@@ -30,6 +30,7 @@ use super::CertifyError;
 use crate::bound::Method;
 use crate::data::Dataset;
 use crate::engine::Engine;
+use crate::model::deployed::DeployedError;
 use crate::model::{predicted_class, Model, Network};
 use crate::threat::requirement::Requirement;
 
@@ -97,6 +98,7 @@ impl PipelineOptions {
 pub(crate) struct Context<'a> {
     pub(crate) network: Network,
     pub(crate) engine: Engine,
+    pub(crate) deployed: DeployedError,
     pub(crate) model: &'a Model,
     pub(crate) data: &'a Dataset,
     pub(crate) requirement: &'a Requirement,
@@ -124,6 +126,7 @@ pub fn run(
     let network = model.classifier();
     let context = Context {
         engine: Engine::new(&network),
+        deployed: DeployedError::new(model),
         network,
         model,
         data,
@@ -156,6 +159,7 @@ pub fn run(
                 slot,
                 k,
                 region: budget.region(data.sample(s.index), &model.input.lower, &model.input.upper),
+                deployed_error: f64::INFINITY,
             })
             .collect();
         let mut tasks = stages::reuse_stage(&context, &mut states, tasks);

@@ -16,8 +16,9 @@ use super::report::{CounterexampleRecord, Stage, Status};
 use super::CertifyError;
 use crate::attack::{self, AttackOutcome, AttackProblem, AttackSettings};
 use crate::bound::batch::{self, Request};
-use crate::bound::Method;
+use crate::bound::{Method, CERTIFY_TOLERANCE};
 use crate::engine::slopes::SlopeSettings;
+use crate::model::deployed::DeployedError;
 use crate::model::Network;
 use crate::threat::Region;
 
@@ -58,6 +59,9 @@ pub(crate) struct Task {
     pub k: usize,
     /// Ball ∩ input range.
     pub region: Region,
+    /// Largest bound on the deployed arithmetic's error of a forbidden margin over the region (set by
+    /// the bound stages; a search proof must exceed it).
+    pub deployed_error: f64,
 }
 
 fn best(a: Option<f64>, b: f64) -> Option<f64> {
@@ -184,8 +188,23 @@ pub(crate) fn bound_stage(
     let stage = stage_of(method);
     share(states, &tasks, stage, start);
     let mut open = Vec::new();
-    for (task, bounds) in tasks.into_iter().zip(results) {
+    for (mut task, mut bounds) in tasks.into_iter().zip(results) {
         let state = &mut states[task.slot];
+        // The bounds hold for the exact network; subtract the deployed arithmetic's error so that the
+        // margin kept is a bound on the margin the deployed model computes.
+        let errors = context.deployed.bound(
+            &task.region.lower,
+            &task.region.upper,
+            &bounds.pre_activation,
+        );
+        let mut largest: f64 = 0.0;
+        for (t, &target) in state.forbidden.iter().enumerate() {
+            let e = DeployedError::margin_error(&errors, state.label, target);
+            bounds.lower[t] -= e;
+            largest = largest.max(e);
+        }
+        // Each stage's value is a valid bound; later stages' tighter hidden bounds give smaller ones.
+        task.deployed_error = task.deployed_error.min(largest);
         state.margins[task.k] = best(state.margins[task.k], bounds.worst());
         if bounds.certified() {
             decide(states, &task, Status::Certified, stage);
@@ -280,7 +299,10 @@ pub(crate) fn search_sample(
         state.last_stage[task.k] = Stage::Search;
         let k = task.k;
         match outcome {
-            super::search_stage::Found::Proved(proven) => {
+            super::search_stage::Found::Proved(proven)
+                if proven - task.deployed_error > CERTIFY_TOLERANCE =>
+            {
+                let proven = proven - task.deployed_error;
                 state.margins[k] = best(state.margins[k], proven);
                 state.attempts[k] = Some(Attempt {
                     status: Status::Certified,
@@ -306,9 +328,10 @@ pub(crate) fn search_sample(
                     });
                 }
             }
+            super::search_stage::Found::Proved(_) => {}
             super::search_stage::Found::Open(found) => {
                 if let Some(found) = found {
-                    state.margins[k] = best(state.margins[k], found);
+                    state.margins[k] = best(state.margins[k], found - task.deployed_error);
                 }
             }
         }

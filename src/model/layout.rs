@@ -11,6 +11,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::Value;
 
 use super::ModelError;
+use crate::engine::Arithmetic;
 
 /// The format tag every model file carries.
 pub const MODEL_FORMAT: &str = "ballast.model/1";
@@ -62,6 +63,9 @@ pub struct Model {
     pub layers: Vec<Layer>,
     /// Free-form provenance (never validated beyond being JSON).
     pub provenance: Option<Value>,
+    /// The floating-point format the model is evaluated in where it is deployed (`arithmetic` in the
+    /// file; float64 when absent). Certificates cover evaluation in this format.
+    pub arithmetic: Arithmetic,
 }
 
 #[derive(Deserialize)]
@@ -76,6 +80,8 @@ struct RawModel {
     layers: Vec<Value>,
     #[serde(default)]
     provenance: Option<Value>,
+    #[serde(default)]
+    arithmetic: Option<String>,
 }
 
 #[derive(Deserialize, Serialize)]
@@ -160,6 +166,19 @@ impl Model {
                 format!("is \"{}\", expected \"{MODEL_FORMAT}\"", raw.format),
             ));
         }
+        let arithmetic = match &raw.arithmetic {
+            None => Arithmetic::Float64,
+            Some(text) => match text.as_str() {
+                "float64" => Arithmetic::Float64,
+                "float32" => Arithmetic::Float32,
+                other => {
+                    return Err(invalid(
+                        "arithmetic",
+                        format!("is \"{other}\", expected \"float64\" or \"float32\""),
+                    ))
+                }
+            },
+        };
         let dim = raw.input.dim;
         if dim == 0 {
             return Err(invalid("input.dim", "must be at least 1".into()));
@@ -306,6 +325,7 @@ impl Model {
             classes: raw.classes,
             layers,
             provenance: raw.provenance,
+            arithmetic,
         })
     }
 
@@ -441,6 +461,9 @@ impl Model {
         object.insert("layers".into(), Value::Array(layers));
         if let Some(p) = &self.provenance {
             object.insert("provenance".into(), p.clone());
+        }
+        if self.arithmetic != Arithmetic::Float64 {
+            object.insert("arithmetic".into(), Value::from(self.arithmetic.name()));
         }
         Value::Object(object)
     }

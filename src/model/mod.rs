@@ -1,6 +1,7 @@
 //! Models: the `ballast.model/1` JSON layout ([`layout`]) and the canonical ReLU network every stage
 //! works on ([`network`]).
 
+pub mod deployed;
 pub mod layout;
 pub mod network;
 pub mod onnx;

@@ -94,6 +94,7 @@ pub fn new_mlp(
         classes: None,
         layers: Vec::new(),
         provenance: None,
+        arithmetic: Default::default(),
     };
     Ok(template.with_network(Some(&normalization), &network))
 }

@@ -23,6 +23,7 @@ use super::tensor::{
     string_attribute, strings_attribute, Constant,
 };
 use super::OnnxError;
+use crate::engine::Arithmetic;
 use crate::model::{InputSpec, Layer, Model, ModelError};
 
 /// What the caller adds to or overrides in an imported model.
@@ -1220,6 +1221,21 @@ fn assemble(
         dropped,
         graph_labels,
     } = converted;
+    // The graph evaluates in the element type of its data input: float32 unless it is DOUBLE.
+    let float32 = graph
+        .input
+        .iter()
+        .filter(|i| i.name.as_deref() == Some(input_name.as_str()))
+        .filter_map(|i| match i.r#type.as_ref().and_then(|t| t.value.as_ref()) {
+            Some(type_proto::Value::TensorType(t)) => t.elem_type,
+            _ => None,
+        })
+        .any(|e| e == DataType::Float as i32);
+    let arithmetic = if float32 {
+        Arithmetic::Float32
+    } else {
+        Arithmetic::Float64
+    };
     path.flush();
     if path.layers.is_empty() {
         return Err(graph_error(
@@ -1300,6 +1316,7 @@ fn assemble(
         classes,
         layers,
         provenance: Some(provenance),
+        arithmetic,
     };
     validate(&model)?;
     Ok(model)

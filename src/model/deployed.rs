@@ -1,0 +1,223 @@
+//! How far a model's outputs, evaluated in its deployed arithmetic ([`Arithmetic`]) in any order of
+//! summation, can be from the exact (real-number) outputs, over an input box.
+//!
+//! The bound follows the model file's layers as written (not the folded network), so a `normalize`
+//! layer is charged for `(x − mean) / std` as the deployed code computes it. Per layer, with `X` a bound
+//! on the exact input's magnitude and `e` the error carried in, in the standard model of floating-point
+//! arithmetic (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed., §2.2 and §3.1):
+//! - input: `e = u·|x|` in float32 (the input is rounded to the format), `0` in float64;
+//! - normalize: `e' = (e + e_mean)/std·(1 + γ₄) + γ₄·|y|` (`e_mean = u·|mean|` in float32, where the
+//!   mean is stored rounded);
+//! - dense (fan-in `n`): `e' = |W| e + γ_{n+1}(|W|(X + e) + |b|)`, plus `u(|W|(X + e) + |b|)` in
+//!   float32 for weights stored rounded;
+//! - ReLU: `e' = e` (it is 1-Lipschitz).
+//! Magnitudes come from interval propagation of the input box through the layers as written,
+//! intersected at each ReLU with the caller's sound pre-activation bounds. Guarantee: for every input
+//! of the box, `|deployed logit_c − exact logit_c| ≤ bound[c]`, so a margin whose sound lower bound
+//! exceeds the sum of the two logits' bounds keeps its sign in the deployed arithmetic.
+
+use nalgebra::{DMatrix, DVector};
+
+use super::layout::{Layer, Model};
+use crate::bound::LayerBounds;
+use crate::engine::rounding::{gamma, UNIT_ROUNDOFF_F64};
+use crate::engine::Arithmetic;
+
+enum Step {
+    Normalize {
+        mean: DVector<f64>,
+        std: DVector<f64>,
+    },
+    Dense {
+        positive: DMatrix<f64>,
+        negative: DMatrix<f64>,
+        magnitude: DMatrix<f64>,
+        bias: DVector<f64>,
+    },
+    Relu,
+}
+
+/// The per-model part of the bound, prepared once.
+pub struct DeployedError {
+    arithmetic: Arithmetic,
+    steps: Vec<Step>,
+    outputs: usize,
+}
+
+impl std::fmt::Debug for DeployedError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("DeployedError")
+            .field("arithmetic", &self.arithmetic)
+            .field("steps", &self.steps.len())
+            .finish()
+    }
+}
+
+fn max_abs(lo: &DVector<f64>, hi: &DVector<f64>) -> DVector<f64> {
+    lo.zip_map(hi, |l, h| l.abs().max(h.abs()))
+}
+
+impl DeployedError {
+    /// Prepares the bound for `model` in its declared arithmetic.
+    pub fn new(model: &Model) -> DeployedError {
+        let mut outputs = model.input.dim;
+        let steps = model
+            .layers
+            .iter()
+            .map(|layer| match layer {
+                Layer::Normalize { mean, std } => Step::Normalize {
+                    mean: mean.clone(),
+                    std: std.clone(),
+                },
+                Layer::Dense { weights, bias } => {
+                    outputs = weights.nrows();
+                    Step::Dense {
+                        positive: weights.map(|w| w.max(0.0)),
+                        negative: weights.map(|w| w.min(0.0)),
+                        magnitude: weights.abs(),
+                        bias: bias.clone(),
+                    }
+                }
+                Layer::Relu => Step::Relu,
+            })
+            .collect();
+        DeployedError {
+            arithmetic: model.arithmetic,
+            steps,
+            outputs,
+        }
+    }
+
+    /// The arithmetic covered.
+    pub fn arithmetic(&self) -> Arithmetic {
+        self.arithmetic
+    }
+
+    /// Bound per raw output on the deployed evaluation's error over the box `[lower, upper]`; `hidden`
+    /// holds sound pre-activation bounds of the folded network's hidden layers (one per distinct ReLU,
+    /// in order; may be shorter or empty).
+    pub fn bound(&self, lower: &[f64], upper: &[f64], hidden: &[LayerBounds]) -> Vec<f64> {
+        let u = self.arithmetic.unit_roundoff();
+        let stored = match self.arithmetic {
+            Arithmetic::Float64 => 0.0,
+            Arithmetic::Float32 => u,
+        };
+        let widen = 1.0 + 8.0 * UNIT_ROUNDOFF_F64;
+        let mut lo = DVector::from_column_slice(lower);
+        let mut hi = DVector::from_column_slice(upper);
+        let mut error = max_abs(&lo, &hi) * stored;
+        let mut relu = 0;
+        let mut last_was_relu = false;
+        for step in &self.steps {
+            match step {
+                Step::Normalize { mean, std } => {
+                    let g = gamma(4, u);
+                    let new_lo = (&lo - mean).component_div(std);
+                    let new_hi = (&hi - mean).component_div(std);
+                    let magnitude = max_abs(&new_lo, &new_hi) * widen;
+                    let carried = (&error + mean.abs() * stored).component_div(std) * (1.0 + g);
+                    error = carried + magnitude * g;
+                    (lo, hi) = (new_lo, new_hi);
+                    last_was_relu = false;
+                }
+                Step::Dense {
+                    positive,
+                    negative,
+                    magnitude,
+                    bias,
+                } => {
+                    let n = magnitude.ncols() + 1;
+                    let g = gamma(n, u) + stored;
+                    let x = max_abs(&lo, &hi);
+                    let touched = magnitude * (&x + &error) + bias.abs();
+                    let carried = magnitude * &error;
+                    let new_lo = positive * &lo + negative * &hi + bias;
+                    let new_hi = positive * &hi + negative * &lo + bias;
+                    let slack = (magnitude * &x + bias.abs()) * gamma(n, UNIT_ROUNDOFF_F64);
+                    lo = new_lo - &slack;
+                    hi = new_hi + &slack;
+                    error = (carried + touched * g) * widen;
+                    last_was_relu = false;
+                }
+                Step::Relu => {
+                    if !last_was_relu {
+                        if let Some(b) = hidden.get(relu).filter(|b| b.len() == lo.len()) {
+                            for i in 0..lo.len() {
+                                let (l, h) = (lo[i].max(b.lower[i]), hi[i].min(b.upper[i]));
+                                if l <= h {
+                                    lo[i] = l;
+                                    hi[i] = h;
+                                }
+                            }
+                        }
+                        relu += 1;
+                    }
+                    lo.apply(|v| *v = v.max(0.0));
+                    hi.apply(|v| *v = v.max(0.0));
+                    last_was_relu = true;
+                }
+            }
+        }
+        debug_assert_eq!(error.len(), self.outputs);
+        error.iter().copied().collect()
+    }
+
+    /// Bound on the deployed error of the margin `logit_label − logit_target` in the classifier form
+    /// (a 1-logit model's classifier is `[0, z]`).
+    pub fn margin_error(errors: &[f64], label: usize, target: usize) -> f64 {
+        if errors.len() == 1 {
+            errors[0]
+        } else {
+            errors[label] + errors[target]
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn model(arithmetic: &str) -> Model {
+        let text = format!(
+            r#"{{"format": "ballast.model/1", "input": {{"dim": 2}}, "arithmetic": "{arithmetic}",
+            "layers": [{{"kind": "normalize", "mean": [1.0, 2.0], "std": [0.5, 4.0]}},
+                       {{"kind": "dense", "weights": [[1.0, -2.0], [0.5, 0.25]], "bias": [0.1, 0.0]}},
+                       {{"kind": "relu"}},
+                       {{"kind": "dense", "weights": [[1.0, 1.0], [-1.0, 2.0]], "bias": [0.0, 0.3]}}]}}"#
+        );
+        Model::from_json_str(&text).unwrap()
+    }
+
+    /// Evaluates the model in float32, layer by layer as written.
+    fn forward_f32(x: &[f64]) -> Vec<f64> {
+        let mut h: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+        h = vec![(h[0] - 1.0) / 0.5, (h[1] - 2.0) / 4.0];
+        let z1 = [h[0] - 2.0 * h[1] + 0.1, 0.5 * h[0] + 0.25 * h[1]];
+        let a = [z1[0].max(0.0), z1[1].max(0.0)];
+        vec![(a[0] + a[1]) as f64, (-a[0] + 2.0 * a[1] + 0.3) as f64]
+    }
+
+    #[test]
+    fn float32_evaluation_stays_within_the_bound() {
+        // The float32 evaluation is an outside check of the error model (common practice: compare the
+        // low-precision result with a high-precision one).
+        let m = model("float32");
+        let bounds = DeployedError::new(&m);
+        let (lower, upper) = ([0.0, 0.0], [3.0, 9.0]);
+        let errors = bounds.bound(&lower, &upper, &[]);
+        let net = m.network();
+        for i in 0..=30 {
+            for j in 0..=30 {
+                let x = [3.0 * i as f64 / 30.0, 9.0 * j as f64 / 30.0];
+                let exact = net.forward(&x);
+                let single = forward_f32(&x);
+                for c in 0..2 {
+                    assert!((single[c] - exact[c]).abs() <= errors[c]);
+                }
+            }
+        }
+        // float64 bounds are about 2^29 times smaller.
+        let f64_errors = DeployedError::new(&model("float64")).bound(&lower, &upper, &[]);
+        assert!(f64_errors[0] < errors[0] * 1e-7);
+    }
+}
