@@ -11,6 +11,7 @@
 //! - dense (fan-in `n`): `e' = |W| e + γ_{n+1}(|W|(X + e) + |b|)`, plus `u(|W|(X + e) + |b|)` in
 //!   float32 for weights stored rounded;
 //! - ReLU: `e' = e` (it is 1-Lipschitz).
+//!
 //! Magnitudes come from interval propagation of the input box through the layers as written,
 //! intersected at each ReLU with the caller's sound pre-activation bounds. Guarantee: for every input
 //! of the box, `|deployed logit_c − exact logit_c| ≤ bound[c]`, so a margin whose sound lower bound
