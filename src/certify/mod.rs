@@ -308,6 +308,7 @@ fn empty_report(
                 .map(|i| model.feature_name(i))
                 .collect(),
             parameters: model.parameter_count(),
+            arithmetic: Some(model.arithmetic.name().to_string()),
         },
         data: DataInfo {
             path: sources.data_path.clone(),

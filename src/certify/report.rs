@@ -377,6 +377,11 @@ pub struct ModelInfo {
     pub features: Vec<String>,
     /// Number of weights and biases.
     pub parameters: usize,
+    /// The arithmetic the certificates cover (`float64` or `float32`): margins are bounded for the
+    /// model evaluated in it, in any order of summation. Absent in reports of earlier versions, which
+    /// covered exact arithmetic up to a fixed tolerance.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub arithmetic: Option<String>,
 }
 
 /// The acceptance set the report is about.

@@ -308,6 +308,15 @@ pub fn build(report: &Report) -> SheetContent {
     let mut inputs = vec![
         ("Model".to_string(), report.model.path.clone()),
         ("Model SHA-256".to_string(), report.model.sha256.clone()),
+        (
+            "Arithmetic covered".to_string(),
+            match &report.model.arithmetic {
+                Some(a) => format!(
+                    "{a}: the class is kept when the model is evaluated in {a}, in any order of summation"
+                ),
+                None => "exact arithmetic up to a fixed tolerance (report of an earlier version)".into(),
+            },
+        ),
         ("Data".to_string(), report.data.path.clone()),
         ("Data SHA-256".to_string(), report.data.sha256.clone()),
         ("Samples in file".to_string(), report.data.rows.to_string()),
