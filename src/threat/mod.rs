@@ -6,6 +6,7 @@
 //! `Σ ((x_i − c_i)/r_i)² ≤ 1`, fixed features held at `c_i`), intersected with the model's valid input
 //! range. With one number for all features this is the usual L-inf or L2 ball of that radius.
 
+pub mod exact;
 pub mod requirement;
 
 use std::fmt;
