@@ -103,7 +103,7 @@ fn propagate(
 ) -> (Vec<LayerBounds>, Domain) {
     let hidden = network.layers.len() - 1;
     let mut bounds = Vec::with_capacity(hidden);
-    let (mut lo, mut hi) = (region.lower.clone(), region.upper.clone());
+    let (mut lo, mut hi) = (region.outer_lower.clone(), region.outer_upper.clone());
     for k in 0..hidden {
         let mut layer = affine_box(&network.layers[k], &lo, &hi);
         let emptied = clip_to_splits(&mut layer, splits.map(|s| s.layers[k].as_slice()));
@@ -137,7 +137,7 @@ pub fn margin_lower_bounds(
     }
     let (lo, hi) = match bounds.last() {
         Some(last) => activation_box(last),
-        None => (region.lower.clone(), region.upper.clone()),
+        None => (region.outer_lower.clone(), region.outer_upper.clone()),
     };
     let last = network.layers.last().expect("non-empty network");
     let lower = targets
@@ -170,8 +170,12 @@ pub fn batch_margin_lower_bounds(
     let mut last_lower = DMatrix::zeros(dim, samples);
     let mut last_upper = DMatrix::zeros(dim, samples);
     for (s, region) in regions.iter().enumerate() {
-        last_lower.column_mut(s).copy_from_slice(&region.lower);
-        last_upper.column_mut(s).copy_from_slice(&region.upper);
+        last_lower
+            .column_mut(s)
+            .copy_from_slice(&region.outer_lower);
+        last_upper
+            .column_mut(s)
+            .copy_from_slice(&region.outer_upper);
     }
     let mut centre = (&last_lower + &last_upper) * 0.5;
     let mut radius = (&last_upper - &last_lower) * 0.5;

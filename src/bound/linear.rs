@@ -134,7 +134,7 @@ pub(crate) fn intermediate_bounds(
         let layer = &network.layers[m];
         let (lo, hi) = match bounds.last() {
             Some(previous) => activation_box(previous),
-            None => (region.lower.clone(), region.upper.clone()),
+            None => (region.outer_lower.clone(), region.outer_upper.clone()),
         };
         let mut best = affine_box(layer, &lo, &hi);
         // For the first layer over an L-inf box the interval bound is already exact.
@@ -209,7 +209,7 @@ pub(crate) fn final_pass(
     let work = backward(network, top, &mut a, &mut constant, relaxations);
     let (lo, hi) = match bounds.last() {
         Some(last) => activation_box(last),
-        None => (region.lower.clone(), region.upper.clone()),
+        None => (region.outer_lower.clone(), region.outer_upper.clone()),
     };
     let last = &network.layers[top];
     let mut lower = Vec::with_capacity(targets.len());

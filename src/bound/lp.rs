@@ -122,7 +122,7 @@ fn build(
 ) -> (LinearProgram, Vec<Option<usize>>) {
     let mut program = LinearProgram::default();
     let mut previous: Vec<Option<usize>> = (0..region.dim())
-        .map(|i| Some(program.variable(region.lower[i], region.upper[i])))
+        .map(|i| Some(program.variable(region.outer_lower[i], region.outer_upper[i])))
         .collect();
     for (k, relaxation) in relaxations.iter().enumerate() {
         let layer = &network.layers[k];
