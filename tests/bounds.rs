@@ -81,12 +81,12 @@ fn sample_points(rng: &mut ChaCha8Rng, region: &Region, count: usize) -> Vec<Vec
                 .map(|i| {
                     if k % 2 == 0 {
                         if rng.gen_bool(0.5) {
-                            region.lower[i]
+                            region.outer_lower[i]
                         } else {
-                            region.upper[i]
+                            region.outer_upper[i]
                         }
                     } else {
-                        rng.gen_range(region.lower[i]..=region.upper[i])
+                        rng.gen_range(region.outer_lower[i]..=region.outer_upper[i])
                     }
                 })
                 .collect(),
@@ -631,7 +631,7 @@ fn bad_arguments_are_errors() {
         };
         assert!(call(&region, 0, &[1], Some(&bad_splits)).is_err());
         let mut nan = region.clone();
-        nan.upper[0] = f64::NAN;
+        nan.outer_upper[0] = f64::NAN;
         assert!(matches!(
             call(&nan, 0, &[1], None),
             Err(bound::BoundError::NonFinite { .. })

@@ -5,6 +5,8 @@
 //! a point to a hyperplane `|w·x + b| / ‖w‖_q` (Hölder's inequality, q the dual norm: ‖·‖₁ for L-inf,
 //! ‖·‖₂ for L2; common practice) for linear models; the digits fixture trained by scikit-learn.
 
+mod common;
+
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -115,7 +117,8 @@ fn check_invariants(r: &Report) {
 }
 
 /// Every counterexample of a report, checked independently: plain forward pass, class change into a
-/// forbidden class, inside the ball of the requirement and the model's input range.
+/// forbidden class, inside the ball of the requirement and the model's input range (exactly), reported
+/// distance not above the radius.
 fn check_counterexamples(model: &Model, data: &Dataset, r: &Report) -> usize {
     let network = model.classifier();
     let requirement = r.requirement.requirement();
@@ -136,23 +139,23 @@ fn check_counterexamples(model: &Model, data: &Dataset, r: &Report) -> usize {
         for (eps, c) in outcomes {
             let x = data.sample(s.index);
             let budget = requirement.budget(eps, model.input.dim);
-            for (i, (&value, &centre)) in c.features.iter().zip(x).enumerate() {
-                assert!(
-                    value >= model.input.lower[i] - 1e-12 && value <= model.input.upper[i] + 1e-12
-                );
-                if budget.norm == Norm::Linf {
-                    assert!((value - centre).abs() <= budget.radii[i] * (1.0 + 1e-9) + 1e-12);
-                }
-            }
-            if budget.norm == Norm::L2 {
-                let d: f64 = x
-                    .iter()
-                    .zip(&c.features)
-                    .map(|(a, b)| (a - b) * (a - b))
-                    .sum::<f64>()
-                    .sqrt();
-                assert!(d <= budget.radii[0] * (1.0 + 1e-9) + 1e-12);
-            }
+            // Inside ball ∩ range exactly, no tolerance (rational arithmetic, tests/common).
+            assert!(common::in_range(
+                &c.features,
+                &model.input.lower,
+                &model.input.upper
+            ));
+            let norm = match budget.norm {
+                Norm::Linf => "linf",
+                Norm::L2 => "l2",
+            };
+            assert!(
+                common::ball_inside(norm, &c.features, x, &budget.radii),
+                "sample {}: counterexample outside the {norm} ball",
+                s.index
+            );
+            let largest = budget.radii.iter().copied().fold(0.0, f64::max);
+            assert!(c.distance <= largest, "distance {} > {largest}", c.distance);
             let logits: Vec<f64> = network.forward(&c.features).iter().copied().collect();
             let class = predicted_class(&logits);
             assert_eq!(class, c.new_class);

@@ -189,7 +189,10 @@ fn planted(seed: u64, dim: usize, hidden: &[usize], epsilon: f64) -> (Network, V
     let signs: Vec<f64> = (0..dim)
         .map(|_| if rng.gen_bool(0.5) { 1.0 } else { -1.0 })
         .collect();
-    let corner: Vec<f64> = (0..dim).map(|i| center[i] + epsilon * signs[i]).collect();
+    // c ± ε rounded toward the centre, so the corner lies in the ball exactly.
+    let corner: Vec<f64> = (0..dim)
+        .map(|i| ballast::threat::exact::toward(center[i], epsilon * signs[i]))
+        .collect();
     let mut layers = Vec::new();
     let mut width = dim;
     for (k, &size) in hidden.iter().enumerate() {

@@ -375,7 +375,7 @@ mod robust_losses {
             assert_relative_eq!(ibp.worst_margins[s], worst_interval, epsilon = 1e-12);
             for _ in 0..300 {
                 let x: Vec<f64> = (0..4)
-                    .map(|i| rng.gen_range(region.lower[i]..=region.upper[i]))
+                    .map(|i| rng.gen_range(region.outer_lower[i]..=region.outer_upper[i]))
                     .collect();
                 let z = classifier.forward(&x);
                 let margin = targets[s]

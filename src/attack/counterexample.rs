@@ -2,8 +2,10 @@
 //! into a forbidden class, and that lies inside the region.
 //!
 //! [`validate`] is the only way a [`Counterexample`] is made in the attack module. It re-runs
-//! [`Network::forward`] (not the attack's own buffers) and checks [`Region::contains`]; it never
-//! accepts a point on the strength of a margin estimate alone.
+//! [`Network::forward`] (not the attack's own buffers) and checks [`Region::contains`], which is exact
+//! and has no tolerance (L-inf: `|x_i − c_i| ≤ r_i` in real arithmetic; L2: a rigorous upper bound of
+//! the scaled sum of squares ≤ 1; inside the input range); it never accepts a point on the strength of a
+//! margin estimate alone, nor a point a rounding step outside the ball.
 
 use crate::model::{predicted_class, Network};
 use crate::threat::Region;
@@ -17,7 +19,8 @@ pub struct Counterexample {
     pub logits: Vec<f64>,
     /// The class the model gives `input` (a forbidden class, never the label).
     pub predicted: usize,
-    /// Plain `‖input − center‖` in the region's norm, raw units (not scaled by the radii).
+    /// Plain `‖input − center‖` in the region's norm, raw units (not scaled by the radii), computed in
+    /// f64 and never above the largest radius ([`Region::distance`]).
     pub distance: f64,
     /// `logit[label] − max over forbidden classes of logit[class]` at `input` (≤ 0).
     pub margin: f64,

@@ -7,8 +7,9 @@
 //!   Madry et al., 2018, per feature scaled by its radius);
 //! - L2: `x ← x − α D (D g) / ‖D g‖₂` (steepest descent of the margin in the radii metric).
 //!
-//! Features with radius 0 never move. Every function here leaves its point inside the region
-//! ([`Region::project`] after each move); none of them decides anything about counterexamples.
+//! Features with radius 0 never move. Every function here leaves its point inside the region, in the
+//! exact sense of [`Region::contains`] ([`Region::project`] after each move, random L-inf starts drawn
+//! from the inner box); none of them decides anything about counterexamples.
 
 use rand::Rng;
 use rand_distr::StandardNormal;
@@ -53,13 +54,17 @@ pub fn fgsm_point(region: &Region, gradient: &[f64], x: &mut [f64]) {
     descent_step(region, x, gradient, 1.0);
 }
 
-/// A random starting point inside the region, written into `x`: uniform over the box for L-inf; for L2
+/// A random starting point inside the region, written into `x`: uniform over the inner box for L-inf; for L2
 /// uniform over the scaled ball (Gaussian direction, radius `U^(1/k)` for `k` free features), then
 /// clipped to the input range.
 pub fn random_start<R: Rng>(region: &Region, rng: &mut R, x: &mut [f64]) {
     match region.norm {
         Norm::Linf => {
-            for ((xi, &lo), &hi) in x.iter_mut().zip(&region.lower).zip(&region.upper) {
+            for ((xi, &lo), &hi) in x
+                .iter_mut()
+                .zip(&region.inner_lower)
+                .zip(&region.inner_upper)
+            {
                 *xi = if hi > lo { rng.gen_range(lo..=hi) } else { lo };
             }
         }

@@ -39,7 +39,7 @@ pub fn minimum_of_rows(region: &Region, a: &DMatrix<f64>, constant: &DVector<f64
         Norm::Linf => {
             let mut value: Vec<f64> = constant.iter().copied().collect();
             for (i, column) in a.column_iter().enumerate() {
-                let (lo, hi) = (region.lower[i], region.upper[i]);
+                let (lo, hi) = (region.outer_lower[i], region.outer_upper[i]);
                 for (v, w) in value.iter_mut().zip(column.as_slice()) {
                     *v += w.max(0.0) * lo + w.min(0.0) * hi;
                 }
@@ -60,16 +60,16 @@ fn minimise(region: &Region, a: &[f64], want_point: bool) -> (f64, Option<Vec<f6
         Norm::Linf => {
             let value: f64 = a
                 .iter()
-                .zip(region.lower.iter().zip(&region.upper))
+                .zip(region.outer_lower.iter().zip(&region.outer_upper))
                 .map(|(w, (lo, hi))| if *w > 0.0 { w * lo } else { w * hi })
                 .sum();
             let point = want_point.then(|| {
                 (0..a.len())
                     .map(|i| {
                         if a[i] > 0.0 {
-                            region.lower[i]
+                            region.inner_lower[i]
                         } else if a[i] < 0.0 {
-                            region.upper[i]
+                            region.inner_upper[i]
                         } else {
                             region.center[i]
                         }
@@ -153,8 +153,12 @@ fn minimise_l2(region: &Region, a: &[f64], want_point: bool) -> (f64, Option<Vec
     let problem = L2Problem {
         a,
         radii: &region.radii,
-        low: (0..n).map(|i| region.lower[i] - region.center[i]).collect(),
-        high: (0..n).map(|i| region.upper[i] - region.center[i]).collect(),
+        low: (0..n)
+            .map(|i| region.outer_lower[i] - region.center[i])
+            .collect(),
+        high: (0..n)
+            .map(|i| region.outer_upper[i] - region.center[i])
+            .collect(),
     };
     if norm_squared <= 0.0 {
         let point = want_point.then(|| region.center.clone());

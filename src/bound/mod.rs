@@ -400,11 +400,11 @@ pub(crate) fn validate_sample(
             found: region.dim(),
         });
     }
-    if region.lower.len() != region.dim() || region.upper.len() != region.dim() {
+    if region.outer_lower.len() != region.dim() || region.outer_upper.len() != region.dim() {
         return Err(BoundError::DimensionMismatch {
             what: "region box".into(),
             expected: region.dim(),
-            found: region.lower.len().min(region.upper.len()),
+            found: region.outer_lower.len().min(region.outer_upper.len()),
         });
     }
     if region.radii.len() != region.dim() {
@@ -416,8 +416,8 @@ pub(crate) fn validate_sample(
     }
     for i in 0..region.dim() {
         for (what, value) in [
-            ("region lower corner", region.lower[i]),
-            ("region upper corner", region.upper[i]),
+            ("region lower corner", region.outer_lower[i]),
+            ("region upper corner", region.outer_upper[i]),
             ("region centre", region.center[i]),
             ("region radius", region.radii[i]),
         ] {

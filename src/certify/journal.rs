@@ -6,6 +6,9 @@
 //! further line is one [`SampleRecord`]. Each line is written with a single `write` call and flushed, so
 //! a hard kill leaves at most one incomplete last line, which [`Journal::read`] drops. Resuming checks
 //! the fingerprint and refuses a journal of another run; it never mixes results of different settings.
+//! The fingerprint holds the tool's version: a journal written by another version of ballast (or by one
+//! from before the version was recorded) is refused with a message saying so, because its results may
+//! be stale (a fixed bug, a changed bound); the run must start over without `--resume`.
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -92,6 +95,7 @@ impl Journal {
             ));
         }
         let found = header.get("fingerprint").cloned().unwrap_or(Value::Null);
+        check_version(path, fingerprint, &found)?;
         if let Some(difference) = first_difference(fingerprint, &found, "") {
             return Err(CertifyError::Mismatch(format!(
                 "{}: the journal belongs to another run ({difference}); start without --resume to replace it",
@@ -112,6 +116,29 @@ impl Journal {
         records.sort_by_key(|r| r.index);
         Ok(records)
     }
+}
+
+/// Refuses a journal written by another version of the tool, naming both versions.
+fn check_version(path: &Path, expected: &Value, found: &Value) -> Result<(), CertifyError> {
+    let version = |v: &Value| {
+        v.get("tool_version")
+            .and_then(Value::as_str)
+            .map(str::to_string)
+    };
+    let this = version(expected);
+    let that = version(found);
+    if this == that {
+        return Ok(());
+    }
+    let written_by = match &that {
+        Some(v) => format!("ballast {v}"),
+        None => "a version of ballast that did not record its version".to_string(),
+    };
+    Err(CertifyError::Mismatch(format!(
+        "{}: the journal was written by {written_by}, this is ballast {}; results of another version are not reused, run again without --resume to start over",
+        path.display(),
+        this.as_deref().unwrap_or("(unknown)")
+    )))
 }
 
 fn header_line(fingerprint: &Value) -> String {
@@ -145,5 +172,46 @@ pub fn first_difference(expected: &Value, found: &Value, path: &str) -> Option<S
             "{}: expected {a}, found {b}",
             if path.is_empty() { "(top)" } else { path }
         )),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn fingerprint(version: &str) -> Value {
+        serde_json::json!({ "tool_version": version, "model_sha256": "ab", "settings": { "seed": 0 } })
+    }
+
+    #[test]
+    fn a_journal_of_another_version_is_refused_naming_both() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("r.journal.jsonl");
+        Journal::create(&path, &fingerprint("0.0.9"), &[]).unwrap();
+        let e = Journal::read(&path, &fingerprint("0.1.0"))
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("written by ballast 0.0.9")
+                && e.contains("this is ballast 0.1.0")
+                && e.contains("without --resume"),
+            "{e}"
+        );
+        assert!(Journal::read(&path, &fingerprint("0.0.9"))
+            .unwrap()
+            .is_empty());
+    }
+
+    #[test]
+    fn a_journal_without_a_version_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("r.journal.jsonl");
+        let mut old = fingerprint("0.1.0");
+        old.as_object_mut().unwrap().remove("tool_version");
+        Journal::create(&path, &old, &[]).unwrap();
+        let e = Journal::read(&path, &fingerprint("0.1.0"))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("did not record its version"), "{e}");
     }
 }

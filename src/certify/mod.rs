@@ -343,9 +343,11 @@ fn empty_report(
     }
 }
 
-/// What must agree between a journal and the run resuming it: digests, requirement and settings.
+/// What must agree between a journal and the run resuming it: the tool's version (results of another
+/// version are never reused), digests, requirement and settings.
 pub fn fingerprint(report: &Report) -> serde_json::Value {
     serde_json::json!({
+        "tool_version": report.tool.version,
         "model_sha256": report.model.sha256,
         "data_sha256": report.data.sha256,
         "data_rows": report.data.rows,

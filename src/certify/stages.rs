@@ -193,8 +193,8 @@ pub(crate) fn bound_stage(
         // The bounds hold for the exact network; subtract the deployed arithmetic's error so that the
         // margin kept is a bound on the margin the deployed model computes.
         let errors = context.deployed.bound(
-            &task.region.lower,
-            &task.region.upper,
+            &task.region.outer_lower,
+            &task.region.outer_upper,
             &bounds.pre_activation,
         );
         let mut largest: f64 = 0.0;

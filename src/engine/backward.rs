@@ -148,16 +148,17 @@ pub fn run(
                 for i in 0..dim {
                     let w = coefficients[i];
                     let (lo, hi) = (domains.lower[(i, d)], domains.upper[(i, d)]);
-                    let x = if w > 0.0 {
-                        lo
-                    } else if w < 0.0 {
-                        hi
-                    } else {
-                        region.center[i].clamp(lo, hi)
-                    };
-                    value += w * x;
+                    value += if w > 0.0 { w * lo } else { w * hi };
                     size += w.abs() * domains.magnitude[(i, d)];
-                    minimiser[(i, j)] = x;
+                    let (inner_lo, inner_hi) =
+                        (domains.inner_lower[(i, d)], domains.inner_upper[(i, d)]);
+                    minimiser[(i, j)] = if w > 0.0 {
+                        inner_lo
+                    } else if w < 0.0 {
+                        inner_hi
+                    } else {
+                        region.center[i].max(inner_lo).min(inner_hi)
+                    };
                 }
                 lower[j] = value;
                 magnitude[j] += size;

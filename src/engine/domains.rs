@@ -1,8 +1,10 @@
 //! A batch of sub-problems' input sets ("domains"): the input region of each, its ReLU split
 //! constraints, and the input box as matrices (one column per domain).
 //!
-//! The box columns are the regions' boxes as stored (`Region::lower`, `Region::upper`); every bound of
-//! the engine holds for every input of that box that lies in the region and meets the splits.
+//! The box columns are the regions' outer boxes (`Region::outer_lower`, `Region::outer_upper`, rounded
+//! outward, so they hold every real point of the region); every bound of the engine holds for every
+//! input of that box that lies in the region and meets the splits. Points the engine returns
+//! (minimisers) are clipped to the inner boxes, whose every double lies in the region.
 
 use nalgebra::DMatrix;
 
@@ -23,6 +25,10 @@ pub struct Domains<'r> {
     pub upper: DMatrix<f64>,
     /// `max(|lower|, |upper|)` per input and domain.
     pub magnitude: DMatrix<f64>,
+    /// Lower corner of each domain's inner box (for returned points).
+    pub inner_lower: DMatrix<f64>,
+    /// Upper corner of each domain's inner box (for returned points).
+    pub inner_upper: DMatrix<f64>,
 }
 
 fn code(split: ReluSplit) -> i8 {
@@ -45,9 +51,17 @@ impl<'r> Domains<'r> {
         let dim = regions.first().map(|r| r.dim()).unwrap_or(0);
         let mut lower = DMatrix::zeros(dim, count);
         let mut upper = DMatrix::zeros(dim, count);
+        let mut inner_lower = DMatrix::zeros(dim, count);
+        let mut inner_upper = DMatrix::zeros(dim, count);
         for (d, region) in regions.iter().enumerate() {
-            lower.column_mut(d).copy_from_slice(&region.lower);
-            upper.column_mut(d).copy_from_slice(&region.upper);
+            lower.column_mut(d).copy_from_slice(&region.outer_lower);
+            upper.column_mut(d).copy_from_slice(&region.outer_upper);
+            inner_lower
+                .column_mut(d)
+                .copy_from_slice(&region.inner_lower);
+            inner_upper
+                .column_mut(d)
+                .copy_from_slice(&region.inner_upper);
         }
         let magnitude = lower.zip_map(&upper, |l, u| l.abs().max(u.abs()));
         let any = splits.iter().any(|s| s.is_some());
@@ -75,6 +89,8 @@ impl<'r> Domains<'r> {
             lower,
             upper,
             magnitude,
+            inner_lower,
+            inner_upper,
         }
     }
 

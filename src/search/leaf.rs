@@ -164,8 +164,8 @@ fn dual_multipliers(region: &Region, piece: &AffinePiece) -> Result<Vec<f64>, Se
     let mut mu = Vec::with_capacity(n);
     let mut nu = Vec::with_capacity(n);
     for i in 0..n {
-        mu.push(program.add_variable(-region.lower[i], 0.0, f64::INFINITY));
-        nu.push(program.add_variable(region.upper[i], 0.0, f64::INFINITY));
+        mu.push(program.add_variable(-region.outer_lower[i], 0.0, f64::INFINITY));
+        nu.push(program.add_variable(region.outer_upper[i], 0.0, f64::INFINITY));
     }
     for i in 0..n {
         let mut coefficients: Vec<(usize, f64)> = (0..rows)
@@ -200,7 +200,11 @@ pub(crate) fn primal_point(
     let n = piece.gradient.len();
     let mut program = LinearProgram::default();
     for i in 0..n {
-        program.add_variable(piece.gradient[i], region.lower[i], region.upper[i]);
+        program.add_variable(
+            piece.gradient[i],
+            region.outer_lower[i],
+            region.outer_upper[i],
+        );
     }
     for (row, t) in piece.rows.iter().zip(&piece.right_hand_sides) {
         program.rows.push(Row {
@@ -242,9 +246,9 @@ fn kkt_multipliers(region: &Region, piece: &AffinePiece, x: &[f64]) -> Vec<f64> 
         .collect();
     let free: Vec<usize> = (0..x.len())
         .filter(|&i| {
-            let width = region.upper[i] - region.lower[i];
-            x[i] > region.lower[i] + scale * (1.0 + width)
-                && x[i] < region.upper[i] - scale * (1.0 + width)
+            let width = region.outer_upper[i] - region.outer_lower[i];
+            x[i] > region.outer_lower[i] + scale * (1.0 + width)
+                && x[i] < region.outer_upper[i] - scale * (1.0 + width)
         })
         .collect();
     if active.is_empty() || free.is_empty() {
@@ -274,7 +278,7 @@ fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, 
     let rows = piece.rows.len();
     let mut program = LinearProgram::default();
     for i in 0..n {
-        program.add_variable(0.0, region.lower[i], region.upper[i]);
+        program.add_variable(0.0, region.outer_lower[i], region.outer_upper[i]);
     }
     for (r, (row, t)) in piece.rows.iter().zip(&piece.right_hand_sides).enumerate() {
         let slack = program.add_variable(1.0, 0.0, f64::INFINITY);
@@ -311,9 +315,9 @@ fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, 
     }
     let free: Vec<usize> = (0..n)
         .filter(|&i| {
-            let width = region.upper[i] - region.lower[i];
-            x[i] > region.lower[i] + scale * (1.0 + width)
-                && x[i] < region.upper[i] - scale * (1.0 + width)
+            let width = region.outer_upper[i] - region.outer_lower[i];
+            x[i] > region.outer_lower[i] + scale * (1.0 + width)
+                && x[i] < region.outer_upper[i] - scale * (1.0 + width)
         })
         .collect();
     if !active.is_empty() && !free.is_empty() {

@@ -52,7 +52,7 @@ pub fn minimum_margin(
     }
     let mut program = LinearProgram::default();
     let inputs: Vec<usize> = (0..region.dim())
-        .map(|i| program.add_variable(0.0, region.lower[i], region.upper[i]))
+        .map(|i| program.add_variable(0.0, region.outer_lower[i], region.outer_upper[i]))
         .collect();
     let last = network.layers.len() - 1;
     let mut previous = inputs.clone();

@@ -444,7 +444,11 @@ mod tests {
                 let piece = affine_piece(network, &pattern, &|_, _| true, label, target);
                 let mut program = LinearProgram::default();
                 for i in 0..region.dim() {
-                    program.add_variable(piece.gradient[i], region.lower[i], region.upper[i]);
+                    program.add_variable(
+                        piece.gradient[i],
+                        region.outer_lower[i],
+                        region.outer_upper[i],
+                    );
                 }
                 for (row, t) in piece.rows.iter().zip(&piece.right_hand_sides) {
                     program.rows.push(Row {

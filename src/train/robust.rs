@@ -119,8 +119,10 @@ impl RegionMap {
                         .enumerate()
                         .map(|(i, r)| r / n.std[i])
                         .collect(),
-                    lower: map(&raw.lower),
-                    upper: map(&raw.upper),
+                    outer_lower: map(&raw.outer_lower),
+                    outer_upper: map(&raw.outer_upper),
+                    inner_lower: map(&raw.inner_lower),
+                    inner_upper: map(&raw.inner_upper),
                 }
             }
         }
