@@ -18,8 +18,8 @@ use crate::attack::{self, AttackOutcome, AttackProblem, AttackSettings};
 use crate::bound::batch::{self, Request};
 use crate::bound::{Method, CERTIFY_TOLERANCE};
 use crate::engine::slopes::SlopeSettings;
-use crate::model::deployed::DeployedError;
-use crate::model::Network;
+use crate::model::deployed::{self, DeployedError};
+use crate::model::predicted_class;
 use crate::threat::Region;
 
 /// Tasks per engine batch in the bound stages.
@@ -71,16 +71,35 @@ fn best(a: Option<f64>, b: f64) -> Option<f64> {
     Some(a.map_or(b, |a| a.max(b)))
 }
 
-/// Re-validates a candidate point and turns it into a record (`None` if it is not a counterexample).
+/// Re-validates a candidate point and turns it into a record (`None` if it is not a counterexample):
+/// the folded network's forward pass and the region check of [`crate::attack::validate`], then the
+/// model evaluated as written in its deployed arithmetic, where a forbidden class must win by more
+/// than the bound on that evaluation's error (so the answer changes both as deployed and exactly).
 pub(crate) fn checked(
-    network: &Network,
+    context: &Context,
     region: &Region,
     label: usize,
     forbidden: &[usize],
     x: &[f64],
 ) -> Option<CounterexampleRecord> {
-    attack::validate(network, region, label, forbidden, x).map(|c| CounterexampleRecord {
-        new_class: c.predicted,
+    let c = attack::validate(&context.network, region, label, forbidden, x)?;
+    let raw = deployed::forward(context.model, x);
+    let logits = if raw.len() == 1 {
+        vec![0.0, raw[0]]
+    } else {
+        raw
+    };
+    let winner = predicted_class(&logits);
+    if !forbidden.contains(&winner) {
+        return None;
+    }
+    let errors = context.deployed.bound(x, x, &[]);
+    let margin = logits[label] - logits[winner];
+    if margin + DeployedError::margin_error(&errors, label, winner) >= 0.0 {
+        return None;
+    }
+    Some(CounterexampleRecord {
+        new_class: winner,
         distance: c.distance,
         features: c.input,
     })
@@ -133,7 +152,7 @@ pub(crate) fn reuse_stage(
         });
         let reused = earlier.and_then(|c| {
             checked(
-                &context.network,
+                context,
                 &task.region,
                 state.label,
                 &state.forbidden,
@@ -215,7 +234,7 @@ pub(crate) fn bound_stage(
             .minimisers
             .iter()
             .flatten()
-            .find_map(|p| checked(&context.network, &task.region, label, &forbidden, p));
+            .find_map(|p| checked(context, &task.region, label, &forbidden, p));
         match record {
             Some(r) => found(states, &task, stage, r),
             None => open.push(task),
@@ -257,7 +276,7 @@ pub(crate) fn attack_stage(
         let state = &states[task.slot];
         let record = match outcome {
             AttackOutcome::Found(c) => checked(
-                &context.network,
+                context,
                 &task.region,
                 state.label,
                 &state.forbidden,
@@ -312,13 +331,7 @@ pub(crate) fn search_sample(
                 });
             }
             super::search_stage::Found::Counterexample(point) => {
-                let record = checked(
-                    &context.network,
-                    &task.region,
-                    state.label,
-                    &state.forbidden,
-                    &point,
-                );
+                let record = checked(context, &task.region, state.label, &state.forbidden, &point);
                 if let Some(r) = record {
                     state.attempts[k] = Some(Attempt {
                         status: Status::Counterexample,

@@ -222,3 +222,61 @@ mod tests {
         assert!(f64_errors[0] < errors[0] * 1e-7);
     }
 }
+
+/// The model's raw outputs at `x`, evaluated layer by layer as written in the model's arithmetic
+/// (float32: inputs, parameters and every operation rounded to float32), the way a deployment computes
+/// them.
+pub fn forward(model: &Model, x: &[f64]) -> Vec<f64> {
+    match model.arithmetic {
+        Arithmetic::Float64 => {
+            let mut h: Vec<f64> = x.to_vec();
+            for layer in &model.layers {
+                h = match layer {
+                    Layer::Normalize { mean, std } => h
+                        .iter()
+                        .zip(mean.iter().zip(std.iter()))
+                        .map(|(v, (m, s))| (v - m) / s)
+                        .collect(),
+                    Layer::Dense { weights, bias } => (0..weights.nrows())
+                        .map(|r| {
+                            weights
+                                .row(r)
+                                .iter()
+                                .zip(&h)
+                                .map(|(w, v)| w * v)
+                                .sum::<f64>()
+                                + bias[r]
+                        })
+                        .collect(),
+                    Layer::Relu => h.iter().map(|v| v.max(0.0)).collect(),
+                };
+            }
+            h
+        }
+        Arithmetic::Float32 => {
+            let mut h: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+            for layer in &model.layers {
+                h = match layer {
+                    Layer::Normalize { mean, std } => h
+                        .iter()
+                        .zip(mean.iter().zip(std.iter()))
+                        .map(|(v, (m, s))| (v - *m as f32) / *s as f32)
+                        .collect(),
+                    Layer::Dense { weights, bias } => (0..weights.nrows())
+                        .map(|r| {
+                            weights
+                                .row(r)
+                                .iter()
+                                .zip(&h)
+                                .map(|(w, v)| *w as f32 * v)
+                                .sum::<f32>()
+                                + bias[r] as f32
+                        })
+                        .collect(),
+                    Layer::Relu => h.iter().map(|v| v.max(0.0)).collect(),
+                };
+            }
+            h.into_iter().map(f64::from).collect()
+        }
+    }
+}
