@@ -174,55 +174,6 @@ impl DeployedError {
     }
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    fn model(arithmetic: &str) -> Model {
-        let text = format!(
-            r#"{{"format": "ballast.model/1", "input": {{"dim": 2}}, "arithmetic": "{arithmetic}",
-            "layers": [{{"kind": "normalize", "mean": [1.0, 2.0], "std": [0.5, 4.0]}},
-                       {{"kind": "dense", "weights": [[1.0, -2.0], [0.5, 0.25]], "bias": [0.1, 0.0]}},
-                       {{"kind": "relu"}},
-                       {{"kind": "dense", "weights": [[1.0, 1.0], [-1.0, 2.0]], "bias": [0.0, 0.3]}}]}}"#
-        );
-        Model::from_json_str(&text).unwrap()
-    }
-
-    /// Evaluates the model in float32, layer by layer as written.
-    fn forward_f32(x: &[f64]) -> Vec<f64> {
-        let mut h: Vec<f32> = x.iter().map(|v| *v as f32).collect();
-        h = vec![(h[0] - 1.0) / 0.5, (h[1] - 2.0) / 4.0];
-        let z1 = [h[0] - 2.0 * h[1] + 0.1, 0.5 * h[0] + 0.25 * h[1]];
-        let a = [z1[0].max(0.0), z1[1].max(0.0)];
-        vec![(a[0] + a[1]) as f64, (-a[0] + 2.0 * a[1] + 0.3) as f64]
-    }
-
-    #[test]
-    fn float32_evaluation_stays_within_the_bound() {
-        // The float32 evaluation is an outside check of the error model (common practice: compare the
-        // low-precision result with a high-precision one).
-        let m = model("float32");
-        let bounds = DeployedError::new(&m);
-        let (lower, upper) = ([0.0, 0.0], [3.0, 9.0]);
-        let errors = bounds.bound(&lower, &upper, &[]);
-        let net = m.network();
-        for i in 0..=30 {
-            for j in 0..=30 {
-                let x = [3.0 * i as f64 / 30.0, 9.0 * j as f64 / 30.0];
-                let exact = net.forward(&x);
-                let single = forward_f32(&x);
-                for c in 0..2 {
-                    assert!((single[c] - exact[c]).abs() <= errors[c]);
-                }
-            }
-        }
-        // float64 bounds are about 2^29 times smaller.
-        let f64_errors = DeployedError::new(&model("float64")).bound(&lower, &upper, &[]);
-        assert!(f64_errors[0] < errors[0] * 1e-7);
-    }
-}
-
 /// The model's raw outputs at `x`, evaluated layer by layer as written in the model's arithmetic
 /// (float32: inputs, parameters and every operation rounded to float32), the way a deployment computes
 /// them.
@@ -278,5 +229,54 @@ pub fn forward(model: &Model, x: &[f64]) -> Vec<f64> {
             }
             h.into_iter().map(f64::from).collect()
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn model(arithmetic: &str) -> Model {
+        let text = format!(
+            r#"{{"format": "ballast.model/1", "input": {{"dim": 2}}, "arithmetic": "{arithmetic}",
+            "layers": [{{"kind": "normalize", "mean": [1.0, 2.0], "std": [0.5, 4.0]}},
+                       {{"kind": "dense", "weights": [[1.0, -2.0], [0.5, 0.25]], "bias": [0.1, 0.0]}},
+                       {{"kind": "relu"}},
+                       {{"kind": "dense", "weights": [[1.0, 1.0], [-1.0, 2.0]], "bias": [0.0, 0.3]}}]}}"#
+        );
+        Model::from_json_str(&text).unwrap()
+    }
+
+    /// Evaluates the model in float32, layer by layer as written.
+    fn forward_f32(x: &[f64]) -> Vec<f64> {
+        let mut h: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+        h = vec![(h[0] - 1.0) / 0.5, (h[1] - 2.0) / 4.0];
+        let z1 = [h[0] - 2.0 * h[1] + 0.1, 0.5 * h[0] + 0.25 * h[1]];
+        let a = [z1[0].max(0.0), z1[1].max(0.0)];
+        vec![(a[0] + a[1]) as f64, (-a[0] + 2.0 * a[1] + 0.3) as f64]
+    }
+
+    #[test]
+    fn float32_evaluation_stays_within_the_bound() {
+        // The float32 evaluation is an outside check of the error model (common practice: compare the
+        // low-precision result with a high-precision one).
+        let m = model("float32");
+        let bounds = DeployedError::new(&m);
+        let (lower, upper) = ([0.0, 0.0], [3.0, 9.0]);
+        let errors = bounds.bound(&lower, &upper, &[]);
+        let net = m.network();
+        for i in 0..=30 {
+            for j in 0..=30 {
+                let x = [3.0 * i as f64 / 30.0, 9.0 * j as f64 / 30.0];
+                let exact = net.forward(&x);
+                let single = forward_f32(&x);
+                for c in 0..2 {
+                    assert!((single[c] - exact[c]).abs() <= errors[c]);
+                }
+            }
+        }
+        // float64 bounds are about 2^29 times smaller.
+        let f64_errors = DeployedError::new(&model("float64")).bound(&lower, &upper, &[]);
+        assert!(f64_errors[0] < errors[0] * 1e-7);
     }
 }
