@@ -36,6 +36,8 @@ pub trait LinearLayer: Send + Sync {
 #[derive(Debug, Clone)]
 pub struct DenseLayer {
     weights: DMatrix<f64>,
+    /// `Wᵀ`, stored so that the backward product is a plain (blocked) matrix product.
+    transposed: DMatrix<f64>,
     bias: DVector<f64>,
     positive: DMatrix<f64>,
     negative: DMatrix<f64>,
@@ -48,6 +50,7 @@ impl DenseLayer {
     pub fn new(dense: &Dense) -> DenseLayer {
         DenseLayer {
             weights: dense.weights.clone(),
+            transposed: dense.weights.transpose(),
             bias: dense.bias.clone(),
             positive: dense.weights.map(|w| w.max(0.0)),
             negative: dense.weights.map(|w| w.min(0.0)),
@@ -82,7 +85,7 @@ impl LinearLayer for DenseLayer {
     }
 
     fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
-        self.weights.tr_mul(coefficients)
+        &self.transposed * coefficients
     }
 
     fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {
