@@ -5,8 +5,8 @@
 # Environment: PYTHON (default /work/venv/bin/python), LIMIT (seconds per case, default 900),
 # HARD_BUDGET (ballast's per-sample budget on the hard instance, default 30).
 # Every timed command runs under `nice -n 10`, `timeout` and `/usr/bin/time -v` (wall time, peak RSS).
-# `timeout --foreground` sends one SIGTERM (without it the signal also goes to the process group, and
-# ballast takes the second delivery as "stop at once"); SIGKILL follows 60 s later.
+# `timeout --foreground` signals only the command (without it GNU timeout also signals its process group;
+# in one run ballast then stopped at once without a report, as after a second signal); SIGKILL 60 s later.
 # The numpy references run once with 1 and once with 2 BLAS threads; the table keeps the faster run.
 # Prints a Markdown table (benches/wide_table.py); results go in docs/benchmarks/wide.md.
 set -eu
