@@ -10,6 +10,8 @@ This is the outside reference for ballast's complete verification
 Run from the project root:
     /work/venv/bin/python tests/reference/milp_reference.py            # fixtures
     /work/venv/bin/python tests/reference/milp_reference.py --bench    # timing
+    (--bench --only digits_mlp_deep --eps-deep 0.06 --out F: one model, output
+    elsewhere; benches/wide_compare.sh uses this)
 
 Problem, per sample (x0, true class y) and other class j:
     minimise  logit_y(x) - logit_j(x)
@@ -28,7 +30,7 @@ Also recorded: the minimum of the triangle LP relaxation (binaries relaxed to
 
 Outputs:
     tests/reference/out/milp_digits_mlp.json     fixture (per sample, target)
-    tests/reference/out/milp_bench.json         --bench: HiGHS wall times
+    tests/reference/out/milp_bench.json         --bench: HiGHS wall times (or --out)
 """
 import argparse
 import csv
@@ -302,6 +304,8 @@ def bench(args):
     X, labels = load_csv("tests/data/digits_test.csv")
     runs = []
     for stem, eps in ((("digits_mlp", args.eps_mlp)), (("digits_mlp_deep", args.eps_deep))):
+        if args.only and stem != args.only:
+            continue
         layers = load_model(f"tests/data/{stem}.model.json")
         indices = pick_samples(layers, X, labels, 30)
         start = time.perf_counter()
@@ -333,11 +337,10 @@ def bench(args):
         "machine": f"{platform.machine()}, {os.cpu_count()} cores",
         "runs": runs,
     }
-    path = os.path.join(OUT_DIR, "milp_bench.json")
-    with open(path, "w") as f:
+    with open(args.out, "w") as f:
         json.dump(out, f, indent=1)
         f.write("\n")
-    print("wrote", path)
+    print("wrote", args.out)
 
 
 def explore():
@@ -360,6 +363,8 @@ if __name__ == "__main__":
     parser.add_argument("--explore", action="store_true")
     parser.add_argument("--eps-mlp", type=float, default=0.05)
     parser.add_argument("--eps-deep", type=float, default=0.02)
+    parser.add_argument("--only", choices=["digits_mlp", "digits_mlp_deep"], help="--bench one model only")
+    parser.add_argument("--out", default=os.path.join(OUT_DIR, "milp_bench.json"), help="--bench output")
     args = parser.parse_args()
     if args.explore:
         explore()
