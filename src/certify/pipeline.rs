@@ -174,6 +174,14 @@ pub fn run(
             tasks = stages::bound_stage(&context, &mut states, tasks, method);
         }
         searching.extend(tasks);
+        // Samples decided at every epsilon are finished: record them now, so an interruption later
+        // loses none of them.
+        for (slot, state) in states.iter().enumerate() {
+            if finished[slot].is_none() && state.attempts.iter().all(Option::is_some) {
+                let share = started.elapsed().as_secs_f64() / states.len() as f64;
+                finished[slot] = Some(emit(state, share)?);
+            }
+        }
     }
     for state in states.iter_mut() {
         stages::propagate(state);
@@ -188,7 +196,7 @@ pub fn run(
     }
     let bounds_done = !cancel.load(Ordering::SeqCst);
     for (slot, state) in states.iter().enumerate() {
-        if bounds_done && (!search || by_sample[slot].is_empty()) {
+        if finished[slot].is_none() && bounds_done && (!search || by_sample[slot].is_empty()) {
             finished[slot] = Some(emit(state, bounds_share)?);
         }
     }
@@ -198,6 +206,9 @@ pub fn run(
             .zip(by_sample.into_par_iter())
             .map(|(state, tasks)| {
                 if tasks.is_empty() || cancel.load(Ordering::SeqCst) {
+                    return None;
+                }
+                if state.attempts.iter().all(Option::is_some) {
                     return None;
                 }
                 let t = Instant::now();
