@@ -176,12 +176,14 @@ pub fn run(
         searching.extend(tasks);
         // Samples decided at every epsilon are finished: record them now, so an interruption later
         // loses none of them.
-        for (slot, state) in states.iter().enumerate() {
-            if finished[slot].is_none() && state.attempts.iter().all(Option::is_some) {
-                let share = started.elapsed().as_secs_f64() / states.len() as f64;
-                finished[slot] = Some(emit(state, share)?);
-            }
-        }
+        let share = started.elapsed().as_secs_f64() / states.len().max(1) as f64;
+        emit_finished(
+            &states,
+            &mut finished,
+            cancel,
+            |state| state.attempts.iter().all(Option::is_some),
+            &|state| emit(state, share),
+        )?;
     }
     for state in states.iter_mut() {
         stages::propagate(state);
@@ -195,10 +197,20 @@ pub fn run(
         }
     }
     let bounds_done = !cancel.load(Ordering::SeqCst);
-    for (slot, state) in states.iter().enumerate() {
-        if finished[slot].is_none() && bounds_done && (!search || by_sample[slot].is_empty()) {
-            finished[slot] = Some(emit(state, bounds_share)?);
-        }
+    if bounds_done {
+        let waiting: Vec<bool> = by_sample.iter().map(|t| search && !t.is_empty()).collect();
+        let position: std::collections::HashMap<usize, usize> = states
+            .iter()
+            .enumerate()
+            .map(|(slot, s)| (s.index, slot))
+            .collect();
+        emit_finished(
+            &states,
+            &mut finished,
+            cancel,
+            |state| !waiting[position[&state.index]],
+            &|state| emit(state, bounds_share),
+        )?;
     }
     if search && bounds_done {
         let searched: Vec<Option<Result<SampleRecord, CertifyError>>> = states
@@ -225,6 +237,33 @@ pub fn run(
         }
     }
     Ok(finished.into_iter().flatten().collect())
+}
+
+/// Records, in parallel, every sample not yet recorded that `ready` accepts; stops starting new ones
+/// once `cancel` is set.
+fn emit_finished(
+    states: &[SampleState],
+    finished: &mut [Option<SampleRecord>],
+    cancel: &AtomicBool,
+    ready: impl Fn(&SampleState) -> bool + Sync,
+    emit: &(dyn Fn(&SampleState) -> Result<SampleRecord, CertifyError> + Sync),
+) -> Result<(), CertifyError> {
+    let records: Vec<Option<Result<SampleRecord, CertifyError>>> = states
+        .par_iter()
+        .zip(finished.par_iter())
+        .map(|(state, done)| {
+            if done.is_some() || !ready(state) || cancel.load(Ordering::SeqCst) {
+                return None;
+            }
+            Some(emit(state))
+        })
+        .collect();
+    for (slot, record) in records.into_iter().enumerate() {
+        if let Some(r) = record {
+            finished[slot] = Some(r?);
+        }
+    }
+    Ok(())
 }
 
 /// Clean pass: misclassified samples and samples with nothing forbidden are decided at once; the rest
