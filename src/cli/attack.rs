@@ -15,6 +15,7 @@ use crate::threat::Targets;
 /// Arguments of `ballast attack`.
 #[derive(Debug, clap::Args)]
 #[command(
+    allow_negative_numbers = true,
     after_help = "Example: ballast attack --model tests/data/digits_mlp.model.json --data tests/data/digits_test.csv --eps 0.05 --out counterexamples.csv"
 )]
 pub struct Args {
@@ -25,7 +26,7 @@ pub struct Args {
     #[arg(long)]
     pub data: PathBuf,
     /// Perturbation radius for every feature, in raw input units.
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub eps: String,
     /// Norm of the perturbation ball: linf or l2.
     #[arg(long, default_value = "linf")]
@@ -43,7 +44,7 @@ pub struct Args {
     #[arg(long)]
     pub out: Option<PathBuf>,
     /// Required fraction of samples that keep their answer (an attack can only refute it).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub floor: Option<f64>,
     /// Name of the label column.
     #[arg(long, default_value = "label")]
