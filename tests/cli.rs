@@ -96,3 +96,108 @@ fn negative_numbers_reach_the_validation_step_in_either_form() {
     );
     assert!(!Path::new(&root().join("unused.json")).exists());
 }
+
+/// A two-input model with range [0, 1] and a data file in a fresh folder.
+fn range_fixture(name: &str, rows: &str) -> (PathBuf, PathBuf) {
+    let dir = std::env::temp_dir().join(format!("ballast-cli-{name}-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).expect("temp folder");
+    let model = dir.join("m.json");
+    std::fs::write(
+        &model,
+        r#"{"format":"ballast.model/1","input":{"dim":2,"names":["a","b"],"lower":0.0,"upper":1.0},
+           "layers":[{"kind":"dense","weights":[[1.0,-1.0],[-1.0,1.0]],"bias":[0.0,0.0]}]}"#,
+    )
+    .expect("model written");
+    let data = dir.join("d.csv");
+    std::fs::write(&data, format!("a,b,label\n{rows}")).expect("data written");
+    (model, data)
+}
+
+#[test]
+fn values_a_few_ulps_past_the_range_count_as_on_it() {
+    // 1.0000000000000002 is 1 + 2^-52, one unit in the last place above 1 (IEEE 754 double, common
+    // practice); a min-max scaler's output can end there.
+    let (m, d) = range_fixture(
+        "ulps",
+        "1.0000000000000002,0.2,0\n0.1,-0.0000000000000000001,1\n",
+    );
+    let (code, stdout, stderr) = ballast(&[
+        "evaluate",
+        "--model",
+        m.to_str().unwrap(),
+        "--data",
+        d.to_str().unwrap(),
+    ]);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(stdout.contains("samples: 2"), "{stdout}");
+    // Five units past 1 (1 + 5 * 2^-52 = 1.0000000000000011) is beyond the allowance of four.
+    let (m, d) = range_fixture("ulps5", "1.0000000000000011,0.2,0\n");
+    let expected = format!(
+        "error: {}: row 2, column \"a\": 1.0000000000000011 lies outside the model's input range [0, 1] (--out-of-range clip or skip accepts such rows)",
+        d.display()
+    );
+    assert_one_line_error(
+        &[
+            "evaluate",
+            "--model",
+            m.to_str().unwrap(),
+            "--data",
+            d.to_str().unwrap(),
+        ],
+        &expected,
+    );
+}
+
+#[test]
+fn out_of_range_policy_error_clip_skip() {
+    let (m, d) = range_fixture("policy", "0.5,0.2,0\n1.5,0.2,0\n0.1,0.9,1\n");
+    let (m, d) = (m.to_str().unwrap(), d.to_str().unwrap());
+    assert_one_line_error(
+        &["evaluate", "--model", m, "--data", d],
+        &format!("error: {d}: row 3, column \"a\": 1.5 lies outside the model's input range [0, 1] (--out-of-range clip or skip accepts such rows)"),
+    );
+    let (code, stdout, stderr) = ballast(&[
+        "evaluate",
+        "--model",
+        m,
+        "--data",
+        d,
+        "--out-of-range",
+        "clip",
+    ]);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(stdout.contains("samples: 3"), "{stdout}");
+    assert!(
+        stderr.contains("1 of 3 rows had values outside the model's input range"),
+        "{stderr}"
+    );
+    let (code, stdout, stderr) = ballast(&[
+        "evaluate",
+        "--model",
+        m,
+        "--data",
+        d,
+        "--out-of-range",
+        "skip",
+    ]);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(stdout.contains("samples: 2"), "{stdout}");
+    assert!(
+        stderr.contains("1 rows lie outside the model's input range and were left out"),
+        "{stderr}"
+    );
+    assert_one_line_error(
+        &[
+            "certify",
+            "--model",
+            m,
+            "--data",
+            d,
+            "--eps",
+            "0.1",
+            "--out-of-range",
+            "wrap",
+        ],
+        "error: --out-of-range: \"wrap\" is not a policy, expected error, clip or skip",
+    );
+}

@@ -49,6 +49,10 @@ pub struct Args {
     /// Name of the label column.
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -85,7 +89,13 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     }
     let model = super::common::load_model(&args.model, args.allow_large)?;
     let budget = super::common::uniform_budget(&args.eps, &args.norm, &model)?;
-    let data = super::common::load_data(&args.data, &model, &args.label_column, args.allow_large)?;
+    let data = super::common::load_data(
+        &args.data,
+        &model,
+        &args.label_column,
+        &args.out_of_range,
+        args.allow_large,
+    )?;
     let settings = AttackSettings {
         steps: args.steps,
         restarts: args.restarts,

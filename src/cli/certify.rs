@@ -92,6 +92,10 @@ pub struct Args {
     /// Name of the label column.
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -182,7 +186,13 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     }
     let shard = args.shard.as_deref().map(parse_shard).transpose()?;
     let model = load_model(&args.model, args.allow_large)?;
-    let data = load_data(&args.data, &model, &args.label_column, args.allow_large)?;
+    let data = load_data(
+        &args.data,
+        &model,
+        &args.label_column,
+        &args.out_of_range,
+        args.allow_large,
+    )?;
     let requirement = resolve_requirement(args.requirement.as_deref(), flags_spec(&args)?, &model)?;
     if let Some(report) = &args.report {
         check_writable_folder(report)?;

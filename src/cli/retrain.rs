@@ -137,6 +137,10 @@ pub struct Args {
     /// Name of the label column.
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -263,11 +267,23 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     let parent = load_model(&args.model, args.allow_large)?;
     let parent_sha256 = crate::digest::sha256_file(&args.model)
         .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
-    let train_all = load_data(&args.train, &parent, &args.label_column, args.allow_large)?;
+    let train_all = load_data(
+        &args.train,
+        &parent,
+        &args.label_column,
+        &args.out_of_range,
+        args.allow_large,
+    )?;
     let (train, validation) = match &args.val {
         Some(p) => (
             train_all,
-            load_data(p, &parent, &args.label_column, args.allow_large)?,
+            load_data(
+                p,
+                &parent,
+                &args.label_column,
+                &args.out_of_range,
+                args.allow_large,
+            )?,
         ),
         None => {
             let (t, v) = split_validation(&train_all, 0.2, args.seed);
@@ -278,7 +294,13 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         }
     };
     let acceptance = match &args.acceptance {
-        Some(p) => load_data(p, &parent, &args.label_column, args.allow_large)?,
+        Some(p) => load_data(
+            p,
+            &parent,
+            &args.label_column,
+            &args.out_of_range,
+            args.allow_large,
+        )?,
         None => validation.clone(),
     };
 
