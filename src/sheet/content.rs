@@ -67,6 +67,8 @@ pub struct SheetContent {
     pub incomplete: Option<String>,
     /// The requirement in words.
     pub requirement: String,
+    /// Each feature's tolerance and radius in the input's units (per-feature budgets only).
+    pub budget: Option<Table>,
     /// The headline figures.
     pub figures: Vec<Figure>,
     /// Whether the figures are exact (nothing unresolved).
@@ -390,6 +392,7 @@ pub fn build(report: &Report) -> SheetContent {
         rule,
         incomplete,
         requirement: report.requirement.description.clone(),
+        budget: super::budget::budget_table(report),
         figures,
         exactness,
         classes,
