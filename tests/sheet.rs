@@ -237,3 +237,42 @@ fn sheet_lists_each_feature_radius_from_the_tolerance_file() {
         assert!(html.contains(&row), "missing row {row}");
     }
 }
+
+/// An interrupted run's sheet: the figures are over the finished samples (counted here from the
+/// statuses by hand), it says how many of how many finished, and it offers --resume, not --budget.
+#[test]
+fn interrupted_sheet_counts_finished_samples_only() {
+    let mut report = hostile_report(vec![0.1]);
+    assert_eq!(report.samples.len(), 5);
+    report.samples.truncate(2);
+    report.complete = false;
+    report.recompute();
+    let finished = &report.samples;
+    let certified = finished
+        .iter()
+        .filter(|s| s.status == ballast::certify::Status::Certified)
+        .count();
+    let expected_certified = format!("{:.2}%", certified as f64 / 2.0 * 100.0);
+    let c = content::build(&report);
+    let text = markdown::render(&c);
+    assert!(text.contains("2 of 5 finished"), "{text}");
+    assert!(text.contains("interrupted after 2 of 5 samples"), "{text}");
+    assert!(text.contains("over the 2 finished samples only"), "{text}");
+    let figure = c
+        .figures
+        .iter()
+        .find(|f| f.name == "Certified accuracy")
+        .unwrap();
+    assert_eq!(figure.value, expected_certified);
+    let not_run = c.figures.iter().find(|f| f.name == "Not run").unwrap();
+    assert_eq!(not_run.value, "3");
+    assert_eq!(report.summary.verdict, ballast::certify::Verdict::Undecided);
+    assert!(
+        c.reason.contains("3 of 5 samples were not run"),
+        "{}",
+        c.reason
+    );
+    assert!(c.reason.contains("--resume"), "{}", c.reason);
+    assert!(certified > 0, "the check needs a certified finished sample");
+    assert!(!text.contains("More search time (--budget)"), "{text}");
+}

@@ -8,6 +8,7 @@
 pub mod budget;
 pub mod content;
 pub mod escape;
+pub mod finished;
 pub mod html;
 pub mod markdown;
 pub mod svg;
