@@ -201,3 +201,22 @@ fn out_of_range_policy_error_clip_skip() {
         "error: --out-of-range: \"wrap\" is not a policy, expected error, clip or skip",
     );
 }
+
+#[test]
+fn inspect_takes_model_as_flag_or_positional() {
+    let (code, by_flag, stderr) = ballast(&["inspect", "--model", MODEL]);
+    assert_eq!(code, Some(0), "{stderr}");
+    let (code, positional, stderr) = ballast(&["inspect", MODEL]);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert_eq!(by_flag, positional);
+    // 12 inputs: the demo model's input.dim in models/pump-mlp.json.
+    assert!(by_flag.contains("inputs: 12"), "{by_flag}");
+    let (code, _, _) = ballast(&["inspect"]);
+    assert_eq!(code, Some(2));
+}
+
+#[test]
+fn the_demo_output_folder_is_ignored_by_git() {
+    let ignore = std::fs::read_to_string(root().join(".gitignore")).expect(".gitignore");
+    assert!(ignore.lines().any(|l| l.trim() == "ballast-demo/"));
+}
