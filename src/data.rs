@@ -78,8 +78,8 @@ impl Dataset {
 pub struct DataOptions {
     /// Name of the label column.
     pub label_column: String,
-    /// Accept values outside the model's input range (they are an error otherwise).
-    pub allow_out_of_range: bool,
+    /// What to do with a value outside the model's input range (beyond [`RANGE_ULPS`] of it).
+    pub out_of_range: OutOfRange,
     /// Largest file size in bytes.
     pub max_bytes: u64,
 }
@@ -88,20 +88,95 @@ impl Default for DataOptions {
     fn default() -> Self {
         DataOptions {
             label_column: "label".into(),
-            allow_out_of_range: false,
+            out_of_range: OutOfRange::Error,
             max_bytes: crate::limits::MAX_DATA_FILE_BYTES,
         }
     }
 }
 
+/// A value this many units in the last place (or fewer, the unit taken at the range's largest finite
+/// magnitude) beyond an end of the input range counts as on that end and is set to it: a scaler's own output such as 1.0000000000000002 for [0, 1] is rounding,
+/// not data outside the range.
+pub const RANGE_ULPS: u64 = 4;
+
+/// The input-range policy: what happens to a value outside the model's input range.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum OutOfRange {
+    /// Refuse the file, naming the row, column, value and range (the default).
+    #[default]
+    Error,
+    /// Set the value to the nearest end of the range.
+    Clip,
+    /// Leave the whole row out.
+    Skip,
+}
+
+impl std::str::FromStr for OutOfRange {
+    type Err = String;
+    fn from_str(text: &str) -> Result<Self, String> {
+        match text.trim() {
+            "error" => Ok(OutOfRange::Error),
+            "clip" => Ok(OutOfRange::Clip),
+            "skip" => Ok(OutOfRange::Skip),
+            other => Err(format!(
+                "\"{other}\" is not a policy, expected error, clip or skip"
+            )),
+        }
+    }
+}
+
+/// How many rows the input-range policy changed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct RangeCounts {
+    /// Rows with at least one value set to an end of the range (by `clip`).
+    pub clipped_rows: usize,
+    /// Rows left out (by `skip`).
+    pub skipped_rows: usize,
+}
+
+/// One unit in the last place at `x` (finite, ≥ 0): the gap to the next larger double.
+fn ulp(x: f64) -> f64 {
+    f64::from_bits(x.to_bits() + 1) - x
+}
+
+/// `v` placed against `[lower, upper]`: `Ok(v)` inside, `Ok(end)` within [`RANGE_ULPS`] units in the last
+/// place of an end, `Err(nearest end)` beyond. The unit is taken at the range's largest finite magnitude,
+/// so an end at 0 gets the same allowance as the other end (rounding near 0 is not relative to 0).
+fn place_in_range(v: f64, lower: f64, upper: f64) -> Result<f64, f64> {
+    let scale = [lower, upper]
+        .iter()
+        .filter(|e| e.is_finite())
+        .fold(0.0_f64, |m, e| m.max(e.abs()));
+    let allowance = RANGE_ULPS as f64 * ulp(scale);
+    for (outside, end) in [(v < lower, lower), (v > upper, upper)] {
+        if outside {
+            return if end.is_finite() && (v - end).abs() <= allowance {
+                Ok(end)
+            } else {
+                Err(end)
+            };
+        }
+    }
+    Ok(v)
+}
+
 /// Reads a CSV file for `model`.
 pub fn load_csv(path: &Path, model: &Model, options: &DataOptions) -> Result<Dataset, DataError> {
+    load_csv_counted(path, model, options).map(|(data, _)| data)
+}
+
+/// Reads a CSV file for `model` and says how many rows the input-range policy changed.
+pub fn load_csv_counted(
+    path: &Path,
+    model: &Model,
+    options: &DataOptions,
+) -> Result<(Dataset, RangeCounts), DataError> {
     let text =
         crate::limits::read_text_file(path, options.max_bytes).map_err(|source| DataError::Io {
             path: path.display().to_string(),
             source,
         })?;
-    parse_csv(&text, model, options).map_err(|(place, message)| DataError::Invalid {
+    parse_csv_counted(&text, model, options).map_err(|(place, message)| DataError::Invalid {
         path: path.display().to_string(),
         place,
         message,
@@ -114,6 +189,15 @@ pub fn parse_csv(
     model: &Model,
     options: &DataOptions,
 ) -> Result<Dataset, (String, String)> {
+    parse_csv_counted(text, model, options).map(|(data, _)| data)
+}
+
+/// Parses CSV text for `model` and counts the rows the input-range policy changed.
+pub fn parse_csv_counted(
+    text: &str,
+    model: &Model,
+    options: &DataOptions,
+) -> Result<(Dataset, RangeCounts), (String, String)> {
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(true)
         .flexible(true)
@@ -196,6 +280,7 @@ pub fn parse_csv(
     let classes = model.class_count();
     let mut values: Vec<f64> = Vec::new();
     let mut labels = Vec::new();
+    let mut counts = RangeCounts::default();
     for (r, record) in reader.records().enumerate() {
         let row = r + 2;
         let record = record.map_err(|e| (format!("row {row}"), e.to_string()))?;
@@ -215,41 +300,65 @@ pub fn parse_csv(
         let label_text = &record[label_index];
         let label = parse_label(label_text, model, classes)
             .map_err(|m| (format!("row {row}, column \"{}\"", options.label_column), m))?;
-        labels.push(label);
+        let mut row_values = Vec::with_capacity(dim);
+        let mut clipped = false;
+        let mut skipped = false;
         for (k, &c) in feature_columns.iter().enumerate() {
             let field = &record[c];
-            let v: f64 = field.parse().map_err(|_| {
-                (
-                    format!("row {row}, column \"{}\"", &headers[c]),
-                    format!("\"{field}\" is not a number"),
-                )
-            })?;
+            let place = || format!("row {row}, column \"{}\"", &headers[c]);
+            let v: f64 = field
+                .parse()
+                .map_err(|_| (place(), format!("\"{field}\" is not a number")))?;
             if !v.is_finite() {
-                return Err((
-                    format!("row {row}, column \"{}\"", &headers[c]),
-                    format!("\"{field}\" is not a finite number"),
-                ));
+                return Err((place(), format!("\"{field}\" is not a finite number")));
             }
-            if !options.allow_out_of_range && (v < model.input.lower[k] || v > model.input.upper[k])
-            {
-                return Err((
-                    format!("row {row}, column \"{}\"", &headers[c]),
-                    format!(
-                        "{field} lies outside the model's input range [{}, {}]",
-                        model.input.lower[k], model.input.upper[k]
-                    ),
-                ));
-            }
-            values.push(v);
+            let (lower, upper) = (model.input.lower[k], model.input.upper[k]);
+            let v = match (place_in_range(v, lower, upper), options.out_of_range) {
+                (Ok(v), _) => v,
+                (Err(end), OutOfRange::Clip) => {
+                    clipped = true;
+                    end
+                }
+                (Err(_), OutOfRange::Skip) => {
+                    skipped = true;
+                    v
+                }
+                (Err(_), OutOfRange::Error) => {
+                    return Err((
+                        place(),
+                        format!(
+                            "{field} lies outside the model's input range [{lower}, {upper}] \
+                             (--out-of-range clip or skip accepts such rows)"
+                        ),
+                    ))
+                }
+            };
+            row_values.push(v);
         }
+        if skipped {
+            counts.skipped_rows += 1;
+            continue;
+        }
+        counts.clipped_rows += usize::from(clipped);
+        labels.push(label);
+        values.extend(row_values);
+    }
+    if labels.is_empty() && counts.skipped_rows > 0 {
+        return Err((
+            "file".into(),
+            "every row lies outside the model's input range and was skipped".into(),
+        ));
     }
     if labels.is_empty() {
         return Err(("file".into(), "no data rows after the header".into()));
     }
-    Ok(Dataset {
-        features: DMatrix::from_vec(dim, labels.len(), values),
-        labels,
-    })
+    Ok((
+        Dataset {
+            features: DMatrix::from_vec(dim, labels.len(), values),
+            labels,
+        },
+        counts,
+    ))
 }
 
 fn parse_label(text: &str, model: &Model, classes: usize) -> Result<usize, String> {

@@ -185,3 +185,94 @@ fn sheet_command_rerenders_the_same_files() {
     );
     assert!(Path::new(&again.join("sheet.html")).exists());
 }
+
+/// The sheet lists every feature's radius, in the input's units, against the tolerance file it judged:
+/// radius = epsilon × tolerance (the tolerance file's definition in docs/requirement-format.md; doubling
+/// is exact in binary floating point, so the expected text is the shortest form of 2 × tolerance).
+#[test]
+fn sheet_lists_each_feature_radius_from_the_tolerance_file() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let dir = tempfile::tempdir().unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_ballast"))
+        .current_dir(root)
+        .args([
+            "certify",
+            "--model",
+            "models/pump-mlp.json",
+            "--data",
+            "demo-data/acceptance.csv",
+        ])
+        .args([
+            "--tolerances",
+            "demo-data/tolerances.json",
+            "--eps",
+            "2",
+            "--no-attack",
+            "--sheet",
+        ])
+        .arg(dir.path())
+        .output()
+        .expect("the binary runs");
+    assert!(
+        matches!(out.status.code(), Some(0 | 1 | 3)),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let html = std::fs::read_to_string(dir.path().join("sheet.html")).unwrap();
+    let tolerances: serde_json::Map<String, serde_json::Value> = serde_json::from_str(
+        &std::fs::read_to_string(root.join("demo-data/tolerances.json")).unwrap(),
+    )
+    .unwrap();
+    assert_eq!(tolerances.len(), 12);
+    assert!(
+        html.contains("radius at epsilon 2"),
+        "no budget table header"
+    );
+    for (name, value) in &tolerances {
+        let t = value.as_f64().unwrap();
+        let row = format!(
+            "<td>{name}</td><td class=\"num\">{t}</td><td class=\"num\">{}</td>",
+            2.0 * t
+        );
+        assert!(html.contains(&row), "missing row {row}");
+    }
+}
+
+/// An interrupted run's sheet: the figures are over the finished samples (counted here from the
+/// statuses by hand), it says how many of how many finished, and it offers --resume, not --budget.
+#[test]
+fn interrupted_sheet_counts_finished_samples_only() {
+    let mut report = hostile_report(vec![0.1]);
+    assert_eq!(report.samples.len(), 5);
+    report.samples.truncate(2);
+    report.complete = false;
+    report.recompute();
+    let finished = &report.samples;
+    let certified = finished
+        .iter()
+        .filter(|s| s.status == ballast::certify::Status::Certified)
+        .count();
+    let expected_certified = format!("{:.2}%", certified as f64 / 2.0 * 100.0);
+    let c = content::build(&report);
+    let text = markdown::render(&c);
+    assert!(text.contains("2 of 5 finished"), "{text}");
+    assert!(text.contains("interrupted after 2 of 5 samples"), "{text}");
+    assert!(text.contains("over the 2 finished samples only"), "{text}");
+    let figure = c
+        .figures
+        .iter()
+        .find(|f| f.name == "Certified accuracy")
+        .unwrap();
+    assert_eq!(figure.value, expected_certified);
+    let not_run = c.figures.iter().find(|f| f.name == "Not run").unwrap();
+    assert_eq!(not_run.value, "3");
+    assert_eq!(report.summary.verdict, ballast::certify::Verdict::Undecided);
+    assert!(
+        c.reason.contains("3 of 5 samples were not run"),
+        "{}",
+        c.reason
+    );
+    assert!(c.reason.contains("--resume"), "{}", c.reason);
+    assert!(certified > 0, "the check needs a certified finished sample");
+    assert!(!text.contains("More search time (--budget)"), "{text}");
+}

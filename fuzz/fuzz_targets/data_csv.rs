@@ -29,7 +29,11 @@ fuzz_target!(|bytes: &[u8]| {
     };
     let model = &models()[usize::from(selector & 1)];
     let options = ballast::data::DataOptions {
-        allow_out_of_range: selector & 2 != 0,
+        out_of_range: if selector & 2 != 0 {
+            ballast::data::OutOfRange::Clip
+        } else {
+            ballast::data::OutOfRange::Error
+        },
         ..ballast::data::DataOptions::default()
     };
     if let Ok(data) = ballast::data::parse_csv(text, model, &options) {

@@ -15,6 +15,7 @@ use crate::threat::Targets;
 /// Arguments of `ballast attack`.
 #[derive(Debug, clap::Args)]
 #[command(
+    allow_negative_numbers = true,
     after_help = "Example: ballast attack --model tests/data/digits_mlp.model.json --data tests/data/digits_test.csv --eps 0.05 --out counterexamples.csv"
 )]
 pub struct Args {
@@ -25,7 +26,7 @@ pub struct Args {
     #[arg(long)]
     pub data: PathBuf,
     /// Perturbation radius for every feature, in raw input units.
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub eps: String,
     /// Norm of the perturbation ball: linf or l2.
     #[arg(long, default_value = "linf")]
@@ -43,11 +44,15 @@ pub struct Args {
     #[arg(long)]
     pub out: Option<PathBuf>,
     /// Required fraction of samples that keep their answer (an attack can only refute it).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub floor: Option<f64>,
     /// Name of the label column.
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -84,7 +89,13 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     }
     let model = super::common::load_model(&args.model, args.allow_large)?;
     let budget = super::common::uniform_budget(&args.eps, &args.norm, &model)?;
-    let data = super::common::load_data(&args.data, &model, &args.label_column, args.allow_large)?;
+    let data = super::common::load_data(
+        &args.data,
+        &model,
+        &args.label_column,
+        &args.out_of_range,
+        args.allow_large,
+    )?;
     let settings = AttackSettings {
         steps: args.steps,
         restarts: args.restarts,

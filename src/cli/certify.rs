@@ -27,6 +27,7 @@ use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 /// Arguments of `ballast certify`.
 #[derive(Debug, clap::Args)]
 #[command(
+    allow_negative_numbers = true,
     after_help = "Examples:\n  ballast certify --model m.json --data acceptance.csv --eps 0.05 --floor 0.9 --report r.json --sheet sheet/\n  ballast certify --model m.json --data d.csv --eps tolerances.csv --forbid-into normal --floor 0.95\n  ballast certify --model m.json --data d.csv --eps 0.01,0.02,0.05 --radius --report sweep.json\n\nExit codes: 0 requirement met (or no floor and finished), 1 not met, 2 usage or input error, 3 undecided, 130/143 interrupted."
 )]
 pub struct Args {
@@ -38,7 +39,7 @@ pub struct Args {
     pub data: PathBuf,
     /// The budget: a number, a sweep `0.01,0.02,0.05` or `start:stop:step`, or a per-feature tolerance
     /// file (JSON or CSV; radius = scale × tolerance, scale 1).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub eps: Option<String>,
     /// Per-feature tolerance file; `--eps` then gives the scale (default 1).
     #[arg(long)]
@@ -50,13 +51,13 @@ pub struct Args {
     #[arg(long)]
     pub norm: Option<String>,
     /// Required robust fraction in [0, 1].
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub floor: Option<f64>,
     /// Required clean accuracy in [0, 1].
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub min_clean_accuracy: Option<f64>,
     /// Judge the floor by the one-sided Clopper–Pearson lower bound at this level (e.g. 0.95).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub confidence: Option<f64>,
     /// Only changes into these classes count (comma-separated names or indices).
     #[arg(long)]
@@ -65,7 +66,7 @@ pub struct Args {
     #[arg(long)]
     pub forbid_from: Option<String>,
     /// Seconds of branch and bound per sample and epsilon (0 = bounds only).
-    #[arg(long, default_value_t = 0.0)]
+    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
     pub budget: f64,
     /// Write the report here (JSON); the journal and counterexamples go beside it.
     #[arg(long)]
@@ -91,6 +92,10 @@ pub struct Args {
     /// Name of the label column.
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -181,7 +186,13 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     }
     let shard = args.shard.as_deref().map(parse_shard).transpose()?;
     let model = load_model(&args.model, args.allow_large)?;
-    let data = load_data(&args.data, &model, &args.label_column, args.allow_large)?;
+    let data = load_data(
+        &args.data,
+        &model,
+        &args.label_column,
+        &args.out_of_range,
+        args.allow_large,
+    )?;
     let requirement = resolve_requirement(args.requirement.as_deref(), flags_spec(&args)?, &model)?;
     if let Some(report) = &args.report {
         check_writable_folder(report)?;

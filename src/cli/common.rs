@@ -5,7 +5,7 @@ use std::path::Path;
 
 use anyhow::bail;
 
-use crate::data::{load_csv, DataOptions, Dataset};
+use crate::data::{load_csv_counted, DataOptions, Dataset, OutOfRange};
 use crate::model::Model;
 use crate::threat::{Budget, Norm};
 
@@ -33,23 +33,44 @@ pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
     Ok(model)
 }
 
-/// Loads a data file for `model`.
+/// Loads a data file for `model` under the input-range policy `out_of_range` (`--out-of-range`);
+/// says on stderr how many rows the policy clipped or skipped.
 pub fn load_data(
     path: &Path,
     model: &Model,
     label_column: &str,
+    out_of_range: &str,
     allow_large: bool,
 ) -> anyhow::Result<Dataset> {
     let options = DataOptions {
         label_column: label_column.to_owned(),
+        out_of_range: out_of_range
+            .parse::<OutOfRange>()
+            .map_err(|m| anyhow::anyhow!("--out-of-range: {m}"))?,
         max_bytes: if allow_large {
             u64::MAX
         } else {
             crate::limits::MAX_DATA_FILE_BYTES
         },
-        ..DataOptions::default()
     };
-    Ok(load_csv(path, model, &options)?)
+    let (data, counts) = load_csv_counted(path, model, &options)?;
+    if counts.clipped_rows > 0 {
+        eprintln!(
+            "note: {}: {} of {} rows had values outside the model's input range, set to its nearest end (--out-of-range clip)",
+            path.display(),
+            counts.clipped_rows,
+            data.len()
+        );
+    }
+    if counts.skipped_rows > 0 {
+        eprintln!(
+            "note: {}: {} rows lie outside the model's input range and were left out (--out-of-range skip); {} remain",
+            path.display(),
+            counts.skipped_rows,
+            data.len()
+        );
+    }
+    Ok(data)
 }
 
 /// Parses `--norm`.

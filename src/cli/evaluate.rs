@@ -20,6 +20,10 @@ pub struct Args {
     /// Name of the label column.
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -57,7 +61,13 @@ pub fn evaluate(model: &Model, data: &Dataset) -> Evaluation {
 /// Runs `ballast evaluate`.
 pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     let model = super::common::load_model(&args.model, args.allow_large)?;
-    let data = super::common::load_data(&args.data, &model, &args.label_column, args.allow_large)?;
+    let data = super::common::load_data(
+        &args.data,
+        &model,
+        &args.label_column,
+        &args.out_of_range,
+        args.allow_large,
+    )?;
     let result = evaluate(&model, &data);
     println!("samples: {}", data.len());
     println!("clean accuracy: {:.4}", result.accuracy);

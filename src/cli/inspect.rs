@@ -1,4 +1,4 @@
-//! `ballast inspect MODEL`: layers, parameter count, input range and classes of a model.
+//! `ballast inspect --model MODEL` (or `ballast inspect MODEL`): layers, parameter count, input range and classes of a model.
 
 use std::path::PathBuf;
 
@@ -6,10 +6,19 @@ use crate::model::{Layer, Model};
 
 /// Arguments of `ballast inspect`.
 #[derive(Debug, clap::Args)]
-#[command(after_help = "Example: ballast inspect models/pump-mlp.json")]
+#[command(after_help = "Example: ballast inspect --model models/pump-mlp.json")]
 pub struct Args {
-    /// The model file.
-    pub model: PathBuf,
+    /// The model file (as every other command takes it).
+    #[arg(
+        long = "model",
+        value_name = "MODEL",
+        conflicts_with = "model_path",
+        required_unless_present = "model_path"
+    )]
+    pub model: Option<PathBuf>,
+    /// The model file, given without --model.
+    #[arg(value_name = "MODEL")]
+    pub model_path: Option<PathBuf>,
     /// Accept models above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -17,7 +26,11 @@ pub struct Args {
 
 /// Runs `ballast inspect`.
 pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
-    let model = super::common::load_model(&args.model, args.allow_large)?;
+    let path = args
+        .model
+        .or(args.model_path)
+        .ok_or_else(|| anyhow::anyhow!("--model: no model file given"))?;
+    let model = super::common::load_model(&path, args.allow_large)?;
     print!("{}", describe(&model));
     Ok(super::Outcome::Finished)
 }

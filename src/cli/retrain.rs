@@ -27,6 +27,7 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 /// Arguments of `ballast retrain`.
 #[derive(Debug, clap::Args)]
 #[command(
+    allow_negative_numbers = true,
     after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n\nExit codes: 0 floor proven on the acceptance data, 1 not met, 2 usage or input error."
 )]
 pub struct Args {
@@ -43,13 +44,13 @@ pub struct Args {
     #[arg(long)]
     pub acceptance: Option<PathBuf>,
     /// The budget: one number, or a per-feature tolerance file (radius = tolerance).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub eps: Option<String>,
     /// Norm of the ball: linf or l2 (default linf).
     #[arg(long)]
     pub norm: Option<String>,
     /// Required certified fraction on the acceptance data.
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub floor: Option<f64>,
     /// A requirement file (TOML or JSON: epsilon, tolerances, norm, floor, forbid_into, forbid_from);
     /// flags override its values.
@@ -80,16 +81,16 @@ pub struct Args {
     #[arg(long, default_value = "error")]
     pub constraint: String,
     /// Robust loss level for --constraint loss.
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub level: Option<f64>,
     /// Extra margin on the robust-error constraint in the first round.
-    #[arg(long, default_value_t = 0.02)]
+    #[arg(long, default_value_t = 0.02, allow_hyphen_values = true)]
     pub slack: f64,
     /// Slack added in every further round.
-    #[arg(long, default_value_t = 0.03)]
+    #[arg(long, default_value_t = 0.03, allow_hyphen_values = true)]
     pub slack_step: f64,
     /// Fixed penalty weight instead of the primal-dual multiplier (for comparison).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub penalty: Option<f64>,
     /// One constraint and multiplier per class.
     #[arg(long)]
@@ -106,23 +107,23 @@ pub struct Args {
     pub checks_per_epoch: usize,
     /// Checks up to this fraction below the floor by linear bounds are candidates for --keep too,
     /// kept only when the certify pipeline proves the floor for them on the validation data; 0 = off.
-    #[arg(long, default_value_t = 0.0)]
+    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
     pub near_miss: f64,
     /// Most certify runs on the validation data per round to judge near misses.
     #[arg(long, default_value_t = 3)]
     pub near_miss_tries: usize,
     /// Step-size factor at the end of --epochs: the rate is held through the epsilon ramp, then
     /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
-    #[arg(long, default_value_t = 1.0)]
+    #[arg(long, default_value_t = 1.0, allow_hyphen_values = true)]
     pub final_rate: f64,
     /// Dual step size of the multiplier update.
-    #[arg(long, default_value_t = 0.05)]
+    #[arg(long, default_value_t = 0.05, allow_hyphen_values = true)]
     pub dual_step: f64,
     /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
     #[arg(long)]
     pub hidden: Option<String>,
     /// Adam learning rate.
-    #[arg(long, default_value_t = 0.002)]
+    #[arg(long, default_value_t = 0.002, allow_hyphen_values = true)]
     pub learning_rate: f64,
     /// Mini-batch size.
     #[arg(long, default_value_t = 64)]
@@ -136,6 +137,10 @@ pub struct Args {
     /// Name of the label column.
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -262,11 +267,23 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     let parent = load_model(&args.model, args.allow_large)?;
     let parent_sha256 = crate::digest::sha256_file(&args.model)
         .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
-    let train_all = load_data(&args.train, &parent, &args.label_column, args.allow_large)?;
+    let train_all = load_data(
+        &args.train,
+        &parent,
+        &args.label_column,
+        &args.out_of_range,
+        args.allow_large,
+    )?;
     let (train, validation) = match &args.val {
         Some(p) => (
             train_all,
-            load_data(p, &parent, &args.label_column, args.allow_large)?,
+            load_data(
+                p,
+                &parent,
+                &args.label_column,
+                &args.out_of_range,
+                args.allow_large,
+            )?,
         ),
         None => {
             let (t, v) = split_validation(&train_all, 0.2, args.seed);
@@ -277,7 +294,13 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         }
     };
     let acceptance = match &args.acceptance {
-        Some(p) => load_data(p, &parent, &args.label_column, args.allow_large)?,
+        Some(p) => load_data(
+            p,
+            &parent,
+            &args.label_column,
+            &args.out_of_range,
+            args.allow_large,
+        )?,
         None => validation.clone(),
     };
 

@@ -67,6 +67,8 @@ pub struct SheetContent {
     pub incomplete: Option<String>,
     /// The requirement in words.
     pub requirement: String,
+    /// Each feature's tolerance and radius in the input's units (per-feature budgets only).
+    pub budget: Option<Table>,
     /// The headline figures.
     pub figures: Vec<Figure>,
     /// Whether the figures are exact (nothing unresolved).
@@ -143,6 +145,17 @@ pub fn build(report: &Report) -> SheetContent {
             percent(s.empirical_robust_accuracy),
             optional_percent(floor)
         ),
+        (Verdict::Undecided, _) if s.not_run > 0 => format!(
+            "{} of {} samples were not run (the run was interrupted), so the floor {} is neither proven nor refuted. Resume the run with --resume to decide them{}.",
+            s.not_run,
+            s.samples,
+            optional_percent(floor),
+            if s.unresolved > s.not_run {
+                "; more search time (--budget) may decide the finished samples left unresolved"
+            } else {
+                ""
+            }
+        ),
         (Verdict::Undecided, _) => format!(
             "{} unresolved samples straddle the floor {}: certified {} is below it, empirical {} is not. More search time (--budget) may decide them.",
             s.unresolved,
@@ -159,38 +172,53 @@ pub fn build(report: &Report) -> SheetContent {
         DecidedBy::NoRule => "no rule to decide",
     }
     .to_string();
-    let incomplete = (!report.complete).then(|| {
+    let finished = super::finished::Finished::of(report);
+    let incomplete = finished.map(|f| {
         format!(
-            "This report is INCOMPLETE: the run was interrupted after {} of {} samples. The {} samples not run count as unresolved. Resume it with --resume.",
-            report.samples.len(),
-            report.data.samples,
-            s.not_run
+            "This report is INCOMPLETE: the run was interrupted after {} of {} samples. The figures and tables below are over the {} finished samples only; the verdict counts the {} samples not run as unresolved. Resume the run with --resume.",
+            f.finished, f.planned, f.finished, s.not_run
         )
     });
+    let (samples, clean, certified, empirical, unresolved) = match finished {
+        Some(f) => (
+            format!("{} of {} finished", f.finished, f.planned),
+            f.clean_accuracy,
+            f.certified_accuracy,
+            f.empirical_robust_accuracy,
+            f.unresolved,
+        ),
+        None => (
+            s.samples.to_string(),
+            s.clean_accuracy,
+            s.certified_accuracy,
+            s.empirical_robust_accuracy,
+            s.unresolved,
+        ),
+    };
     let mut figures = vec![
         Figure {
             name: "Samples".into(),
-            value: s.samples.to_string(),
+            value: samples,
             meaning: "size of the acceptance set checked".into(),
         },
         Figure {
             name: "Clean accuracy".into(),
-            value: percent(s.clean_accuracy),
+            value: percent(clean),
             meaning: "right without any perturbation".into(),
         },
         Figure {
             name: "Certified accuracy".into(),
-            value: percent(s.certified_accuracy),
+            value: percent(certified),
             meaning: "LOWER bound on robust accuracy: a sound proof that no input within the budget changes the answer".into(),
         },
         Figure {
             name: "Empirical robust accuracy".into(),
-            value: percent(s.empirical_robust_accuracy),
+            value: percent(empirical),
             meaning: "UPPER bound on robust accuracy: every sample not counted has a checked counterexample or is already wrong".into(),
         },
         Figure {
             name: "Unresolved".into(),
-            value: s.unresolved.to_string(),
+            value: unresolved.to_string(),
             meaning: "samples neither proven nor refuted within the time budget".into(),
         },
         Figure {
@@ -199,6 +227,13 @@ pub fn build(report: &Report) -> SheetContent {
             meaning: "certified / counterexample / misclassified; with the unresolved they add up to the samples".into(),
         },
     ];
+    if finished.is_some() {
+        figures.push(Figure {
+            name: "Not run".into(),
+            value: s.not_run.to_string(),
+            meaning: "samples the interrupted run did not reach; in none of the figures above, open in the verdict".into(),
+        });
+    }
     if let Some(l) = s.certified_lower_bound {
         figures.push(Figure {
             name: format!("{confidence} lower confidence bound"),
@@ -206,7 +241,15 @@ pub fn build(report: &Report) -> SheetContent {
             meaning: "one-sided Clopper–Pearson bound on the certified fraction of the population the samples were drawn from (valid only if they are an independent draw)".into(),
         });
     }
-    let exactness = if s.exact {
+    let exactness = if let Some(f) = finished {
+        format!(
+            "Over the {} finished samples the robust accuracy lies between {} and {}; the {} samples not run are in none of these figures.",
+            f.finished,
+            percent(f.certified_accuracy),
+            percent(f.empirical_robust_accuracy),
+            s.not_run
+        )
+    } else if s.exact {
         "Nothing is unresolved, so the two bounds coincide: the robust accuracy on these samples is exact.".to_string()
     } else {
         format!(
@@ -390,6 +433,7 @@ pub fn build(report: &Report) -> SheetContent {
         rule,
         incomplete,
         requirement: report.requirement.description.clone(),
+        budget: super::budget::budget_table(report),
         figures,
         exactness,
         classes,

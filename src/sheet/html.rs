@@ -75,6 +75,10 @@ pub fn render(c: &SheetContent) -> String {
         "<h2>Requirement</h2>\n<p>{}</p>\n",
         h(&c.requirement)
     ));
+    if let Some(t) = &c.budget {
+        s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
+        s.push_str(&table(t));
+    }
     s.push_str(
         "<h2>Figures</h2>\n<table>\n<tr><th>figure</th><th>value</th><th>meaning</th></tr>\n",
     );

@@ -38,6 +38,11 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&format!("> **Warning:** {}\n\n", md(w)));
     }
     s.push_str(&format!("## Requirement\n\n{}\n\n", md(&c.requirement)));
+    if let Some(t) = &c.budget {
+        s.push_str("Radius of each feature, in the input's own units:\n\n");
+        s.push_str(&table(t));
+        s.push('\n');
+    }
     s.push_str("## Figures\n\n| figure | value | meaning |\n| --- | --- | --- |\n");
     for f in &c.figures {
         s.push_str(&format!(

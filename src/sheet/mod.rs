@@ -5,8 +5,10 @@
 //! [`html`] render it, [`svg`] draws the plots, [`escape`] makes every string from a model or data file
 //! inert. The sheet only restates the report: it never recomputes or rounds a verdict.
 
+pub mod budget;
 pub mod content;
 pub mod escape;
+pub mod finished;
 pub mod html;
 pub mod markdown;
 pub mod svg;
