@@ -8,15 +8,18 @@
 //! difference.
 //!
 //! Guarantee: a column's logits and gradient depend only on that column's point, never on the other
-//! columns, the batch size or the number of threads: the batch is cut into blocks of at least
-//! [`MIN_COLUMNS`] columns (narrower products would go column by column through a different summation
-//! order), each block runs the same blocked matrix products, and blocks run in parallel (rayon). Nothing
+//! columns, the batch size or the number of threads: the batch is cut into one block per thread, each
+//! block padded to at least [`MIN_COLUMNS`] columns (narrower products would go column by column
+//! through a different summation order) and run through the same blocked matrix products, the blocks
+//! in parallel (rayon). Nothing
 //! here decides whether a point is a counterexample: that is [`super::counterexample::validate`]'s job,
 //! with a plain forward pass.
 
 use nalgebra::DMatrix;
 use rayon::prelude::*;
 
+use super::runner::SearchPrecision;
+use crate::engine::forward::Precision;
 use crate::engine::Engine;
 use crate::model::Network;
 
@@ -25,8 +28,8 @@ use crate::model::Network;
 /// batch size.
 pub const MIN_COLUMNS: usize = 6;
 
-/// Columns per parallel block: wide enough that each block is an efficient matrix product.
-const BLOCK_COLUMNS: usize = 32;
+/// The narrowest block worth a thread of its own.
+const PARALLEL_COLUMNS: usize = 16;
 
 /// Which class a column's margin is taken against.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -75,8 +78,8 @@ pub struct Evaluation {
     pub gradients: DMatrix<f64>,
 }
 
-/// Evaluates the points (input size × n) with one [`MarginSpec`] per column; gradients only when
-/// `with_gradient`.
+/// Evaluates the points (input size × n) with one [`MarginSpec`] per column, in `precision`; gradients
+/// only when `with_gradient`. Results are returned in f64 whatever the precision.
 ///
 /// # Panics
 /// If `specs.len()` differs from the number of columns or a class index is out of range.
@@ -85,23 +88,25 @@ pub fn evaluate(
     points: &DMatrix<f64>,
     specs: &[MarginSpec<'_>],
     with_gradient: bool,
+    precision: SearchPrecision,
 ) -> Evaluation {
     let n = points.ncols();
     assert_eq!(specs.len(), n, "one margin per column");
     let classes = engine.output_dim();
     let dim = points.nrows();
-    let blocks: Vec<(usize, usize)> = block_ranges(n);
+    let blocks = block_ranges(n, rayon::current_num_threads());
     let parts: Vec<Evaluation> = blocks
         .par_iter()
         .map(|&(start, width)| {
-            evaluate_block(
-                engine,
-                points,
-                start,
-                width,
-                &specs[start..start + width],
-                with_gradient,
-            )
+            let specs = &specs[start..start + width];
+            match precision {
+                SearchPrecision::Double => {
+                    evaluate_block::<f64>(engine, points, start, width, specs, with_gradient)
+                }
+                SearchPrecision::Single => {
+                    evaluate_block::<f32>(engine, points, start, width, specs, with_gradient)
+                }
+            }
         })
         .collect();
     let mut logits = DMatrix::zeros(classes, n);
@@ -123,29 +128,26 @@ pub fn evaluate(
     }
 }
 
-/// `(start, width)` of each block: one block when the batch is small, else blocks of about
-/// [`BLOCK_COLUMNS`] columns, the last one never narrower than [`MIN_COLUMNS`].
-fn block_ranges(n: usize) -> Vec<(usize, usize)> {
+/// `(start, width)` of each block: one block per rayon thread, in nearly equal widths, but no block
+/// narrower than [`PARALLEL_COLUMNS`] unless the whole batch is (every block packs the weights again,
+/// so fewer and wider blocks waste less).
+fn block_ranges(n: usize, threads: usize) -> Vec<(usize, usize)> {
     if n == 0 {
         return Vec::new();
     }
-    if n <= 2 * BLOCK_COLUMNS {
-        return vec![(0, n)];
-    }
-    let mut out = Vec::new();
+    let blocks = threads.clamp(1, (n / PARALLEL_COLUMNS).max(1));
+    let (base, extra) = (n / blocks, n % blocks);
+    let mut out = Vec::with_capacity(blocks);
     let mut start = 0;
-    while start < n {
-        let mut width = BLOCK_COLUMNS.min(n - start);
-        if n - start - width < MIN_COLUMNS {
-            width = n - start;
-        }
+    for b in 0..blocks {
+        let width = base + usize::from(b < extra);
         out.push((start, width));
         start += width;
     }
     out
 }
 
-fn evaluate_block(
+fn evaluate_block<T: Precision + Into<f64>>(
     engine: &Engine,
     points: &DMatrix<f64>,
     start: usize,
@@ -154,29 +156,33 @@ fn evaluate_block(
     with_gradient: bool,
 ) -> Evaluation {
     let padded = width.max(MIN_COLUMNS);
-    let mut block = DMatrix::zeros(points.nrows(), padded);
-    block
-        .columns_mut(0, width)
-        .copy_from(&points.columns(start, width));
+    let mut block = DMatrix::<T>::zeros(points.nrows(), padded);
+    for j in 0..width {
+        for (b, &p) in block
+            .column_mut(j)
+            .iter_mut()
+            .zip(points.column(start + j).iter())
+        {
+            *b = T::from_subset(&p);
+        }
+    }
     let activations = engine.forward(&block);
-    let all_logits = activations.logits();
-    let classes = all_logits.nrows();
+    let logits: DMatrix<f64> = activations.logits().columns(0, width).map(|v| v.into());
     let mut margins = Vec::with_capacity(width);
-    let mut coefficients = DMatrix::zeros(classes, padded);
+    let mut coefficients = DMatrix::<T>::zeros(logits.nrows(), padded);
     for (j, spec) in specs.iter().enumerate() {
-        let column = all_logits.column(j);
+        let column = logits.column(j);
         let z = column.as_slice();
         let target = spec.against.target(z);
         margins.push(z[spec.label] - z[target]);
-        coefficients[(spec.label, j)] += 1.0;
-        coefficients[(target, j)] -= 1.0;
+        coefficients[(spec.label, j)] += T::one();
+        coefficients[(target, j)] -= T::one();
     }
-    let logits = all_logits.columns(0, width).into_owned();
     let gradients = if with_gradient {
         engine
             .input_gradient(&activations, &coefficients)
             .columns(0, width)
-            .into_owned()
+            .map(|v| v.into())
     } else {
         DMatrix::zeros(0, width)
     };
@@ -205,7 +211,7 @@ pub fn margin_and_gradient(
         label,
         against: Against::Class(target),
     };
-    let out = evaluate(&engine, &points, &[spec], true);
+    let out = evaluate(&engine, &points, &[spec], true, SearchPrecision::Double);
     (
         out.margins[0],
         out.gradients.column(0).iter().copied().collect(),
@@ -245,7 +251,7 @@ mod tests {
             };
             9
         ];
-        let out = evaluate(&engine, &points, &specs, false);
+        let out = evaluate(&engine, &points, &specs, false, SearchPrecision::Double);
         for j in 0..9 {
             let x: Vec<f64> = points.column(j).iter().copied().collect();
             let plain = network.forward(&x);
@@ -298,32 +304,33 @@ mod tests {
             };
             n
         ];
-        let all = evaluate(&engine, &points, &specs, true);
-        for j in [0, 31, 32, 77, 149] {
-            let one = evaluate(
-                &engine,
-                &points.columns(j, 1).into_owned(),
-                &specs[..1],
-                true,
-            );
-            // Bit for bit: the same blocked products whatever the batch.
-            assert_eq!(one.logits.column(0), all.logits.column(j));
-            assert_eq!(one.gradients.column(0), all.gradients.column(j));
-            assert_eq!(one.margins[0], all.margins[j]);
+        for precision in [SearchPrecision::Double, SearchPrecision::Single] {
+            let all = evaluate(&engine, &points, &specs, true, precision);
+            for j in [0, 31, 32, 77, 149] {
+                let point = points.columns(j, 1).into_owned();
+                let one = evaluate(&engine, &point, &specs[..1], true, precision);
+                // Bit for bit: the same blocked products whatever the batch.
+                assert_eq!(one.logits.column(0), all.logits.column(j));
+                assert_eq!(one.gradients.column(0), all.gradients.column(j));
+                assert_eq!(one.margins[0], all.margins[j]);
+            }
         }
     }
 
     #[test]
     fn blocks_cover_every_column_once() {
-        for n in [0, 1, 5, 6, 64, 65, 70, 97, 200, 1001] {
-            let blocks = block_ranges(n);
-            let mut next = 0;
-            for &(start, width) in &blocks {
-                assert_eq!(start, next);
-                assert!(width >= MIN_COLUMNS.min(n));
-                next += width;
+        for threads in [1, 2, 3, 8] {
+            for n in [0, 1, 5, 6, 31, 32, 33, 64, 65, 70, 97, 200, 1001] {
+                let blocks = block_ranges(n, threads);
+                assert!(blocks.len() <= threads);
+                let mut next = 0;
+                for &(start, width) in &blocks {
+                    assert_eq!(start, next);
+                    assert!(width >= PARALLEL_COLUMNS.min(n));
+                    next += width;
+                }
+                assert_eq!(next, n);
             }
-            assert_eq!(next, n);
         }
     }
 }

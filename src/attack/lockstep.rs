@@ -21,11 +21,17 @@ use rand_chacha::ChaCha8Rng;
 
 use super::counterexample::{forbidden_margin, validate, Counterexample};
 use super::evaluate::{evaluate, Against, MarginSpec};
-use super::runner::{AttackOutcome, AttackSettings, StopReason};
+use super::runner::{AttackOutcome, AttackSettings, SearchPrecision, StopReason};
 use super::step::{descent_step, fgsm_point, random_start};
 use crate::engine::Engine;
 use crate::model::{predicted_class, Network};
 use crate::threat::Region;
+
+/// In f32 searches, a point whose forbidden margin is at most this fraction of its largest logit
+/// magnitude (plus one) is checked in f64 even when f32 does not see a forbidden class winning. A
+/// heuristic band (the f32 rounding of a forward pass is usually far smaller): a near tie it misses is
+/// a missed counterexample, never a wrong one.
+const SINGLE_TIE: f64 = 1e-4;
 
 /// One sample of a lockstep batch (already checked against the network).
 #[derive(Debug, Clone, Copy)]
@@ -81,6 +87,7 @@ pub(super) fn attack_lockstep(
             .collect(),
     };
     search.schedule();
+    search.recheck_best();
     search
         .states
         .into_iter()
@@ -203,7 +210,13 @@ impl<'a> Lockstep<'a> {
             column_mut(&mut points, j).copy_from_slice(&self.samples[s].region.center);
         }
         let specs = self.specs_for(&open, |s| Against::Strongest(self.samples[s].forbidden));
-        let clean = evaluate(&self.engine, &points, &specs, self.settings.fgsm_first);
+        let clean = evaluate(
+            &self.engine,
+            &points,
+            &specs,
+            self.settings.fgsm_first,
+            self.settings.precision,
+        );
         for (j, &s) in open.iter().enumerate() {
             clean_logits[s] = clean.logits.column(j).iter().copied().collect();
             self.observe(s, column(&points, j), &clean_logits[s]);
@@ -230,7 +243,7 @@ impl<'a> Lockstep<'a> {
         let specs = self.specs_for(&fgsm_samples, |s| {
             Against::Strongest(self.samples[s].forbidden)
         });
-        let at_fgsm = evaluate(&self.engine, &fgsm, &specs, false);
+        let at_fgsm = evaluate(&self.engine, &fgsm, &specs, false, self.settings.precision);
         for (i, &s) in fgsm_samples.iter().enumerate() {
             let logits: Vec<f64> = at_fgsm.logits.column(i).iter().copied().collect();
             self.observe(s, column(&fgsm, i), &logits);
@@ -251,6 +264,25 @@ impl<'a> Lockstep<'a> {
                 against: against(s),
             })
             .collect()
+    }
+
+    /// The best margin of every sample without a counterexample, recomputed by a plain forward pass
+    /// at its best point (which is validated too, should that pass put it in a forbidden class).
+    fn recheck_best(&mut self) {
+        for (sample, state) in self.samples.iter().zip(&mut self.states) {
+            if state.found.is_some() || sample.forbidden.is_empty() {
+                continue;
+            }
+            let logits = self.network.forward(&state.best_input);
+            state.best_margin = forbidden_margin(logits.as_slice(), sample.label, sample.forbidden);
+            state.found = validate(
+                self.network,
+                sample.region,
+                sample.label,
+                sample.forbidden,
+                &state.best_input,
+            );
+        }
     }
 
     /// True once the deadline has passed; then every open sample is closed as stopped by it.
@@ -289,10 +321,11 @@ impl<'a> Lockstep<'a> {
             state.best_input.copy_from_slice(x);
         }
         let predicted = predicted_class(logits);
-        if state.found.is_none()
-            && predicted != sample.label
-            && sample.forbidden.contains(&predicted)
-        {
+        let candidate = (predicted != sample.label && sample.forbidden.contains(&predicted))
+            || (self.settings.precision == SearchPrecision::Single
+                && margin
+                    <= SINGLE_TIE * (1.0 + logits.iter().fold(0.0f64, |m, z| m.max(z.abs()))));
+        if state.found.is_none() && candidate {
             state.found = validate(
                 self.network,
                 sample.region,
@@ -338,7 +371,7 @@ impl<'a> Lockstep<'a> {
                     against: r.against,
                 })
                 .collect();
-            let out = evaluate(&self.engine, &x, &specs, true);
+            let out = evaluate(&self.engine, &x, &specs, true, self.settings.precision);
             let mut gradient = out.gradients;
             let mut keep = Vec::with_capacity(runs.len());
             for (j, &s) in samples.iter().enumerate() {
@@ -399,7 +432,7 @@ impl<'a> Lockstep<'a> {
                     against: r.against,
                 })
                 .collect();
-            let out = evaluate(&self.engine, &x, &specs, false);
+            let out = evaluate(&self.engine, &x, &specs, false, self.settings.precision);
             for (j, run) in runs.iter().enumerate() {
                 let logits: Vec<f64> = out.logits.column(j).iter().copied().collect();
                 self.observe(run.sample, column(&x, j), &logits);

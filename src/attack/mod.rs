@@ -19,7 +19,7 @@ pub use counterexample::{forbidden_margin, validate, Counterexample};
 pub use evaluate::margin_and_gradient;
 pub use runner::{
     attack_batch, attack_sample, sample_seed, AttackOutcome, AttackProblem, AttackSettings,
-    StopReason,
+    SearchPrecision, StopReason,
 };
 
 /// Misuse of the attack API (bad sizes, classes or settings); outcomes are never errors.

@@ -46,11 +46,27 @@ pub struct AttackSettings {
     pub targeted: bool,
     /// Stop at the first validated counterexample (off only to time full budgets).
     pub stop_at_first: bool,
+    /// The floating-point format the search evaluates points and gradients in.
+    pub precision: SearchPrecision,
+}
+
+/// The floating-point format of the search's forward and gradient passes. Whatever it is, a
+/// counterexample is only ever accepted by [`super::validate`]'s plain f64 forward pass, and the
+/// reported best margin is recomputed by that pass too.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum SearchPrecision {
+    /// f64 throughout.
+    #[default]
+    Double,
+    /// f32 forward and gradient passes (about twice the matrix-product throughput); any point whose
+    /// f32 margin is within rounding of a forbidden class winning is checked in f64.
+    Single,
 }
 
 impl Default for AttackSettings {
     /// 100 steps, 5 restarts, first step a quarter of the radius, halved after 10 steps without
-    /// progress, FGSM first, targeted runs, stop at the first counterexample, no time limit, seed 0.
+    /// progress, FGSM first, targeted runs, stop at the first counterexample, no time limit, seed 0,
+    /// f64 search.
     fn default() -> Self {
         AttackSettings {
             steps: 100,
@@ -62,6 +78,7 @@ impl Default for AttackSettings {
             fgsm_first: true,
             targeted: true,
             stop_at_first: true,
+            precision: SearchPrecision::Double,
         }
     }
 }
@@ -100,8 +117,8 @@ pub enum AttackOutcome {
     Found(Counterexample),
     /// No counterexample was found (which proves nothing about robustness).
     NotFound {
-        /// Smallest forbidden margin (`logit[label] − best forbidden logit`) seen at any point tried;
-        /// +∞ when no class is forbidden.
+        /// Forbidden margin (`logit[label] − best forbidden logit`, by a plain forward pass) at the point
+        /// with the smallest margin the search saw; +∞ when no class is forbidden.
         best_margin: f64,
         /// The point where it was seen (inside the region).
         best_input: Vec<f64>,

@@ -21,6 +21,7 @@ use rand_chacha::ChaCha8Rng;
 
 use crate::attack::evaluate::{evaluate, Against, MarginSpec};
 use crate::attack::step::{descent_step, random_start};
+use crate::attack::SearchPrecision;
 use crate::bound::CERTIFY_TOLERANCE;
 use crate::engine::Engine;
 use crate::model::{Model, Network, Normalization};
@@ -206,7 +207,7 @@ pub fn pgd_points(
         for (j, &s) in moving.iter().enumerate() {
             batch.column_mut(j).copy_from_slice(&points[s]);
         }
-        let gradients = evaluate(&engine, &batch, &specs, true).gradients;
+        let gradients = evaluate(&engine, &batch, &specs, true, SearchPrecision::Double).gradients;
         for (j, &s) in moving.iter().enumerate() {
             let g = gradients.column(j);
             descent_step(&regions[s], &mut points[s], g.as_slice(), step);
