@@ -21,10 +21,11 @@ use crate::threat::{Norm, Region};
 pub fn descent_step(region: &Region, x: &mut [f64], gradient: &[f64], step: f64) {
     match region.norm {
         Norm::Linf => {
+            // Branch-free (so it vectorises): the sign is 0 for a zero gradient, and a zero radius
+            // moves nothing (x − 0 = x exactly).
             for ((xi, g), r) in x.iter_mut().zip(gradient).zip(&region.radii) {
-                if *r > 0.0 && *g != 0.0 {
-                    *xi -= step * r * g.signum();
-                }
+                let sign = f64::from(u8::from(*g > 0.0)) - f64::from(u8::from(*g < 0.0));
+                *xi -= step * r * sign;
             }
         }
         Norm::L2 => {
