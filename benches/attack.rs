@@ -1,11 +1,12 @@
 //! Attack throughput of the batched (lockstep) attack.
 //!
-//! - `pgd_wide`: a 784-256-256-10 ReLU network — the 784-input benchmark fixture
-//!   `target/bench-fixtures/wide_256x2.model.json` with its first 64 rows of `wide_test.csv` when
-//!   present (made by `tests/reference/wide_fixtures.py`), otherwise a random network of that shape
-//!   (ChaCha8 seed 17, uniform weights scaled by 1/√fan-in) with 64 random inputs in [0, 1] labelled by
-//!   the network itself — L-inf ε = 0.02, PGD 20 steps × 5 restarts, **full budget** (no early exit,
-//!   no FGSM, no targeted runs), f64 and f32 search.
+//! - `pgd100x5_wide_*`: a 784-256-256-10 ReLU network — the 784-input benchmark fixture
+//!   `target/bench-fixtures/wide_256x2.model.json` with the correctly classified rows among the 200 of
+//!   `wide_test.csv` when present (made by `tests/reference/wide_fixtures.py`), otherwise a random
+//!   network of that shape (ChaCha8 seed 17, uniform weights scaled by 1/√fan-in) with 200 random
+//!   inputs in [0, 1] labelled by the network itself — L-inf ε = 0.02, PGD 100 steps × 5 restarts
+//!   (the first from the sample), untargeted, no FGSM, early exit per sample: the schedule of
+//!   `tests/reference/pgd_batched_reference.py` without `--targeted`; f64 and f32 search.
 //! - `pgd100x5_digits`: the digits MLP fixture (64-32-10), correctly classified samples among the first
 //!   100 test rows, L-inf ε = 0.05, PGD 100 × 5, full budget; all samples in one batch, and one sample at
 //!   a time (`attack_sample` in a loop) to show what batching brings.
@@ -28,15 +29,16 @@ use rand_chacha::ChaCha8Rng;
 
 const WIDE_MODEL: &str = "target/bench-fixtures/wide_256x2.model.json";
 const WIDE_DATA: &str = "target/bench-fixtures/wide_test.csv";
-const WIDE_ROWS: usize = 64;
+const WIDE_ROWS: usize = 200;
 
-fn full_budget(steps: usize, precision: SearchPrecision) -> AttackSettings {
+/// PGD 100 × 5, untargeted, no FGSM; `stop_at_first` as given.
+fn untargeted(stop_at_first: bool, precision: SearchPrecision) -> AttackSettings {
     AttackSettings {
-        steps,
+        steps: 100,
         restarts: 5,
         fgsm_first: false,
         targeted: false,
-        stop_at_first: false,
+        stop_at_first,
         precision,
         ..AttackSettings::default()
     }
@@ -100,15 +102,15 @@ fn wide() -> (String, Network, Vec<AttackProblem>) {
 
 fn pgd_wide(c: &mut Criterion) {
     let (source, network, problems) = wide();
-    let mut group = c.benchmark_group(format!("pgd20x5_wide_{source}"));
+    let mut group = c.benchmark_group(format!("pgd100x5_wide_{source}"));
     group.sample_size(10);
     group.throughput(Throughput::Elements(problems.len() as u64));
     for (name, precision) in [
         ("f64", SearchPrecision::Double),
         ("f32", SearchPrecision::Single),
     ] {
-        let settings = full_budget(20, precision);
-        group.bench_function(format!("full_budget_{name}"), |b| {
+        let settings = untargeted(true, precision);
+        group.bench_function(format!("early_exit_{name}"), |b| {
             b.iter(|| attack_batch(&network, &problems, &settings).expect("valid"))
         });
     }
@@ -145,7 +147,7 @@ fn digits() -> (Network, Vec<AttackProblem>) {
 
 fn pgd_digits(c: &mut Criterion) {
     let (network, problems) = digits();
-    let full = full_budget(100, SearchPrecision::Double);
+    let full = untargeted(false, SearchPrecision::Double);
     let mut group = c.benchmark_group("pgd100x5_digits");
     group.sample_size(10);
     group.throughput(Throughput::Elements(problems.len() as u64));

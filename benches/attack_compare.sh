@@ -9,12 +9,13 @@
 #   - numpy: tests/reference/pgd_batched_reference.py, every sample stepped at once, untargeted 5 x 100
 #     and --targeted (the same schedule as ballast's), with 1 and 2 BLAS threads.
 # Environment: PYTHON (default /work/venv/bin/python), REF (folder of the reference scripts, default
-# tests/reference), ROUNDS (default 2). Wall times come from GNU time; results go in
-# docs/benchmarks/attack.md. Then `cargo bench --bench attack` for throughput figures.
+# tests/reference), ROUNDS (default 2), THREADS (BLAS thread counts for numpy, default "1 2"). Wall times come from GNU time; results go in
+# docs/benchmarks/attack.md. Last, `cargo bench --bench attack` times the untargeted schedule in the library.
 set -eu
 PYTHON=${PYTHON:-/work/venv/bin/python}
 REF=${REF:-tests/reference}
 ROUNDS=${ROUNDS:-2}
+THREADS=${THREADS:-1 2}
 FIX=target/bench-fixtures
 MODEL=$FIX/wide_256x2.model.json
 DATA=$FIX/wide_test.csv
@@ -46,7 +47,7 @@ for round in $(seq "$ROUNDS"); do
             --steps 100 --restarts 5
     fi
     if [ -f "$REF/pgd_batched_reference.py" ]; then
-        for t in 1 2; do
+        for t in $THREADS; do
             timed "numpy batched 5x100, $t BLAS thread(s)" env OPENBLAS_NUM_THREADS=$t OMP_NUM_THREADS=$t \
                 "$PYTHON" "$REF/pgd_batched_reference.py" --model "$MODEL" --data "$DATA" --eps 0.02
             timed "numpy batched --targeted, $t BLAS thread(s)" env OPENBLAS_NUM_THREADS=$t \
@@ -57,3 +58,5 @@ for round in $(seq "$ROUNDS"); do
         echo "($REF/pgd_batched_reference.py not found: numpy runs skipped)"
     fi
 done
+echo "== cargo bench --bench attack (the untargeted schedule above, in the library, and the digits MLP)"
+nice -n 10 cargo bench --bench attack -- --noplot 2>&1 | grep -E "^pgd|thrpt|time:"
