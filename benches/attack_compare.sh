@@ -32,8 +32,9 @@ timed() {
     out=$(nice -n 10 "$@" 2>&1)
     end=$(date +%s.%N)
     found=$(echo "$out" | sed -n 's/^counterexamples: //p; s/.*: found \([0-9]*\) .*/\1/p' | head -1)
-    printf '%-44s %8.2f s  found %s  (load %s)\n' "$label" "$(echo "$end - $start" | bc)" "$found" \
-        "$(cut -d' ' -f1 /proc/loadavg)"
+    inner=$(echo "$out" | sed -n 's/.*; attack \([0-9.]*\) s$/, attack alone \1 s/p')
+    printf '%-44s %8.2f s  found %s  (load %s%s)\n' "$label" "$(echo "$end - $start" | bc)" "$found" \
+        "$(cut -d' ' -f1 /proc/loadavg)" "$inner"
 }
 
 for round in $(seq "$ROUNDS"); do

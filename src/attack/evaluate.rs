@@ -115,9 +115,8 @@ pub fn evaluate(
     for (&(start, width), part) in blocks.iter().zip(parts) {
         logits.columns_mut(start, width).copy_from(&part.logits);
         if with_gradient {
-            gradients
-                .columns_mut(start, width)
-                .copy_from(&part.gradients);
+            gradients.as_mut_slice()[start * dim..(start + width) * dim]
+                .copy_from_slice(part.gradients.as_slice());
         }
         margins.extend(part.margins);
     }
@@ -156,15 +155,12 @@ fn evaluate_block<T: Precision + Into<f64>>(
     with_gradient: bool,
 ) -> Evaluation {
     let padded = width.max(MIN_COLUMNS);
-    let mut block = DMatrix::<T>::zeros(points.nrows(), padded);
-    for j in 0..width {
-        for (b, &p) in block
-            .column_mut(j)
-            .iter_mut()
-            .zip(points.column(start + j).iter())
-        {
-            *b = T::from_subset(&p);
-        }
+    let dim = points.nrows();
+    let mut block = DMatrix::<T>::zeros(dim, padded);
+    // Column-major storage: the block's columns are one contiguous run of the batch.
+    let source = &points.as_slice()[start * dim..(start + width) * dim];
+    for (b, p) in block.as_mut_slice().iter_mut().zip(source) {
+        *b = T::from_subset(p);
     }
     let activations = engine.forward(&block);
     let logits: DMatrix<f64> = activations.logits().columns(0, width).map(|v| v.into());
@@ -179,10 +175,9 @@ fn evaluate_block<T: Precision + Into<f64>>(
         coefficients[(target, j)] -= T::one();
     }
     let gradients = if with_gradient {
-        engine
-            .input_gradient(&activations, &coefficients)
-            .columns(0, width)
-            .map(|v| v.into())
+        let g = engine.input_gradient(&activations, &coefficients);
+        let used = &g.as_slice()[..dim * width];
+        DMatrix::from_iterator(dim, width, used.iter().map(|&v| v.into()))
     } else {
         DMatrix::zeros(0, width)
     };

@@ -27,6 +27,11 @@ pub fn descent_step(region: &Region, x: &mut [f64], gradient: &[f64], step: f64)
                 let sign = f64::from(u8::from(*g > 0.0)) - f64::from(u8::from(*g < 0.0));
                 *xi -= step * r * sign;
             }
+            // The L-inf region is its box: the projection is the clamp of `Region::project`, written
+            // with max/min so it vectorises (the same values for the finite points here).
+            for ((xi, lo), hi) in x.iter_mut().zip(&region.lower).zip(&region.upper) {
+                *xi = xi.max(*lo).min(*hi);
+            }
         }
         Norm::L2 => {
             let length = gradient
@@ -41,9 +46,9 @@ pub fn descent_step(region: &Region, x: &mut [f64], gradient: &[f64], step: f64)
                     *xi -= scale * r * r * g;
                 }
             }
+            region.project(x);
         }
     }
-    region.project(x);
 }
 
 /// The fast gradient sign point (Goodfellow et al., 2015; for L2 the normalised-gradient analogue): one
