@@ -22,10 +22,14 @@ use rand_chacha::ChaCha8Rng;
 use super::counterexample::{forbidden_margin, validate, Counterexample};
 use super::evaluate::{evaluate, Against, MarginSpec};
 use super::runner::{AttackOutcome, AttackSettings, SearchPrecision, StopReason};
-use super::step::{descent_step, fgsm_point, random_start};
+use super::step::{fgsm_point, random_start};
 use crate::engine::Engine;
 use crate::model::{predicted_class, Network};
 use crate::threat::Region;
+
+mod pgd;
+
+use pgd::{column, column_mut};
 
 /// In f32 searches, a point whose forbidden margin is at most this fraction of its largest logit
 /// magnitude (plus one) is checked in f64 even when f32 does not see a forbidden class winning. A
@@ -52,15 +56,6 @@ struct State {
     /// Still scheduled for further points.
     open: bool,
     deadline_hit: bool,
-}
-
-/// One column of a PGD phase.
-struct Run<'a> {
-    sample: usize,
-    against: Against<'a>,
-    step: f64,
-    best_loss: f64,
-    stalled: usize,
 }
 
 /// Runs the whole schedule for every sample of the batch.
@@ -335,120 +330,4 @@ impl<'a> Lockstep<'a> {
             );
         }
     }
-
-    /// One PGD run per entry `(sample, start, margin)`, all stepped together. Returns false when the
-    /// deadline stopped it.
-    fn pgd_phase(&mut self, entries: Vec<(usize, Vec<f64>, Against<'a>)>) -> bool {
-        if entries.is_empty() {
-            return true;
-        }
-        let dim = self.engine.input_dim();
-        let mut x = DMatrix::zeros(dim, entries.len());
-        let mut runs = Vec::with_capacity(entries.len());
-        for (j, (s, start, against)) in entries.into_iter().enumerate() {
-            let column = column_mut(&mut x, j);
-            column.copy_from_slice(&start);
-            self.samples[s].region.project(column);
-            runs.push(Run {
-                sample: s,
-                against,
-                step: self.settings.step_fraction,
-                best_loss: f64::INFINITY,
-                stalled: 0,
-            });
-        }
-        let mut best_x = x.clone();
-        let mut best_gradient = DMatrix::zeros(dim, runs.len());
-        for _ in 0..self.settings.steps {
-            if self.past_deadline() {
-                return false;
-            }
-            let samples: Vec<usize> = runs.iter().map(|r| r.sample).collect();
-            let specs: Vec<MarginSpec<'a>> = runs
-                .iter()
-                .map(|r| MarginSpec {
-                    label: self.samples[r.sample].label,
-                    against: r.against,
-                })
-                .collect();
-            let out = evaluate(&self.engine, &x, &specs, true, self.settings.precision);
-            let mut gradient = out.gradients;
-            let mut keep = Vec::with_capacity(runs.len());
-            for (j, &s) in samples.iter().enumerate() {
-                let logits: Vec<f64> = out.logits.column(j).iter().copied().collect();
-                self.observe(s, column(&x, j), &logits);
-                self.after_point(s);
-                keep.push(self.states[s].open);
-            }
-            if self.past_deadline() {
-                return false;
-            }
-            let mut margins = out.margins;
-            if keep.iter().any(|k| !k) {
-                let kept: Vec<usize> = (0..keep.len()).filter(|&j| keep[j]).collect();
-                x = x.select_columns(&kept);
-                gradient = gradient.select_columns(&kept);
-                best_x = best_x.select_columns(&kept);
-                best_gradient = best_gradient.select_columns(&kept);
-                margins = kept.iter().map(|&j| margins[j]).collect();
-                let mut index = 0;
-                runs.retain(|_| {
-                    index += 1;
-                    keep[index - 1]
-                });
-                if runs.is_empty() {
-                    return true;
-                }
-            }
-            for (j, run) in runs.iter_mut().enumerate() {
-                if margins[j] < run.best_loss {
-                    run.best_loss = margins[j];
-                    column_mut(&mut best_x, j).copy_from_slice(column(&x, j));
-                    column_mut(&mut best_gradient, j).copy_from_slice(column(&gradient, j));
-                    run.stalled = 0;
-                } else {
-                    run.stalled += 1;
-                    if run.stalled >= self.settings.patience {
-                        run.step *= 0.5;
-                        column_mut(&mut x, j).copy_from_slice(column(&best_x, j));
-                        column_mut(&mut gradient, j).copy_from_slice(column(&best_gradient, j));
-                        run.stalled = 0;
-                    }
-                }
-                let region = self.samples[run.sample].region;
-                descent_step(
-                    region,
-                    column_mut(&mut x, j),
-                    column(&gradient, j),
-                    run.step,
-                );
-            }
-        }
-        if self.settings.steps > 0 {
-            let specs: Vec<MarginSpec<'a>> = runs
-                .iter()
-                .map(|r| MarginSpec {
-                    label: self.samples[r.sample].label,
-                    against: r.against,
-                })
-                .collect();
-            let out = evaluate(&self.engine, &x, &specs, false, self.settings.precision);
-            for (j, run) in runs.iter().enumerate() {
-                let logits: Vec<f64> = out.logits.column(j).iter().copied().collect();
-                self.observe(run.sample, column(&x, j), &logits);
-                self.after_point(run.sample);
-            }
-        }
-        !self.past_deadline()
-    }
-}
-
-fn column(m: &DMatrix<f64>, j: usize) -> &[f64] {
-    let rows = m.nrows();
-    &m.as_slice()[j * rows..(j + 1) * rows]
-}
-
-fn column_mut(m: &mut DMatrix<f64>, j: usize) -> &mut [f64] {
-    let rows = m.nrows();
-    &mut m.as_mut_slice()[j * rows..(j + 1) * rows]
 }
