@@ -265,7 +265,8 @@ impl<'a> Lockstep<'a> {
     /// at its best point (which is validated too, should that pass put it in a forbidden class).
     fn recheck_best(&mut self) {
         for (sample, state) in self.samples.iter().zip(&mut self.states) {
-            if state.found.is_some() || sample.forbidden.is_empty() {
+            // Nothing forbidden, or no point seen before the deadline: nothing to recheck.
+            if state.found.is_some() || !state.best_margin.is_finite() {
                 continue;
             }
             let logits = self.network.forward(&state.best_input);
