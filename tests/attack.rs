@@ -767,6 +767,7 @@ fn cli_rejects_bad_input_with_exit_2_and_writes_nothing() {
         (vec!["--eps", "0.1", "--norm", "l3"], "--norm"),
         (vec!["--eps", "0.1", "--floor", "1.5"], "--floor"),
         (vec!["--eps", "0.1", "--steps", "0"], "--steps"),
+        (vec!["--eps", "0.1", "--precision", "half"], "--precision"),
     ] {
         let output = ballast()
             .args(["attack", "--model", DIGITS_MODEL, "--data", DIGITS_TEST])
