@@ -10,12 +10,13 @@ use std::time::{Duration, Instant};
 use approx::assert_abs_diff_eq;
 use ballast::attack::{
     attack_batch, attack_sample, margin_and_gradient, sample_seed, validate, AttackError,
-    AttackOutcome, AttackProblem, AttackSettings, StopReason,
+    AttackOutcome, AttackProblem, AttackSettings, SearchPrecision, StopReason,
 };
 use ballast::data::{load_csv, DataOptions};
 use ballast::model::{predicted_class, Dense, Model, Network};
 use ballast::threat::{Budget, Norm, Region, Targets};
 use nalgebra::{DMatrix, DVector};
+use proptest::prelude::*;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
@@ -377,6 +378,170 @@ fn batches_are_deterministic_and_match_single_samples() {
     assert!(first.iter().any(|o| o.counterexample().is_none()));
 }
 
+/// A mixed batch on one random network: L-inf and L2 balls, per-feature radii (some 0), bounded and
+/// unbounded ranges, restricted targets and extra starts on some samples.
+fn mixed_problems(rng: &mut ChaCha8Rng, network: &Network, count: usize) -> Vec<AttackProblem> {
+    let dim = network.input_dim();
+    let classes = network.output_dim();
+    (0..count)
+        .map(|index| {
+            let norm = if rng.gen_bool(0.5) {
+                Norm::Linf
+            } else {
+                Norm::L2
+            };
+            let radii = (0..dim)
+                .map(|_| {
+                    if rng.gen_bool(0.2) {
+                        0.0
+                    } else {
+                        rng.gen_range(0.0..0.5)
+                    }
+                })
+                .collect();
+            let (lower, upper) = if rng.gen_bool(0.5) {
+                (vec![0.0; dim], vec![1.0; dim])
+            } else {
+                unbounded(dim)
+            };
+            let center: Vec<f64> = (0..dim).map(|_| rng.gen_range(0.0..1.0)).collect();
+            let label = predicted_class(network.forward(&center).as_slice());
+            let targets = if rng.gen_bool(0.7) {
+                Targets::Any
+            } else {
+                Targets::Into {
+                    classes: vec![rng.gen_range(0..classes)],
+                    from: None,
+                }
+            };
+            let extra_starts = (0..rng.gen_range(0..3))
+                .map(|_| (0..dim).map(|_| rng.gen_range(-0.5..1.5)).collect())
+                .collect();
+            AttackProblem {
+                index,
+                region: Budget { norm, radii }.region(&center, &lower, &upper),
+                label,
+                forbidden: targets.forbidden_for(label, classes),
+                extra_starts,
+            }
+        })
+        .collect()
+}
+
+/// The batch runs every sample's own schedule: each outcome equals the one `attack_sample` gives that
+/// sample alone with the same seed, bit for bit, under every schedule option and both precisions.
+#[test]
+fn batched_results_equal_per_sample_results() {
+    let mut rng = ChaCha8Rng::seed_from_u64(404);
+    let mut found = 0;
+    let mut not_found = 0;
+    for (case, sizes) in [
+        vec![3, 2],
+        vec![5, 4, 3],
+        vec![8, 12, 7, 4],
+        vec![20, 40, 30, 6],
+    ]
+    .iter()
+    .enumerate()
+    {
+        let network = random_network(&mut rng, sizes);
+        let problems = mixed_problems(&mut rng, &network, 70);
+        for (fgsm_first, targeted, stop_at_first, precision) in [
+            (true, true, true, SearchPrecision::Double),
+            (false, true, false, SearchPrecision::Double),
+            (true, false, true, SearchPrecision::Single),
+            (true, true, false, SearchPrecision::Single),
+        ] {
+            let settings = AttackSettings {
+                steps: 15,
+                restarts: 3,
+                patience: 3,
+                seed: case as u64,
+                fgsm_first,
+                targeted,
+                stop_at_first,
+                precision,
+                ..AttackSettings::default()
+            };
+            let batch = attack_batch(&network, &problems, &settings).expect("valid");
+            assert_eq!(batch.len(), problems.len());
+            for (p, outcome) in problems.iter().zip(&batch) {
+                let single = attack_sample(
+                    &network,
+                    &p.region,
+                    p.label,
+                    &p.forbidden,
+                    &settings,
+                    sample_seed(settings.seed, p.index),
+                    &p.extra_starts,
+                )
+                .expect("valid");
+                assert_eq!(&single, outcome, "network {sizes:?}, sample {}", p.index);
+                match outcome {
+                    AttackOutcome::Found(_) => found += 1,
+                    AttackOutcome::NotFound { .. } => not_found += 1,
+                }
+            }
+        }
+    }
+    // Not vacuous: both outcomes occur often.
+    assert!(
+        found >= 100 && not_found >= 100,
+        "{found} found, {not_found} not"
+    );
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(48))]
+
+    /// Common practice: a counterexample lies in the ball ∩ input range — here checked exactly, with no
+    /// tolerance, on the box of the region (for L2 the ball itself up to rounding of the norm) — keeps
+    /// fixed features exactly, and a plain forward pass puts it in a forbidden class other than the
+    /// label. Batches of random problems on random networks, both precisions.
+    #[test]
+    fn every_batched_counterexample_is_inside_the_region_exactly_and_flips_the_class(
+        seed in any::<u64>(),
+        depth in 0usize..3,
+        single in any::<bool>(),
+    ) {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let dim = rng.gen_range(1..10);
+        let mut sizes = vec![dim];
+        for _ in 0..depth {
+            sizes.push(rng.gen_range(2..16));
+        }
+        sizes.push(rng.gen_range(2..6));
+        let network = random_network(&mut rng, &sizes);
+        let problems = mixed_problems(&mut rng, &network, 24);
+        let settings = AttackSettings {
+            steps: 10,
+            restarts: 2,
+            seed,
+            precision: if single { SearchPrecision::Single } else { SearchPrecision::Double },
+            ..AttackSettings::default()
+        };
+        let outcomes = attack_batch(&network, &problems, &settings).expect("valid");
+        for (p, outcome) in problems.iter().zip(&outcomes) {
+            let AttackOutcome::Found(c) = outcome else { continue };
+            let region = &p.region;
+            for i in 0..dim {
+                prop_assert!(
+                    region.inner_lower[i] <= c.input[i] && c.input[i] <= region.inner_upper[i]
+                );
+                if region.radii[i] == 0.0 {
+                    prop_assert_eq!(c.input[i], region.center[i]);
+                }
+            }
+            // Exact membership (no tolerance), for both norms.
+            prop_assert!(region.contains(&c.input));
+            let predicted = predicted_class(network.forward(&c.input).as_slice());
+            prop_assert_eq!(predicted, c.predicted);
+            prop_assert_ne!(predicted, p.label);
+            prop_assert!(p.forbidden.contains(&predicted));
+        }
+    }
+}
+
 #[test]
 fn gradient_is_exact_for_a_linear_model() {
     // For z = W x + b the margin gradient is the row difference W_y − W_t (common practice).
@@ -613,6 +778,7 @@ fn cli_rejects_bad_input_with_exit_2_and_writes_nothing() {
         (vec!["--eps", "0.1", "--norm", "l3"], "--norm"),
         (vec!["--eps", "0.1", "--floor", "1.5"], "--floor"),
         (vec!["--eps", "0.1", "--steps", "0"], "--steps"),
+        (vec!["--eps", "0.1", "--precision", "half"], "--precision"),
     ] {
         let output = ballast()
             .args(["attack", "--model", DIGITS_MODEL, "--data", DIGITS_TEST])

@@ -3,21 +3,23 @@
 //!
 //! Given a sample, its region (ball ∩ input range, [`crate::threat::Region`]) and the classes its answer
 //! must not move into, the attack descends the margin `z_label − z_forbidden` with exact
-//! backpropagated gradients ([`gradient`]), sign / normalised steps in the region's metric ([`step`])
-//! and a schedule of starts ([`runner`]). It guarantees that every reported [`Counterexample`] was
+//! backpropagated gradients computed for many points at once by the bound engine ([`evaluate`]), sign
+//! / normalised steps in the region's metric ([`step`]) and a schedule of starts ([`runner`]) that
+//! advances every sample of a batch together. It guarantees that every reported [`Counterexample`] was
 //! confirmed by a plain forward pass and lies inside the region ([`counterexample::validate`]). It never
 //! proves robustness: "not found" only means this search found nothing.
 
 pub mod counterexample;
-pub mod gradient;
+pub mod evaluate;
+mod lockstep;
 pub mod runner;
 pub mod step;
 
 pub use counterexample::{forbidden_margin, validate, Counterexample};
-pub use gradient::{margin_and_gradient, MarginGradient};
+pub use evaluate::margin_and_gradient;
 pub use runner::{
     attack_batch, attack_sample, sample_seed, AttackOutcome, AttackProblem, AttackSettings,
-    StopReason,
+    SearchPrecision, StopReason,
 };
 
 /// Misuse of the attack API (bad sizes, classes or settings); outcomes are never errors.

@@ -1,6 +1,6 @@
 //! The attack runner: owns the schedule of starts and runs, the step-size schedule, seeds, the time
 //! limit and the stop on the first validated counterexample, for one sample ([`attack_sample`]) or many
-//! in parallel ([`attack_batch`]).
+//! stepped together as one batch ([`attack_batch`], executed by [`super::lockstep`]).
 //!
 //! Schedule per sample (each PGD run is `steps` gradient steps of [`super::step::descent_step`] on the
 //! margin loss of Carlini & Wagner, 2017):
@@ -14,20 +14,15 @@
 //! Within a run the step starts at `step_fraction` of the radius and is halved, returning to the best
 //! point of the run, after `patience` steps without progress. Everything is deterministic for a given
 //! `sample_seed` (ChaCha8). Guarantee: a [`AttackOutcome::Found`] always holds a point that
-//! [`validate`] accepted; a search that ends without one says [`AttackOutcome::NotFound`] and why it
+//! [`super::validate`] accepted; a search that ends without one says [`AttackOutcome::NotFound`] and why it
 //! stopped — it never claims the sample is robust.
 
 use std::time::Instant;
 
-use rand::SeedableRng;
-use rand_chacha::ChaCha8Rng;
-use rayon::prelude::*;
-
-use super::counterexample::{forbidden_margin, validate, Counterexample};
-use super::gradient::MarginGradient;
-use super::step::{descent_step, fgsm_point, random_start};
+use super::counterexample::Counterexample;
+use super::lockstep::{attack_lockstep, Sample};
 use super::AttackError;
-use crate::model::{predicted_class, Network};
+use crate::model::Network;
 use crate::threat::Region;
 
 /// How hard and how to search.
@@ -51,11 +46,27 @@ pub struct AttackSettings {
     pub targeted: bool,
     /// Stop at the first validated counterexample (off only to time full budgets).
     pub stop_at_first: bool,
+    /// The floating-point format the search evaluates points and gradients in.
+    pub precision: SearchPrecision,
+}
+
+/// The floating-point format of the search's forward and gradient passes. Whatever it is, a
+/// counterexample is only ever accepted by [`super::validate`]'s plain f64 forward pass, and the
+/// reported best margin is recomputed by that pass too.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum SearchPrecision {
+    /// f64 throughout.
+    #[default]
+    Double,
+    /// f32 forward and gradient passes (about twice the matrix-product throughput); any point whose
+    /// f32 margin is within rounding of a forbidden class winning is checked in f64.
+    Single,
 }
 
 impl Default for AttackSettings {
     /// 100 steps, 5 restarts, first step a quarter of the radius, halved after 10 steps without
-    /// progress, FGSM first, targeted runs, stop at the first counterexample, no time limit, seed 0.
+    /// progress, FGSM first, targeted runs, stop at the first counterexample, no time limit, seed 0,
+    /// f64 search.
     fn default() -> Self {
         AttackSettings {
             steps: 100,
@@ -67,6 +78,7 @@ impl Default for AttackSettings {
             fgsm_first: true,
             targeted: true,
             stop_at_first: true,
+            precision: SearchPrecision::Double,
         }
     }
 }
@@ -105,8 +117,8 @@ pub enum AttackOutcome {
     Found(Counterexample),
     /// No counterexample was found (which proves nothing about robustness).
     NotFound {
-        /// Smallest forbidden margin (`logit[label] − best forbidden logit`) seen at any point tried;
-        /// +∞ when no class is forbidden.
+        /// Forbidden margin (`logit[label] − best forbidden logit`, by a plain forward pass) at the point
+        /// with the smallest margin the search saw; +∞ when no class is forbidden.
         best_margin: f64,
         /// The point where it was seen (inside the region).
         best_input: Vec<f64>,
@@ -201,14 +213,21 @@ pub fn attack_sample(
 ) -> Result<AttackOutcome, AttackError> {
     settings.check()?;
     check_problem(network, region, label, forbidden, extra_starts)?;
-    Ok(
-        SampleSearch::new(network, region, label, forbidden, settings)
-            .run(sample_seed, extra_starts),
-    )
+    let sample = Sample {
+        region,
+        label,
+        forbidden,
+        extra_starts,
+        seed: sample_seed,
+    };
+    let mut outcomes = attack_lockstep(network, &[sample], settings);
+    Ok(outcomes.pop().expect("one outcome per sample"))
 }
 
-/// Attacks every problem, in parallel over samples (rayon); sample `p` uses
-/// `sample_seed(settings.seed, p.index)`, so results do not depend on the order or the thread count.
+/// Attacks every problem together, in lockstep ([`super::lockstep`]): each phase of the schedule steps
+/// all still-open samples as one batch of matrix products (parallel over column blocks). Sample `p`
+/// uses `sample_seed(settings.seed, p.index)` and its result is the one [`attack_sample`] gives it
+/// alone, whatever the order, the batch or the thread count.
 pub fn attack_batch(
     network: &Network,
     problems: &[AttackProblem],
@@ -218,213 +237,15 @@ pub fn attack_batch(
     for p in problems {
         check_problem(network, &p.region, p.label, &p.forbidden, &p.extra_starts)?;
     }
-    Ok(problems
-        .par_iter()
-        .map(|p| {
-            SampleSearch::new(network, &p.region, p.label, &p.forbidden, settings)
-                .run(sample_seed(settings.seed, p.index), &p.extra_starts)
+    let samples: Vec<Sample<'_>> = problems
+        .iter()
+        .map(|p| Sample {
+            region: &p.region,
+            label: p.label,
+            forbidden: &p.forbidden,
+            extra_starts: &p.extra_starts,
+            seed: sample_seed(settings.seed, p.index),
         })
-        .collect())
-}
-
-/// Which margin a run descends.
-#[derive(Debug, Clone, Copy)]
-enum Loss {
-    /// Against the currently strongest forbidden class.
-    Untargeted,
-    /// Against one forbidden class.
-    Targeted(usize),
-}
-
-/// Whether the schedule goes on.
-enum Control {
-    Continue,
-    Stop,
-}
-
-struct SampleSearch<'a> {
-    network: &'a Network,
-    region: &'a Region,
-    label: usize,
-    forbidden: &'a [usize],
-    settings: &'a AttackSettings,
-    buffers: MarginGradient<'a>,
-    gradient: Vec<f64>,
-    best_margin: f64,
-    best_input: Vec<f64>,
-    found: Option<Counterexample>,
-    deadline_hit: bool,
-}
-
-impl<'a> SampleSearch<'a> {
-    fn new(
-        network: &'a Network,
-        region: &'a Region,
-        label: usize,
-        forbidden: &'a [usize],
-        settings: &'a AttackSettings,
-    ) -> SampleSearch<'a> {
-        SampleSearch {
-            network,
-            region,
-            label,
-            forbidden,
-            settings,
-            buffers: MarginGradient::new(network),
-            gradient: vec![0.0; network.input_dim()],
-            best_margin: f64::INFINITY,
-            best_input: region.center.clone(),
-            found: None,
-            deadline_hit: false,
-        }
-    }
-
-    fn run(mut self, sample_seed: u64, extra_starts: &[Vec<f64>]) -> AttackOutcome {
-        if !self.forbidden.is_empty() {
-            let _ = self.schedule(sample_seed, extra_starts);
-        }
-        match self.found {
-            Some(c) => AttackOutcome::Found(c),
-            None => AttackOutcome::NotFound {
-                best_margin: self.best_margin,
-                best_input: self.best_input,
-                stop: if self.deadline_hit {
-                    StopReason::DeadlineReached
-                } else {
-                    StopReason::BudgetSpent
-                },
-            },
-        }
-    }
-
-    fn schedule(&mut self, sample_seed: u64, extra_starts: &[Vec<f64>]) -> Control {
-        let center = self.region.center.clone();
-        if self.past_deadline() {
-            return Control::Stop;
-        }
-        self.observe(&center, Loss::Untargeted);
-        if self.found.is_some() {
-            return Control::Stop; // already in a forbidden class without any change
-        }
-        let clean_logits: Vec<f64> = self.network.forward(&center).iter().copied().collect();
-        if self.settings.fgsm_first {
-            let mut x = vec![0.0; center.len()];
-            fgsm_point(self.region, &self.gradient, &mut x);
-            self.observe(&x, Loss::Untargeted);
-            if let Control::Stop = self.after_point() {
-                return Control::Stop;
-            }
-        }
-        for start in extra_starts {
-            if let Control::Stop = self.pgd_run(start, Loss::Untargeted) {
-                return Control::Stop;
-            }
-        }
-        let mut rng = ChaCha8Rng::seed_from_u64(sample_seed);
-        let mut start = center.clone();
-        for restart in 0..self.settings.restarts {
-            if restart > 0 {
-                random_start(self.region, &mut rng, &mut start);
-            }
-            if let Control::Stop = self.pgd_run(&start, Loss::Untargeted) {
-                return Control::Stop;
-            }
-        }
-        if self.settings.targeted && self.forbidden.len() > 1 {
-            let mut order = self.forbidden.to_vec();
-            order.sort_by(|a, b| clean_logits[*b].total_cmp(&clean_logits[*a]).then(a.cmp(b)));
-            for target in order {
-                if let Control::Stop = self.pgd_run(&center, Loss::Targeted(target)) {
-                    return Control::Stop;
-                }
-            }
-        }
-        Control::Continue
-    }
-
-    fn past_deadline(&mut self) -> bool {
-        if let Some(deadline) = self.settings.deadline {
-            if Instant::now() >= deadline {
-                self.deadline_hit = true;
-            }
-        }
-        self.deadline_hit
-    }
-
-    /// Stop after a point when a counterexample is in hand (and early exit is on) or time is up.
-    fn after_point(&mut self) -> Control {
-        if (self.found.is_some() && self.settings.stop_at_first) || self.past_deadline() {
-            Control::Stop
-        } else {
-            Control::Continue
-        }
-    }
-
-    /// Forward pass at `x` (which must lie in the region): keeps the best margin, validates a candidate
-    /// with a plain forward pass, and leaves the gradient of the run's loss in `self.gradient`. Returns
-    /// the loss margin.
-    fn observe(&mut self, x: &[f64], loss: Loss) -> f64 {
-        let logits = self.buffers.logits(x);
-        let margin = forbidden_margin(logits, self.label, self.forbidden);
-        let predicted = predicted_class(logits);
-        let target = match loss {
-            Loss::Targeted(t) => t,
-            Loss::Untargeted => {
-                let mut best = self.forbidden[0];
-                for &j in self.forbidden {
-                    if logits[j] > logits[best] {
-                        best = j;
-                    }
-                }
-                best
-            }
-        };
-        if margin < self.best_margin {
-            self.best_margin = margin;
-            self.best_input.copy_from_slice(x);
-        }
-        if self.found.is_none() && predicted != self.label && self.forbidden.contains(&predicted) {
-            self.found = validate(self.network, self.region, self.label, self.forbidden, x);
-        }
-        self.buffers
-            .gradient_at_last(self.label, target, &mut self.gradient)
-    }
-
-    fn pgd_run(&mut self, start: &[f64], loss: Loss) -> Control {
-        let mut x = start.to_vec();
-        self.region.project(&mut x);
-        let mut step = self.settings.step_fraction;
-        let mut best_loss = f64::INFINITY;
-        let mut best_x = x.clone();
-        let mut best_gradient = vec![0.0; x.len()];
-        let mut stalled = 0;
-        for _ in 0..self.settings.steps {
-            if self.past_deadline() {
-                return Control::Stop;
-            }
-            let loss_margin = self.observe(&x, loss);
-            if let Control::Stop = self.after_point() {
-                return Control::Stop;
-            }
-            if loss_margin < best_loss {
-                best_loss = loss_margin;
-                best_x.copy_from_slice(&x);
-                best_gradient.copy_from_slice(&self.gradient);
-                stalled = 0;
-            } else {
-                stalled += 1;
-                if stalled >= self.settings.patience {
-                    step *= 0.5;
-                    x.copy_from_slice(&best_x);
-                    self.gradient.copy_from_slice(&best_gradient);
-                    stalled = 0;
-                }
-            }
-            descent_step(self.region, &mut x, &self.gradient, step);
-        }
-        if self.settings.steps > 0 {
-            self.observe(&x, loss);
-        }
-        self.after_point()
-    }
+        .collect();
+    Ok(attack_lockstep(network, &samples, settings))
 }

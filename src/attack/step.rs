@@ -22,10 +22,20 @@ use crate::threat::{Norm, Region};
 pub fn descent_step(region: &Region, x: &mut [f64], gradient: &[f64], step: f64) {
     match region.norm {
         Norm::Linf => {
+            // Branch-free (so it vectorises): the sign is 0 for a zero gradient, and a zero radius
+            // moves nothing (x − 0 = x exactly).
             for ((xi, g), r) in x.iter_mut().zip(gradient).zip(&region.radii) {
-                if *r > 0.0 && *g != 0.0 {
-                    *xi -= step * r * g.signum();
-                }
+                let sign = f64::from(u8::from(*g > 0.0)) - f64::from(u8::from(*g < 0.0));
+                *xi -= step * r * sign;
+            }
+            // The L-inf region is its box: the projection is the clamp of `Region::project`, written
+            // with max/min so it vectorises (the same values for the finite points here).
+            for ((xi, lo), hi) in x
+                .iter_mut()
+                .zip(&region.inner_lower)
+                .zip(&region.inner_upper)
+            {
+                *xi = xi.max(*lo).min(*hi);
             }
         }
         Norm::L2 => {
@@ -41,9 +51,9 @@ pub fn descent_step(region: &Region, x: &mut [f64], gradient: &[f64], step: f64)
                     *xi -= scale * r * r * g;
                 }
             }
+            region.project(x);
         }
     }
-    region.project(x);
 }
 
 /// The fast gradient sign point (Goodfellow et al., 2015; for L2 the normalised-gradient analogue): one

@@ -8,7 +8,9 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 
-use crate::attack::{attack_batch, AttackOutcome, AttackProblem, AttackSettings, Counterexample};
+use crate::attack::{
+    attack_batch, AttackOutcome, AttackProblem, AttackSettings, Counterexample, SearchPrecision,
+};
 use crate::model::{predicted_class, Model};
 use crate::threat::Targets;
 
@@ -40,6 +42,10 @@ pub struct Args {
     /// Seed of the random starts (per-sample seeds are derived from it).
     #[arg(long, default_value_t = 0)]
     pub seed: u64,
+    /// Arithmetic of the search's forward and gradient passes: single (f32, faster) or double (f64).
+    /// Every counterexample is confirmed by an f64 forward pass either way.
+    #[arg(long, default_value = "single")]
+    pub precision: String,
     /// Write the counterexamples found to this CSV file.
     #[arg(long)]
     pub out: Option<PathBuf>,
@@ -87,6 +93,11 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     if args.steps == 0 {
         bail!("--steps: 0 is not allowed, expected at least 1 step");
     }
+    let precision = match args.precision.as_str() {
+        "single" => SearchPrecision::Single,
+        "double" => SearchPrecision::Double,
+        other => bail!("--precision: '{other}' is not allowed, expected single or double"),
+    };
     let model = super::common::load_model(&args.model, args.allow_large)?;
     let budget = super::common::uniform_budget(&args.eps, &args.norm, &model)?;
     let data = super::common::load_data(
@@ -100,6 +111,7 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
         steps: args.steps,
         restarts: args.restarts,
         seed: args.seed,
+        precision,
         ..AttackSettings::default()
     };
 
@@ -138,8 +150,8 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
 
     println!("samples: {}", summary.samples);
     println!(
-        "budget: {} eps {} (PGD {} steps, {} restarts, seed {})",
-        budget.norm, args.eps, settings.steps, settings.restarts, settings.seed
+        "budget: {} eps {} (PGD {} steps, {} restarts, seed {}, {} precision)",
+        budget.norm, args.eps, settings.steps, settings.restarts, settings.seed, args.precision
     );
     println!("clean accuracy: {:.4}", summary.clean_accuracy());
     println!("misclassified: {}", summary.misclassified);

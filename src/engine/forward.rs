@@ -1,38 +1,68 @@
 //! Batched forward passes and input gradients of linear functions of the logits (one column per
-//! input), the primitives of attacks and training.
+//! input), the primitives of attacks and training, in f64 or (for searches that re-check what they
+//! find) f32.
 //!
 //! The derivative of a ReLU at an input of exactly 0 is taken as 0 (a valid one-sided choice; the
-//! network is piecewise linear, so the gradient is exact everywhere else). These are plain f64
-//! evaluations: nothing here is a bound, and nothing here decides a counterexample.
+//! network is piecewise linear, so the gradient is exact everywhere else). These are plain
+//! floating-point evaluations: nothing here is a bound, and nothing here decides a counterexample.
 
-use nalgebra::DMatrix;
+use nalgebra::{DMatrix, RealField};
 
-use super::Engine;
+use super::{Engine, LinearLayer};
+
+/// A floating-point format the forward pass and the input gradient run in (`f64`, or `f32` for
+/// searches whose findings are re-checked in f64).
+pub trait Precision: RealField + Copy {
+    /// `W X + b 1ᵀ` of `layer` in this format.
+    fn apply(layer: &dyn LinearLayer, xs: &DMatrix<Self>) -> DMatrix<Self>;
+    /// `Wᵀ A` of `layer` in this format.
+    fn transpose_apply(layer: &dyn LinearLayer, coefficients: &DMatrix<Self>) -> DMatrix<Self>;
+}
+
+impl Precision for f64 {
+    fn apply(layer: &dyn LinearLayer, xs: &DMatrix<f64>) -> DMatrix<f64> {
+        layer.apply(xs)
+    }
+
+    fn transpose_apply(layer: &dyn LinearLayer, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
+        layer.transpose_apply(coefficients)
+    }
+}
+
+impl Precision for f32 {
+    fn apply(layer: &dyn LinearLayer, xs: &DMatrix<f32>) -> DMatrix<f32> {
+        layer.apply_single(xs)
+    }
+
+    fn transpose_apply(layer: &dyn LinearLayer, coefficients: &DMatrix<f32>) -> DMatrix<f32> {
+        layer.transpose_apply_single(coefficients)
+    }
+}
 
 /// Every layer's output for a batch: `pre[k]` is the output of layer `k` before its ReLU (the last is
 /// the logits).
 #[derive(Debug, Clone)]
-pub struct Activations {
+pub struct Activations<T: Precision = f64> {
     /// Outputs per layer (units × inputs).
-    pub pre: Vec<DMatrix<f64>>,
+    pub pre: Vec<DMatrix<T>>,
 }
 
-impl Activations {
+impl<T: Precision> Activations<T> {
     /// The logits (classes × inputs).
-    pub fn logits(&self) -> &DMatrix<f64> {
+    pub fn logits(&self) -> &DMatrix<T> {
         self.pre.last().expect("at least one layer")
     }
 }
 
 impl Engine {
     /// The forward pass of a batch (one column per input).
-    pub fn forward(&self, inputs: &DMatrix<f64>) -> Activations {
+    pub fn forward<T: Precision>(&self, inputs: &DMatrix<T>) -> Activations<T> {
         let mut pre = Vec::with_capacity(self.depth());
-        let mut h = self.layer(0).apply(inputs);
+        let mut h = T::apply(self.layer(0), inputs);
         for k in 1..self.depth() {
-            let relu = h.map(|v| v.max(0.0));
+            let relu = h.map(|v| v.max(T::zero()));
             pre.push(h);
-            h = self.layer(k).apply(&relu);
+            h = T::apply(self.layer(k), &relu);
         }
         pre.push(h);
         Activations { pre }
@@ -40,20 +70,20 @@ impl Engine {
 
     /// The gradient with respect to the input of `Σ_c coefficients[c, j] · logit_c` for every column
     /// `j`, at the points of `activations`.
-    pub fn input_gradient(
+    pub fn input_gradient<T: Precision>(
         &self,
-        activations: &Activations,
-        coefficients: &DMatrix<f64>,
-    ) -> DMatrix<f64> {
+        activations: &Activations<T>,
+        coefficients: &DMatrix<T>,
+    ) -> DMatrix<T> {
         let mut g = coefficients.clone();
         for k in (0..self.depth()).rev() {
-            g = self.layer(k).transpose_apply(&g);
+            g = T::transpose_apply(self.layer(k), &g);
             if k == 0 {
                 break;
             }
             g.zip_apply(&activations.pre[k - 1], |v, z| {
-                if z <= 0.0 {
-                    *v = 0.0
+                if z <= T::zero() {
+                    *v = T::zero()
                 }
             });
         }
@@ -105,6 +135,13 @@ mod tests {
         let act = engine.forward(&xs);
         let coefficients = DMatrix::from_column_slice(2, 1, &[1.0, -1.0]);
         let g = engine.input_gradient(&act, &coefficients);
+        let single = engine.input_gradient(
+            &engine.forward(&xs.map(|v| v as f32)),
+            &coefficients.map(|v| v as f32),
+        );
+        for i in 0..2 {
+            assert!((single[(i, 0)] as f64 - g[(i, 0)]).abs() < 1e-5);
+        }
         let margin = |p: &[f64]| {
             let z = net.forward(p);
             z[0] - z[1]

@@ -23,6 +23,10 @@ pub trait LinearLayer: Send + Sync {
     fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64>;
     /// `Wᵀ A`: pulls output coefficients (one column per sub-problem) back to input coefficients.
     fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64>;
+    /// [`LinearLayer::apply`] in f32 (weights rounded to f32; for searches that re-check in f64).
+    fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32>;
+    /// [`LinearLayer::transpose_apply`] in f32.
+    fn transpose_apply_single(&self, coefficients: &DMatrix<f32>) -> DMatrix<f32>;
     /// `bᵀ A`: the constant each column of output coefficients picks up from the bias.
     fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64>;
     /// `|W| X + |b| 1ᵀ` for non-negative `X` (magnitudes for error bounds).
@@ -32,17 +36,18 @@ pub trait LinearLayer: Send + Sync {
     fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>);
 }
 
-/// A dense layer with its positive, negative and magnitude parts cached.
+/// A dense layer with its transpose and its positive, negative and magnitude parts cached.
 #[derive(Debug, Clone)]
 pub struct DenseLayer {
     weights: DMatrix<f64>,
-    /// `Wᵀ`, stored so that the backward product is a plain (blocked) matrix product.
     transposed: DMatrix<f64>,
     bias: DVector<f64>,
     positive: DMatrix<f64>,
     negative: DMatrix<f64>,
     magnitude: DMatrix<f64>,
     bias_magnitude: DVector<f64>,
+    /// `W`, `Wᵀ` and `b` rounded to f32.
+    single: (DMatrix<f32>, DMatrix<f32>, DVector<f32>),
 }
 
 impl DenseLayer {
@@ -56,11 +61,16 @@ impl DenseLayer {
             negative: dense.weights.map(|w| w.min(0.0)),
             magnitude: dense.weights.abs(),
             bias_magnitude: dense.bias.abs(),
+            single: (
+                dense.weights.map(|w| w as f32),
+                dense.weights.transpose().map(|w| w as f32),
+                dense.bias.map(|b| b as f32),
+            ),
         }
     }
 }
 
-fn add_bias(mut out: DMatrix<f64>, bias: &DVector<f64>) -> DMatrix<f64> {
+fn add_bias<T: nalgebra::RealField + Copy>(mut out: DMatrix<T>, bias: &DVector<T>) -> DMatrix<T> {
     for mut column in out.column_iter_mut() {
         column += bias;
     }
@@ -85,7 +95,17 @@ impl LinearLayer for DenseLayer {
     }
 
     fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
+        // A product with the cached `Wᵀ` runs through the blocked matrix multiplication like `apply`
+        // (nalgebra's `tr_mul` takes one dot product per entry: several times slower on wide layers).
         &self.transposed * coefficients
+    }
+
+    fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32> {
+        add_bias(&self.single.0 * xs, &self.single.2)
+    }
+
+    fn transpose_apply_single(&self, coefficients: &DMatrix<f32>) -> DMatrix<f32> {
+        &self.single.1 * coefficients
     }
 
     fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {

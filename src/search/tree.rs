@@ -21,7 +21,9 @@ use std::collections::BinaryHeap;
 use super::branching::{ranked_units, Unit};
 use super::leaf::{leaf_piece, solve_leaf};
 use super::{SearchError, SearchSettings};
-use crate::attack::{attack_sample, validate, AttackOutcome, AttackSettings, Counterexample};
+use crate::attack::{
+    attack_sample, validate, AttackOutcome, AttackSettings, Counterexample, SearchPrecision,
+};
 use crate::bound::{
     margin_lower_bounds, Domain, LayerBounds, ReluSplit, SplitState, CERTIFY_TOLERANCE,
 };
@@ -211,6 +213,7 @@ impl<'a> TargetTree<'a> {
             fgsm_first: false,
             targeted: false,
             stop_at_first: true,
+            precision: SearchPrecision::Double,
         };
         // Optimality mode descends this target's margin; the decision mode any forbidden class.
         let single = [self.target];

@@ -18,11 +18,12 @@
 use nalgebra::DMatrix;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
-use rayon::prelude::*;
 
-use crate::attack::gradient::MarginGradient;
+use crate::attack::evaluate::{evaluate, Against, MarginSpec};
 use crate::attack::step::{descent_step, random_start};
+use crate::attack::SearchPrecision;
 use crate::bound::CERTIFY_TOLERANCE;
+use crate::engine::Engine;
 use crate::model::{Model, Network, Normalization};
 use crate::threat::{Budget, Region};
 
@@ -167,40 +168,54 @@ pub fn robust_loss(
     }
 }
 
-/// PGD on the worst forbidden margin from one random start: `steps` sign (L-inf) or normalised (L2)
-/// steps of size `2.5 / steps` of the radius, projected into the region after each step.
-pub fn pgd_point(
+/// PGD on the worst forbidden margin from one random start per sample, all samples stepped together
+/// through the engine's batched passes: `steps` sign (L-inf) or normalised (L2) steps of size
+/// `2.5 / steps` of the radius, projected into the region after each step. Sample `s` draws its start
+/// from ChaCha8 seeded with `seeds[s]`; a sample with no forbidden class stays at its centre.
+///
+/// # Panics
+/// If `regions`, `labels`, `targets` and `seeds` differ in length.
+pub fn pgd_points(
     network: &Network,
-    region: &Region,
-    label: usize,
-    targets: &[usize],
+    regions: &[Region],
+    labels: &[usize],
+    targets: &[Vec<usize>],
     steps: usize,
-    seed: u64,
-) -> Vec<f64> {
-    let classifier = network.as_classifier();
-    let mut buffers = MarginGradient::new(&classifier);
-    let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let mut x = region.center.clone();
-    if targets.is_empty() {
-        return x;
+    seeds: &[u64],
+) -> Vec<Vec<f64>> {
+    let samples = regions.len();
+    assert!(labels.len() == samples && targets.len() == samples && seeds.len() == samples);
+    let engine = Engine::new(&network.as_classifier());
+    let mut points: Vec<Vec<f64>> = regions.iter().map(|r| r.center.clone()).collect();
+    let moving: Vec<usize> = (0..samples).filter(|&s| !targets[s].is_empty()).collect();
+    for &s in &moving {
+        let mut rng = ChaCha8Rng::seed_from_u64(seeds[s]);
+        random_start(&regions[s], &mut rng, &mut points[s]);
     }
-    random_start(region, &mut rng, &mut x);
-    let mut gradient = vec![0.0; x.len()];
+    let specs: Vec<MarginSpec<'_>> = moving
+        .iter()
+        .map(|&s| MarginSpec {
+            label: labels[s],
+            against: Against::Strongest(&targets[s]),
+        })
+        .collect();
     let step = 2.5 / steps.max(1) as f64;
+    let dim = network.input_dim();
     for _ in 0..steps {
-        let logits = buffers.logits(&x).to_vec();
-        let target = *targets
-            .iter()
-            .min_by(|a, b| {
-                let ma = logits[label] - logits[**a];
-                let mb = logits[label] - logits[**b];
-                ma.total_cmp(&mb)
-            })
-            .expect("non-empty targets");
-        buffers.gradient_at_last(label, target, &mut gradient);
-        descent_step(region, &mut x, &gradient, step);
+        if moving.is_empty() {
+            break;
+        }
+        let mut batch = DMatrix::zeros(dim, moving.len());
+        for (j, &s) in moving.iter().enumerate() {
+            batch.column_mut(j).copy_from_slice(&points[s]);
+        }
+        let gradients = evaluate(&engine, &batch, &specs, true, SearchPrecision::Double).gradients;
+        for (j, &s) in moving.iter().enumerate() {
+            let g = gradients.column(j);
+            descent_step(&regions[s], &mut points[s], g.as_slice(), step);
+        }
     }
-    x
+    points
 }
 
 /// Restricted cross-entropy `log(1 + Σ_{j∈F} exp(−(z_y − z_j)))` of classifier logits, with its
@@ -241,20 +256,10 @@ fn adversarial_cross_entropy(
         ));
     }
     let dim = network.input_dim();
-    let points: Vec<Vec<f64>> = (0..samples)
-        .into_par_iter()
-        .map(|s| {
-            let sample_seed = seed ^ (s as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15);
-            pgd_point(
-                network,
-                &regions[s],
-                labels[s],
-                &targets[s],
-                steps,
-                sample_seed,
-            )
-        })
+    let seeds: Vec<u64> = (0..samples)
+        .map(|s| seed ^ (s as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15))
         .collect();
+    let points = pgd_points(network, regions, labels, targets, steps, &seeds);
     let mut batch = DMatrix::zeros(dim, samples);
     for (s, p) in points.iter().enumerate() {
         batch.column_mut(s).copy_from_slice(p);
