@@ -22,9 +22,12 @@
 //! [`milp`] encodes the same question as a big-M mixed-integer program for cross-checks; the search never
 //! relies on it.
 
+mod bounding;
 mod branching;
+mod frontier;
 mod leaf;
 pub mod milp;
+mod probe;
 mod runner;
 mod solver;
 mod tree;
@@ -34,6 +37,7 @@ use std::time::Instant;
 pub use runner::{verify_batch, verify_sample};
 
 use crate::attack::{AttackError, AttackSettings, Counterexample};
+use crate::bound::optimised::SlopeOptions;
 use crate::bound::{BoundError, Method};
 use crate::threat::Region;
 
@@ -48,18 +52,28 @@ pub struct SearchSettings {
     pub deadline: Option<Instant>,
     /// Give up (unresolved) after bounding this many sub-domains for one sample.
     pub node_limit: usize,
+    /// Give up (unresolved) when the open sub-domains of one sample would take more than this many
+    /// bytes (an estimate from their shape: split states, pre-activation bounds, a minimiser).
+    pub frontier_memory: usize,
+    /// Open sub-domains split per step; all their children are bounded in one batch of the engine.
+    pub batch_size: usize,
     /// Run every tree to optimality and report the exact minimum margin per class instead of stopping at
     /// the first proof or counterexample.
     pub optimality: bool,
     /// Seed of the attacks (per sample in [`verify_batch`], see [`crate::attack::sample_seed`]).
     pub seed: u64,
-    /// Bounding method for the sub-domains (see [`crate::bound::Method`]).
+    /// Bounding method for the sub-domains (see [`crate::bound::Method`]): interval, linear (one
+    /// backward pass) or optimised (slopes and, under splits, split multipliers).
     pub bound_method: Method,
+    /// The ascent of the optimised method.
+    pub slope_options: SlopeOptions,
     /// The attack run before any tree (`None` to skip); its deadline is replaced by [`Self::deadline`].
     pub root_attack: Option<AttackSettings>,
     /// PGD steps from each processed node's bound minimiser (0 = no attacks inside the trees).
     pub node_attack_steps: usize,
-    /// Units whose children are bounded before choosing one to split (1 = the best-scored unit).
+    /// Units considered per split: 1 splits the best-scored unit; `k > 1` bounds the children of the
+    /// `k` best-scored units cheaply (the parent's intermediate bounds, one backward pass) and splits
+    /// the unit whose worse child bound is highest (filtered smart branching, De Palma et al., 2021).
     pub branching_candidates: usize,
     /// In the optimality mode, a sub-domain is dropped once its bound is within this of the best margin
     /// achieved (absolute, logit units).
@@ -67,15 +81,19 @@ pub struct SearchSettings {
 }
 
 impl Default for SearchSettings {
-    /// No deadline, 20 000 sub-domains, decision mode, seed 0, linear bounds, the default attack first,
-    /// 10 PGD steps per node, plain best-scored branching, optimality gap 1e-9.
+    /// No deadline, 20 000 sub-domains, 256 MiB of open sub-domains, batches of 64, decision mode,
+    /// seed 0, optimised bounds (default ascent), the default attack first, 10 PGD steps per node,
+    /// plain best-scored branching, optimality gap 1e-9.
     fn default() -> Self {
         SearchSettings {
             deadline: None,
             node_limit: 20_000,
+            frontier_memory: 256 << 20,
+            batch_size: 64,
             optimality: false,
             seed: 0,
-            bound_method: Method::Linear,
+            bound_method: Method::OptimisedLinear,
+            slope_options: SlopeOptions::default(),
             root_attack: Some(AttackSettings::default()),
             node_attack_steps: 10,
             branching_candidates: 1,
@@ -91,6 +109,8 @@ pub enum UnresolvedReason {
     Deadline,
     /// The node limit was reached.
     NodeLimit,
+    /// The open sub-domains would have exceeded the memory cap.
+    MemoryLimit,
     /// A sub-domain's bound stayed at or below the tolerance and its minimiser is not a counterexample
     /// (a margin within the tolerance of zero, a tie, an allowed class winning, or a loose L2 leaf).
     Undecided {
