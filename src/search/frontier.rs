@@ -74,12 +74,14 @@ impl Frontier {
         let units: usize = hidden.iter().sum();
         let vector = std::mem::size_of::<Vec<f64>>();
         let per_layer = 3 * vector + std::mem::size_of::<LayerBounds>();
-        // Two heap slots per node (the heap doubles its capacity), 1 byte per split, 16 per bound pair.
+        // Two heap slots per node (the heap doubles its capacity), 1 byte per split, 16 per bound pair,
+        // and about 16 bytes of allocator overhead for each of the 3 + 3·layers allocations.
         let node_bytes = 2 * std::mem::size_of::<Entry>()
             + 2 * vector
             + hidden.len() * per_layer
             + units * 17
-            + inputs * 8;
+            + inputs * 8
+            + (3 + 3 * hidden.len()) * 16;
         Frontier {
             queue: BinaryHeap::new(),
             closed_lower: f64::INFINITY,

@@ -1,19 +1,22 @@
 //! Complete verification by branch and bound over ReLU activation states (Bunel et al., 2018 and 2020).
 //!
 //! For a sample of class `y` and its forbidden classes, [`verify_sample`] decides whether some input of
-//! the region (ball ∩ input range) moves the answer into a forbidden class. It first bounds every margin
-//! `logit_y − logit_j` with [`crate::bound`] and runs the attack of [`crate::attack`]; each margin not
-//! proved then gets its own best-first tree ([`tree`]) that splits unstable ReLUs into active / inactive
-//! sub-domains, bounds each with the split constraints enforced, tries short attacks from the bound's
-//! minimiser, and solves fully fixed sub-domains as LPs ([`leaf`]). One tree per forbidden class keeps
-//! each tree's bound a single number and gives per-class exact minima in the optimality mode; the most
-//! dangerous class (lowest root bound) goes first, so a counterexample ends the search early.
+//! the region (ball ∩ input range) moves the answer into a forbidden class. It builds one bound engine
+//! ([`crate::engine`]) for the sample, bounds every margin `logit_y − logit_j` at the root and runs the
+//! attack of [`crate::attack`]; each margin not proved then gets its own best-first tree (`tree`) that
+//! splits unstable ReLUs into active / inactive sub-domains a batch at a time, bounds all children of a
+//! batch together with the split constraints enforced (`bounding`: optimised slopes and split
+//! multipliers, the parent's pre-activation bounds reused below the split layer), tries short attacks
+//! from the bound minimisers (`probe`), and solves fully fixed sub-domains as LPs (`leaf`). One
+//! tree per forbidden class keeps each tree's bound a single number and gives per-class exact minima in
+//! the optimality mode; the most dangerous class (lowest root bound) goes first, so a counterexample
+//! ends the search early.
 //!
 //! Guarantees: [`Verdict::Proved`] only when every margin has a sound lower bound above
 //! [`crate::bound::CERTIFY_TOLERANCE`] on every sub-domain; [`Verdict::Counterexample`] only with a point
 //! that [`crate::attack::validate`] accepted (plain forward pass, inside the region, predicted class
-//! forbidden). A search stopped by its deadline or node limit, or left with a sub-domain it can neither
-//! prove nor refute, says [`Verdict::Unresolved`] with the best sound lower bound found — never a guess.
+//! forbidden). A search stopped by its deadline, node limit or frontier memory cap, or left with a
+//! sub-domain it can neither prove nor refute, says [`Verdict::Unresolved`] with the best sound lower bound found — never a guess.
 //! With restricted targets a point may beat the label with a forbidden class's logit while an allowed
 //! class wins: that is neither a proof nor a counterexample, and the search says unresolved. L2 regions
 //! are searched with the same trees but their leaves are bounded by a Lagrangian (sound, possibly
@@ -83,7 +86,7 @@ pub struct SearchSettings {
 impl Default for SearchSettings {
     /// No deadline, 20 000 sub-domains, 256 MiB of open sub-domains, batches of 64, decision mode,
     /// seed 0, optimised bounds (default ascent), the default attack first, 10 PGD steps per node,
-    /// plain best-scored branching, optimality gap 1e-9.
+    /// look-ahead among the 3 best-scored units, optimality gap 1e-9.
     fn default() -> Self {
         SearchSettings {
             deadline: None,
@@ -96,7 +99,7 @@ impl Default for SearchSettings {
             slope_options: SlopeOptions::default(),
             root_attack: Some(AttackSettings::default()),
             node_attack_steps: 10,
-            branching_candidates: 1,
+            branching_candidates: 3,
             optimality_gap: 1e-9,
         }
     }
