@@ -9,6 +9,7 @@
 //! - `--optimality`: also time the optimality mode (every class to its exact minimum);
 //! - `--batch N`, `--candidates K`, `--method interval|linear|optimised_linear`, `--iterations N`:
 //!   search settings (batch size, look-ahead candidates, bound method, slope ascent steps);
+//! - `--only INDEX`: keep only that sample (e.g. to watch one hard sample use every core);
 //! - `--stress EPS`: also search the deep model's samples at L-inf `EPS` (no reference: decided count,
 //!   nodes and time only), to compare settings where the trees do real work.
 
@@ -99,15 +100,19 @@ fn problems_for(
         .collect()
 }
 
-fn summary(outcomes: &[SearchOutcome]) -> String {
+fn summary(outcomes: &[SearchOutcome], indices: &[usize]) -> String {
     let nodes: usize = outcomes.iter().map(|o| o.nodes).sum();
     let leaves: usize = outcomes
         .iter()
         .flat_map(|o| &o.targets)
         .map(|t| t.leaves)
         .sum();
-    let slowest = outcomes.iter().map(|o| o.seconds).fold(0.0, f64::max);
-    format!("nodes {nodes}, LP leaves {leaves}, slowest sample {slowest:.3} s")
+    let (slowest, seconds) = outcomes
+        .iter()
+        .zip(indices)
+        .map(|(o, i)| (*i, o.seconds))
+        .fold((0, 0.0), |a, b| if b.1 > a.1 { b } else { a });
+    format!("nodes {nodes}, LP leaves {leaves}, slowest sample {slowest} ({seconds:.3} s)")
 }
 
 fn main() {
@@ -130,18 +135,22 @@ fn main() {
         let model = Model::load(Path::new(path)).expect("model loads");
         let network = model.classifier();
         let epsilon = run["epsilon"].as_f64().expect("epsilon");
-        let indices: Vec<usize> = run["samples"]
+        let only: Option<usize> =
+            option("--only").map(|i| i.parse().expect("--only takes an index"));
+        let (indices, robust): (Vec<usize>, Vec<bool>) = run["samples"]
             .as_array()
             .expect("samples")
             .iter()
             .map(|v| v.as_u64().expect("index") as usize)
-            .collect();
-        let robust: Vec<bool> = run["robust"]
-            .as_array()
-            .expect("robust")
-            .iter()
-            .map(|v| v.as_bool().expect("bool"))
-            .collect();
+            .zip(
+                run["robust"]
+                    .as_array()
+                    .expect("robust")
+                    .iter()
+                    .map(|v| v.as_bool().expect("bool")),
+            )
+            .filter(|(i, _)| only.is_none_or(|o| o == *i))
+            .unzip();
         let problems = problems_for(&model, &network, &indices, epsilon);
         let (outcomes, single) = timed(&network, &problems, &settings, 1);
         let (again, parallel) = timed(&network, &problems, &settings, cores);
@@ -162,13 +171,19 @@ fn main() {
             }
         }
         let highs = run["milp_solve_seconds"].as_f64().expect("seconds");
+        // HiGHS's time covers all samples of the file: no ratio for a single one.
+        let ratio = match only {
+            Some(_) => String::new(),
+            None => format!(
+                "; HiGHS {highs:.2} s (MILP solves only) -> {:.0}x (1 thread), {:.0}x ({cores} threads)",
+                highs / single,
+                highs / parallel
+            ),
+        };
         println!(
             "{path} eps {epsilon}: verdicts equal to HiGHS {agree}/{n} (unresolved {unresolved}), {}; \
-             ballast {single:.3} s on 1 thread, {parallel:.3} s on {cores}; HiGHS {highs:.2} s \
-             (MILP solves only) -> {:.0}x (1 thread), {:.0}x ({cores} threads)",
-            summary(&outcomes),
-            highs / single,
-            highs / parallel,
+             ballast {single:.3} s on 1 thread, {parallel:.3} s on {cores}{ratio}",
+            summary(&outcomes, &indices),
             n = problems.len()
         );
         if optimality {
@@ -185,7 +200,7 @@ fn main() {
             println!(
                 "  optimality mode: {finished}/{} samples exact, {}, {seconds:.3} s on {cores} threads",
                 problems.len(),
-                summary(&outcomes)
+                summary(&outcomes, &indices)
             );
         }
         if path.contains("deep") {
@@ -204,7 +219,7 @@ fn main() {
             count(|v| matches!(v, Verdict::Proved { .. })),
             count(|v| matches!(v, Verdict::Counterexample(_))),
             count(|v| matches!(v, Verdict::Unresolved { .. })),
-            summary(&outcomes)
+            summary(&outcomes, &indices)
         );
     }
 }
