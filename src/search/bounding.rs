@@ -17,6 +17,7 @@
 use nalgebra::{DMatrix, DVector};
 use rayon::prelude::*;
 
+use super::SearchSettings;
 use crate::bound::{LayerBounds, Method, SplitState};
 use crate::engine::backward::{self, Choices, Objectives};
 use crate::engine::intermediate::{self, Given, HiddenBounds, Tightness};
@@ -55,6 +56,20 @@ pub(crate) struct Settings {
     pub slopes: SlopeSettings,
     /// Optimisation of a column stops once its bound exceeds this.
     pub threshold: f64,
+}
+
+impl Settings {
+    /// The search's bound method and ascent, stopping columns at `threshold`.
+    pub fn of(search: &SearchSettings, threshold: f64) -> Settings {
+        Settings {
+            method: search.bound_method,
+            slopes: SlopeSettings {
+                iterations: search.slope_options.iterations,
+                step: search.slope_options.step,
+            },
+            threshold,
+        }
+    }
 }
 
 /// The bounds of one job.

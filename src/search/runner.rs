@@ -20,7 +20,6 @@ use super::{
 };
 use crate::attack::{attack_sample, sample_seed, AttackOutcome, Counterexample};
 use crate::bound::{validate, SplitState, CERTIFY_TOLERANCE};
-use crate::engine::slopes::SlopeSettings;
 use crate::engine::Engine;
 use crate::model::Network;
 use crate::threat::Region;
@@ -122,18 +121,14 @@ fn search(
             splits: None,
             given: None,
         }],
-        &Settings {
-            method: settings.bound_method,
-            slopes: SlopeSettings {
-                iterations: settings.slope_options.iterations,
-                step: settings.slope_options.step,
-            },
-            threshold: if settings.optimality {
+        &Settings::of(
+            settings,
+            if settings.optimality {
                 f64::INFINITY
             } else {
                 CERTIFY_TOLERANCE
             },
-        },
+        ),
     )
     .remove(0);
     let mut summaries: Vec<TargetSummary> = targets

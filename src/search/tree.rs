@@ -28,7 +28,6 @@ use super::{SearchError, SearchSettings, UnresolvedReason};
 use crate::attack::validate;
 use crate::attack::Counterexample;
 use crate::bound::{ReluSplit, CERTIFY_TOLERANCE};
-use crate::engine::slopes::SlopeSettings;
 use crate::engine::Engine;
 use crate::model::Network;
 use crate::threat::Region;
@@ -326,14 +325,7 @@ impl<'a> TargetTree<'a> {
                 given: Some((&parents[c / 2].bounds, chosen[c / 2].0 + 1)),
             })
             .collect();
-        let bound_settings = Settings {
-            method: settings.bound_method,
-            slopes: SlopeSettings {
-                iterations: settings.slope_options.iterations,
-                step: settings.slope_options.step,
-            },
-            threshold: self.threshold(),
-        };
+        let bound_settings = Settings::of(settings, self.threshold());
         let bounded = bounding::bound(engine, region, margin, &jobs, &bound_settings);
         self.nodes += bounded.len();
         let mut points = Vec::new();

@@ -3,6 +3,7 @@
 
 use super::*;
 use crate::bound::{Method, SplitState};
+use crate::engine::slopes::SlopeSettings;
 use crate::model::Dense;
 use crate::search::leaf::affine_piece;
 use crate::search::solver::{minimise, LinearProgram, LpOutcome, Row};
