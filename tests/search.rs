@@ -384,3 +384,61 @@ fn exhausted_budgets_are_unresolved() {
     .unwrap();
     assert!(!matches!(outcome.verdict, Verdict::Counterexample(_)));
 }
+
+/// A frontier memory cap too small for one open sub-domain stops the search as unresolved (reason
+/// `MemoryLimit`) with a bound below HiGHS's exact minimum, on a robust sample whose root bound does
+/// not prove it; a generous cap decides the same sample.
+#[test]
+fn a_full_frontier_is_unresolved_with_a_sound_bound() {
+    let f = fixture();
+    let budget = &f.reference["budgets"].as_array().unwrap()[1];
+    let set = problems(&f, budget);
+    let options = ballast::bound::optimised::SlopeOptions::default();
+    let (problem, exact) = set
+        .iter()
+        .find(|(p, exact)| {
+            let root = ballast::bound::optimised::margin_lower_bounds(
+                &f.network, &p.region, p.label, &p.targets, None, &options,
+            )
+            .unwrap();
+            exact.iter().all(|(_, v)| *v > 0.0) && !root.certified()
+        })
+        .expect("a robust sample the root bound leaves open");
+    let min_exact = exact.iter().map(|(_, v)| *v).fold(f64::INFINITY, f64::min);
+    let quiet = SearchSettings {
+        root_attack: None,
+        node_attack_steps: 0,
+        ..SearchSettings::default()
+    };
+    let tight = SearchSettings {
+        frontier_memory: 1,
+        ..quiet.clone()
+    };
+    let outcome = verify_sample(
+        &f.network,
+        &problem.region,
+        problem.label,
+        &problem.targets,
+        &tight,
+    )
+    .unwrap();
+    match outcome.verdict {
+        Verdict::Unresolved { best_lower, reason } => {
+            assert_eq!(reason, ballast::search::UnresolvedReason::MemoryLimit);
+            assert!(best_lower <= min_exact + 1e-9);
+        }
+        other => panic!("sample {}: {other:?}", problem.index),
+    }
+    let outcome = verify_sample(
+        &f.network,
+        &problem.region,
+        problem.label,
+        &problem.targets,
+        &quiet,
+    )
+    .unwrap();
+    assert!(
+        matches!(outcome.verdict, Verdict::Proved { .. }),
+        "{outcome:?}"
+    );
+}

@@ -1,19 +1,22 @@
 //! Complete verification by branch and bound over ReLU activation states (Bunel et al., 2018 and 2020).
 //!
 //! For a sample of class `y` and its forbidden classes, [`verify_sample`] decides whether some input of
-//! the region (ball ∩ input range) moves the answer into a forbidden class. It first bounds every margin
-//! `logit_y − logit_j` with [`crate::bound`] and runs the attack of [`crate::attack`]; each margin not
-//! proved then gets its own best-first tree ([`tree`]) that splits unstable ReLUs into active / inactive
-//! sub-domains, bounds each with the split constraints enforced, tries short attacks from the bound's
-//! minimiser, and solves fully fixed sub-domains as LPs ([`leaf`]). One tree per forbidden class keeps
-//! each tree's bound a single number and gives per-class exact minima in the optimality mode; the most
-//! dangerous class (lowest root bound) goes first, so a counterexample ends the search early.
+//! the region (ball ∩ input range) moves the answer into a forbidden class. It builds one bound engine
+//! ([`crate::engine`]) for the sample, bounds every margin `logit_y − logit_j` at the root and runs the
+//! attack of [`crate::attack`]; each margin not proved then gets its own best-first tree (`tree`) that
+//! splits unstable ReLUs into active / inactive sub-domains a batch at a time, bounds all children of a
+//! batch together with the split constraints enforced (`bounding`: optimised slopes and split
+//! multipliers, the parent's pre-activation bounds reused below the split layer), tries short attacks
+//! from the bound minimisers (`probe`), and solves fully fixed sub-domains as LPs (`leaf`). One
+//! tree per forbidden class keeps each tree's bound a single number and gives per-class exact minima in
+//! the optimality mode; the most dangerous class (lowest root bound) goes first, so a counterexample
+//! ends the search early.
 //!
 //! Guarantees: [`Verdict::Proved`] only when every margin has a sound lower bound above
 //! [`crate::bound::CERTIFY_TOLERANCE`] on every sub-domain; [`Verdict::Counterexample`] only with a point
 //! that [`crate::attack::validate`] accepted (plain forward pass, inside the region, predicted class
-//! forbidden). A search stopped by its deadline or node limit, or left with a sub-domain it can neither
-//! prove nor refute, says [`Verdict::Unresolved`] with the best sound lower bound found — never a guess.
+//! forbidden). A search stopped by its deadline, node limit or frontier memory cap, or left with a
+//! sub-domain it can neither prove nor refute, says [`Verdict::Unresolved`] with the best sound lower bound found — never a guess.
 //! With restricted targets a point may beat the label with a forbidden class's logit while an allowed
 //! class wins: that is neither a proof nor a counterexample, and the search says unresolved. L2 regions
 //! are searched with the same trees but their leaves are bounded by a Lagrangian (sound, possibly
@@ -22,9 +25,12 @@
 //! [`milp`] encodes the same question as a big-M mixed-integer program for cross-checks; the search never
 //! relies on it.
 
+mod bounding;
 mod branching;
+mod frontier;
 mod leaf;
 pub mod milp;
+mod probe;
 mod runner;
 mod solver;
 mod tree;
@@ -34,6 +40,7 @@ use std::time::Instant;
 pub use runner::{verify_batch, verify_sample};
 
 use crate::attack::{AttackError, AttackSettings, Counterexample};
+use crate::bound::optimised::SlopeOptions;
 use crate::bound::{BoundError, Method};
 use crate::threat::Region;
 
@@ -48,18 +55,28 @@ pub struct SearchSettings {
     pub deadline: Option<Instant>,
     /// Give up (unresolved) after bounding this many sub-domains for one sample.
     pub node_limit: usize,
+    /// Give up (unresolved) when the open sub-domains of one sample would take more than this many
+    /// bytes (an estimate from their shape: split states, pre-activation bounds, a minimiser).
+    pub frontier_memory: usize,
+    /// Open sub-domains split per step; all their children are bounded in one batch of the engine.
+    pub batch_size: usize,
     /// Run every tree to optimality and report the exact minimum margin per class instead of stopping at
     /// the first proof or counterexample.
     pub optimality: bool,
     /// Seed of the attacks (per sample in [`verify_batch`], see [`crate::attack::sample_seed`]).
     pub seed: u64,
-    /// Bounding method for the sub-domains (see [`crate::bound::Method`]).
+    /// Bounding method for the sub-domains (see [`crate::bound::Method`]): interval, linear (one
+    /// backward pass) or optimised (slopes and, under splits, split multipliers).
     pub bound_method: Method,
+    /// The ascent of the optimised method.
+    pub slope_options: SlopeOptions,
     /// The attack run before any tree (`None` to skip); its deadline is replaced by [`Self::deadline`].
     pub root_attack: Option<AttackSettings>,
     /// PGD steps from each processed node's bound minimiser (0 = no attacks inside the trees).
     pub node_attack_steps: usize,
-    /// Units whose children are bounded before choosing one to split (1 = the best-scored unit).
+    /// Units considered per split: 1 splits the best-scored unit; `k > 1` bounds the children of the
+    /// `k` best-scored units cheaply (the parent's intermediate bounds, one backward pass) and splits
+    /// the unit whose worse child bound is highest (filtered smart branching, De Palma et al., 2021).
     pub branching_candidates: usize,
     /// In the optimality mode, a sub-domain is dropped once its bound is within this of the best margin
     /// achieved (absolute, logit units).
@@ -67,18 +84,22 @@ pub struct SearchSettings {
 }
 
 impl Default for SearchSettings {
-    /// No deadline, 20 000 sub-domains, decision mode, seed 0, linear bounds, the default attack first,
-    /// 10 PGD steps per node, plain best-scored branching, optimality gap 1e-9.
+    /// No deadline, 20 000 sub-domains, 256 MiB of open sub-domains, batches of 64, decision mode,
+    /// seed 0, optimised bounds (default ascent), the default attack first, 10 PGD steps per node,
+    /// look-ahead among the 3 best-scored units, optimality gap 1e-9.
     fn default() -> Self {
         SearchSettings {
             deadline: None,
             node_limit: 20_000,
+            frontier_memory: 256 << 20,
+            batch_size: 64,
             optimality: false,
             seed: 0,
-            bound_method: Method::Linear,
+            bound_method: Method::OptimisedLinear,
+            slope_options: SlopeOptions::default(),
             root_attack: Some(AttackSettings::default()),
             node_attack_steps: 10,
-            branching_candidates: 1,
+            branching_candidates: 3,
             optimality_gap: 1e-9,
         }
     }
@@ -91,6 +112,8 @@ pub enum UnresolvedReason {
     Deadline,
     /// The node limit was reached.
     NodeLimit,
+    /// The open sub-domains would have exceeded the memory cap.
+    MemoryLimit,
     /// A sub-domain's bound stayed at or below the tolerance and its minimiser is not a counterexample
     /// (a margin within the tolerance of zero, a tie, an allowed class winning, or a loose L2 leaf).
     Undecided {

@@ -3,20 +3,24 @@
 //! the forbidden classes and the final verdict. The trees themselves only take steps
 //! ([`super::tree::TargetTree::step`]).
 //!
-//! Parallelism is over samples only (rayon); one sample's search is sequential, so a batch never
-//! oversubscribes the machine.
+//! One [`Engine`] is built per sample and shared by all its trees. Parallelism is rayon's work
+//! stealing at two levels: samples of a batch, and the chunks of sub-domains and the leaf LPs inside
+//! one sample's steps, so a single hard sample keeps every core busy once the easy ones are done.
 
 use std::time::Instant;
 
 use rayon::prelude::*;
 
-use super::tree::{Node, Problem, Step, TargetTree};
+use super::bounding::{self, Job, Margins, Settings};
+use super::frontier::Node;
+use super::tree::{Problem, Step, TargetTree};
 use super::{
     SearchError, SearchOutcome, SearchProblem, SearchSettings, TargetSummary, UnresolvedReason,
     Verdict,
 };
 use crate::attack::{attack_sample, sample_seed, AttackOutcome, Counterexample};
-use crate::bound::{margin_lower_bounds, Domain, CERTIFY_TOLERANCE};
+use crate::bound::{validate, SplitState, CERTIFY_TOLERANCE};
+use crate::engine::Engine;
 use crate::model::Network;
 use crate::threat::Region;
 
@@ -25,6 +29,22 @@ fn check_settings(settings: &SearchSettings) -> Result<(), SearchError> {
         return Err(SearchError::Settings(
             "node limit must be at least 1".into(),
         ));
+    }
+    if settings.batch_size == 0 {
+        return Err(SearchError::Settings(
+            "batch size must be at least 1".into(),
+        ));
+    }
+    if settings.frontier_memory == 0 {
+        return Err(SearchError::Settings(
+            "frontier memory must be at least 1 byte".into(),
+        ));
+    }
+    if settings.slope_options.step.is_nan() || settings.slope_options.step < 0.0 {
+        return Err(SearchError::Settings(format!(
+            "slope step {} is not allowed, expected a number ≥ 0",
+            settings.slope_options.step
+        )));
     }
     if !(settings.optimality_gap >= 0.0 && settings.optimality_gap.is_finite()) {
         return Err(SearchError::Settings(format!(
@@ -91,15 +111,26 @@ fn search(
     seed: u64,
 ) -> Result<SearchOutcome, SearchError> {
     let start = Instant::now();
-    let network = network.as_classifier();
-    let root = margin_lower_bounds(
-        &network,
+    let network = validate(network, region, label, targets, None)?.into_owned();
+    let engine = Engine::new(&network);
+    let root = bounding::bound(
+        &engine,
         region,
-        label,
-        targets,
-        settings.bound_method,
-        None,
-    )?;
+        Margins { label, targets },
+        &[Job {
+            splits: None,
+            given: None,
+        }],
+        &Settings::of(
+            settings,
+            if settings.optimality {
+                f64::INFINITY
+            } else {
+                CERTIFY_TOLERANCE
+            },
+        ),
+    )
+    .remove(0);
     let mut summaries: Vec<TargetSummary> = targets
         .iter()
         .enumerate()
@@ -120,7 +151,7 @@ fn search(
         nodes,
         seconds: start.elapsed().as_secs_f64(),
     };
-    if targets.is_empty() || matches!(root.domain, Domain::Empty { .. }) {
+    if targets.is_empty() || root.empty {
         // Nothing forbidden, or no input at all: nothing can change the answer.
         for s in &mut summaries {
             s.lower = f64::INFINITY;
@@ -151,11 +182,11 @@ fn search(
     }
     let problem = Problem {
         network: &network,
+        engine: &engine,
         region,
         label,
         forbidden: targets,
         settings,
-        seed,
     };
     // Most dangerous class first.
     let mut order: Vec<usize> = (0..targets.len()).collect();
@@ -172,18 +203,15 @@ fn search(
             continue;
         }
         let root_node = Node {
-            splits: crate::bound::SplitState::free(&network),
-            bounds: root.pre_activation.clone(),
+            splits: SplitState::free(&network),
+            bounds: root.bounds.clone(),
             lower: root.lower[t],
             minimiser: root.minimisers[t].clone(),
         };
         let mut tree = TargetTree::new(problem, target, root_node);
-        if let Some(point) = &best_attack_point {
-            tree.consider(point);
-        }
-        if let Some(c) = &found {
-            tree.consider(&c.input.clone());
-        }
+        let mut points: Vec<Vec<f64>> = best_attack_point.iter().cloned().collect();
+        points.extend(found.iter().map(|c| c.input.clone()));
+        tree.consider(&points);
         let mut finished = !tree.has_open_nodes();
         while !finished {
             if tree.found.is_some() && !settings.optimality {
@@ -193,11 +221,19 @@ fn search(
                 stopped = Some(UnresolvedReason::Deadline);
                 break;
             }
-            if nodes + tree.nodes >= settings.node_limit {
+            let used = nodes + tree.nodes - 1;
+            if used >= settings.node_limit {
                 stopped = Some(UnresolvedReason::NodeLimit);
                 break;
             }
-            finished = tree.step()? == Step::Finished;
+            match tree.step(settings.node_limit - used)? {
+                Step::Finished => finished = true,
+                Step::Stopped(reason) => {
+                    stopped = Some(reason);
+                    break;
+                }
+                Step::Continue | Step::Found => {}
+            }
         }
         nodes += tree.nodes - 1;
         let summary = &mut summaries[t];
