@@ -221,7 +221,6 @@ fn reference_witnesses_check_out_in_exact_rust_arithmetic() {
 }
 
 #[test]
-#[ignore = "fails until the rounding allowance of issue 16 lands: false certificates on huge-mean, tiny-std models and counterexamples just outside the ball"]
 fn no_false_certificate_and_exact_counterexamples_on_fp_stress_cases() {
     let (models, cases) = load_manifest();
     let mut tally = Tally::default();

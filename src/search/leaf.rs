@@ -6,9 +6,12 @@
 //!
 //! Soundness does not rest on the LP solver's objective value. The solver computes the Lagrange
 //! multipliers `λ ≥ 0` of the split rows (the dual LP over the region's bounding box); the bound returned
-//! is the Lagrangian `min_{x ∈ region} (g − Sᵀλ)·x + tᵀλ + g₀`, evaluated by
-//! [`crate::bound::concretise::minimum`]. By weak duality it is a lower bound on the margin over the
-//! sub-domain for **every** `λ ≥ 0`, so a solver inaccuracy can only loosen it. For an L-inf region the
+//! is the Lagrangian `min_{x ∈ region} margin(x) − Σ λᵢ sᵢ zᵢ(x)` (`sᵢ = +1` for a unit forced active,
+//! `−1` forced inactive), evaluated **by the bound engine** as a backward pass with split multipliers
+//! ([`crate::engine::backward`]), so it carries the engine's rounding allowance and the fold error of
+//! the network: a bound on the real-number network. By weak duality it is a lower bound on the margin
+//! over the sub-domain for **every** `λ ≥ 0`, so a solver inaccuracy can only loosen it. (The f64
+//! Lagrangian of the multiplied-out affine piece is used only to choose multipliers.) For an L-inf region the
 //! dual LP is exact and the bound equals the minimum (up to rounding); for L2 it is sound but may be
 //! loose. The primal LP gives the minimising input, used to look for counterexamples and, in the
 //! optimality mode, as an achieved margin. Nothing here reports a counterexample: callers validate the
@@ -19,6 +22,9 @@ use nalgebra::{DMatrix, DVector};
 use super::solver::{minimise, LinearProgram, LpOutcome, Row};
 use super::SearchError;
 use crate::bound::{concretise, LayerBounds, ReluSplit, SplitState};
+use crate::engine::backward::{self, Choices, Objectives};
+use crate::engine::intermediate::{self, Given, Tightness};
+use crate::engine::{Domains, Engine};
 use crate::model::Network;
 use crate::threat::Region;
 
@@ -125,27 +131,75 @@ pub(crate) struct LeafSolution {
     pub point: Option<Vec<f64>>,
 }
 
-/// The sound Lagrangian bound `min_{x ∈ region} (g − Sᵀλ)·x + tᵀλ + g₀` for the given multipliers
-/// (clamped to `[0, cap]` first, so any input is safe).
-pub(crate) fn lagrangian_bound(region: &Region, piece: &AffinePiece, multipliers: &[f64]) -> f64 {
-    let mut coefficients = piece.gradient.clone();
-    let mut constant = piece.constant;
-    for ((row, t), lambda) in piece
-        .rows
+/// Where the engine evaluates a leaf's Lagrangian: the sub-domain and the margin.
+#[derive(Clone, Copy)]
+pub(crate) struct LeafDomain<'a> {
+    /// The engine of the classifier network.
+    pub engine: &'a Engine,
+    /// The node's split constraints (their order gives the piece's rows).
+    pub splits: &'a SplitState,
+    /// The node's sound pre-activation bounds.
+    pub bounds: &'a [LayerBounds],
+    /// The sample's class.
+    pub label: usize,
+    /// The forbidden class of the tree.
+    pub target: usize,
+}
+
+/// The Lagrangian bound for `multipliers` (one per split row, clamped to `[0, cap]`), evaluated by the
+/// engine with its rounding allowance: sound for the real-number network.
+pub(crate) fn engine_bound(leaf: &LeafDomain, region: &Region, multipliers: &[f64]) -> f64 {
+    let engine = leaf.engine;
+    let hidden_sizes = engine.hidden_sizes();
+    let domains = Domains::new(vec![region], &[Some(leaf.splits)], &hidden_sizes);
+    let lower: Vec<DMatrix<f64>> = leaf
+        .bounds
         .iter()
-        .zip(&piece.right_hand_sides)
-        .zip(multipliers)
-    {
-        let lambda = lambda.clamp(0.0, MULTIPLIER_CAP);
-        if lambda == 0.0 {
-            continue;
+        .map(|b| DMatrix::from_column_slice(b.len(), 1, &b.lower))
+        .collect();
+    let upper: Vec<DMatrix<f64>> = leaf
+        .bounds
+        .iter()
+        .map(|b| DMatrix::from_column_slice(b.len(), 1, &b.upper))
+        .collect();
+    let hidden = intermediate::compute(
+        engine,
+        &domains,
+        Tightness::Interval,
+        Some(Given {
+            lower: &lower,
+            upper: &upper,
+            start: hidden_sizes.len(),
+        }),
+    );
+    let mut terms: Vec<DMatrix<f64>> = hidden_sizes.iter().map(|&n| DMatrix::zeros(n, 1)).collect();
+    let mut row = 0;
+    for (k, layer) in leaf.splits.layers.iter().enumerate() {
+        for (i, split) in layer.iter().enumerate() {
+            let sign = match split {
+                ReluSplit::Free => continue,
+                ReluSplit::Active => -1.0,
+                ReluSplit::Inactive => 1.0,
+            };
+            let lambda = multipliers.get(row).copied().unwrap_or(0.0);
+            terms[k][(i, 0)] = sign * lambda.clamp(0.0, MULTIPLIER_CAP);
+            row += 1;
         }
-        for (c, s) in coefficients.iter_mut().zip(row) {
-            *c -= lambda * s;
-        }
-        constant += lambda * t;
     }
-    concretise::minimum(region, &coefficients) + constant
+    let mut coefficients = DMatrix::zeros(engine.output_dim(), 1);
+    coefficients[(leaf.label, 0)] = 1.0;
+    coefficients[(leaf.target, 0)] = -1.0;
+    let objectives = Objectives {
+        top: engine.depth() - 1,
+        coefficients,
+        constant: DVector::zeros(1),
+        domain: vec![0],
+    };
+    let choices = Choices {
+        slopes: None,
+        multipliers: Some(&terms),
+    };
+    backward::run(engine, &hidden, &domains, objectives, choices, false).lower[0]
 }
 
 /// Multipliers of the split rows from the dual LP over the region's bounding box:
@@ -273,7 +327,10 @@ fn kkt_multipliers(region: &Region, piece: &AffinePiece, x: &[f64]) -> Vec<f64> 
 /// with positive slack, least squares on the active rows so that `Sᵀy` vanishes on free coordinates)
 /// give `φ(y) = min_{x ∈ region} yᵀ(t − S x)`; when `φ(y) > 0` no region input meets the rows, and the
 /// Lagrangian with multipliers `cap · y` is a sound (very large) bound. `None` when the certificate fails.
-fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, SearchError> {
+fn emptiness_multipliers(
+    region: &Region,
+    piece: &AffinePiece,
+) -> Result<Option<Vec<f64>>, SearchError> {
     let n = piece.gradient.len();
     let rows = piece.rows.len();
     let mut program = LinearProgram::default();
@@ -348,8 +405,7 @@ fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, 
     if certificate <= 0.0 {
         return Ok(None);
     }
-    let multipliers: Vec<f64> = y.iter().map(|v| v * MULTIPLIER_CAP).collect();
-    Ok(Some(lagrangian_bound(region, piece, &multipliers)))
+    Ok(Some(y.iter().map(|v| v * MULTIPLIER_CAP).collect()))
 }
 
 /// Solves a leaf: the primal LP for the minimiser and value, then a sound Lagrangian bound from the KKT
@@ -357,6 +413,7 @@ fn emptiness_bound(region: &Region, piece: &AffinePiece) -> Result<Option<f64>, 
 /// solver noise, an L2 region) and does not exceed `threshold`, the multipliers of the dual LP are tried
 /// as well and the larger bound kept. The point is the primal minimiser moved into the region.
 pub(crate) fn solve_leaf(
+    leaf: &LeafDomain,
     region: &Region,
     piece: &AffinePiece,
     threshold: f64,
@@ -372,17 +429,17 @@ pub(crate) fn solve_leaf(
             .map(|(g, v)| g * v)
             .sum::<f64>()
             + piece.constant;
-        lower = lagrangian_bound(region, piece, &kkt_multipliers(region, piece, x));
+        lower = engine_bound(leaf, region, &kkt_multipliers(region, piece, x));
     }
     if point.is_none() {
-        if let Some(bound) = emptiness_bound(region, piece)? {
-            lower = bound;
+        if let Some(multipliers) = emptiness_multipliers(region, piece)? {
+            lower = engine_bound(leaf, region, &multipliers);
         }
     }
     let tight = point.is_some() && lower >= value - 1e-7 * (1.0 + value.abs());
     if !(tight || lower > threshold) {
         let multipliers = dual_multipliers(region, piece)?;
-        lower = lower.max(lagrangian_bound(region, piece, &multipliers));
+        lower = lower.max(engine_bound(leaf, region, &multipliers));
     }
     Ok(LeafSolution { lower, point })
 }
@@ -439,7 +496,30 @@ mod tests {
         for pattern in [[true, true], [true, false], [false, true], [false, false]] {
             let pattern = vec![pattern.to_vec()];
             let piece = affine_piece(&network, &pattern, &|_, _| true, 0, 1);
-            let solution = solve_leaf(&region, &piece, f64::INFINITY).unwrap();
+            let splits = SplitState {
+                layers: vec![pattern[0]
+                    .iter()
+                    .map(|&a| {
+                        if a {
+                            ReluSplit::Active
+                        } else {
+                            ReluSplit::Inactive
+                        }
+                    })
+                    .collect()],
+            };
+            // Sound bounds of the whole region hold on the sub-domain too.
+            let (bounds, _) =
+                crate::bound::interval::pre_activation_bounds(&network, &region, None).unwrap();
+            let engine = Engine::new(&network);
+            let leaf = LeafDomain {
+                engine: &engine,
+                splits: &splits,
+                bounds: &bounds,
+                label: 0,
+                target: 1,
+            };
+            let solution = solve_leaf(&leaf, &region, &piece, f64::INFINITY).unwrap();
             if let Some(point) = solution.point {
                 let value: f64 = piece
                     .gradient

@@ -22,7 +22,7 @@ use rayon::prelude::*;
 use super::bounding::{self, Job, Margins, Settings};
 use super::branching::{look_ahead, ranked_units, Parent, Unit};
 use super::frontier::{Frontier, Node};
-use super::leaf::{leaf_piece, solve_leaf, LeafSolution};
+use super::leaf::{leaf_piece, solve_leaf, LeafDomain, LeafSolution};
 use super::probe::{descend, Descent};
 use super::{SearchError, SearchSettings, UnresolvedReason};
 use crate::attack::validate;
@@ -356,6 +356,7 @@ impl<'a> TargetTree<'a> {
         }
         let Problem {
             network,
+            engine,
             region,
             label,
             settings,
@@ -370,7 +371,14 @@ impl<'a> TargetTree<'a> {
                     .ok_or_else(|| {
                         SearchError::Internal("a leaf without a fixed pattern".into())
                     })?;
-                solve_leaf(region, &piece, threshold)
+                let leaf = LeafDomain {
+                    engine,
+                    splits: &node.splits,
+                    bounds: &node.bounds,
+                    label,
+                    target,
+                };
+                solve_leaf(&leaf, region, &piece, threshold)
             })
             .collect();
         let mut open = Vec::new();
