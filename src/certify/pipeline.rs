@@ -3,11 +3,11 @@
 //! engine batches (matrix products over many sub-problems), the attack as one batch.
 //!
 //! Order per epsilon (ascending): clean forward pass (misclassified, or nothing forbidden) → a smaller
-//! epsilon's counterexample, re-validated → interval bounds → quick attack → linear → optimised
+//! epsilon's counterexample, re-validated → interval bounds → linear → quick attack → optimised
 //! linear; then certificates of a larger epsilon carry over to smaller ones; then branch and bound
-//! within the time budget, per sample in parallel. Running the interval stage before the attack changes
-//! only which stage is credited, never an outcome: a task the interval bound certifies has no
-//! counterexample to find.
+//! within the time budget, per sample in parallel. Running bounds before the attack changes only which
+//! stage is credited, never an outcome: a task a sound bound certifies has no counterexample to find;
+//! it spares the attack (the dearest stage on wide networks) the samples the bounds settle.
 //!
 //! Guarantees: a sample is `certified` only on a sound bound above the tolerance
 //! [`crate::bound::CERTIFY_TOLERANCE`] or a completed proof; every counterexample — whatever produced it
@@ -83,10 +83,15 @@ impl PipelineOptions {
     /// The stages in the order they run, for the report.
     pub fn stages(&self) -> Vec<Stage> {
         let mut stages = vec![Stage::Clean, Stage::Interval];
-        if self.attack {
+        for (position, m) in self.methods.iter().enumerate() {
+            if position == 1 && self.attack {
+                stages.push(Stage::Attack);
+            }
+            stages.push(stages::stage_of(*m));
+        }
+        if self.methods.len() < 2 && self.attack {
             stages.push(Stage::Attack);
         }
-        stages.extend(self.methods.iter().map(|m| stages::stage_of(*m)));
         if self.budget_seconds > 0.0 {
             stages.push(Stage::Search);
         }
@@ -164,14 +169,19 @@ pub fn run(
             .collect();
         let mut tasks = stages::reuse_stage(&context, &mut states, tasks);
         tasks = stages::bound_stage(&context, &mut states, tasks, Method::Interval);
-        if options.attack && !cancel.load(Ordering::SeqCst) {
-            tasks = stages::attack_stage(&context, &mut states, tasks)?;
-        }
-        for &method in &options.methods {
+        // The first linear method before the attack: on wide networks it is cheaper than attacking
+        // every sample, and what it certifies has no counterexample to find.
+        for (position, &method) in options.methods.iter().enumerate() {
+            if position == 1 && options.attack && !cancel.load(Ordering::SeqCst) {
+                tasks = stages::attack_stage(&context, &mut states, tasks)?;
+            }
             if cancel.load(Ordering::SeqCst) {
                 break;
             }
             tasks = stages::bound_stage(&context, &mut states, tasks, method);
+        }
+        if options.methods.len() < 2 && options.attack && !cancel.load(Ordering::SeqCst) {
+            tasks = stages::attack_stage(&context, &mut states, tasks)?;
         }
         searching.extend(tasks);
         // Samples decided at every epsilon are finished: record them now, so an interruption later
