@@ -55,19 +55,6 @@ fn to_matrices(
     (lower, upper)
 }
 
-/// The hidden bounds of domain `d` as per-layer vectors.
-pub(crate) fn layer_bounds(hidden: &HiddenBounds, d: usize) -> Vec<LayerBounds> {
-    hidden
-        .lower
-        .iter()
-        .zip(&hidden.upper)
-        .map(|(l, u)| LayerBounds {
-            lower: l.column(d).iter().copied().collect(),
-            upper: u.column(d).iter().copied().collect(),
-        })
-        .collect()
-}
-
 /// The margin objectives `e_label − e_target` on the logits, one column per (request, target).
 fn margin_objectives(engine: &Engine, requests: &[Request]) -> Objectives {
     let classes = engine.output_dim();
@@ -152,7 +139,7 @@ pub(crate) fn margin_bounds(
     let mut out = Vec::with_capacity(requests.len());
     let mut j = 0;
     for (d, r) in requests.iter().enumerate() {
-        let mut bounds = layer_bounds(&hidden, d);
+        let mut bounds = hidden.layer_bounds(d);
         if let Some((layer, unit)) = hidden.empty[d] {
             bounds.truncate(layer + 1);
             out.push(MarginBounds::empty(method, r.targets, bounds, layer, unit));
@@ -195,7 +182,7 @@ pub(crate) fn hidden_bounds(
 ) -> (Vec<LayerBounds>, Domain) {
     let domains = Domains::new(vec![region], &[splits], &engine.hidden_sizes());
     let hidden = intermediate::compute(engine, &domains, tightness, None);
-    let mut bounds = layer_bounds(&hidden, 0);
+    let mut bounds = hidden.layer_bounds(0);
     match hidden.empty[0] {
         Some((layer, unit)) => {
             bounds.truncate(layer + 1);

@@ -13,6 +13,7 @@ use rayon::prelude::*;
 
 use super::backward::{self, Choices, Objectives};
 use super::{Domains, Engine};
+use crate::bound::LayerBounds;
 
 /// Columns per backward pass (bounds memory: inputs × columns doubles per pass).
 const MAX_COLUMNS: usize = 2048;
@@ -54,6 +55,20 @@ pub struct HiddenBounds {
     pub rounding: Vec<DMatrix<f64>>,
     /// Fold error terms per layer (`None` = exact layer).
     pub fold: Vec<Option<DMatrix<f64>>>,
+}
+
+impl HiddenBounds {
+    /// The bounds of domain `d` as per-layer vectors.
+    pub fn layer_bounds(&self, d: usize) -> Vec<LayerBounds> {
+        self.lower
+            .iter()
+            .zip(&self.upper)
+            .map(|(l, u)| LayerBounds {
+                lower: l.column(d).iter().copied().collect(),
+                upper: u.column(d).iter().copied().collect(),
+            })
+            .collect()
+    }
 }
 
 /// The relaxation of one layer from clipped bounds.

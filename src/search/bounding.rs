@@ -260,22 +260,9 @@ fn bound_chunk(
             Bounded {
                 lower,
                 minimisers,
-                bounds: layer_bounds(&hidden, d),
+                bounds: hidden.layer_bounds(d),
                 empty: false,
             }
-        })
-        .collect()
-}
-
-/// The hidden bounds of domain `d` as per-layer vectors.
-pub(crate) fn layer_bounds(hidden: &HiddenBounds, d: usize) -> Vec<LayerBounds> {
-    hidden
-        .lower
-        .iter()
-        .zip(&hidden.upper)
-        .map(|(l, u)| LayerBounds {
-            lower: l.column(d).iter().copied().collect(),
-            upper: u.column(d).iter().copied().collect(),
         })
         .collect()
 }
