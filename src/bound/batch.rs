@@ -211,3 +211,21 @@ pub(crate) fn interval_margins(
         })
         .collect()
 }
+
+/// One sample's margin bounds by `method`: validates, builds the engine and runs a batch of one.
+pub(crate) fn one(
+    network: &crate::model::Network,
+    request: Request,
+    method: Method,
+    settings: &SlopeSettings,
+) -> Result<MarginBounds, super::BoundError> {
+    let network = super::validate(
+        network,
+        request.region,
+        request.label,
+        request.targets,
+        request.splits,
+    )?;
+    let engine = Engine::new(&network);
+    Ok(margin_bounds(&engine, &[request], method, None, settings).remove(0))
+}

@@ -50,22 +50,18 @@ pub fn margin_lower_bounds(
     targets: &[usize],
     splits: Option<&SplitState>,
 ) -> Result<MarginBounds, BoundError> {
-    let network = validate(network, region, label, targets, splits)?;
-    let engine = Engine::new(&network);
     let request = Request {
         region,
         label,
         targets,
         splits,
     };
-    let mut out = batch::margin_bounds(
-        &engine,
-        &[request],
+    batch::one(
+        network,
+        request,
         Method::Interval,
-        None,
         &SlopeSettings::default(),
-    );
-    Ok(out.remove(0))
+    )
 }
 
 /// Interval bounds for many samples at once (no split constraints): one product per layer for the

@@ -47,22 +47,13 @@ pub fn margin_lower_bounds(
     targets: &[usize],
     splits: Option<&SplitState>,
 ) -> Result<MarginBounds, BoundError> {
-    let network = validate(network, region, label, targets, splits)?;
-    let engine = Engine::new(&network);
     let request = Request {
         region,
         label,
         targets,
         splits,
     };
-    let mut out = batch::margin_bounds(
-        &engine,
-        &[request],
-        Method::Linear,
-        None,
-        &SlopeSettings::default(),
-    );
-    Ok(out.remove(0))
+    batch::one(network, request, Method::Linear, &SlopeSettings::default())
 }
 
 /// Linear-relaxation margin bounds reusing given sound pre-activation bounds (one per hidden layer, e.g.

@@ -7,9 +7,8 @@
 //! Intermediate bounds are those of [`super::linear`].
 
 use super::batch::{self, Request};
-use super::{validate, BoundError, MarginBounds, Method, SplitState};
+use super::{BoundError, MarginBounds, Method, SplitState};
 use crate::engine::slopes::SlopeSettings;
-use crate::engine::Engine;
 use crate::model::Network;
 use crate::threat::Region;
 
@@ -42,8 +41,6 @@ pub fn margin_lower_bounds(
     splits: Option<&SplitState>,
     options: &SlopeOptions,
 ) -> Result<MarginBounds, BoundError> {
-    let network = validate(network, region, label, targets, splits)?;
-    let engine = Engine::new(&network);
     let request = Request {
         region,
         label,
@@ -54,12 +51,5 @@ pub fn margin_lower_bounds(
         iterations: options.iterations,
         step: options.step,
     };
-    let mut out = batch::margin_bounds(
-        &engine,
-        &[request],
-        Method::OptimisedLinear,
-        None,
-        &settings,
-    );
-    Ok(out.remove(0))
+    batch::one(network, request, Method::OptimisedLinear, &settings)
 }
