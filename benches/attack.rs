@@ -78,7 +78,7 @@ fn wide() -> (String, Network, Vec<AttackProblem>) {
     }
     let mut rng = ChaCha8Rng::seed_from_u64(17);
     let sizes = [784, 256, 256, 10];
-    let network = Network::new(
+    let network = Network::from_dense(
         sizes
             .windows(2)
             .map(|w| {

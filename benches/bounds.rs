@@ -38,7 +38,7 @@ fn best_of<T>(repetitions: usize, mut run: impl FnMut() -> T) -> (f64, T) {
 }
 
 fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
-    Network::new(
+    Network::from_dense(
         sizes
             .windows(2)
             .map(|pair| {
@@ -96,7 +96,7 @@ fn part_a(quick: bool) {
         .layers
         .iter()
         .take(network.layers.len() - 1)
-        .map(|l| 2.0 * 2.0 * (l.weights.len() * samples) as f64)
+        .map(|l| 2.0 * 2.0 * (l.parameter_count() * samples) as f64)
         .sum();
     let (linear_seconds, linear_result) = best_of(repetitions, || {
         linear::batch_margin_lower_bounds(&network, &regions, &labels, &targets).unwrap()
@@ -126,7 +126,7 @@ fn part_a(quick: bool) {
     let sizes: Vec<f64> = network
         .layers
         .iter()
-        .map(|l| l.weights.len() as f64)
+        .map(|l| l.parameter_count() as f64)
         .collect();
     let linear_flops = 2.0
         * samples as f64

@@ -46,7 +46,7 @@ fn random_model(sizes: &[usize]) -> Model {
         })
         .collect();
     let template = Model::load(Path::new("tests/data/digits_mlp.model.json")).expect("fixture");
-    let mut model = template.with_network(None, &Network::new(layers));
+    let mut model = template.with_network(None, &Network::from_dense(layers));
     model.input.dim = sizes[0];
     model.input.names = None;
     model.input.lower = vec![0.0; sizes[0]];

@@ -31,7 +31,7 @@ fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
             bias: DVector::from_fn(w[1], |_, _| rng.gen_range(-0.5..0.5)),
         })
         .collect();
-    Network::new(layers)
+    Network::from_dense(layers)
 }
 
 fn unbounded(dim: usize) -> (Vec<f64>, Vec<f64>) {
@@ -51,7 +51,7 @@ fn linear_binary_classifier_flips_exactly_at_the_dual_norm_distance() {
         let raw = random_network(&mut rng, &[dim, 1]);
         let network = raw.as_classifier();
         let x: Vec<f64> = (0..dim).map(|_| rng.gen_range(-2.0..2.0)).collect();
-        let w = raw.layers[0].weights.row(0).clone_owned();
+        let w = raw.layers[0].to_dense().weights.row(0).clone_owned();
         let value = raw.forward(&x)[0];
         let label = predicted_class(network.forward(&x).as_slice());
         let (lower, upper) = unbounded(dim);
@@ -551,7 +551,7 @@ fn gradient_is_exact_for_a_linear_model() {
     let (margin, gradient) = margin_and_gradient(&network, &x, 2, 0);
     let logits = network.forward(&x);
     assert_abs_diff_eq!(margin, logits[2] - logits[0], epsilon = 1e-12);
-    let w = &network.layers[0].weights;
+    let w = &network.layers[0].to_dense().weights;
     for j in 0..6 {
         assert_abs_diff_eq!(gradient[j], w[(2, j)] - w[(0, j)], epsilon = 1e-12);
     }
@@ -560,7 +560,7 @@ fn gradient_is_exact_for_a_linear_model() {
 #[test]
 fn restricted_targets_only_report_forbidden_classes() {
     // Three classes, identity logits: from (1, 0.8, 0) class 1 is near, class 2 is far.
-    let network = Network::new(vec![Dense::identity(3)]);
+    let network = Network::from_dense(vec![Dense::identity(3)]);
     let budget = Budget::uniform(Norm::Linf, 0.3, 3);
     let region = budget.region(&[1.0, 0.8, 0.0], &[-5.0; 3], &[5.0; 3]);
     let settings = AttackSettings::default();
@@ -584,7 +584,7 @@ fn restricted_targets_only_report_forbidden_classes() {
 #[test]
 fn extra_starts_are_used_and_deadlines_stop_the_search() {
     // Identity logits; with no run planned only the caller's start can find the counterexample.
-    let network = Network::new(vec![Dense::identity(2)]);
+    let network = Network::from_dense(vec![Dense::identity(2)]);
     let budget = Budget::uniform(Norm::Linf, 1.0, 2);
     let region = budget.region(&[1.0, 0.5], &[-5.0; 2], &[5.0; 2]);
     let settings = AttackSettings {
@@ -623,7 +623,7 @@ fn extra_starts_are_used_and_deadlines_stop_the_search() {
 
 #[test]
 fn misuse_is_a_typed_error() {
-    let network = Network::new(vec![Dense::identity(2)]);
+    let network = Network::from_dense(vec![Dense::identity(2)]);
     let region: Region =
         Budget::uniform(Norm::Linf, 0.1, 3).region(&[0.0; 3], &[-1.0; 3], &[1.0; 3]);
     let settings = AttackSettings::default();

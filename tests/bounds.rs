@@ -41,7 +41,7 @@ fn random_network(rng: &mut ChaCha8Rng, depth: usize, input: usize, classes: usi
             Dense { weights, bias }
         })
         .collect();
-    Network::new(layers)
+    Network::from_dense(layers)
 }
 
 /// A random region: both norms, per-feature radii with some zeros, a valid range that sometimes binds.
@@ -118,15 +118,16 @@ fn sample_points(rng: &mut ChaCha8Rng, region: &Region, count: usize) -> Vec<Vec
 fn margin_gradient(network: &Network, x: &[f64], y: usize, j: usize) -> Vec<f64> {
     let pre = network.pre_activations(x);
     let last = network.layers.len() - 1;
-    let mut g: DVector<f64> =
-        (network.layers[last].weights.row(y) - network.layers[last].weights.row(j)).transpose();
+    let mut g: DVector<f64> = (network.layers[last].to_dense().weights.row(y)
+        - network.layers[last].to_dense().weights.row(j))
+    .transpose();
     for k in (0..last).rev() {
         for i in 0..g.len() {
             if pre[k][i] <= 0.0 {
                 g[i] = 0.0;
             }
         }
-        g = network.layers[k].weights.tr_mul(&g);
+        g = network.layers[k].to_dense().weights.tr_mul(&g);
     }
     g.iter().copied().collect()
 }
@@ -443,7 +444,7 @@ fn bounds_are_sound_under_split_constraints() {
 /// stable unit empties the domain.
 #[test]
 fn splits_clip_bounds_and_detect_empty_domains() {
-    let network = Network::new(vec![
+    let network = Network::from_dense(vec![
         Dense {
             weights: DMatrix::from_row_slice(2, 1, &[1.0, 1.0]),
             bias: DVector::from_vec(vec![0.0, 5.0]),
@@ -517,8 +518,8 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
                 for (t, &j) in targets.iter().enumerate() {
                     let w: Vec<f64> = (0..dim)
                         .map(|i| {
-                            network.layers[0].weights[(label, i)]
-                                - network.layers[0].weights[(j, i)]
+                            network.layers[0].to_dense().weights[(label, i)]
+                                - network.layers[0].to_dense().weights[(j, i)]
                         })
                         .collect();
                     let at_center = margin(&network, &center, label, j);
@@ -559,8 +560,8 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
                 for (t, &j) in targets.iter().enumerate() {
                     let w: Vec<f64> = (0..dim)
                         .map(|i| {
-                            network.layers[0].weights[(label, i)]
-                                - network.layers[0].weights[(j, i)]
+                            network.layers[0].to_dense().weights[(label, i)]
+                                - network.layers[0].to_dense().weights[(j, i)]
                         })
                         .collect();
                     let expected = margin(&network, &center, label, j)
@@ -576,7 +577,7 @@ fn linear_classifier_bounds_match_the_dual_norm_closed_form() {
 /// `z`, of class 0 against 1 is `−z` (design contract: class 1 iff the logit > 0).
 #[test]
 fn binary_single_logit_models_use_the_classifier_form() {
-    let network = Network::new(vec![Dense {
+    let network = Network::from_dense(vec![Dense {
         weights: DMatrix::from_row_slice(1, 2, &[2.0, -1.0]),
         bias: DVector::from_vec(vec![0.5]),
     }]);

@@ -27,7 +27,7 @@ fn random_network(rng: &mut ChaCha8Rng, depth: usize, input: usize, classes: usi
         sizes.push(rng.gen_range(2..=12));
     }
     sizes.push(classes);
-    Network::new(
+    Network::from_dense(
         sizes
             .windows(2)
             .map(|p| random_dense(rng, p[1], p[0], (2.0 / p[0] as f64).sqrt()))

@@ -246,7 +246,7 @@ fn linear(w: &[f64], b: f64) -> Network {
     for (j, v) in w.iter().enumerate() {
         weights[(1, j)] = *v;
     }
-    Network::new(vec![Dense {
+    Network::from_dense(vec![Dense {
         weights,
         bias: DVector::from_vec(vec![0.0, b]),
     }])

@@ -225,7 +225,7 @@ fn planted(seed: u64, dim: usize, hidden: &[usize], epsilon: f64) -> (Network, V
         weights,
         bias: DVector::from_vec(vec![1.0, 0.0]),
     });
-    (Network::new(layers), center, corner)
+    (Network::from_dense(layers), center, corner)
 }
 
 /// Planted counterexamples are never certified; the search returns a validated counterexample, with
@@ -281,7 +281,7 @@ fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
             bias: DVector::from_fn(w[1], |_, _| rng.gen_range(-0.3..0.3)),
         })
         .collect();
-    Network::new(layers)
+    Network::from_dense(layers)
 }
 
 /// On small random networks the optimality mode equals the big-M MILP (microlp with integer variables,

@@ -43,45 +43,31 @@ fn check_gradient(
     let h = 1e-6;
     let mut checked = 0;
     for (k, layer) in network.layers.iter().enumerate() {
-        let (rows, cols) = layer.weights.shape();
-        for r in 0..rows {
-            for c in 0..cols {
+        let slots: Vec<usize> = layer.parameters().iter().map(|p| p.len()).collect();
+        for (slot, len) in slots.into_iter().enumerate() {
+            for i in 0..len {
                 let mut plus = network.clone();
-                plus.layers[k].weights[(r, c)] += h;
+                plus.layers[k].parameters_mut()[slot][i] += h;
                 let mut minus = network.clone();
-                minus.layers[k].weights[(r, c)] -= h;
+                minus.layers[k].parameters_mut()[slot][i] -= h;
                 let numeric = (loss(&plus) - loss(&minus)) / (2.0 * h);
-                let exact = analytic.layers[k].weights[(r, c)];
+                let exact = analytic.layers[k].parameters()[slot][i];
                 assert!(
                     (numeric - exact).abs() <= 1e-5 * numeric.abs().max(exact.abs()) + floor,
-                    "layer {k} weight ({r},{c}): finite difference {numeric}, backprop {exact}"
+                    "layer {k} parameter slot {slot} entry {i}: finite difference {numeric}, \
+                     backprop {exact}"
                 );
                 checked += 1;
             }
-            let mut plus = network.clone();
-            plus.layers[k].bias[r] += h;
-            let mut minus = network.clone();
-            minus.layers[k].bias[r] -= h;
-            let numeric = (loss(&plus) - loss(&minus)) / (2.0 * h);
-            let exact = analytic.layers[k].bias[r];
-            assert!(
-                (numeric - exact).abs() <= 1e-5 * numeric.abs().max(exact.abs()) + floor,
-                "layer {k} bias {r}: finite difference {numeric}, backprop {exact}"
-            );
-            checked += 1;
         }
     }
     assert!(checked > 0);
     let size: f64 = analytic
         .layers
         .iter()
-        .map(|l| {
-            l.weights
-                .iter()
-                .chain(l.bias.iter())
-                .map(|v| v.abs())
-                .sum::<f64>()
-        })
+        .flat_map(|l| l.parameters())
+        .flatten()
+        .map(|v| v.abs())
         .sum();
     assert!(
         size > 1e-6,
@@ -185,6 +171,7 @@ fn loss_and_gradients_match_scikit_learn() {
         max_relative = 1e-9
     );
     for (k, layer) in gradient.layers.iter().enumerate() {
+        let layer = layer.to_dense();
         let weights = &reference["weight_gradients"][k];
         let bias = &reference["bias_gradients"][k];
         for r in 0..layer.weights.nrows() {

@@ -71,7 +71,7 @@ mod tests {
     use nalgebra::{DMatrix, DVector};
 
     fn identity_classifier() -> Network {
-        Network::new(vec![Dense::identity(3)])
+        Network::from_dense(vec![Dense::identity(3)])
     }
 
     #[test]
@@ -94,7 +94,7 @@ mod tests {
 
     #[test]
     fn ties_follow_the_lowest_index_rule() {
-        let network = Network::new(vec![Dense {
+        let network = Network::from_dense(vec![Dense {
             weights: DMatrix::identity(2, 2),
             bias: DVector::zeros(2),
         }]);

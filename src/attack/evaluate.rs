@@ -221,7 +221,7 @@ mod tests {
     use rand::{Rng, SeedableRng};
 
     fn random_network(rng: &mut rand_chacha::ChaCha8Rng, sizes: &[usize]) -> Network {
-        Network::new(
+        Network::from_dense(
             sizes
                 .windows(2)
                 .map(|w| Dense {

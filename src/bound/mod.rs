@@ -371,9 +371,9 @@ pub(crate) fn validate_batch(
 pub(crate) fn validate_network(network: &Network) -> Result<(), BoundError> {
     for (k, layer) in network.layers.iter().enumerate() {
         if let Some(v) = layer
-            .weights
-            .iter()
-            .chain(layer.bias.iter())
+            .parameters()
+            .into_iter()
+            .flatten()
             .find(|v| !v.is_finite())
         {
             return Err(BoundError::NonFinite {

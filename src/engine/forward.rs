@@ -99,7 +99,7 @@ mod tests {
     use crate::model::{Dense, Network};
 
     fn network() -> Network {
-        Network::new(vec![
+        Network::from_dense(vec![
             Dense {
                 weights: DMatrix::from_row_slice(3, 2, &[1.0, -1.0, 0.5, 2.0, -1.5, 0.3]),
                 bias: DVector::from_vec(vec![0.1, -0.2, 0.05]),

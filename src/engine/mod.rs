@@ -20,6 +20,7 @@ pub mod intermediate;
 pub mod layer;
 pub mod rounding;
 pub mod slopes;
+pub mod structured;
 
 use nalgebra::DMatrix;
 
@@ -52,11 +53,8 @@ impl Engine {
         let network = network.as_classifier();
         let mut fold = network.fold_error.clone();
         fold.resize(network.layers.len(), None);
-        let layers: Vec<Box<dyn LinearLayer>> = network
-            .layers
-            .iter()
-            .map(|d| Box::new(DenseLayer::new(d)) as Box<dyn LinearLayer>)
-            .collect();
+        let layers: Vec<Box<dyn LinearLayer>> =
+            network.layers.iter().map(structured::build).collect();
         let longest = layers.iter().map(|l| l.fan_in()).max().unwrap_or(1);
         let widest = layers
             .iter()

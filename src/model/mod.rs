@@ -1,13 +1,19 @@
 //! Models: the `ballast.model/1` JSON layout ([`layout`]) and the canonical ReLU network every stage
 //! works on ([`network`]).
 
+pub mod affine;
+pub mod conv;
 pub mod deployed;
 pub mod layout;
 pub mod network;
 pub mod onnx;
+pub mod sparse;
 
+pub use affine::Affine;
+pub use conv::{Conv, ConvShape};
 pub use layout::{InputSpec, Layer, Model, MODEL_FORMAT};
 pub use network::{predicted_class, Dense, Network, Normalization};
+pub use sparse::Sparse;
 
 /// Why a model could not be read or written.
 #[derive(Debug, thiserror::Error)]

@@ -13,7 +13,9 @@
 
 use nalgebra::{DMatrix, DVector};
 
+use super::affine::Affine;
 use super::layout::{Layer, Model};
+use super::sparse::Sparse;
 use crate::engine::rounding::{gamma, UNIT_ROUNDOFF_F64};
 
 /// An affine map `x ↦ W x + b` with `W` of shape out × in.
@@ -80,16 +82,21 @@ pub struct FoldError {
 /// A ReLU network in canonical form: `layers[0]`, ReLU, `layers[1]`, ReLU, …, `layers[last]`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Network {
-    /// The affine maps; a ReLU sits between every consecutive pair, none after the last.
-    pub layers: Vec<Dense>,
+    /// The linear maps; a ReLU sits between every consecutive pair, none after the last.
+    pub layers: Vec<Affine>,
     /// Per layer, how far it may be from the model's exact layer (`None` = exact); empty when every
-    /// layer is exact.
+    /// layer is exact. Only dense layers are ever folded.
     pub fold_error: Vec<Option<FoldError>>,
 }
 
 impl Network {
+    /// A network of dense layers (see [`Network::new`]).
+    pub fn from_dense(layers: Vec<Dense>) -> Network {
+        Network::new(layers.into_iter().map(Affine::Dense).collect())
+    }
+
     /// Builds a network, checking that consecutive sizes agree.
-    pub fn new(layers: Vec<Dense>) -> Network {
+    pub fn new(layers: Vec<Affine>) -> Network {
         assert!(
             !layers.is_empty(),
             "a network needs at least one affine map"
@@ -126,7 +133,7 @@ impl Network {
     pub fn hidden_sizes(&self) -> Vec<usize> {
         self.layers[..self.layers.len() - 1]
             .iter()
-            .map(Dense::output_dim)
+            .map(Affine::output_dim)
             .collect()
     }
 
@@ -137,10 +144,7 @@ impl Network {
 
     /// Number of weights and biases.
     pub fn parameter_count(&self) -> usize {
-        self.layers
-            .iter()
-            .map(|l| l.weights.len() + l.bias.len())
-            .sum()
+        self.layers.iter().map(Affine::parameter_count).sum()
     }
 
     /// Logits for one input.
@@ -189,6 +193,15 @@ impl Network {
         }
         let mut layers = self.layers.clone();
         let last = layers.last_mut().expect("non-empty");
+        let Affine::Dense(last) = last else {
+            // Any other kind: append the fixed map z ↦ (0, z).
+            let widen = Sparse::new(1, vec![Vec::new(), vec![(0, 1.0)]], DVector::zeros(2));
+            *last = Affine::Chain(vec![last.clone(), Affine::Sparse(widen)]);
+            return Network {
+                layers,
+                fold_error: self.fold_error.clone(),
+            };
+        };
         let inputs = last.input_dim();
         let mut weights = DMatrix::zeros(2, inputs);
         weights.row_mut(1).copy_from(&last.weights.row(0));
@@ -276,10 +289,11 @@ impl Model {
             });
         }
         let last = network.layers.len() - 1;
-        for (i, d) in network.layers.iter().enumerate() {
+        for (i, layer) in network.layers.iter().enumerate() {
+            let d = layer.to_dense();
             layers.push(Layer::Dense {
-                weights: d.weights.clone(),
-                bias: d.bias.clone(),
+                weights: d.weights,
+                bias: d.bias,
             });
             if i < last {
                 layers.push(Layer::Relu);
@@ -338,7 +352,7 @@ fn fold_layers(input_dim: usize, layers: &[Layer]) -> Network {
     done.push(pending.unwrap_or_else(|| (Dense::identity(width), None)));
     let exact = done.iter().all(|(_, e)| e.is_none());
     let (layers, errors): (Vec<Dense>, Vec<Option<FoldError>>) = done.into_iter().unzip();
-    let mut network = Network::new(layers);
+    let mut network = Network::from_dense(layers);
     if !exact {
         network.fold_error = errors;
     }

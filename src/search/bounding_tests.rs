@@ -15,7 +15,7 @@ fn random_network(rng: &mut ChaCha8Rng, depth: usize) -> Network {
         sizes.push(rng.gen_range(3..=6));
     }
     sizes.push(3);
-    Network::new(
+    Network::from_dense(
         sizes
             .windows(2)
             .map(|w| Dense {

@@ -154,7 +154,7 @@ mod tests {
 
     #[test]
     fn only_free_unstable_units_are_ranked() {
-        let network = Network::new(vec![
+        let network = Network::from_dense(vec![
             Dense::identity(3),
             Dense {
                 weights: DMatrix::from_row_slice(2, 3, &[1.0, -1.0, 2.0, 0.0, 1.0, -1.0]),

@@ -76,8 +76,9 @@ pub(crate) fn affine_piece(
     target: usize,
 ) -> AffinePiece {
     let last = network.layers.len() - 1;
-    let mut linear: DMatrix<f64> = network.layers[0].weights.clone();
-    let mut offset: DVector<f64> = network.layers[0].bias.clone();
+    let first = network.layers[0].to_dense();
+    let mut linear: DMatrix<f64> = first.weights;
+    let mut offset: DVector<f64> = first.bias;
     let mut rows = Vec::new();
     let mut right_hand_sides = Vec::new();
     for (k, layer_pattern) in pattern.iter().enumerate().take(last) {
@@ -94,8 +95,8 @@ pub(crate) fn affine_piece(
             }
         }
         let next = &network.layers[k + 1];
-        linear = &next.weights * &linear;
-        offset = &next.weights * &offset + &next.bias;
+        linear = next.apply_linear(&linear);
+        offset = next.apply(&offset);
     }
     let gradient = (0..linear.ncols())
         .map(|c| linear[(label, c)] - linear[(target, c)])
@@ -452,7 +453,7 @@ mod tests {
 
     fn tiny() -> Network {
         // 2 inputs, 2 hidden units, 2 logits.
-        Network::new(vec![
+        Network::from_dense(vec![
             Dense {
                 weights: DMatrix::from_row_slice(2, 2, &[1.0, -1.0, 0.5, 1.0]),
                 bias: DVector::from_vec(vec![0.1, -0.2]),

@@ -58,6 +58,7 @@ pub fn minimum_margin(
     let mut previous = inputs.clone();
     let mut binaries = 0;
     for (k, layer) in network.layers[..last].iter().enumerate() {
+        let layer = layer.to_dense();
         let mut outputs = Vec::with_capacity(layer.output_dim());
         for i in 0..layer.output_dim() {
             let (l, u) = (bounds[k].lower[i], bounds[k].upper[i]);
@@ -93,7 +94,7 @@ pub fn minimum_margin(
         }
         previous = outputs;
     }
-    let final_layer = &network.layers[last];
+    let final_layer = network.layers[last].to_dense();
     for (j, p) in previous.iter().enumerate() {
         program.objective[*p] = final_layer.weights[(label, j)] - final_layer.weights[(target, j)];
     }

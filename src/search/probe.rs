@@ -128,7 +128,7 @@ mod tests {
     fn descent_reaches_the_corner_of_a_linear_margin() {
         // margin = 1 − x0 + x1 on [0, 1]²: its minimum 0 is at the corner (1, 0), a tie that the answer
         // breaks towards class 0, so no point flips.
-        let network = Network::new(vec![
+        let network = Network::from_dense(vec![
             Dense::identity(2),
             Dense {
                 weights: DMatrix::from_row_slice(2, 2, &[0.0, 1.0, 1.0, 0.0]),

@@ -13,7 +13,7 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
 fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
-    Network::new(
+    Network::from_dense(
         sizes
             .windows(2)
             .map(|w| Dense {

@@ -5,29 +5,23 @@
 //! each affine map hold ∂loss/∂weights and ∂loss/∂bias). The derivative of ReLU at exactly 0 is taken
 //! as 0 (a valid subgradient). Nothing here changes parameters; see [`super::optimizer`] for that.
 
-use nalgebra::{DMatrix, DVector};
+use nalgebra::DMatrix;
 
-use crate::model::{Dense, Network};
+use crate::model::{Affine, Network};
 
 /// A network of the same shape as `network`, all zeros (used to accumulate gradients).
 pub fn zeros_like(network: &Network) -> Network {
-    Network::new(
-        network
-            .layers
-            .iter()
-            .map(|l| Dense {
-                weights: DMatrix::zeros(l.output_dim(), l.input_dim()),
-                bias: DVector::zeros(l.output_dim()),
-            })
-            .collect(),
-    )
+    Network::new(network.layers.iter().map(Affine::zeros_like).collect())
 }
 
-/// `target += factor · addend`, layer by layer (shapes must agree).
+/// `target += factor · addend`, parameter by parameter (shapes must agree).
 pub fn add_scaled(target: &mut Network, addend: &Network, factor: f64) {
     for (t, a) in target.layers.iter_mut().zip(&addend.layers) {
-        t.weights.zip_apply(&a.weights, |x, y| *x += factor * y);
-        t.bias.zip_apply(&a.bias, |x, y| *x += factor * y);
+        for (t, a) in t.parameters_mut().into_iter().zip(a.parameters()) {
+            for (x, y) in t.iter_mut().zip(a) {
+                *x += factor * y;
+            }
+        }
     }
 }
 
@@ -93,10 +87,8 @@ pub fn backward_with_input(
     let mut input_gradient = None;
     for k in (0..network.layers.len()).rev() {
         let layer = &network.layers[k];
-        gradient.layers[k].weights = &dz * cache.inputs[k].transpose();
-        gradient.layers[k].bias = dz.column_sum();
+        let mut dh = layer.backward(&cache.inputs[k], &dz, &mut gradient.layers[k], false);
         if k > 0 || want_input {
-            let mut dh = layer.weights.transpose() * &dz;
             if k > 0 {
                 dh.zip_apply(&cache.pre_activations[k - 1], |g, z| {
                     if z <= 0.0 {
@@ -176,14 +168,16 @@ pub fn cross_entropy_one(logits: &[f64], label: usize) -> (f64, Vec<f64>) {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::model::Dense;
     use approx::assert_relative_eq;
+    use nalgebra::DVector;
 
     fn small_network() -> Network {
         let w1 = DMatrix::from_row_slice(3, 2, &[0.5, -0.3, 0.8, 0.2, -0.6, 0.9]);
         let b1 = DVector::from_vec(vec![0.1, -0.2, 0.05]);
         let w2 = DMatrix::from_row_slice(2, 3, &[0.3, -0.7, 0.4, 0.6, 0.1, -0.5]);
         let b2 = DVector::from_vec(vec![0.0, 0.2]);
-        Network::new(vec![
+        Network::from_dense(vec![
             Dense {
                 weights: w1,
                 bias: b1,

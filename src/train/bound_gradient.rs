@@ -21,10 +21,10 @@ use nalgebra::{DMatrix, DVector};
 use rayon::prelude::*;
 
 use crate::bound::interval::batch_margin_lower_bounds;
-use crate::model::Network;
+use crate::model::{Affine, Dense, Network};
 use crate::threat::Region;
 
-use super::backprop::{add_scaled, zeros_like};
+use super::backprop::zeros_like;
 use super::TrainError;
 
 /// The certified loss over a batch.
@@ -70,8 +70,20 @@ pub fn certified_cross_entropy(
     let interval = batch_margin_lower_bounds(&classifier, regions, labels, targets)
         .map_err(|e| TrainError::Data(format!("interval bounds: {e}")))?;
     let hidden = classifier.layers.len() - 1;
+    // The relaxation below reads the layers in dense form; the gradient is pulled back to each
+    // layer's own parameters at the end (`Affine::pull_back`).
+    let dense: Vec<Dense> = classifier.layers.iter().map(Affine::to_dense).collect();
+    let dense_zero = || -> Vec<Dense> {
+        dense
+            .iter()
+            .map(|d| Dense {
+                weights: DMatrix::zeros(d.output_dim(), d.input_dim()),
+                bias: DVector::zeros(d.output_dim()),
+            })
+            .collect()
+    };
     let scale = 1.0 / samples.max(1) as f64;
-    let results: Vec<(f64, f64, Network)> = (0..samples)
+    let results: Vec<(f64, f64, Vec<Dense>)> = (0..samples)
         .into_par_iter()
         .map(|s| {
             let lower: Vec<DVector<f64>> = (0..hidden)
@@ -80,9 +92,9 @@ pub fn certified_cross_entropy(
             let upper: Vec<DVector<f64>> = (0..hidden)
                 .map(|k| interval.upper[k].column(s).into_owned())
                 .collect();
-            let mut gradient = zeros_like(&classifier);
+            let mut gradient = dense_zero();
             let sample = SampleBounds {
-                network: &classifier,
+                network: &dense,
                 lower: &lower,
                 upper: &upper,
                 input_lower: &regions[s].outer_lower,
@@ -96,15 +108,22 @@ pub fn certified_cross_entropy(
             (loss, worst, gradient)
         })
         .collect();
-    let mut total = zeros_like(&classifier);
+    let mut sum = dense_zero();
     let mut loss = 0.0;
     let mut sample_losses = Vec::with_capacity(samples);
     let mut worst_margins = Vec::with_capacity(samples);
     for (s, (l, w, g)) in results.into_iter().enumerate() {
-        add_scaled(&mut total, &g, 1.0);
+        for (t, a) in sum.iter_mut().zip(&g) {
+            t.weights += &a.weights;
+            t.bias += &a.bias;
+        }
         loss += weights[s] * scale * l;
         sample_losses.push(l);
         worst_margins.push(w);
+    }
+    let mut total = zeros_like(&classifier);
+    for (k, layer) in classifier.layers.iter().enumerate() {
+        layer.pull_back(&sum[k], &mut total.layers[k]);
     }
     Ok(CertifiedBatch {
         loss,
@@ -119,8 +138,15 @@ pub fn certified_cross_entropy(
 pub fn from_classifier_gradient(network: &Network, mut gradient: Network) -> Network {
     if network.output_dim() == 1 {
         let last = gradient.layers.last_mut().expect("non-empty");
-        last.weights = last.weights.rows(1, 1).into_owned();
-        last.bias = last.bias.rows(1, 1).into_owned();
+        match last {
+            Affine::Dense(d) => {
+                d.weights = d.weights.rows(1, 1).into_owned();
+                d.bias = d.bias.rows(1, 1).into_owned();
+            }
+            // Any other kind was widened by a fixed map appended to it (Network::as_classifier).
+            Affine::Chain(parts) => *last = parts[0].clone(),
+            _ => unreachable!("as_classifier keeps dense or chains the last layer"),
+        }
     }
     gradient
 }
@@ -167,7 +193,7 @@ fn relax(l: f64, u: f64) -> Relaxed {
 
 /// One sample's interval values and what the loss needs.
 struct SampleBounds<'a> {
-    network: &'a Network,
+    network: &'a [Dense],
     lower: &'a [DVector<f64>],
     upper: &'a [DVector<f64>],
     input_lower: &'a [f64],
@@ -179,13 +205,13 @@ struct SampleBounds<'a> {
 
 impl SampleBounds<'_> {
     /// Adds `factor · ∂loss/∂θ` into `gradient` (classifier form) and returns `(loss, worst margin)`.
-    fn loss_and_gradient(&self, beta: f64, factor: f64, gradient: &mut Network) -> (f64, f64) {
+    fn loss_and_gradient(&self, beta: f64, factor: f64, gradient: &mut [Dense]) -> (f64, f64) {
         let m = self.targets.len();
         if m == 0 {
             return (0.0, f64::INFINITY);
         }
         let net = self.network;
-        let hidden = net.layers.len() - 1;
+        let hidden = net.len() - 1;
         let beta = if hidden == 0 { 0.0 } else { beta };
         let y = self.label;
         // Boxes: index 0 = input, index k + 1 = after hidden layer k.
@@ -201,7 +227,7 @@ impl SampleBounds<'_> {
             centre.push((&hu + &hl) * 0.5);
             radius.push((&hu - &hl) * 0.5);
         }
-        let last = &net.layers[hidden];
+        let last = &net[hidden];
         // Spec rows e_y − e_j folded into the last layer.
         let spec_weights = DMatrix::from_fn(m, last.input_dim(), |t, c| {
             last.weights[(y, c)] - last.weights[(self.targets[t], c)]
@@ -244,7 +270,7 @@ impl SampleBounds<'_> {
                         };
                     }
                 }
-                let layer = &net.layers[k];
+                let layer = &net[k];
                 let next = &relaxed * &layer.weights;
                 constant += &relaxed * &layer.bias;
                 relaxations[k] = units;
@@ -280,7 +306,7 @@ impl SampleBounds<'_> {
         // Interval margin backward: b_t = a_t · c − |a_t| · r + bias_t.
         let interval_factor = 1.0 - beta;
         if interval_factor > 0.0 {
-            let last_gradient = &mut gradient.layers[hidden];
+            let last_gradient = &mut gradient[hidden];
             for t in 0..m {
                 let d = interval_factor * d_bound[t];
                 let j = self.targets[t];
@@ -305,12 +331,12 @@ impl SampleBounds<'_> {
             });
             let d_constant = d_linear;
             for k in 0..hidden {
-                let layer = &net.layers[k];
+                let layer = &net[k];
                 let relaxed = &lambda_relaxed[k];
                 let d_relaxed =
                     &d_lambda * layer.weights.transpose() + &d_constant * layer.bias.transpose();
-                gradient.layers[k].weights += relaxed.transpose() * &d_lambda;
-                gradient.layers[k].bias += relaxed.transpose() * &d_constant;
+                gradient[k].weights += relaxed.transpose() * &d_lambda;
+                gradient[k].bias += relaxed.transpose() * &d_constant;
                 let input = &lambda_in[k];
                 let mut d_input = DMatrix::zeros(m, input.ncols());
                 for (i, unit) in relaxations[k].iter().enumerate() {
@@ -353,7 +379,7 @@ impl SampleBounds<'_> {
                 d_lambda = d_input;
             }
             // The start of the pass: Λ = C W_last, constant = C b_last.
-            let last_gradient = &mut gradient.layers[hidden];
+            let last_gradient = &mut gradient[hidden];
             for t in 0..m {
                 let j = self.targets[t];
                 for c in 0..width {
@@ -388,8 +414,8 @@ impl SampleBounds<'_> {
                 d_mid[i] = dl + du;
                 d_spread[i] = du - dl;
             }
-            let layer = &net.layers[k];
-            let g = &mut gradient.layers[k];
+            let layer = &net[k];
+            let g = &mut gradient[k];
             for c in 0..layer.input_dim() {
                 for i in 0..n {
                     g.weights[(i, c)] += d_mid[i] * centre[k][c]

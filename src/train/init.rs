@@ -53,7 +53,7 @@ pub fn he_network(input: usize, hidden: &[usize], outputs: usize, seed: u64) -> 
             }
         })
         .collect();
-    Network::new(layers)
+    Network::from_dense(layers)
 }
 
 /// A new classifier for `input` with `classes` outputs (≥ 2; two logits for a binary problem) and the
@@ -108,12 +108,16 @@ mod tests {
     fn he_weights_have_the_stated_variance() {
         // He et al. (2015): Var(w) = 2 / fan_in.
         let net = he_network(200, &[300], 2, 7);
-        let w = &net.layers[0].weights;
+        let w = &net.layers[0].to_dense().weights;
         let n = w.len() as f64;
         let mean = w.sum() / n;
         let var = w.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / n;
         assert_relative_eq!(var, 2.0 / 200.0, max_relative = 0.05);
-        assert!(net.layers[0].bias.iter().all(|b| b.abs() < 1e-300));
+        assert!(net.layers[0]
+            .to_dense()
+            .bias
+            .iter()
+            .all(|b| b.abs() < 1e-300));
     }
 
     #[test]

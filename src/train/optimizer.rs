@@ -88,25 +88,23 @@ impl Optimizer {
                 let correction1 = 1.0 - beta1.powi(self.steps.min(i32::MAX as u64) as i32);
                 let correction2 = 1.0 - beta2.powi(self.steps.min(i32::MAX as u64) as i32);
                 for k in 0..parameters.layers.len() {
-                    let p = &mut parameters.layers[k];
-                    let g = &gradient.layers[k];
-                    let m = &mut self.first.layers[k];
-                    let v = &mut self.second.layers[k];
-                    for i in 0..p.weights.len() {
-                        let gi = g.weights[i] + decay * p.weights[i];
-                        m.weights[i] = beta1 * m.weights[i] + (1.0 - beta1) * gi;
-                        v.weights[i] = beta2 * v.weights[i] + (1.0 - beta2) * gi * gi;
-                        let mh = m.weights[i] / correction1;
-                        let vh = v.weights[i] / correction2;
-                        p.weights[i] -= rate * mh / (vh.sqrt() + ADAM_EPSILON);
-                    }
-                    for i in 0..p.bias.len() {
-                        let gi = g.bias[i];
-                        m.bias[i] = beta1 * m.bias[i] + (1.0 - beta1) * gi;
-                        v.bias[i] = beta2 * v.bias[i] + (1.0 - beta2) * gi * gi;
-                        let mh = m.bias[i] / correction1;
-                        let vh = v.bias[i] / correction2;
-                        p.bias[i] -= rate * mh / (vh.sqrt() + ADAM_EPSILON);
+                    let slices = parameters.layers[k]
+                        .parameters_mut()
+                        .into_iter()
+                        .zip(gradient.layers[k].parameters())
+                        .zip(self.first.layers[k].parameters_mut())
+                        .zip(self.second.layers[k].parameters_mut());
+                    for (slot, (((p, g), m), v)) in slices.enumerate() {
+                        // Even slots are weights (decayed), odd slots biases.
+                        let decay = if slot % 2 == 0 { decay } else { 0.0 };
+                        for i in 0..p.len() {
+                            let gi = g[i] + decay * p[i];
+                            m[i] = beta1 * m[i] + (1.0 - beta1) * gi;
+                            v[i] = beta2 * v[i] + (1.0 - beta2) * gi * gi;
+                            let mh = m[i] / correction1;
+                            let vh = v[i] / correction2;
+                            p[i] -= rate * mh / (vh.sqrt() + ADAM_EPSILON);
+                        }
                     }
                 }
             }
@@ -116,17 +114,18 @@ impl Optimizer {
             } => {
                 let rate = learning_rate * rate_factor;
                 for k in 0..parameters.layers.len() {
-                    let p = &mut parameters.layers[k];
-                    let g = &gradient.layers[k];
-                    let v = &mut self.first.layers[k];
-                    for i in 0..p.weights.len() {
-                        let gi = g.weights[i] + decay * p.weights[i];
-                        v.weights[i] = momentum * v.weights[i] + gi;
-                        p.weights[i] -= rate * v.weights[i];
-                    }
-                    for i in 0..p.bias.len() {
-                        v.bias[i] = momentum * v.bias[i] + g.bias[i];
-                        p.bias[i] -= rate * v.bias[i];
+                    let slices = parameters.layers[k]
+                        .parameters_mut()
+                        .into_iter()
+                        .zip(gradient.layers[k].parameters())
+                        .zip(self.first.layers[k].parameters_mut());
+                    for (slot, ((p, g), v)) in slices.enumerate() {
+                        let decay = if slot % 2 == 0 { decay } else { 0.0 };
+                        for i in 0..p.len() {
+                            let gi = g[i] + decay * p[i];
+                            v[i] = momentum * v[i] + gi;
+                            p[i] -= rate * v[i];
+                        }
                     }
                 }
             }
@@ -142,7 +141,7 @@ mod tests {
     use nalgebra::{DMatrix, DVector};
 
     fn scalar(w: f64) -> Network {
-        Network::new(vec![Dense {
+        Network::from_dense(vec![Dense {
             weights: DMatrix::from_element(1, 1, w),
             bias: DVector::from_element(1, 0.0),
         }])
@@ -155,7 +154,7 @@ mod tests {
         let g = scalar(0.37);
         let mut opt = Optimizer::new(OptimizerKind::adam(0.01), 0.0, &p);
         opt.step(&mut p, &g, 1.0);
-        assert_relative_eq!(p.layers[0].weights[0], 0.99, epsilon = 1e-7);
+        assert_relative_eq!(p.layers[0].parameters()[0][0], 0.99, epsilon = 1e-7);
     }
 
     #[test]
@@ -168,10 +167,10 @@ mod tests {
         };
         let mut opt = Optimizer::new(kind, 0.0, &p);
         for _ in 0..500 {
-            let g = scalar(2.0 * (p.layers[0].weights[0] - 3.0));
+            let g = scalar(2.0 * (p.layers[0].parameters()[0][0] - 3.0));
             opt.step(&mut p, &g, 1.0);
         }
-        assert_relative_eq!(p.layers[0].weights[0], 3.0, epsilon = 1e-6);
+        assert_relative_eq!(p.layers[0].parameters()[0][0], 3.0, epsilon = 1e-6);
     }
 
     #[test]
@@ -184,7 +183,7 @@ mod tests {
         let mut opt = Optimizer::new(kind, 0.5, &p);
         opt.step(&mut p, &scalar(0.0), 1.0);
         assert_relative_eq!(
-            p.layers[0].weights[0],
+            p.layers[0].parameters()[0][0],
             2.0 - 0.1 * 0.5 * 2.0,
             epsilon = 1e-12
         );

@@ -1,0 +1,214 @@
+//! The engine's structured layer kinds: convolutions (never written out as dense matrices), fixed
+//! sparse maps, and chains of layers applied in turn.
+//!
+//! Guarantee: each kind implements [`LinearLayer`] with the meaning stated there. A chain's interval
+//! image is the parts' images in turn (a superset of the exact image), its magnitude map the parts'
+//! magnitude maps in turn, and its fan-in the sum of its parts' (see [`crate::model::Affine::fan_in`]),
+//! so the rounding allowances of the engine stay sound for it.
+
+use nalgebra::{DMatrix, DVector};
+
+use super::layer::{DenseLayer, LinearLayer};
+use crate::model::affine::add_bias;
+use crate::model::{Affine, Conv, Sparse};
+
+/// The engine layer for any linear map of the model.
+pub fn build(affine: &Affine) -> Box<dyn LinearLayer> {
+    match affine {
+        Affine::Dense(d) => Box::new(DenseLayer::new(d)),
+        Affine::Conv(c) => Box::new(ConvLayer::new(c)),
+        Affine::Sparse(s) => Box::new(SparseLayer(s.clone())),
+        Affine::Chain(parts) => Box::new(ChainLayer(parts.iter().map(build).collect())),
+    }
+}
+
+/// A convolution with its kernel's positive, negative and magnitude parts and f32 copies cached.
+pub struct ConvLayer {
+    conv: Conv,
+    bias: DVector<f64>,
+    positive: DMatrix<f64>,
+    negative: DMatrix<f64>,
+    magnitude: DMatrix<f64>,
+    bias_magnitude: DVector<f64>,
+    single: (DMatrix<f32>, DVector<f32>),
+}
+
+impl ConvLayer {
+    /// Caches the parts of `conv`.
+    pub fn new(conv: &Conv) -> ConvLayer {
+        let bias = conv.bias_per_output(&conv.bias);
+        ConvLayer {
+            positive: conv.kernel.map(|w| w.max(0.0)),
+            negative: conv.kernel.map(|w| w.min(0.0)),
+            magnitude: conv.kernel.abs(),
+            bias_magnitude: bias.abs(),
+            single: (conv.kernel.map(|w| w as f32), bias.map(|b| b as f32)),
+            bias,
+            conv: conv.clone(),
+        }
+    }
+}
+
+impl LinearLayer for ConvLayer {
+    fn input_dim(&self) -> usize {
+        self.conv.shape.input_dim()
+    }
+
+    fn output_dim(&self) -> usize {
+        self.conv.shape.output_dim()
+    }
+
+    fn fan_in(&self) -> usize {
+        self.conv.shape.patch_len() + 1
+    }
+
+    fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
+        add_bias(self.conv.correlate(&self.conv.kernel, xs), &self.bias)
+    }
+
+    fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
+        self.conv
+            .correlate_transpose(&self.conv.kernel, coefficients)
+    }
+
+    fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32> {
+        add_bias(self.conv.correlate(&self.single.0, xs), &self.single.1)
+    }
+
+    fn transpose_apply_single(&self, coefficients: &DMatrix<f32>) -> DMatrix<f32> {
+        self.conv.correlate_transpose(&self.single.0, coefficients)
+    }
+
+    fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {
+        coefficients.tr_mul(&self.bias)
+    }
+
+    fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        add_bias(
+            self.conv.correlate(&self.magnitude, magnitudes),
+            &self.bias_magnitude,
+        )
+    }
+
+    fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {
+        let c = &self.conv;
+        let low = c.correlate(&self.positive, lower) + c.correlate(&self.negative, upper);
+        let high = c.correlate(&self.positive, upper) + c.correlate(&self.negative, lower);
+        (add_bias(low, &self.bias), add_bias(high, &self.bias))
+    }
+}
+
+/// A fixed sparse map.
+pub struct SparseLayer(Sparse);
+
+impl LinearLayer for SparseLayer {
+    fn input_dim(&self) -> usize {
+        self.0.inputs
+    }
+
+    fn output_dim(&self) -> usize {
+        self.0.output_dim()
+    }
+
+    fn fan_in(&self) -> usize {
+        self.0.longest_row() + 1
+    }
+
+    fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
+        self.0.apply(xs)
+    }
+
+    fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
+        self.0.transpose_apply_with(coefficients, |w| w)
+    }
+
+    fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32> {
+        add_bias(
+            self.0.apply_with(xs, |w| w as f32),
+            &self.0.bias.map(|b| b as f32),
+        )
+    }
+
+    fn transpose_apply_single(&self, coefficients: &DMatrix<f32>) -> DMatrix<f32> {
+        self.0.transpose_apply_with(coefficients, |w| w as f32)
+    }
+
+    fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {
+        coefficients.tr_mul(&self.0.bias)
+    }
+
+    fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        add_bias(self.0.apply_with(magnitudes, f64::abs), &self.0.bias.abs())
+    }
+
+    fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {
+        let low =
+            self.0.apply_with(lower, |w| w.max(0.0)) + self.0.apply_with(upper, |w| w.min(0.0));
+        let high =
+            self.0.apply_with(upper, |w| w.max(0.0)) + self.0.apply_with(lower, |w| w.min(0.0));
+        (add_bias(low, &self.0.bias), add_bias(high, &self.0.bias))
+    }
+}
+
+/// Layers applied in turn, with no ReLU between them.
+pub struct ChainLayer(Vec<Box<dyn LinearLayer>>);
+
+impl LinearLayer for ChainLayer {
+    fn input_dim(&self) -> usize {
+        self.0[0].input_dim()
+    }
+
+    fn output_dim(&self) -> usize {
+        self.0[self.0.len() - 1].output_dim()
+    }
+
+    fn fan_in(&self) -> usize {
+        self.0.iter().map(|l| l.fan_in()).sum()
+    }
+
+    fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
+        self.0.iter().fold(xs.clone(), |h, l| l.apply(&h))
+    }
+
+    fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
+        self.0
+            .iter()
+            .rev()
+            .fold(coefficients.clone(), |a, l| l.transpose_apply(&a))
+    }
+
+    fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32> {
+        self.0.iter().fold(xs.clone(), |h, l| l.apply_single(&h))
+    }
+
+    fn transpose_apply_single(&self, coefficients: &DMatrix<f32>) -> DMatrix<f32> {
+        self.0
+            .iter()
+            .rev()
+            .fold(coefficients.clone(), |a, l| l.transpose_apply_single(&a))
+    }
+
+    fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {
+        let mut a = coefficients.clone();
+        let mut total = DVector::zeros(coefficients.ncols());
+        for layer in self.0.iter().rev() {
+            total += layer.bias_dot(&a);
+            a = layer.transpose_apply(&a);
+        }
+        total
+    }
+
+    fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        self.0
+            .iter()
+            .fold(magnitudes.clone(), |h, l| l.magnitude_apply(&h))
+    }
+
+    fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {
+        self.0
+            .iter()
+            .fold((lower.clone(), upper.clone()), |(lo, hi), l| {
+                l.interval(&lo, &hi)
+            })
+    }
+}
