@@ -5,12 +5,15 @@
 //! file describes it — `normalize` as `(x − mean) / std`, then the dense layers — at double inputs
 //! sampled in the region's inner box (whose every double lies in the ball ∩ range).
 
+mod common;
+
 use ballast::bound::{self, linear, Method};
 use ballast::model::{Dense, Layer, Model, Network};
 use ballast::threat::{Budget, Norm, Region};
+use common::exact_model::exact_logits;
 use nalgebra::{DMatrix, DVector};
 use num_rational::BigRational;
-use num_traits::{Signed, Zero};
+use num_traits::Signed;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
@@ -92,42 +95,6 @@ fn batched_bounds_equal_one_at_a_time_bounds() {
 
 fn exact(v: f64) -> BigRational {
     BigRational::from_float(v).expect("finite")
-}
-
-/// The model's logits in exact arithmetic, layers as written (classifier form for one output).
-fn exact_logits(model: &Model, x: &[f64]) -> Vec<BigRational> {
-    let mut h: Vec<BigRational> = x.iter().map(|v| exact(*v)).collect();
-    for layer in &model.layers {
-        h = match layer {
-            Layer::Normalize { mean, std } => h
-                .iter()
-                .enumerate()
-                .map(|(i, v)| (v - exact(mean[i])) / exact(std[i]))
-                .collect(),
-            Layer::Dense { weights, bias } => (0..weights.nrows())
-                .map(|r| {
-                    (0..weights.ncols()).fold(exact(bias[r]), |acc, c| {
-                        acc + exact(weights[(r, c)]) * &h[c]
-                    })
-                })
-                .collect(),
-            Layer::Relu => h
-                .into_iter()
-                .map(|v| {
-                    if v.is_negative() {
-                        BigRational::zero()
-                    } else {
-                        v
-                    }
-                })
-                .collect(),
-        };
-    }
-    if h.len() == 1 {
-        vec![BigRational::zero(), h.remove(0)]
-    } else {
-        h
-    }
 }
 
 /// A model with a normalize layer at an extreme scale (means to 1e8, stds to 2^-20), weights mixing

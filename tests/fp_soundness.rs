@@ -152,6 +152,7 @@ fn misread_numbers(loaded: &Loaded) -> (usize, usize) {
                 written.extend(b);
             }
             Layer::Relu => {}
+            _ => unreachable!("the stress models are dense"),
         }
     }
     assert_eq!(read.len(), written.len());

@@ -593,6 +593,7 @@ mod primal_dual {
             names: None,
             lower: vec![-3.0; 2],
             upper: vec![3.0; 2],
+            shape: None,
         };
         new_mlp(&input, 3, &[8], data, 4).expect("model")
     }

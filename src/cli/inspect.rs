@@ -59,6 +59,42 @@ pub fn describe(model: &Model) -> String {
             Layer::Relu => {
                 let _ = writeln!(s, "  layers[{i}] relu ({width})");
             }
+            Layer::Conv(c) => {
+                let g = c.shape;
+                let _ = writeln!(
+                    s,
+                    "  layers[{i}] conv {}x{}x{} -> {}x{:?}, kernel {}x{}, stride {:?}",
+                    g.in_channels,
+                    g.in_height,
+                    g.in_width,
+                    g.out_channels,
+                    g.output_size().unwrap_or((0, 0)),
+                    g.kernel_height,
+                    g.kernel_width,
+                    g.stride
+                );
+                width = g.output_dim();
+            }
+            Layer::BatchNorm { scale, .. } => {
+                let _ = writeln!(s, "  layers[{i}] batchnorm ({} channels)", scale.len());
+            }
+            Layer::Pool(p) => {
+                let op = match p.op {
+                    crate::model::pool::PoolOp::Max => "maxpool",
+                    crate::model::pool::PoolOp::Average => "averagepool",
+                };
+                let _ = writeln!(
+                    s,
+                    "  layers[{i}] {op} {:?} stride {:?} ({width} -> {})",
+                    p.kernel,
+                    p.stride,
+                    p.output_dim()
+                );
+                width = p.output_dim();
+            }
+            Layer::Flatten => {
+                let _ = writeln!(s, "  layers[{i}] flatten ({width})");
+            }
         }
     }
     let network = model.network();

@@ -39,6 +39,7 @@ pub fn input_spec() -> InputSpec {
         names: Some(scenario::feature_names()),
         lower: scenario::lower_bounds(),
         upper: scenario::upper_bounds(),
+        shape: None,
     }
 }
 

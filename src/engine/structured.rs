@@ -111,7 +111,7 @@ impl LinearLayer for SparseLayer {
     }
 
     fn fan_in(&self) -> usize {
-        self.0.longest_row() + 1
+        self.0.fan_in()
     }
 
     fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {

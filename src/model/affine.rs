@@ -61,7 +61,7 @@ impl Affine {
         match self {
             Affine::Dense(d) => d.input_dim() + 1,
             Affine::Conv(c) => c.shape.patch_len() + 1,
-            Affine::Sparse(s) => s.longest_row() + 1,
+            Affine::Sparse(s) => s.fan_in(),
             Affine::Chain(parts) => parts.iter().map(Affine::fan_in).sum(),
         }
     }
@@ -263,7 +263,7 @@ impl Affine {
                 for part in &parts[..parts.len() - 1] {
                     let last = inputs.last().expect("non-empty");
                     let next = if magnitude {
-                        part.linear_magnitude(last)
+                        part.magnitude_linear(last)
                     } else {
                         part.apply_batch(last)
                     };
@@ -329,15 +329,15 @@ impl Affine {
     }
 
     /// `|W| X` without bias.
-    fn linear_magnitude(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
+    pub fn magnitude_linear(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
         match self {
             Affine::Dense(d) => d.weights.abs() * xs,
             Affine::Conv(c) => c.correlate(&c.kernel.abs(), xs),
             Affine::Sparse(s) => s.apply_with(xs, f64::abs),
             Affine::Chain(parts) => {
-                let mut h = parts[0].linear_magnitude(xs);
+                let mut h = parts[0].magnitude_linear(xs);
                 for part in &parts[1..] {
-                    h = part.linear_magnitude(&h);
+                    h = part.magnitude_linear(&h);
                 }
                 h
             }

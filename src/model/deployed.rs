@@ -17,25 +17,35 @@
 //! of the box, `|deployed logit_c − exact logit_c| ≤ bound[c]`, so a margin whose sound lower bound
 //! exceeds the sum of the two logits' bounds keeps its sign in the deployed arithmetic.
 
-use nalgebra::{DMatrix, DVector};
+use nalgebra::{DMatrix, DVector, RealField};
 
+use super::affine::Affine;
 use super::layout::{Layer, Model};
+use super::network::Dense;
+use super::pool::PoolOp;
+use super::sparse::Sparse;
 use crate::bound::LayerBounds;
 use crate::engine::rounding::{gamma, UNIT_ROUNDOFF_F64};
+use crate::engine::structured::build;
 use crate::engine::Arithmetic;
+use crate::engine::LinearLayer;
 
 enum Step {
     Normalize {
         mean: DVector<f64>,
         std: DVector<f64>,
     },
-    Dense {
-        positive: DMatrix<f64>,
-        negative: DMatrix<f64>,
-        magnitude: DMatrix<f64>,
-        bias: DVector<f64>,
+    /// Any linear layer as written (dense, conv, average pool, batch norm as two diagonal maps).
+    Linear {
+        map: Affine,
+        layer: Box<dyn LinearLayer>,
     },
     Relu,
+    /// Max pooling: exact in any arithmetic; `levels` hidden layers of the folded network stand for it.
+    MaxPool {
+        windows: Vec<Vec<usize>>,
+        levels: usize,
+    },
 }
 
 /// The per-model part of the bound, prepared once.
@@ -58,30 +68,67 @@ fn max_abs(lo: &DVector<f64>, hi: &DVector<f64>) -> DVector<f64> {
     lo.zip_map(hi, |l, h| l.abs().max(h.abs()))
 }
 
+fn linear(map: Affine) -> Step {
+    Step::Linear {
+        layer: build(&map),
+        map,
+    }
+}
+
 impl DeployedError {
     /// Prepares the bound for `model` in its declared arithmetic.
     pub fn new(model: &Model) -> DeployedError {
         let mut outputs = model.input.dim;
-        let steps = model
-            .layers
-            .iter()
-            .map(|layer| match layer {
-                Layer::Normalize { mean, std } => Step::Normalize {
+        let mut steps = Vec::new();
+        let mut after_relu = false;
+        for layer in &model.layers {
+            match layer {
+                Layer::Normalize { mean, std } => steps.push(Step::Normalize {
                     mean: mean.clone(),
                     std: std.clone(),
-                },
+                }),
                 Layer::Dense { weights, bias } => {
                     outputs = weights.nrows();
-                    Step::Dense {
-                        positive: weights.map(|w| w.max(0.0)),
-                        negative: weights.map(|w| w.min(0.0)),
-                        magnitude: weights.abs(),
+                    steps.push(linear(Affine::Dense(Dense {
+                        weights: weights.clone(),
                         bias: bias.clone(),
+                    })));
+                }
+                Layer::Relu => steps.push(Step::Relu),
+                Layer::Conv(c) => {
+                    outputs = c.shape.output_dim();
+                    steps.push(linear(Affine::Conv(c.clone())));
+                }
+                Layer::BatchNorm {
+                    scale,
+                    shift,
+                    mean,
+                    variance,
+                    epsilon,
+                    positions,
+                } => {
+                    let per = |v: &DVector<f64>| DVector::from_fn(outputs, |r, _| v[r / positions]);
+                    let centre = Sparse::diagonal(&DVector::from_element(outputs, 1.0), -per(mean));
+                    let factor = scale.zip_map(variance, |g, v| g / (v + epsilon).sqrt());
+                    steps.push(linear(Affine::Sparse(centre)));
+                    steps.push(linear(Affine::Sparse(
+                        Sparse::diagonal(&per(&factor), per(shift)).rounded(3),
+                    )));
+                }
+                Layer::Pool(p) => {
+                    outputs = p.output_dim();
+                    match p.op {
+                        PoolOp::Average => steps.push(linear(Affine::Sparse(p.average()))),
+                        PoolOp::Max => steps.push(Step::MaxPool {
+                            windows: p.windows(),
+                            levels: p.max_as_relus(after_relu).hidden.len(),
+                        }),
                     }
                 }
-                Layer::Relu => Step::Relu,
-            })
-            .collect();
+                Layer::Flatten => continue,
+            }
+            after_relu = matches!(layer, Layer::Relu);
+        }
         DeployedError {
             arithmetic: model.arithmetic,
             steps,
@@ -121,23 +168,34 @@ impl DeployedError {
                     (lo, hi) = (new_lo, new_hi);
                     last_was_relu = false;
                 }
-                Step::Dense {
-                    positive,
-                    negative,
-                    magnitude,
-                    bias,
-                } => {
-                    let n = magnitude.ncols() + 1;
+                Step::Linear { map, layer } => {
+                    let n = layer.fan_in();
                     let g = gamma(n, u) + stored;
                     let x = max_abs(&lo, &hi);
-                    let touched = magnitude * (&x + &error) + bias.abs();
-                    let carried = magnitude * &error;
-                    let new_lo = positive * &lo + negative * &hi + bias;
-                    let new_hi = positive * &hi + negative * &lo + bias;
-                    let slack = (magnitude * &x + bias.abs()) * gamma(n, UNIT_ROUNDOFF_F64);
-                    lo = new_lo - &slack;
-                    hi = new_hi + &slack;
+                    let column =
+                        |v: &DVector<f64>| DMatrix::from_column_slice(v.len(), 1, v.as_slice());
+                    let vector = |m: DMatrix<f64>| DVector::from_column_slice(m.as_slice());
+                    let touched = vector(layer.magnitude_apply(&column(&(&x + &error))));
+                    let carried = vector(map.magnitude_linear(&column(&error)));
+                    let (new_lo, new_hi) = layer.interval(&column(&lo), &column(&hi));
+                    let slack =
+                        vector(layer.magnitude_apply(&column(&x))) * gamma(n, UNIT_ROUNDOFF_F64);
+                    lo = vector(new_lo) - &slack;
+                    hi = vector(new_hi) + &slack;
                     error = (carried + touched * g) * widen;
+                    last_was_relu = false;
+                }
+                Step::MaxPool { windows, levels } => {
+                    let pick = |v: &DVector<f64>| {
+                        DVector::from_iterator(
+                            windows.len(),
+                            windows
+                                .iter()
+                                .map(|w| w.iter().map(|i| v[*i]).fold(f64::NEG_INFINITY, f64::max)),
+                        )
+                    };
+                    (lo, hi, error) = (pick(&lo), pick(&hi), pick(&error));
+                    relu += levels;
                     last_was_relu = false;
                 }
                 Step::Relu => {
@@ -179,57 +237,77 @@ impl DeployedError {
 /// them.
 pub fn forward(model: &Model, x: &[f64]) -> Vec<f64> {
     match model.arithmetic {
-        Arithmetic::Float64 => {
-            let mut h: Vec<f64> = x.to_vec();
-            for layer in &model.layers {
-                h = match layer {
-                    Layer::Normalize { mean, std } => h
-                        .iter()
-                        .zip(mean.iter().zip(std.iter()))
-                        .map(|(v, (m, s))| (v - m) / s)
-                        .collect(),
-                    Layer::Dense { weights, bias } => (0..weights.nrows())
-                        .map(|r| {
-                            weights
-                                .row(r)
-                                .iter()
-                                .zip(&h)
-                                .map(|(w, v)| w * v)
-                                .sum::<f64>()
-                                + bias[r]
-                        })
-                        .collect(),
-                    Layer::Relu => h.iter().map(|v| v.max(0.0)).collect(),
-                };
-            }
-            h
-        }
-        Arithmetic::Float32 => {
-            let mut h: Vec<f32> = x.iter().map(|v| *v as f32).collect();
-            for layer in &model.layers {
-                h = match layer {
-                    Layer::Normalize { mean, std } => h
-                        .iter()
-                        .zip(mean.iter().zip(std.iter()))
-                        .map(|(v, (m, s))| (v - *m as f32) / *s as f32)
-                        .collect(),
-                    Layer::Dense { weights, bias } => (0..weights.nrows())
-                        .map(|r| {
-                            weights
-                                .row(r)
-                                .iter()
-                                .zip(&h)
-                                .map(|(w, v)| *w as f32 * v)
-                                .sum::<f32>()
-                                + bias[r] as f32
-                        })
-                        .collect(),
-                    Layer::Relu => h.iter().map(|v| v.max(0.0)).collect(),
-                };
-            }
-            h.into_iter().map(f64::from).collect()
-        }
+        Arithmetic::Float64 => evaluate::<f64>(model, x, |v| v),
+        Arithmetic::Float32 => evaluate::<f32>(model, x, |v| v as f32),
     }
+}
+
+fn evaluate<T: RealField + Copy + Into<f64>>(
+    model: &Model,
+    x: &[f64],
+    round: impl Fn(f64) -> T,
+) -> Vec<f64> {
+    let mut h: Vec<T> = x.iter().map(|v| round(*v)).collect();
+    for layer in &model.layers {
+        h = match layer {
+            Layer::Normalize { mean, std } => h
+                .iter()
+                .zip(mean.iter().zip(std.iter()))
+                .map(|(v, (m, s))| (*v - round(*m)) / round(*s))
+                .collect(),
+            Layer::Dense { weights, bias } => (0..weights.nrows())
+                .map(|r| {
+                    let mut sum = T::zero();
+                    for (w, v) in weights.row(r).iter().zip(&h) {
+                        sum += round(*w) * *v;
+                    }
+                    sum + round(bias[r])
+                })
+                .collect(),
+            Layer::Relu => h.iter().map(|v| v.max(T::zero())).collect(),
+            Layer::Conv(c) => {
+                let xs = DMatrix::from_column_slice(h.len(), 1, &h);
+                let out = c.correlate(&c.kernel.map(&round), &xs);
+                let positions = c.positions();
+                out.iter()
+                    .enumerate()
+                    .map(|(r, v)| *v + round(c.bias[r / positions]))
+                    .collect()
+            }
+            Layer::BatchNorm {
+                scale,
+                shift,
+                mean,
+                variance,
+                epsilon,
+                positions,
+            } => h
+                .iter()
+                .enumerate()
+                .map(|(r, v)| {
+                    let c = r / positions;
+                    let spread = (round(variance[c]) + round(*epsilon)).sqrt();
+                    (*v - round(mean[c])) / spread * round(scale[c]) + round(shift[c])
+                })
+                .collect(),
+            Layer::Pool(p) => p
+                .windows()
+                .iter()
+                .map(|w| match p.op {
+                    PoolOp::Max => w.iter().map(|i| h[*i]).fold(h[w[0]], |a, b| a.max(b)),
+                    PoolOp::Average => {
+                        let mut sum = T::zero();
+                        for i in w {
+                            sum += h[*i];
+                        }
+                        sum / round(w.len() as f64)
+                    }
+                })
+                .collect(),
+            Layer::Flatten => h,
+        };
+    }
+    h.into_iter().map(Into::into).collect()
 }
 
 #[cfg(test)]

@@ -10,6 +10,9 @@ use nalgebra::{DMatrix, DVector};
 use serde::{Deserialize, Serialize};
 use serde_json::Value;
 
+use super::conv::Conv;
+use super::pool::Pool;
+use super::spatial::{self, Shape, SPATIAL_KINDS};
 use super::ModelError;
 use crate::engine::Arithmetic;
 
@@ -27,6 +30,8 @@ pub struct InputSpec {
     pub lower: Vec<f64>,
     /// Upper end of the valid range per feature (+∞ when unbounded).
     pub upper: Vec<f64>,
+    /// The feature shape (`input.shape`: `[C, L]` or `[C, H, W]`, flattened row-major), when stated.
+    pub shape: Option<Vec<usize>>,
 }
 
 /// One layer of the layout, validated.
@@ -48,6 +53,28 @@ pub enum Layer {
     },
     /// Elementwise `max(0, x)`.
     Relu,
+    /// A 1-D or 2-D convolution (see [`crate::model::conv`]).
+    Conv(Conv),
+    /// Inference-form batch normalisation per channel:
+    /// `scale · (x − mean) / sqrt(variance + epsilon) + shift`.
+    BatchNorm {
+        /// Per-channel scale (γ).
+        scale: DVector<f64>,
+        /// Per-channel shift (β).
+        shift: DVector<f64>,
+        /// Per-channel running mean.
+        mean: DVector<f64>,
+        /// Per-channel running variance.
+        variance: DVector<f64>,
+        /// Added to the variance.
+        epsilon: f64,
+        /// Spatial positions per channel.
+        positions: usize,
+    },
+    /// Average or max pooling (see [`crate::model::pool`]).
+    Pool(Pool),
+    /// Marks the end of the spatial layers (the features are already flat row-major: no-op).
+    Flatten,
 }
 
 /// A validated model in the `ballast.model/1` layout, kept layer by layer for saving.
@@ -94,6 +121,8 @@ struct RawInput {
     lower: Option<RawRange>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     upper: Option<RawRange>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    shape: Option<Vec<usize>>,
 }
 
 #[derive(Deserialize, Serialize, Clone)]
@@ -207,16 +236,26 @@ impl Model {
             ));
         }
         let mut layers = Vec::with_capacity(raw.layers.len().min(1024));
+        let mut shape = match &raw.input.shape {
+            Some(dims) => Shape::from_dims(dims, dim)?,
+            None => Shape::flat(dim),
+        };
         let mut width = dim;
         for (index, value) in raw.layers.into_iter().enumerate() {
             let place = format!("layers[{index}]");
             let kind = value.get("kind").and_then(Value::as_str).map(str::to_owned);
+            if let Some(k) = kind.as_deref().filter(|k| SPATIAL_KINDS.contains(k)) {
+                layers.push(spatial::parse(&value, k, &mut shape, &place)?);
+                width = shape.size();
+                continue;
+            }
             let raw_layer: RawLayer = serde_json::from_value(value).map_err(|e| {
                 invalid(
                     &place,
                     match kind {
                         None => format!(
-                            "{e} (expected an object with \"kind\": dense, relu or normalize)"
+                            "{e} (expected an object with \"kind\": dense, relu, normalize, \
+                             conv, batchnorm, averagepool, maxpool or flatten)"
                         ),
                         Some(_) => e.to_string(),
                     },
@@ -262,6 +301,7 @@ impl Model {
                     check_vector(&bias, out, &format!("{place}.bias"))?;
                     let weights = DMatrix::from_fn(out, width, |r, c| weights[r][c]);
                     width = out;
+                    shape = Shape::flat(out);
                     Layer::Dense {
                         weights,
                         bias: DVector::from_vec(bias),
@@ -273,10 +313,13 @@ impl Model {
         }
         // `input.dim` is trusted only once a layer's actual size has confirmed it: the ranges below are
         // allocated from it, so a relu-only model could otherwise claim any size in a tiny file.
-        if !layers.iter().any(|l| matches!(l, Layer::Dense { .. })) {
+        if !layers
+            .iter()
+            .any(|l| matches!(l, Layer::Dense { .. } | Layer::Conv(_)))
+        {
             return Err(invalid(
                 "layers",
-                "has no dense layer, expected at least one".into(),
+                "has no dense or conv layer, expected at least one".into(),
             ));
         }
         let lower = expand_range(
@@ -321,6 +364,7 @@ impl Model {
                 names: raw.input.names,
                 lower,
                 upper,
+                shape: raw.input.shape,
             },
             classes: raw.classes,
             layers,
@@ -329,12 +373,13 @@ impl Model {
         })
     }
 
-    /// Number of weights and biases in all dense layers.
+    /// Number of weights and biases in all dense and conv layers.
     pub fn parameter_count(&self) -> usize {
         self.layers
             .iter()
             .map(|l| match l {
                 Layer::Dense { weights, bias } => weights.len() + bias.len(),
+                Layer::Conv(c) => c.kernel.len() + c.bias.len(),
                 _ => 0,
             })
             .sum()
@@ -375,6 +420,27 @@ impl Model {
                     }
                     last_was_relu = true;
                 }
+                // Kept as structured parts (never multiplied out): their own size, plus the
+                // lowering of a max pool (at most three units per window entry).
+                Layer::Conv(c) => {
+                    width = c.shape.output_dim();
+                    total = total.saturating_add(c.kernel.len() + c.bias.len());
+                    pending = None;
+                    last_was_relu = false;
+                }
+                Layer::Pool(p) => {
+                    let entries = p.output_dim() * p.kernel.0 * p.kernel.1;
+                    total = total.saturating_add(entries.saturating_mul(6));
+                    width = p.output_dim();
+                    pending = None;
+                    last_was_relu = false;
+                }
+                Layer::BatchNorm { .. } => {
+                    total = total.saturating_add(width.saturating_mul(4));
+                    pending = None;
+                    last_was_relu = false;
+                }
+                Layer::Flatten => {}
             }
         }
         if pending.is_none() {
@@ -390,6 +456,8 @@ impl Model {
             .rev()
             .find_map(|l| match l {
                 Layer::Dense { weights, .. } => Some(weights.nrows()),
+                Layer::Conv(c) => Some(c.shape.output_dim()),
+                Layer::Pool(p) => Some(p.output_dim()),
                 _ => None,
             })
             .unwrap_or(self.input.dim)
@@ -424,7 +492,15 @@ impl Model {
     /// The model in the JSON layout, as a `serde_json::Value`.
     pub fn to_json_value(&self) -> Value {
         let mut layers = Vec::with_capacity(self.layers.len());
+        let mut rank = self.input.shape.as_ref().map_or(0, |s| s.len() - 1);
         for layer in &self.layers {
+            if let Some(value) = spatial::to_json(layer, rank) {
+                if matches!(layer, Layer::Flatten) {
+                    rank = 0;
+                }
+                layers.push(value);
+                continue;
+            }
             let raw = match layer {
                 Layer::Normalize { mean, std } => RawLayer::Normalize {
                     mean: mean.iter().copied().collect(),
@@ -437,7 +513,11 @@ impl Model {
                     bias: bias.iter().copied().collect(),
                 },
                 Layer::Relu => RawLayer::Relu,
+                _ => unreachable!("spatial layers are written above"),
             };
+            if matches!(layer, Layer::Dense { .. }) {
+                rank = 0;
+            }
             layers.push(serde_json::to_value(raw).expect("layers serialise"));
         }
         let input = RawInput {
@@ -445,6 +525,7 @@ impl Model {
             names: self.input.names.clone(),
             lower: compact_range(&self.input.lower),
             upper: compact_range(&self.input.upper),
+            shape: self.input.shape.clone(),
         };
         let mut object = serde_json::Map::new();
         object.insert("format".into(), Value::from(MODEL_FORMAT));

@@ -7,7 +7,9 @@ pub mod deployed;
 pub mod layout;
 pub mod network;
 pub mod onnx;
+pub mod pool;
 pub mod sparse;
+pub mod spatial;
 
 pub use affine::Affine;
 pub use conv::{Conv, ConvShape};

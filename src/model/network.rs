@@ -15,6 +15,7 @@ use nalgebra::{DMatrix, DVector};
 
 use super::affine::Affine;
 use super::layout::{Layer, Model};
+use super::pool::PoolOp;
 use super::sparse::Sparse;
 use crate::engine::rounding::{gamma, UNIT_ROUNDOFF_F64};
 
@@ -288,6 +289,37 @@ impl Model {
                 std: n.std.clone(),
             });
         }
+        let structured = self.layers.iter().any(|l| {
+            !matches!(
+                l,
+                Layer::Normalize { .. } | Layer::Dense { .. } | Layer::Relu
+            )
+        });
+        if structured {
+            // Layer kinds are kept as written; the trained parameters go back into the dense and
+            // conv layers in order (lowering never folds them in such a model).
+            let mut values = network.layers.iter().flat_map(Affine::parameters);
+            let skip = usize::from(normalization.is_some());
+            for layer in self.layers.iter().skip(skip) {
+                let mut layer = layer.clone();
+                let slots = match &mut layer {
+                    Layer::Dense { weights, bias } => {
+                        Some((weights.as_mut_slice(), bias.as_mut_slice()))
+                    }
+                    Layer::Conv(c) => Some((c.kernel.as_mut_slice(), c.bias.as_mut_slice())),
+                    _ => None,
+                };
+                if let Some((w, b)) = slots {
+                    w.copy_from_slice(values.next().expect("one weight slot per trained layer"));
+                    b.copy_from_slice(values.next().expect("one bias slot per trained layer"));
+                }
+                layers.push(layer);
+            }
+            return Model {
+                layers,
+                ..self.clone()
+            };
+        }
         let last = network.layers.len() - 1;
         for (i, layer) in network.layers.iter().enumerate() {
             let d = layer.to_dense();
@@ -307,56 +339,147 @@ impl Model {
 }
 
 fn fold_layers(input_dim: usize, layers: &[Layer]) -> Network {
-    let mut done: Vec<Folded> = Vec::new();
-    let mut pending: Option<Folded> = None;
+    let mut done: Vec<(Affine, Option<FoldError>)> = Vec::new();
+    let mut pending = Pending::default();
     let mut width = input_dim;
     let mut last_was_relu = false;
     for layer in layers {
         match layer {
-            Layer::Normalize { mean, std } => {
-                let map = Normalization {
-                    mean: mean.clone(),
-                    std: std.clone(),
-                }
-                .as_dense();
-                // One rounding per entry: 1/std, and mean/std.
-                let error = FoldError {
-                    weights: map.weights.abs() * (2.0 * UNIT_ROUNDOFF_F64),
-                    bias: map.bias.abs() * (2.0 * UNIT_ROUNDOFF_F64),
-                };
-                pending = Some(compose(pending, (map, Some(error))));
-                last_was_relu = false;
-            }
+            Layer::Normalize { mean, std } => pending.push(Part::Normalize(Normalization {
+                mean: mean.clone(),
+                std: std.clone(),
+            })),
             Layer::Dense { weights, bias } => {
                 let map = Dense {
                     weights: weights.clone(),
                     bias: bias.clone(),
                 };
                 width = map.output_dim();
-                pending = Some(compose(pending, (map, None)));
-                last_was_relu = false;
+                pending.push(Part::Dense(map));
             }
             Layer::Relu => {
                 if last_was_relu {
                     continue; // relu ∘ relu = relu
                 }
-                done.push(
-                    pending
-                        .take()
-                        .unwrap_or_else(|| (Dense::identity(width), None)),
-                );
-                last_was_relu = true;
+                done.push(pending.finish(width));
             }
+            Layer::Conv(conv) => {
+                width = conv.shape.output_dim();
+                pending.push(Part::Structured(Affine::Conv(conv.clone())));
+            }
+            Layer::BatchNorm {
+                scale,
+                shift,
+                mean,
+                variance,
+                epsilon,
+                positions,
+            } => {
+                let per = |v: &DVector<f64>| DVector::from_fn(width, |r, _| v[r / positions]);
+                // x − mean (exact), then γ/sqrt(var + ε) · y + β (the factor three roundings away).
+                let centre = Sparse::diagonal(&DVector::from_element(width, 1.0), -per(mean));
+                let factor = scale.zip_map(variance, |g, v| g / (v + epsilon).sqrt());
+                let rescale = Sparse::diagonal(&per(&factor), per(shift)).rounded(3);
+                pending.push(Part::Structured(Affine::Sparse(centre)));
+                pending.push(Part::Structured(Affine::Sparse(rescale)));
+            }
+            Layer::Pool(pool) => match pool.op {
+                PoolOp::Average => {
+                    width = pool.output_dim();
+                    pending.push(Part::Structured(Affine::Sparse(pool.average())));
+                }
+                PoolOp::Max => {
+                    let non_negative = last_was_relu && pending.is_empty();
+                    let lowered = pool.max_as_relus(non_negative);
+                    for map in lowered.hidden {
+                        pending.push(Part::Structured(Affine::Sparse(map)));
+                        done.push(pending.finish(width));
+                    }
+                    width = pool.output_dim();
+                    pending.push(Part::Structured(Affine::Sparse(lowered.output)));
+                }
+            },
+            Layer::Flatten => continue,
         }
+        last_was_relu = matches!(layer, Layer::Relu);
     }
-    done.push(pending.unwrap_or_else(|| (Dense::identity(width), None)));
+    done.push(pending.finish(width));
     let exact = done.iter().all(|(_, e)| e.is_none());
-    let (layers, errors): (Vec<Dense>, Vec<Option<FoldError>>) = done.into_iter().unzip();
-    let mut network = Network::from_dense(layers);
+    let (layers, errors): (Vec<Affine>, Vec<Option<FoldError>>) = done.into_iter().unzip();
+    let mut network = Network::new(layers);
     if !exact {
         network.fold_error = errors;
     }
     network
+}
+
+/// One piece of the linear map being gathered between two ReLUs.
+enum Part {
+    Normalize(Normalization),
+    Dense(Dense),
+    Structured(Affine),
+}
+
+/// The pieces since the last ReLU: multiplied out into one dense map (with its [`FoldError`]) when all
+/// are dense or `normalize`, as they always were; otherwise kept as a chain of exact parts (a
+/// `normalize` becomes a diagonal map one rounding away from exact, see [`Sparse::roundings`]).
+#[derive(Default)]
+struct Pending(Vec<Part>);
+
+impl Pending {
+    fn push(&mut self, part: Part) {
+        self.0.push(part);
+    }
+
+    fn is_empty(&self) -> bool {
+        self.0.is_empty()
+    }
+
+    fn finish(&mut self, width: usize) -> (Affine, Option<FoldError>) {
+        let parts = std::mem::take(&mut self.0);
+        if parts.is_empty() {
+            return (Affine::Dense(Dense::identity(width)), None);
+        }
+        if parts.iter().all(|p| !matches!(p, Part::Structured(_))) {
+            let mut folded: Option<Folded> = None;
+            for part in parts {
+                let next = match part {
+                    Part::Normalize(n) => {
+                        let map = n.as_dense();
+                        // One rounding per entry: 1/std, and mean/std.
+                        let error = FoldError {
+                            weights: map.weights.abs() * (2.0 * UNIT_ROUNDOFF_F64),
+                            bias: map.bias.abs() * (2.0 * UNIT_ROUNDOFF_F64),
+                        };
+                        (map, Some(error))
+                    }
+                    Part::Dense(d) => (d, None),
+                    Part::Structured(_) => unreachable!("checked above"),
+                };
+                folded = Some(compose(folded, next));
+            }
+            let (map, error) = folded.expect("non-empty");
+            return (Affine::Dense(map), error);
+        }
+        let mut chain: Vec<Affine> = parts
+            .into_iter()
+            .map(|part| match part {
+                Part::Normalize(n) => Affine::Sparse(
+                    Sparse::diagonal(
+                        &n.std.map(|s| 1.0 / s),
+                        DVector::from_fn(n.mean.len(), |i, _| -n.mean[i] / n.std[i]),
+                    )
+                    .rounded(1),
+                ),
+                Part::Dense(d) => Affine::Dense(d),
+                Part::Structured(a) => a,
+            })
+            .collect();
+        if chain.len() == 1 {
+            return (chain.remove(0), None);
+        }
+        (Affine::Chain(chain), None)
+    }
 }
 
 /// An affine map with the bound on its distance from the exact map.

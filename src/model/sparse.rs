@@ -3,7 +3,11 @@
 //!
 //! Guarantee: [`Sparse::apply`] computes `W x + b` with `W` the matrix whose non-zeros are the stored
 //! entries, each output a dot product over its row's entries; [`Sparse::transpose_apply`] is the exact
-//! adjoint `Wᵀ A`. The longest row is the fan-in used in rounding bounds.
+//! adjoint `Wᵀ A`. A map may store values that are themselves rounded (a `1/std`, a batch-norm scale):
+//! `roundings = r` says every stored weight and bias is within relative `γ_r` of the exact value the
+//! model file describes, and [`Sparse::fan_in`] counts those `r` roundings like `r` more steps of the
+//! evaluation (`γ_r + γ_n + γ_r γ_n ≤ γ_{r+n}`, Higham §3.1, Lemma 3.3), so rounding allowances built
+//! on the fan-in cover them.
 
 use nalgebra::{DMatrix, DVector, RealField};
 
@@ -16,6 +20,8 @@ pub struct Sparse {
     pub rows: Vec<Vec<(usize, f64)>>,
     /// Bias per output.
     pub bias: DVector<f64>,
+    /// Roundings between each stored value and its exact value (0 = stored exactly).
+    pub roundings: usize,
 }
 
 impl Sparse {
@@ -26,7 +32,51 @@ impl Sparse {
             rows.iter().flatten().all(|(i, _)| *i < inputs),
             "entries inside the input"
         );
-        Sparse { inputs, rows, bias }
+        Sparse {
+            inputs,
+            rows,
+            bias,
+            roundings: 0,
+        }
+    }
+
+    /// The same map, declaring each stored value `roundings` roundings away from its exact value.
+    pub fn rounded(mut self, roundings: usize) -> Sparse {
+        self.roundings = roundings;
+        self
+    }
+
+    /// The longest dot product of one output, bias and stored roundings included.
+    pub fn fan_in(&self) -> usize {
+        self.longest_row() + 1 + self.roundings
+    }
+
+    /// `self ∘ inner` for two sparse maps (values multiplied out in f64: only for maps whose products
+    /// are exact, such as the ±1 differences and sums of a max pool).
+    pub fn after(&self, inner: &Sparse) -> Sparse {
+        let rows = self
+            .rows
+            .iter()
+            .map(|row| {
+                let mut merged: Vec<(usize, f64)> = Vec::new();
+                for (j, w) in row {
+                    for (i, v) in &inner.rows[*j] {
+                        match merged.iter_mut().find(|(k, _)| k == i) {
+                            Some(entry) => entry.1 += w * v,
+                            None => merged.push((*i, w * v)),
+                        }
+                    }
+                }
+                merged.retain(|(_, w)| *w != 0.0);
+                merged
+            })
+            .collect();
+        let bias = self.apply_with(
+            &DMatrix::from_column_slice(inner.bias.len(), 1, inner.bias.as_slice()),
+            |w| w,
+        );
+        let bias = DVector::from_column_slice(bias.as_slice()) + &self.bias;
+        Sparse::new(inner.inputs, rows, bias).rounded(self.roundings + inner.roundings)
     }
 
     /// A diagonal map `x ↦ scale ∘ x + shift`.

@@ -135,7 +135,7 @@ CASES = [
     ("model/layer_not_object.json", js(model([dense(2, 3), 7])), INSPECT, "layers[1]"),
     ("model/layers_not_array.json", js(model({"kind": "relu"})), INSPECT, "top level: invalid type"),
     ("model/layers_empty.json", js(model([])), INSPECT, "layers: is empty"),
-    ("model/relu_only.json", js(model([{"kind": "relu"}])), INSPECT, "layers: has no dense layer"),
+    ("model/relu_only.json", js(model([{"kind": "relu"}])), INSPECT, "layers: has no dense or conv layer"),
     ("model/dim_as_string.json", js(model([dense(2, 3)], dim="3")), INSPECT, "invalid type: string \"3\""),
     ("model/dim_negative.json", js(model([dense(2, 3)], dim=-3)), INSPECT, "invalid value: integer `-3`"),
     ("model/dim_fraction.json", js(model([dense(2, 3)], dim=2.5)), INSPECT, "invalid type: floating point"),
@@ -144,7 +144,7 @@ CASES = [
      .replace(b'"dim": 3', b'"dim": 184467440737095516150'), INSPECT, "top level"),
     # 10^8 features claimed in a file of a few hundred bytes: nothing may be allocated from the claim.
     ("model/dim_1e8_claim_relu_only.json", js(model([{"kind": "relu"}], dim=100_000_000)), INSPECT,
-     "layers: has no dense layer"),
+     "layers: has no dense or conv layer"),
     ("model/dim_1e8_claim_with_dense.json", js(model([dense(2, 3)], dim=100_000_000)), INSPECT,
      "layers[0].weights: row 0 has 3 values, expected 100000000"),
     ("model/dim_max_claim_normalize.json",

@@ -4,6 +4,8 @@
 
 #![allow(dead_code)] // each test crate uses the part it needs
 
+pub mod exact_model;
+
 use num_rational::BigRational;
 use num_traits::{One, Signed, Zero};
 

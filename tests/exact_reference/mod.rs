@@ -86,6 +86,7 @@ pub fn exactly_read(model: &Model, exact: &Value) -> Model {
                 *bias = DVector::from_vec(list(&d["bias"]));
             }
             Layer::Relu => {}
+            _ => unreachable!("the exact references hold dense models only"),
         }
     }
     let range = |v: &Value, unbounded: f64| -> Vec<f64> {

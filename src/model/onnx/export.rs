@@ -117,6 +117,14 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
                     vec![],
                 ));
             }
+            Layer::Conv(_) | Layer::BatchNorm { .. } | Layer::Pool(_) | Layer::Flatten => {
+                return Err(OnnxError::Graph {
+                    message: format!(
+                        "layers[{i}]: exporting conv, batchnorm, pooling and flatten layers to \
+                         ONNX is not supported yet; keep the JSON layout for this model"
+                    ),
+                });
+            }
         }
         current = output;
     }

@@ -1246,7 +1246,17 @@ fn assemble(
     let nan_or_inf = |l: &Layer| match l {
         Layer::Dense { weights, bias } => weights.iter().chain(bias.iter()).any(|v| !v.is_finite()),
         Layer::Normalize { mean, std } => mean.iter().chain(std.iter()).any(|v| !v.is_finite()),
-        Layer::Relu => false,
+        Layer::Conv(c) => c.kernel.iter().chain(c.bias.iter()).any(|v| !v.is_finite()),
+        Layer::BatchNorm {
+            scale,
+            shift,
+            mean,
+            variance,
+            ..
+        } => [scale, shift, mean, variance]
+            .iter()
+            .any(|v| v.iter().any(|x| !x.is_finite())),
+        Layer::Relu | Layer::Pool(_) | Layer::Flatten => false,
     };
     if layers.iter().any(nan_or_inf) {
         return Err(graph_error(
@@ -1308,6 +1318,7 @@ fn assemble(
     let model = Model {
         name,
         input: InputSpec {
+            shape: None,
             dim,
             names,
             lower,
@@ -1352,7 +1363,9 @@ fn validate(model: &Model) -> Result<(), OnnxError> {
                 }
                 width = weights.nrows();
             }
-            Layer::Relu => {}
+            Layer::Conv(c) => width = c.shape.output_dim(),
+            Layer::Pool(p) => width = p.output_dim(),
+            Layer::Relu | Layer::BatchNorm { .. } | Layer::Flatten => {}
         }
     }
     if let Some(classes) = &model.classes {
