@@ -30,7 +30,8 @@ pub struct ConvLayer {
     negative: DMatrix<f64>,
     magnitude: DMatrix<f64>,
     bias_magnitude: DVector<f64>,
-    single: (DMatrix<f32>, DVector<f32>),
+    transposed: DMatrix<f64>,
+    single: (DMatrix<f32>, DMatrix<f32>, DVector<f32>),
 }
 
 impl ConvLayer {
@@ -42,7 +43,12 @@ impl ConvLayer {
             negative: conv.kernel.map(|w| w.min(0.0)),
             magnitude: conv.kernel.abs(),
             bias_magnitude: bias.abs(),
-            single: (conv.kernel.map(|w| w as f32), bias.map(|b| b as f32)),
+            transposed: conv.kernel.transpose(),
+            single: (
+                conv.kernel.map(|w| w as f32),
+                conv.kernel.transpose().map(|w| w as f32),
+                bias.map(|b| b as f32),
+            ),
             bias,
             conv: conv.clone(),
         }
@@ -68,15 +74,15 @@ impl LinearLayer for ConvLayer {
 
     fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
         self.conv
-            .correlate_transpose(&self.conv.kernel, coefficients)
+            .correlate_transpose(&self.transposed, coefficients)
     }
 
     fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32> {
-        add_bias(self.conv.correlate(&self.single.0, xs), &self.single.1)
+        add_bias(self.conv.correlate(&self.single.0, xs), &self.single.2)
     }
 
     fn transpose_apply_single(&self, coefficients: &DMatrix<f32>) -> DMatrix<f32> {
-        self.conv.correlate_transpose(&self.single.0, coefficients)
+        self.conv.correlate_transpose(&self.single.1, coefficients)
     }
 
     fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {

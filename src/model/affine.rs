@@ -138,7 +138,7 @@ impl Affine {
     pub fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
         match self {
             Affine::Dense(d) => d.weights.tr_mul(coefficients),
-            Affine::Conv(c) => c.correlate_transpose(&c.kernel, coefficients),
+            Affine::Conv(c) => c.correlate_transpose(&c.kernel.transpose(), coefficients),
             Affine::Sparse(s) => s.transpose_apply_with(coefficients, |w| w),
             Affine::Chain(parts) => {
                 let mut a = parts[parts.len() - 1].transpose_apply(coefficients);
@@ -240,7 +240,7 @@ impl Affine {
                 let plain = c.kernel_gradient(outer, xs);
                 if magnitude {
                     g.kernel += plain.zip_map(&c.kernel, |v, w| v * sign(w));
-                    c.correlate_transpose(&c.kernel.abs(), outer)
+                    c.correlate_transpose(&c.kernel.abs().transpose(), outer)
                 } else {
                     g.kernel += plain;
                     let positions = c.positions();
@@ -248,7 +248,7 @@ impl Affine {
                     for (r, v) in sums.iter().enumerate() {
                         g.bias[r / positions] += v;
                     }
-                    c.correlate_transpose(&c.kernel, outer)
+                    c.correlate_transpose(&c.kernel.transpose(), outer)
                 }
             }
             (Affine::Sparse(s), Affine::Sparse(_)) => {

@@ -159,25 +159,50 @@ impl Conv {
         self.shape.positions()
     }
 
-    /// The unfolded patches of a batch: `(inputs · positions) × patch_len`, row `b·P + p` holding the
-    /// patch of input `b` at position `p`.
+    /// The unfolded patches of a batch, transposed: `patch_len × (inputs · positions)`, column
+    /// `b·P + p` holding the patch of input `b` at position `p` (columns are contiguous in memory).
     fn unfold<T: RealField + Copy>(&self, xs: &DMatrix<T>) -> DMatrix<T> {
         let positions = self.positions();
         let patch = self.shape.patch_len();
         let batch = xs.ncols();
-        let mut patches = DMatrix::zeros(batch * positions, patch);
+        let mut patches = DMatrix::zeros(patch, batch * positions);
+        let out = patches.as_mut_slice();
         for b in 0..batch {
             let x = xs.column(b);
+            let x = x.as_slice();
             for p in 0..positions {
-                let row = b * positions + p;
-                for (e, source) in self.table[p * patch..(p + 1) * patch].iter().enumerate() {
+                let column = &mut out[(b * positions + p) * patch..(b * positions + p + 1) * patch];
+                for (slot, source) in column
+                    .iter_mut()
+                    .zip(&self.table[p * patch..(p + 1) * patch])
+                {
                     if let Some(s) = source {
-                        patches[(row, e)] = x[*s];
+                        *slot = x[*s];
                     }
                 }
             }
         }
         patches
+    }
+
+    /// Output coefficients rearranged as `out_channels × (inputs · positions)` (column `b·P + p` holds
+    /// every channel's coefficient at position `p` of input `b`).
+    fn stack<T: RealField + Copy>(&self, coefficients: &DMatrix<T>) -> DMatrix<T> {
+        let positions = self.positions();
+        let channels = self.shape.out_channels;
+        let batch = coefficients.ncols();
+        let mut stacked = DMatrix::zeros(channels, batch * positions);
+        let out = stacked.as_mut_slice();
+        for b in 0..batch {
+            let a = coefficients.column(b);
+            let a = a.as_slice();
+            for o in 0..channels {
+                for p in 0..positions {
+                    out[(b * positions + p) * channels + o] = a[o * positions + p];
+                }
+            }
+        }
+        stacked
     }
 
     /// `K ⋆ X` without bias for a kernel of this geometry (`kernel` may be `|K|`, an f32 copy, …):
@@ -188,50 +213,50 @@ impl Conv {
         xs: &DMatrix<T>,
     ) -> DMatrix<T> {
         let positions = self.positions();
-        let patches = self.unfold(xs);
-        // (B·P × patch) · (patch × C_out): row b·P + p, column o is output (o, p) of input b.
-        let product = patches * kernel.transpose();
+        let channels = self.shape.out_channels;
+        // (C_out × patch) · (patch × B·P): column b·P + p holds every channel at (b, p).
+        let product = kernel * self.unfold(xs);
+        let product = product.as_slice();
         let batch = xs.ncols();
         let mut out = DMatrix::zeros(self.shape.output_dim(), batch);
         for b in 0..batch {
             let mut column = out.column_mut(b);
-            for o in 0..self.shape.out_channels {
-                for p in 0..positions {
-                    column[o * positions + p] = product[(b * positions + p, o)];
+            let column = column.as_mut_slice();
+            for p in 0..positions {
+                let source =
+                    &product[(b * positions + p) * channels..(b * positions + p + 1) * channels];
+                for (o, v) in source.iter().enumerate() {
+                    column[o * positions + p] = *v;
                 }
             }
         }
         out
     }
 
-    /// The adjoint of [`Conv::correlate`]: `Kᵀ A` for output coefficients `A` (one column each).
+    /// The adjoint of [`Conv::correlate`]: `Kᵀ A` for output coefficients `A` (one column each), given
+    /// the kernel already transposed (`patch_len × out_channels`: a blocked product, where a
+    /// transposed product would take one dot product per entry).
     pub fn correlate_transpose<T: RealField + Copy>(
         &self,
-        kernel: &DMatrix<T>,
+        kernel_transposed: &DMatrix<T>,
         coefficients: &DMatrix<T>,
     ) -> DMatrix<T> {
         let positions = self.positions();
         let patch = self.shape.patch_len();
         let batch = coefficients.ncols();
-        let mut stacked = DMatrix::zeros(batch * positions, self.shape.out_channels);
-        for b in 0..batch {
-            let a = coefficients.column(b);
-            for o in 0..self.shape.out_channels {
-                for p in 0..positions {
-                    stacked[(b * positions + p, o)] = a[o * positions + p];
-                }
-            }
-        }
-        // (B·P × C_out) · (C_out × patch): the coefficient each patch entry receives.
-        let spread = stacked * kernel;
+        // (patch × C_out) · (C_out × B·P): the coefficient each patch entry receives, by column.
+        let spread = kernel_transposed * self.stack(coefficients);
+        let spread = spread.as_slice();
         let mut out = DMatrix::zeros(self.shape.input_dim(), batch);
         for b in 0..batch {
             let mut column = out.column_mut(b);
+            let column = column.as_mut_slice();
             for p in 0..positions {
                 let row = b * positions + p;
-                for (e, target) in self.table[p * patch..(p + 1) * patch].iter().enumerate() {
+                let values = &spread[row * patch..(row + 1) * patch];
+                for (v, target) in values.iter().zip(&self.table[p * patch..(p + 1) * patch]) {
                     if let Some(t) = target {
-                        column[*t] += spread[(row, e)];
+                        column[*t] += *v;
                     }
                 }
             }
@@ -241,19 +266,7 @@ impl Conv {
 
     /// The gradient of `Σ_b ⟨A_b, K ⋆ X_b⟩` with respect to the kernel: `out_channels × patch_len`.
     pub fn kernel_gradient(&self, coefficients: &DMatrix<f64>, xs: &DMatrix<f64>) -> DMatrix<f64> {
-        let positions = self.positions();
-        let batch = xs.ncols();
-        let patches = self.unfold(xs);
-        let mut stacked = DMatrix::zeros(batch * positions, self.shape.out_channels);
-        for b in 0..batch {
-            let a = coefficients.column(b);
-            for o in 0..self.shape.out_channels {
-                for p in 0..positions {
-                    stacked[(b * positions + p, o)] = a[o * positions + p];
-                }
-            }
-        }
-        stacked.transpose() * patches
+        self.stack(coefficients) * self.unfold(xs).transpose()
     }
 
     /// The bias pattern over the flattened output (each channel's bias at each of its positions).
@@ -344,7 +357,10 @@ mod tests {
         let a = DMatrix::from_fn(c.shape.output_dim(), 2, |r, b| {
             ((r + 3 * b) % 5) as f64 - 2.0
         });
-        assert_eq!(c.correlate_transpose(&c.kernel, &a), dense.transpose() * &a);
+        assert_eq!(
+            c.correlate_transpose(&c.kernel.transpose(), &a),
+            dense.transpose() * &a
+        );
     }
 
     #[test]
