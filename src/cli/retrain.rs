@@ -116,9 +116,13 @@ pub struct Args {
     /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
     #[arg(long, default_value_t = 1.0, allow_hyphen_values = true)]
     pub final_rate: f64,
-    /// Dual step size of the multiplier update.
+    /// Dual step size of the multiplier update (it follows the --final-rate schedule).
     #[arg(long, default_value_t = 0.05, allow_hyphen_values = true)]
     pub dual_step: f64,
+    /// Average the weights and multipliers over this last fraction of --epochs' steps and use the
+    /// average with --keep last (primal recovery; docs/retrain.md); 0 = off.
+    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
+    pub average_tail: f64,
     /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
     #[arg(long)]
     pub hidden: Option<String>,
@@ -218,6 +222,12 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         bail!(
             "--dual-step: {} is not allowed, expected a number > 0",
             args.dual_step
+        );
+    }
+    if !(0.0..=1.0).contains(&args.average_tail) {
+        bail!(
+            "--average-tail: {} is not allowed, expected a fraction in [0, 1]",
+            args.average_tail
         );
     }
     if let Some(w) = args.penalty {
@@ -370,6 +380,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             gap_correction: true,
             checks_per_epoch: args.checks_per_epoch,
             final_rate_factor: args.final_rate,
+            average_tail: args.average_tail,
         },
         round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
         max_rounds: args.max_rounds,
