@@ -41,6 +41,7 @@ pub mod gap_correction;
 pub mod init;
 pub mod optimizer;
 pub mod plain;
+pub mod price;
 pub mod retrain;
 pub mod robust;
 pub mod validation;
