@@ -83,6 +83,7 @@ fn constrained_settings(
         checks_per_epoch: env_or("BALLAST_BENCH_CHECKS", 16usize),
         // `BALLAST_BENCH_FINAL_RATE` sets the step-size factor reached at the end of the first round.
         final_rate_factor: env_or("BALLAST_BENCH_FINAL_RATE", 0.1),
+        average_tail: 0.0,
     }
 }
 

@@ -583,6 +583,7 @@ mod primal_dual {
             gap_correction: false,
             checks_per_epoch: 1,
             final_rate_factor: 1.0,
+            average_tail: 0.0,
         }
     }
 

@@ -18,6 +18,7 @@ use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::curves::{plot_svg, Series};
 use crate::train::plain::split_validation;
+use crate::train::price::{prices, Price};
 use crate::train::retrain::{
     retrain, Keep, NearMisses, RetrainResult, RetrainSettings, RetrainVerdict,
 };
@@ -116,9 +117,13 @@ pub struct Args {
     /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
     #[arg(long, default_value_t = 1.0, allow_hyphen_values = true)]
     pub final_rate: f64,
-    /// Dual step size of the multiplier update.
+    /// Dual step size of the multiplier update (it follows the --final-rate schedule).
     #[arg(long, default_value_t = 0.05, allow_hyphen_values = true)]
     pub dual_step: f64,
+    /// Average the weights and multipliers over this last fraction of --epochs' steps and use the
+    /// average with --keep last (primal recovery; docs/retrain.md); 0 = off.
+    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
+    pub average_tail: f64,
     /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
     #[arg(long)]
     pub hidden: Option<String>,
@@ -218,6 +223,12 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         bail!(
             "--dual-step: {} is not allowed, expected a number > 0",
             args.dual_step
+        );
+    }
+    if !(0.0..=1.0).contains(&args.average_tail) {
+        bail!(
+            "--average-tail: {} is not allowed, expected a fraction in [0, 1]",
+            args.average_tail
         );
     }
     if let Some(w) = args.penalty {
@@ -370,6 +381,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             gap_correction: true,
             checks_per_epoch: args.checks_per_epoch,
             final_rate_factor: args.final_rate,
+            average_tail: args.average_tail,
         },
         round_epochs: args.round_epochs.unwrap_or((args.epochs / 2).max(1)),
         max_rounds: args.max_rounds,
@@ -408,6 +420,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
 
     // Outputs: model, then log and sheet in the folder beside it.
     let last = result.rounds.last().expect("at least one round");
+    let prices = final_prices(&settings, floor, &result, &|c| parent.class_name(c));
     let mut model = result.model.clone();
     model.provenance = Some(serde_json::json!({
         "parent": parent.provenance.clone().unwrap_or(serde_json::Value::Null),
@@ -425,6 +438,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "keep": settings.keep, "near_misses": settings.near_misses,
             },
             "rounds": result.rounds,
+            "prices": &prices,
             "final": {
                 "verdict": result.verdict,
                 "clean_accuracy": last.clean_accuracy,
@@ -446,7 +460,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     let described = requirement.describe(&|c| parent.class_name(c));
     write(
         &folder.join("retrain.md"),
-        &sheet_markdown(&args, &described, floor, &result, acceptance.len()),
+        &sheet_markdown(&args, &described, floor, &result, acceptance.len(), &prices),
     )?;
     println!(
         "retrain: {} after {} round(s): certified accuracy {:.4} (floor {}), clean accuracy {:.4}; model {}, sheet {}",
@@ -552,12 +566,34 @@ fn curves(result: &RetrainResult) -> (String, String) {
     (accuracy, multiplier)
 }
 
+/// The prices of the constraint at the last epoch's multipliers (none for a fixed penalty).
+fn final_prices(
+    settings: &RetrainSettings,
+    floor: f64,
+    result: &RetrainResult,
+    class_name: &dyn Fn(usize) -> String,
+) -> Vec<Price> {
+    let constrained = &settings.constrained;
+    let (Some(last), true) = (
+        result.epochs.last(),
+        constrained.formulation.is_primal_dual(),
+    ) else {
+        return Vec::new();
+    };
+    let constraint = match constrained.constraint {
+        Constraint::RobustError { slack, .. } => Constraint::RobustError { floor, slack },
+        other => other,
+    };
+    prices(&constraint, &last.multipliers, class_name)
+}
+
 fn sheet_markdown(
     args: &Args,
     requirement: &str,
     floor: f64,
     result: &RetrainResult,
     acceptance: usize,
+    prices: &[Price],
 ) -> String {
     let mut md = String::new();
     let verdict = match result.verdict {
@@ -604,6 +640,22 @@ fn sheet_markdown(
                 md,
                 "\nRound {}: near miss at epoch {} judged by the certify pipeline on the validation data: {:.4} by linear bounds, {:.4} by the pipeline.",
                 r.round, j.epoch, j.linear_certified, j.pipeline_certified
+            );
+        }
+    }
+    if !prices.is_empty() {
+        let _ = writeln!(md, "\n## Price of the requirement\n");
+        let _ = writeln!(md, "The final multipliers read as prices: the sensitivity of the best clean training loss to each constraint's level (Boyd & Vandenberghe, *Convex Optimization*, §5.6).\n");
+        let _ = writeln!(md, "| constraint | multiplier | binding | meaning |");
+        let _ = writeln!(md, "| --- | --- | --- | --- |");
+        for p in prices {
+            let _ = writeln!(
+                md,
+                "| {} | {:.4} | {} | {} |",
+                p.constraint,
+                p.multiplier,
+                if p.binding { "yes" } else { "no" },
+                p.meaning
             );
         }
     }

@@ -251,6 +251,7 @@ pub fn retrain_settings(
             gap_correction: true,
             checks_per_epoch: 4,
             final_rate_factor: 1.0,
+            average_tail: 0.0,
         },
         round_epochs: if quick { 1 } else { 20 },
         max_rounds: if quick { 1 } else { 3 },

@@ -3,9 +3,10 @@
 //! data, with one multiplier `λ ≥ 0` per constraint.
 //!
 //! Per mini-batch the primal step follows the gradient of `clean loss + Σ_c λ_c · robust loss_c` (the
-//! robust loss of [`super::robust`] is the differentiable surrogate), then each multiplier takes a
-//! projected ascent step `λ_c ← max(0, λ_c + η · (measured_c − allowed_c))` on the batch's measured
-//! constraint value: either the robust error rate (for the bound-based losses: sound linear bounds do
+//! robust loss of [`super::robust`] is the differentiable surrogate; each constraint's term is the
+//! mean over its rows), then each multiplier takes a projected ascent step
+//! `λ_c ← max(0, λ_c + r · η · (measured_c − allowed_c))` ([`super::dual`]; `r` is the primal rate
+//! factor, so the dual step shrinks with the primal's) on the batch's measured constraint value: either the robust error rate (for the bound-based losses: sound linear bounds do
 //! not prove the sample at the batch's epsilon, whatever bound the loss uses; for PGD: the PGD point
 //! is wrong) against `1 − floor − slack`, or the robust loss itself against a level. Constraints are
 //! one global constraint or one per class (each class's samples against the same allowance). With a fixed
@@ -16,75 +17,37 @@
 //! measured gap between the training batches' and the validation data's certified accuracy
 //! ([`GapCorrection`]), so the floor is aimed at on held-out data.
 //!
+//! With [`ConstrainedSettings::average_tail`] the weights and multipliers of the last steps are
+//! averaged ([`super::averaging`]) for primal recovery; [`super::duality`] evaluates the problem and
+//! the duality-gap estimate at any point.
+//!
 //! The loop never claims the constraint holds: its figures are training measurements; the floor is
 //! checked afterwards with sound bounds ([`super::retrain`]).
 
-use nalgebra::DMatrix;
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 
-use crate::bound::linear::batch_margin_lower_bounds as linear_batch;
 use crate::data::Dataset;
-use crate::model::{predicted_class, Network};
+use crate::model::Network;
 use crate::threat::{Budget, Region, Targets};
 
-use super::backprop::{add_scaled, classifier_logits, cross_entropy_one};
+pub use super::dual::{Constraint, Formulation};
+pub use super::gap_correction::GapCorrection;
+pub use super::validation::{certified_accuracy, ValidationCheck};
+
+use super::averaging::IterateAverage;
+use super::backprop::add_scaled;
 use super::optimizer::Optimizer;
 use super::plain::{
     check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainSettings,
     TrainableModel,
 };
 use super::robust::{robust_loss, RegionMap, RobustLoss};
+use super::validation::{
+    linear_bound_errors, mean_standard_error, per_sample_cross_entropy, validation_check,
+};
 use super::TrainError;
-
-/// What the constraint bounds.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum Constraint {
-    /// Robust error rate on the training data ≤ `1 − floor − slack`.
-    RobustError {
-        /// Required robust fraction.
-        floor: f64,
-        /// Extra margin demanded during training (raised between rounds).
-        slack: f64,
-    },
-    /// Mean robust loss on the training data ≤ `level`.
-    RobustLossLevel {
-        /// The allowed mean robust loss.
-        level: f64,
-    },
-}
-
-impl Constraint {
-    /// The allowed value of the measured quantity.
-    pub fn allowed(&self) -> f64 {
-        match self {
-            Constraint::RobustError { floor, slack } => (1.0 - floor - slack).max(0.0),
-            Constraint::RobustLossLevel { level } => *level,
-        }
-    }
-}
-
-/// How the robust term enters the objective.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum Formulation {
-    /// Lagrangian with multipliers updated by projected dual ascent.
-    PrimalDual {
-        /// Dual step size η.
-        dual_step: f64,
-        /// Starting multiplier.
-        initial_multiplier: f64,
-        /// One constraint (and multiplier) per class instead of one overall.
-        per_class: bool,
-    },
-    /// Fixed weight `clean + weight · robust` (no multiplier updates).
-    Penalty {
-        /// The fixed weight.
-        weight: f64,
-    },
-}
 
 /// Settings of the constrained trainer.
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -118,44 +81,10 @@ pub struct ConstrainedSettings {
     /// rate is held through the epsilon ramp, then decays linearly to this fraction of the configured
     /// rate by the last of those epochs and stays there (later rounds); 1 keeps it constant.
     pub final_rate_factor: f64,
-}
-
-/// One validation measurement during training (see [`ConstrainedSettings::checks_per_epoch`]).
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct ValidationCheck {
-    /// Position in epochs counted across rounds (e.g. 24.25 = a quarter into epoch 25).
-    pub epoch_position: f64,
-    /// Mean clean cross-entropy on the validation data.
-    pub clean_loss: f64,
-    /// Standard error of that mean.
-    pub clean_loss_error: f64,
-    /// Certified accuracy on the validation data (sound linear bounds at the full budget).
-    pub certified_accuracy: f64,
-}
-
-/// How far the training data's certified accuracy runs ahead of the validation data's, measured after
-/// every full-budget epoch: the training batches' linear-bound certified rate (the constraint's own
-/// measure) minus the validation data's (sound linear bounds at the full budget), smoothed over epochs
-/// and clamped to `[0, MAX]`. The robust-error allowance becomes `1 − floor − slack − gap`, so the
-/// floor is aimed at on data the model was not trained on rather than on the training batches.
-#[derive(Debug, Clone, Copy, PartialEq, Default, serde::Serialize)]
-pub struct GapCorrection {
-    /// The current smoothed gap (0 until the first full-budget epoch with validation figures).
-    pub gap: f64,
-}
-
-impl GapCorrection {
-    /// Largest correction (a gap beyond this means the constraint cannot be steered by it).
-    pub const MAX: f64 = 0.2;
-    /// Weight of the newest epoch in the exponential smoothing.
-    pub const SMOOTHING: f64 = 0.5;
-
-    /// Folds in one epoch's training and validation certified fractions.
-    pub fn update(&mut self, training_certified: f64, validation_certified: f64) {
-        let measured = training_certified - validation_certified;
-        let smoothed = Self::SMOOTHING * measured + (1.0 - Self::SMOOTHING) * self.gap;
-        self.gap = smoothed.clamp(0.0, Self::MAX);
-    }
+    /// Fraction of the first `train.epochs` epochs, counted back from their end, over which the
+    /// weights and multipliers after every step are averaged ([`IterateAverage`], kept in
+    /// [`ConstrainedState::average`] and continued through later calls); 0 = off.
+    pub average_tail: f64,
 }
 
 impl ConstrainedSettings {
@@ -180,45 +109,13 @@ impl ConstrainedSettings {
         {
             return bad(format!("budget radius {r} must be a finite number ≥ 0"));
         }
-        match self.constraint {
-            Constraint::RobustError { floor, slack } => {
-                if !(0.0..=1.0).contains(&floor) {
-                    return bad(format!("floor {floor} must lie in [0, 1]"));
-                }
-                if !(slack.is_finite() && slack >= 0.0) {
-                    return bad(format!("slack {slack} must be a finite number ≥ 0"));
-                }
-            }
-            Constraint::RobustLossLevel { level } => {
-                if !(level.is_finite() && level >= 0.0) {
-                    return bad(format!(
-                        "robust loss level {level} must be a finite number ≥ 0"
-                    ));
-                }
-            }
-        }
-        match self.formulation {
-            Formulation::PrimalDual {
-                dual_step,
-                initial_multiplier,
-                ..
-            } => {
-                if !(dual_step.is_finite() && dual_step > 0.0) {
-                    return bad(format!("dual step {dual_step} must be a finite number > 0"));
-                }
-                if !(initial_multiplier.is_finite() && initial_multiplier >= 0.0) {
-                    return bad(format!(
-                        "initial multiplier {initial_multiplier} must be ≥ 0"
-                    ));
-                }
-            }
-            Formulation::Penalty { weight } => {
-                if !(weight.is_finite() && weight >= 0.0) {
-                    return bad(format!(
-                        "penalty weight {weight} must be a finite number ≥ 0"
-                    ));
-                }
-            }
+        self.constraint.validate()?;
+        self.formulation.validate()?;
+        if !(0.0..=1.0).contains(&self.average_tail) {
+            return bad(format!(
+                "averaged tail {} must be a fraction in [0, 1]",
+                self.average_tail
+            ));
         }
         if let RobustLoss::Adversarial { steps } = self.loss {
             if steps == 0 {
@@ -254,6 +151,9 @@ pub struct ConstrainedEpoch {
     pub robust_error: f64,
     /// The multipliers at the end of the epoch (one, or one per class).
     pub multipliers: Vec<f64>,
+    /// Each constraint's measurement (robust error rate or mean robust loss, on its rows) averaged
+    /// over the epoch's batches, in the order of the multipliers (NaN when no batch had its rows).
+    pub measured: Vec<f64>,
     /// The generalisation-gap correction of the allowance after the epoch (0 when not in use).
     pub gap_correction: f64,
     /// Mean clean cross-entropy on the validation data (the objective's held-out estimate).
@@ -279,6 +179,8 @@ pub struct ConstrainedState {
     pub epochs_done: usize,
     /// The allowance correction carried across epochs and rounds.
     pub correction: GapCorrection,
+    /// The iterate average (see [`ConstrainedSettings::average_tail`]); `None` until it starts.
+    pub average: Option<IterateAverage>,
 }
 
 impl ConstrainedState {
@@ -288,14 +190,7 @@ impl ConstrainedState {
         settings: &ConstrainedSettings,
         classes: usize,
     ) -> ConstrainedState {
-        let multipliers = match settings.formulation {
-            Formulation::PrimalDual {
-                initial_multiplier,
-                per_class,
-                ..
-            } => vec![initial_multiplier; if per_class { classes } else { 1 }],
-            Formulation::Penalty { weight } => vec![weight],
-        };
+        let multipliers = settings.formulation.initial_multipliers(classes);
         ConstrainedState {
             network: trainable.network.clone(),
             optimizer: Optimizer::new(
@@ -306,6 +201,7 @@ impl ConstrainedState {
             multipliers,
             epochs_done: 0,
             correction: GapCorrection::default(),
+            average: None,
         }
     }
 }
@@ -363,6 +259,13 @@ pub fn train_constrained_epochs_with_checks(
         .collect();
     let batches_per_epoch = train.len().div_ceil(settings.train.batch_size);
     let ramp_steps = settings.ramp_epochs * batches_per_epoch;
+    // Steps after which the iterate average runs (never when it is off).
+    let first_round_steps = settings.train.epochs * batches_per_epoch;
+    let average_start = if settings.average_tail > 0.0 {
+        first_round_steps - (settings.average_tail * first_round_steps as f64).round() as usize
+    } else {
+        usize::MAX
+    };
     let mut rng = ChaCha8Rng::seed_from_u64(
         settings.train.seed ^ (state.epochs_done as u64).wrapping_mul(0x2545_f491_4f6c_dd1d),
     );
@@ -382,6 +285,8 @@ pub fn train_constrained_epochs_with_checks(
         let epoch = state.epochs_done;
         order.shuffle(&mut rng);
         let (mut clean_total, mut robust_total, mut error_total) = (0.0, 0.0, 0.0);
+        let mut measured_total = vec![0.0; state.multipliers.len()];
+        let mut measured_rows = vec![0.0; state.multipliers.len()];
         let mut scale = 1.0;
         for (b, chunk) in order.chunks(settings.train.batch_size).enumerate() {
             let step = (epoch - 1) * batches_per_epoch + b + 1;
@@ -403,54 +308,81 @@ pub fn train_constrained_epochs_with_checks(
                 return Err(TrainError::Diverged { epoch });
             }
             let budget = settings.budget.scaled(scale);
-            let regions: Vec<Region> = chunk
-                .iter()
-                .map(|&i| map.region(train.sample(i), &budget))
-                .collect();
-            let batch_targets: Vec<Vec<usize>> =
-                chunk.iter().map(|&i| targets[i].clone()).collect();
-            // Per-sample weights: λ (global) or λ_c · B / B_c (per class, so each term is a class mean).
-            let per_class = state.multipliers.len() > 1;
-            let mut class_counts = vec![0usize; classes];
-            for &y in &labels {
-                class_counts[y] += 1;
-            }
-            let weights: Vec<f64> = labels
-                .iter()
-                .map(|&y| {
-                    if per_class {
-                        state.multipliers[y] * chunk.len() as f64 / class_counts[y] as f64
-                    } else {
-                        state.multipliers[0]
-                    }
-                })
-                .collect();
-            let robust = robust_loss(
-                settings.loss,
-                &state.network,
-                &regions,
-                &labels,
-                &batch_targets,
-                &weights,
-                beta,
-                settings.train.seed ^ step as u64,
-            )?;
-            if !robust.loss.is_finite() {
-                return Err(TrainError::Diverged { epoch });
-            }
-            let errors = if settings.loss.is_certified() {
-                linear_bound_errors(&state.network, &regions, &labels, &batch_targets)?
-            } else {
-                robust.errors.clone()
-            };
-            add_scaled(&mut gradient, &robust.gradient, 1.0);
             let rate = rate_factor(
                 step,
                 ramp_steps,
                 settings.train.epochs * batches_per_epoch,
                 settings.final_rate_factor,
             );
+            let allowed = match settings.constraint {
+                Constraint::RobustError { .. } => {
+                    (settings.constraint.allowed() - state.correction.gap).max(0.0)
+                }
+                Constraint::RobustLossLevel { .. } => settings.constraint.allowed(),
+            };
+            // One robust term per constraint: the batch's rows overall, or one class's rows (so
+            // each term is a class mean); each measured on its own rows.
+            let per_class = state.multipliers.len() > 1;
+            for (k, multiplier) in state.multipliers.iter_mut().enumerate() {
+                let rows: Vec<usize> = (0..chunk.len())
+                    .filter(|&s| !per_class || labels[s] == k)
+                    .collect();
+                if rows.is_empty() {
+                    continue;
+                }
+                let regions: Vec<Region> = rows
+                    .iter()
+                    .map(|&s| map.region(train.sample(chunk[s]), &budget))
+                    .collect();
+                let row_labels: Vec<usize> = rows.iter().map(|&s| labels[s]).collect();
+                let row_targets: Vec<Vec<usize>> =
+                    rows.iter().map(|&s| targets[chunk[s]].clone()).collect();
+                let robust = robust_loss(
+                    settings.loss,
+                    &state.network,
+                    &regions,
+                    &row_labels,
+                    &row_targets,
+                    &vec![1.0; rows.len()],
+                    beta,
+                    settings.train.seed ^ step as u64,
+                )?;
+                if !robust.loss.is_finite() {
+                    return Err(TrainError::Diverged { epoch });
+                }
+                let errors = if settings.loss.is_certified() {
+                    linear_bound_errors(&state.network, &regions, &row_labels, &row_targets)?
+                } else {
+                    robust.errors.clone()
+                };
+                let count = rows.len() as f64;
+                let mean_robust = robust.sample_losses.iter().sum::<f64>() / count;
+                let error_rate = errors.iter().filter(|e| **e).count() as f64 / count;
+                let measured = match settings.constraint {
+                    Constraint::RobustError { .. } => error_rate,
+                    Constraint::RobustLossLevel { .. } => mean_robust,
+                };
+                let weight = settings.formulation.primal_weight(*multiplier);
+                add_scaled(&mut gradient, &robust.gradient, weight);
+                *multiplier =
+                    settings
+                        .formulation
+                        .after_batch(*multiplier, measured, allowed, rate);
+                measured_total[k] += measured * count;
+                measured_rows[k] += count;
+                robust_total += mean_robust * count;
+                error_total += error_rate * count;
+            }
+            clean_total += clean * chunk.len() as f64;
             state.optimizer.step(&mut state.network, &gradient, rate);
+            if step > average_start {
+                state
+                    .average
+                    .get_or_insert_with(|| {
+                        IterateAverage::new(&state.network, state.multipliers.len())
+                    })
+                    .add(&state.network, &state.multipliers);
+            }
             if let (Some(v), true) = (validation, mid_checks.contains(&b)) {
                 let check = validation_check(
                     trainable,
@@ -461,51 +393,12 @@ pub fn train_constrained_epochs_with_checks(
                 )?;
                 checks(&check, &state.network);
             }
-            let mean_robust = robust.sample_losses.iter().sum::<f64>() / chunk.len() as f64;
-            let error_rate = errors.iter().filter(|e| **e).count() as f64 / chunk.len() as f64;
-            clean_total += clean * chunk.len() as f64;
-            robust_total += mean_robust * chunk.len() as f64;
-            error_total += error_rate * chunk.len() as f64;
-            if let Formulation::PrimalDual { dual_step, .. } = settings.formulation {
-                let allowed = match settings.constraint {
-                    Constraint::RobustError { .. } => {
-                        (settings.constraint.allowed() - state.correction.gap).max(0.0)
-                    }
-                    Constraint::RobustLossLevel { .. } => settings.constraint.allowed(),
-                };
-                if per_class {
-                    for (c, &count) in class_counts.iter().enumerate() {
-                        if count == 0 {
-                            continue;
-                        }
-                        let members: Vec<usize> =
-                            (0..labels.len()).filter(|&s| labels[s] == c).collect();
-                        let measured = match settings.constraint {
-                            Constraint::RobustError { .. } => {
-                                members.iter().filter(|&&s| errors[s]).count() as f64
-                                    / members.len() as f64
-                            }
-                            Constraint::RobustLossLevel { .. } => {
-                                members
-                                    .iter()
-                                    .map(|&s| robust.sample_losses[s])
-                                    .sum::<f64>()
-                                    / members.len() as f64
-                            }
-                        };
-                        state.multipliers[c] =
-                            (state.multipliers[c] + dual_step * (measured - allowed)).max(0.0);
-                    }
-                } else {
-                    let measured = match settings.constraint {
-                        Constraint::RobustError { .. } => error_rate,
-                        Constraint::RobustLossLevel { .. } => mean_robust,
-                    };
-                    state.multipliers[0] =
-                        (state.multipliers[0] + dual_step * (measured - allowed)).max(0.0);
-                }
-            }
         }
+        let measured: Vec<f64> = measured_total
+            .iter()
+            .zip(&measured_rows)
+            .map(|(t, n)| if *n > 0.0 { t / n } else { f64::NAN })
+            .collect();
         let n = train.len() as f64;
         let mut record = ConstrainedEpoch {
             epoch,
@@ -514,6 +407,7 @@ pub fn train_constrained_epochs_with_checks(
             robust_loss: robust_total / n,
             robust_error: error_total / n,
             multipliers: state.multipliers.clone(),
+            measured,
             gap_correction: state.correction.gap,
             validation_clean_loss: None,
             validation_clean_loss_error: None,
@@ -573,108 +467,9 @@ fn rate_factor(step: usize, ramp_steps: usize, end_steps: usize, final_factor: f
     1.0 - t * (1.0 - final_factor)
 }
 
-/// The validation figures of `network` at `epoch_position` (a check inside an epoch).
-fn validation_check(
-    trainable: &TrainableModel,
-    network: &Network,
-    validation: &Dataset,
-    settings: &ConstrainedSettings,
-    epoch_position: f64,
-) -> Result<ValidationCheck, TrainError> {
-    let features = trainable.to_network_units(&validation.features);
-    let losses = per_sample_cross_entropy(network, &features, &validation.labels);
-    Ok(ValidationCheck {
-        epoch_position,
-        clean_loss: losses.iter().sum::<f64>() / losses.len().max(1) as f64,
-        clean_loss_error: mean_standard_error(&losses),
-        certified_accuracy: certified_accuracy(
-            trainable,
-            network,
-            validation,
-            &settings.budget,
-            &settings.targets,
-        )?,
-    })
-}
-
-/// Cross-entropy of every sample (columns of `features`, network units) under `network`.
-fn per_sample_cross_entropy(
-    network: &Network,
-    features: &DMatrix<f64>,
-    labels: &[usize],
-) -> Vec<f64> {
-    let logits = classifier_logits(&network.forward_batch(features));
-    (0..labels.len())
-        .map(|i| cross_entropy_one(logits.column(i).as_slice(), labels[i]).0)
-        .collect()
-}
-
-/// Standard error of the mean of `values`: sample standard deviation / √n (0 for fewer than 2).
-fn mean_standard_error(values: &[f64]) -> f64 {
-    let n = values.len();
-    if n < 2 {
-        return 0.0;
-    }
-    let mean = values.iter().sum::<f64>() / n as f64;
-    let variance = values.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (n - 1) as f64;
-    (variance / n as f64).sqrt()
-}
-
-/// Per sample of a batch: true when sound linear-relaxation bounds (the certify pipeline's first
-/// linear stage) do not prove the margin over every forbidden class. This is the constraint's measure
-/// for the bound-based losses, whatever bound the loss itself uses, so the multiplier is steered by a
-/// figure close to what certification will find (the surrogate and the measured constraint are kept
-/// apart as in the proxy-Lagrangian of Cotter, Jiang & Sridharan, 2019).
-fn linear_bound_errors(
-    network: &Network,
-    regions: &[Region],
-    labels: &[usize],
-    targets: &[Vec<usize>],
-) -> Result<Vec<bool>, TrainError> {
-    let bounds = linear_batch(network, regions, labels, targets)
-        .map_err(|e| TrainError::Data(format!("linear bounds: {e}")))?;
-    Ok(bounds.samples.iter().map(|b| !b.certified()).collect())
-}
-
-/// Fraction of `data` predicted correctly and certified by sound linear-relaxation bounds (at least as
-/// tight as interval bounds) under `budget` and `targets`: a lower bound on robust accuracy.
-pub fn certified_accuracy(
-    trainable: &TrainableModel,
-    network: &Network,
-    data: &Dataset,
-    budget: &Budget,
-    targets: &Targets,
-) -> Result<f64, TrainError> {
-    let model = &trainable.template;
-    let classes = model.class_count();
-    let map = RegionMap::new(model, trainable.normalization.as_ref());
-    let features = trainable.to_network_units(&data.features);
-    let logits = network.as_classifier().forward_batch(&features);
-    let correct: Vec<usize> = (0..data.len())
-        .filter(|&i| predicted_class(logits.column(i).as_slice()) == data.labels[i])
-        .collect();
-    if correct.is_empty() {
-        return Ok(0.0);
-    }
-    let regions: Vec<Region> = correct
-        .iter()
-        .map(|&i| map.region(data.sample(i), budget))
-        .collect();
-    let labels: Vec<usize> = correct.iter().map(|&i| data.labels[i]).collect();
-    let target_lists: Vec<Vec<usize>> = labels
-        .iter()
-        .map(|&y| targets.forbidden_for(y, classes))
-        .collect();
-    let bounds = linear_batch(network, &regions, &labels, &target_lists)
-        .map_err(|e| TrainError::Data(format!("linear bounds: {e}")))?;
-    let certified = bounds.samples.iter().filter(|b| b.certified()).count();
-    Ok(certified as f64 / data.len() as f64)
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
-    use approx::assert_relative_eq;
 
     #[test]
     fn the_rate_is_held_through_the_ramp_then_decays_linearly() {
@@ -686,31 +481,5 @@ mod tests {
         // A ramp as long as training (or longer) leaves the rate alone until the end.
         assert_eq!(rate_factor(29, 30, 30, 0.1), 1.0);
         assert_eq!(rate_factor(5, 0, 30, 1.0), 1.0);
-    }
-
-    #[test]
-    fn standard_error_of_the_mean() {
-        // Values 1, 2, 3, 4: sample variance 5/3, so the standard error is sqrt(5/12).
-        assert_relative_eq!(
-            mean_standard_error(&[1.0, 2.0, 3.0, 4.0]),
-            (5.0f64 / 12.0).sqrt(),
-            epsilon = 1e-12
-        );
-        assert_eq!(mean_standard_error(&[7.0]), 0.0);
-    }
-
-    #[test]
-    fn gap_correction_smooths_and_clamps_the_measured_gap() {
-        let mut correction = GapCorrection::default();
-        correction.update(0.80, 0.70); // gap 0.10, half of it after one epoch
-        assert_relative_eq!(correction.gap, 0.05, epsilon = 1e-12);
-        correction.update(0.80, 0.70);
-        assert_relative_eq!(correction.gap, 0.075, epsilon = 1e-12);
-        correction.update(0.60, 0.70); // validation ahead: the smoothed gap shrinks, never below 0
-        assert_relative_eq!(correction.gap, 0.0, epsilon = 1e-12);
-        for _ in 0..20 {
-            correction.update(1.0, 0.0);
-        }
-        assert_relative_eq!(correction.gap, GapCorrection::MAX, epsilon = 1e-12);
     }
 }

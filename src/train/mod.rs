@@ -30,15 +30,21 @@
 //! ([`robust`]: interval, linear + interval, or PGD) and checks the floor with the certify pipeline
 //! after each round; `ballast retrain` is its command-line front end.
 
+pub mod averaging;
 pub mod backprop;
 pub mod bound_gradient;
 pub mod constrained;
 pub mod curves;
+pub mod dual;
+pub mod duality;
+pub mod gap_correction;
 pub mod init;
 pub mod optimizer;
 pub mod plain;
+pub mod price;
 pub mod retrain;
 pub mod robust;
+pub mod validation;
 
 pub use init::{fit_normalization, he_network, new_mlp};
 pub use optimizer::{Optimizer, OptimizerKind};

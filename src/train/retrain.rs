@@ -25,7 +25,7 @@ use crate::threat::requirement::Requirement;
 
 use super::constrained::{
     train_constrained_epochs_with_checks, ConstrainedEpoch, ConstrainedSettings, ConstrainedState,
-    Constraint, Formulation, ValidationCheck,
+    Constraint, ValidationCheck,
 };
 use super::plain::TrainableModel;
 use super::TrainError;
@@ -74,7 +74,8 @@ impl NearMisses {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Keep {
-    /// The weights after the last epoch.
+    /// The weights after the last epoch (their average over the last steps when
+    /// [`ConstrainedSettings::average_tail`] is set).
     Last,
     /// The best feasible iterate (primal-dual with validation data; otherwise the last epoch): among
     /// epochs whose validation certified accuracy reaches the round's threshold, the one with the
@@ -383,7 +384,7 @@ pub fn retrain(
     let selecting = settings.keep != Keep::Last
         && validation.is_some()
         && constrained.measure_certified
-        && matches!(constrained.formulation, Formulation::PrimalDual { .. });
+        && constrained.formulation.is_primal_dual();
     let mut candidates = Candidates::default();
     let mut selection = SelectionThreshold::new(floor, settings.slack_step);
     let mut checks = Vec::new();
@@ -458,9 +459,14 @@ pub fn retrain(
         };
         let chosen = chosen.map(|i| &candidates.kept[i]);
         let feasible_on_validation = chosen.is_some();
+        // Without a chosen candidate: the iterate average when one runs, else the last weights.
+        let averaged = state.average.as_ref().and_then(|a| a.network());
         let (network, selected_epoch) = match chosen {
             Some(best) => (&best.network, best.epoch),
-            None => (&state.network, state.epochs_done as f64),
+            None => (
+                averaged.as_ref().unwrap_or(&state.network),
+                state.epochs_done as f64,
+            ),
         };
         let near_miss = chosen.is_some_and(|c| c.certified < threshold);
         let model = trainable.model_with(network);
