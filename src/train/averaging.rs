@@ -73,7 +73,7 @@ mod tests {
     use nalgebra::{DMatrix, DVector};
 
     fn network(value: f64) -> Network {
-        Network::new(vec![crate::model::Dense {
+        Network::from_dense(vec![crate::model::Dense {
             weights: DMatrix::from_element(1, 2, value),
             bias: DVector::from_element(1, -value),
         }])
@@ -86,8 +86,8 @@ mod tests {
         average.add(&network(1.0), &[0.5, 0.0]);
         average.add(&network(4.0), &[1.5, 2.0]);
         let mean = average.network().expect("two iterates");
-        assert!((mean.layers[0].weights[(0, 1)] - 2.5).abs() < 1e-12);
-        assert!((mean.layers[0].bias[0] + 2.5).abs() < 1e-12);
+        assert!((mean.layers[0].to_dense().weights[(0, 1)] - 2.5).abs() < 1e-12);
+        assert!((mean.layers[0].to_dense().bias[0] + 2.5).abs() < 1e-12);
         assert_eq!(average.multipliers(), Some(vec![1.0, 1.0]));
         assert_eq!(average.count(), 2);
     }
