@@ -285,7 +285,7 @@ impl Converter<'_> {
         {
             return Err(self.unsupported(
                 index,
-                "count_include_pad = 1 with padding is not supported (ballast's average pool divides by the in-range count: use count_include_pad = 0, or pad with a Conv)",
+                "count_include_pad = 1 with padding is not supported (ballast's average pool divides by the number of in-range inputs, as count_include_pad = 0 does)",
             ));
         }
         if attribute(node, "kernel_shape").is_none() {
