@@ -1,4 +1,5 @@
-//! Convolution arithmetic against an outside reference: scipy.signal.correlate.
+//! Convolution arithmetic against an outside reference, scipy.signal.correlate, and the worked example
+//! of docs/model-format.md computed by hand.
 //!
 //! tests/reference/conv_correlate.py (Python 3.11.7, numpy 2.4.6, scipy 1.17.1; the versions are
 //! recorded in its output) draws 40 random 1-D and 2-D cases — channels, kernel sizes, strides,
@@ -61,4 +62,48 @@ fn conv_layers_compute_what_scipy_correlate_computes() {
         }
     }
     println!("largest |ballast - scipy.signal.correlate| = {largest:e}");
+}
+
+// Source: the worked example in docs/model-format.md ("a conv over a [1, 6] signal"), computed by hand.
+#[test]
+fn the_documented_worked_example_gives_the_hand_computed_numbers() {
+    let model = Model::from_json_str(
+        r#"{"format": "ballast.model/1", "input": {"dim": 6, "shape": [1, 6]},
+            "layers": [
+              {"kind": "conv", "kernel": [[[1, -1, 2]], [[0, 1, 0]]], "bias": [0.5, 0],
+               "stride": [2], "padding": [1, 1], "dilation": [1]},
+              {"kind": "relu"},
+              {"kind": "maxpool", "kernel": [2], "stride": [1]},
+              {"kind": "flatten"},
+              {"kind": "dense", "weights": [[1, 0, -1, 0], [0, 1, 0, 1]], "bias": [0, 0]}]}"#,
+    )
+    .unwrap();
+    let x = [1.0, 2.0, 0.0, -1.0, 3.0, 1.0];
+    let close = |what: &str, got: &[f64], want: &[f64]| {
+        assert_eq!(got.len(), want.len(), "{what}");
+        for (g, w) in got.iter().zip(want) {
+            assert!((g - w).abs() <= 1e-12, "{what}: {got:?}, by hand {want:?}");
+        }
+    };
+    // Step by step, as the document lists it.
+    let first = |n: usize| Model {
+        layers: model.layers[..n].to_vec(),
+        ..model.clone()
+    };
+    close(
+        "conv",
+        &deployed::forward(&first(1), &x),
+        &[3.5, 0.5, -1.5, 1.0, 0.0, 3.0],
+    );
+    close(
+        "flatten",
+        &deployed::forward(&first(4), &x),
+        &[3.5, 0.5, 1.0, 3.0],
+    );
+    close("logits", &deployed::forward(&model, &x), &[2.5, 3.5]);
+    close(
+        "logits (network)",
+        model.network().forward(&x).as_slice(),
+        &[2.5, 3.5],
+    );
 }

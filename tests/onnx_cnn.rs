@@ -64,8 +64,8 @@ fn kinds(model: &Model) -> Vec<&'static str> {
 }
 
 /// Compares `ours` with a reference's rows within `tolerance` relative to `1 + |reference|` (float32
-/// graphs: rounding in the last few places of numbers up to about 20); returns the largest
-/// absolute difference.
+/// graphs: rounding in the last few places of logits up to about 60); returns the largest absolute
+/// difference.
 fn compare(what: &str, ours: &[Vec<f64>], theirs: &Value, tolerance: f64) -> f64 {
     let theirs = matrix(theirs);
     assert_eq!(ours.len(), theirs.len(), "{what}: rows");
