@@ -308,10 +308,20 @@ impl DataPath {
     }
 
     /// The data becomes flat (`Flatten`, or a `Reshape` to one feature axis): after spatial layers,
-    /// this writes a `flatten` layer.
+    /// this writes a `flatten` layer. Pending steps are written before it when they have a
+    /// shape-keeping form; otherwise they stay pending (flattening keeps the feature order), to be
+    /// composed with what follows.
     pub fn flatten(&mut self) -> Result<(), String> {
         if self.layout_is_spatial() {
-            self.flush()?;
+            let keeps_shape = match &self.pending {
+                Pending::Diagonal { scale, shift } => {
+                    scale.iter().all(|s| *s > 0.0) || self.per_channel(scale, shift).is_some()
+                }
+                _ => true,
+            };
+            if keeps_shape {
+                self.flush()?;
+            }
             self.layers.push(Layer::Flatten);
             self.layout_shape = Some(vec![self.width()]);
         }

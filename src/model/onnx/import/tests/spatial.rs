@@ -114,12 +114,31 @@ fn elementwise_steps_on_channels_stay_channel_layers() {
         node("Mul", "m", &["a", "m"], "b", vec![]),
         node("Relu", "r", &["b"], "y", vec![]),
     ];
-    let e = import_shaped(nodes, inits, &[2, 3], "y").unwrap_err();
+    let e = import_shaped(nodes, inits.clone(), &[2, 3], "y").unwrap_err();
     assert!(
         e.to_string().contains("node 'r' (Relu)")
             && e.to_string().contains("vary within a channel"),
         "{e}"
     );
+    // Before a flatten and a dense map the same factor is composed into the dense layer.
+    let mut inits = inits;
+    inits.push(constant("v", &[6, 1], &[1.0, 2.0, 3.0, 4.0, 5.0, 6.0]));
+    let nodes = vec![
+        node("Conv", "c", &["x", "w"], "a", vec![]),
+        node("Mul", "m", &["a", "m"], "b", vec![]),
+        node("Flatten", "f", &["b"], "g", vec![]),
+        node("MatMul", "d", &["g", "v"], "y", vec![]),
+    ];
+    let model = import_shaped(nodes, inits, &[2, 3], "y").unwrap();
+    assert!(
+        matches!(model.layers[1], Layer::Flatten),
+        "{:?}",
+        model.layers
+    );
+    // By hand: Σ v_i · m_i · x_i with m = (−1, 1, 1, −1, 1, 1) (the conv is the identity).
+    let x = [1.0, 2.0, 3.0, 4.0, 5.0, 6.0];
+    let expected = -1.0 + 4.0 + 9.0 - 16.0 + 25.0 + 36.0;
+    approx::assert_abs_diff_eq!(model.network().forward(&x)[0], expected, epsilon = 1e-12);
 }
 
 #[test]
