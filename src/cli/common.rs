@@ -18,7 +18,11 @@ pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
     };
     let model = if crate::model::onnx::is_onnx_path(path) {
         // ONNX is converted in memory; its input range is unbounded unless the file's metadata says so.
-        crate::model::onnx::load_onnx(path, max_bytes, &Default::default())?
+        let options = crate::model::onnx::ImportOptions {
+            allow_large,
+            ..Default::default()
+        };
+        crate::model::onnx::load_onnx(path, max_bytes, &options)?
     } else {
         Model::load_with_limit(path, max_bytes)?
     };

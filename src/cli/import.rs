@@ -1,5 +1,6 @@
-//! `ballast import --onnx M.onnx --out M.json`: converts an ONNX graph of fully connected layers into the
-//! `ballast.model/1` layout, adding the valid input range, class names and a name.
+//! `ballast import --onnx M.onnx --out M.json`: converts an ONNX graph of fully connected or
+//! convolutional layers into the `ballast.model/1` layout, adding the valid input range, class names
+//! and a name.
 
 use std::path::{Path, PathBuf};
 
@@ -49,6 +50,7 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     let mut options = ImportOptions {
         name: args.name.clone(),
         score_output: args.output.clone(),
+        allow_large: args.allow_large,
         ..ImportOptions::default()
     };
     if let Some(classes) = &args.classes {
