@@ -220,3 +220,54 @@ fn the_demo_output_folder_is_ignored_by_git() {
     let ignore = std::fs::read_to_string(root().join(".gitignore")).expect(".gitignore");
     assert!(ignore.lines().any(|l| l.trim() == "ballast-demo/"));
 }
+
+/// The rows the input-range policy changed reach the report (policy, rows in the file, row numbers)
+/// and the sheet (a figure and a caution). The fixture's rows 3 and 5 (header = row 1) lie outside
+/// [0, 1]; row 4 lies within four units in the last place of 1 and counts as on it.
+#[test]
+fn range_policy_counts_reach_the_report_and_the_sheet() {
+    let (m, d) = range_fixture(
+        "counts",
+        "0.5,0.2,0\n1.5,0.2,0\n1.0000000000000002,0.9,1\n0.1,-3,1\n0.3,0.4,1\n",
+    );
+    let dir = m.parent().unwrap().to_path_buf();
+    for (policy, clipped, skipped, samples) in [
+        ("clip", vec![3, 5], vec![], 5),
+        ("skip", vec![], vec![3, 5], 3),
+    ] {
+        let report = dir.join(format!("{policy}.json"));
+        let sheet = dir.join(format!("{policy}-sheet"));
+        let (code, _, stderr) = ballast(&[
+            "certify",
+            "--model",
+            m.to_str().unwrap(),
+            "--data",
+            d.to_str().unwrap(),
+            "--eps",
+            "0.01",
+            "--out-of-range",
+            policy,
+            "--report",
+            report.to_str().unwrap(),
+            "--sheet",
+            sheet.to_str().unwrap(),
+        ]);
+        assert_eq!(code, Some(0), "{stderr}");
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(&report).unwrap()).unwrap();
+        let range = &json["data"]["out_of_range"];
+        assert_eq!(range["policy"], policy);
+        assert_eq!(range["rows_in_file"], 5);
+        assert_eq!(range["clipped"], serde_json::json!(clipped));
+        assert_eq!(range["skipped"], serde_json::json!(skipped));
+        assert_eq!(json["data"]["samples"], samples);
+        let md = std::fs::read_to_string(sheet.join("sheet.md")).unwrap();
+        let figure = if policy == "clip" {
+            "| Rows clipped | 2 of 5 |"
+        } else {
+            "| Rows left out | 2 of 5 |"
+        };
+        assert!(md.contains(figure), "{md}");
+        assert!(md.contains("rows 3 and 5 (header = row 1)"), "{md}");
+    }
+}

@@ -89,6 +89,8 @@ pub struct Sources {
     pub data_path: String,
     /// SHA-256 of the data file.
     pub data_sha256: String,
+    /// What the input-range policy did while reading the data file (absent: not recorded).
+    pub data_range: Option<crate::data::RangeCounts>,
 }
 
 impl Sources {
@@ -99,6 +101,7 @@ impl Sources {
             model_sha256: crate::digest::sha256_file(model)?,
             data_path: data.display().to_string(),
             data_sha256: crate::digest::sha256_file(data)?,
+            data_range: None,
         })
     }
 
@@ -117,6 +120,7 @@ impl Sources {
             model_sha256: crate::digest::sha256_bytes(model.to_json_string().as_bytes()),
             data_path: "(in memory)".into(),
             data_sha256: crate::digest::sha256_bytes(&bytes),
+            data_range: None,
         }
     }
 }
@@ -315,6 +319,7 @@ fn empty_report(
             sha256: sources.data_sha256.clone(),
             samples: data.len(),
             rows: data.len(),
+            out_of_range: sources.data_range.clone(),
         },
         requirement: RequirementRecord::new(requirement, &class_name),
         settings: Settings {
@@ -351,6 +356,7 @@ pub fn fingerprint(report: &Report) -> serde_json::Value {
         "model_sha256": report.model.sha256,
         "data_sha256": report.data.sha256,
         "data_rows": report.data.rows,
+        "data_out_of_range": report.data.out_of_range,
         "requirement": report.requirement,
         "settings": report.settings,
     })

@@ -393,8 +393,14 @@ pub struct DataInfo {
     pub sha256: String,
     /// Samples covered by this report.
     pub samples: usize,
-    /// Samples in the whole file (differs from `samples` for a shard).
+    /// Samples in the whole file (differs from `samples` for a shard); rows left out by
+    /// `--out-of-range skip` are not counted (see `out_of_range`).
     pub rows: usize,
+    /// What the input-range policy (`--out-of-range`) did while reading the file: the rows it set to
+    /// the range's nearest end or left out, by row number in the file (header = row 1). Absent in
+    /// reports of earlier versions and of data held in memory.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub out_of_range: Option<crate::data::RangeCounts>,
 }
 
 /// The requirement as recorded in the report.

@@ -12,7 +12,7 @@ use std::sync::Arc;
 use anyhow::{bail, Context};
 
 use super::common::{
-    add_class_change_flags, load_data, load_model, parse_epsilon_argument, parse_norm,
+    add_class_change_flags, load_data_counted, load_model, parse_epsilon_argument, parse_norm,
     resolve_requirement, EpsilonArgument,
 };
 use super::Outcome;
@@ -186,7 +186,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     }
     let shard = args.shard.as_deref().map(parse_shard).transpose()?;
     let model = load_model(&args.model, args.allow_large)?;
-    let data = load_data(
+    let (data, range) = load_data_counted(
         &args.data,
         &model,
         &args.label_column,
@@ -203,8 +203,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             );
         }
     }
-    let sources =
-        Sources::from_files(&args.model, &args.data).context("reading inputs for their digests")?;
+    let sources = Sources {
+        data_range: Some(range),
+        ..Sources::from_files(&args.model, &args.data)
+            .context("reading inputs for their digests")?
+    };
     let options = CertifyOptions {
         pipeline: PipelineOptions {
             budget_seconds: args.budget,

@@ -5,7 +5,7 @@ use std::path::Path;
 
 use anyhow::bail;
 
-use crate::data::{load_csv_counted, DataOptions, Dataset, OutOfRange};
+use crate::data::{load_csv_counted, DataOptions, Dataset, OutOfRange, RangeCounts};
 use crate::model::Model;
 use crate::threat::{Budget, Norm};
 
@@ -34,14 +34,14 @@ pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
 }
 
 /// Loads a data file for `model` under the input-range policy `out_of_range` (`--out-of-range`);
-/// says on stderr how many rows the policy clipped or skipped.
-pub fn load_data(
+/// says on stderr how many rows the policy clipped or skipped and returns what it did (for the report).
+pub fn load_data_counted(
     path: &Path,
     model: &Model,
     label_column: &str,
     out_of_range: &str,
     allow_large: bool,
-) -> anyhow::Result<Dataset> {
+) -> anyhow::Result<(Dataset, RangeCounts)> {
     let options = DataOptions {
         label_column: label_column.to_owned(),
         out_of_range: out_of_range
@@ -54,23 +54,34 @@ pub fn load_data(
         },
     };
     let (data, counts) = load_csv_counted(path, model, &options)?;
-    if counts.clipped_rows > 0 {
+    if counts.clipped_rows() > 0 {
         eprintln!(
             "note: {}: {} of {} rows had values outside the model's input range, set to its nearest end (--out-of-range clip)",
             path.display(),
-            counts.clipped_rows,
+            counts.clipped_rows(),
             data.len()
         );
     }
-    if counts.skipped_rows > 0 {
+    if counts.skipped_rows() > 0 {
         eprintln!(
             "note: {}: {} rows lie outside the model's input range and were left out (--out-of-range skip); {} remain",
             path.display(),
-            counts.skipped_rows,
+            counts.skipped_rows(),
             data.len()
         );
     }
-    Ok(data)
+    Ok((data, counts))
+}
+
+/// [`load_data_counted`] without the record of what the policy did.
+pub fn load_data(
+    path: &Path,
+    model: &Model,
+    label_column: &str,
+    out_of_range: &str,
+    allow_large: bool,
+) -> anyhow::Result<Dataset> {
+    load_data_counted(path, model, label_column, out_of_range, allow_large).map(|(d, _)| d)
 }
 
 /// Parses `--norm`.

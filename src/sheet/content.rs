@@ -234,6 +234,8 @@ pub fn build(report: &Report) -> SheetContent {
             meaning: "samples the interrupted run did not reach; in none of the figures above, open in the verdict".into(),
         });
     }
+    let (range_figures, range_cautions) = super::range_policy::range_notes(report);
+    figures.extend(range_figures);
     if let Some(l) = s.certified_lower_bound {
         figures.push(Figure {
             name: format!("{confidence} lower confidence bound"),
@@ -362,7 +364,18 @@ pub fn build(report: &Report) -> SheetContent {
         ),
         ("Data".to_string(), report.data.path.clone()),
         ("Data SHA-256".to_string(), report.data.sha256.clone()),
-        ("Samples in file".to_string(), report.data.rows.to_string()),
+        (
+            "Samples in file".to_string(),
+            match &report.data.out_of_range {
+                Some(r) if !r.skipped.is_empty() => format!(
+                    "{} of {} rows ({} left out by --out-of-range skip)",
+                    report.data.rows,
+                    r.rows_in_file,
+                    r.skipped.len()
+                ),
+                _ => report.data.rows.to_string(),
+            },
+        ),
         (
             "Tool".to_string(),
             format!("{} {}", report.tool.name, report.tool.version),
@@ -412,12 +425,13 @@ pub fn build(report: &Report) -> SheetContent {
             report.requirement.epsilon, report.requirement.norm
         )
     };
-    let cautions = vec![
+    let mut cautions = vec![
         format!("A certificate covers only the stated budget ({budget}, inside the model's valid input range) and nothing beyond it."),
         "It covers only this model file (the SHA-256 above) and only these samples; any change to either voids it.".into(),
         "Certified and empirical figures describe this acceptance set. Statements about other inputs need the confidence bound, and that bound assumes the samples were drawn independently from the inputs met in service.".into(),
         "This sheet is no safety case. Robustness to small input changes is one piece of evidence; defer to the standards that apply to the system and to licensed engineering practice.".into(),
     ];
+    cautions.splice(2..2, range_cautions);
     SheetContent {
         title: format!(
             "Robustness release sheet: {}",

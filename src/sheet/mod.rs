@@ -11,6 +11,7 @@ pub mod escape;
 pub mod finished;
 pub mod html;
 pub mod markdown;
+pub mod range_policy;
 pub mod svg;
 
 use std::path::{Path, PathBuf};
