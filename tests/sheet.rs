@@ -276,3 +276,76 @@ fn interrupted_sheet_counts_finished_samples_only() {
     assert!(certified > 0, "the check needs a certified finished sample");
     assert!(!text.contains("More search time (--budget)"), "{text}");
 }
+
+/// The tick labels of every axis in `svg`: the text of `<text>` elements that sit at the tick rows
+/// (x ticks) or beside the plot (y ticks, right-aligned), parsed as numbers; `%` is dropped.
+fn tick_labels(svg: &str) -> (Vec<f64>, Vec<f64>) {
+    let text = |line: &str| -> Option<String> {
+        let start = line.find("<text")?;
+        let body = &line[start..];
+        let open = body.find('>')? + 1;
+        let close = body.find("</text>")?;
+        Some(body[open..close].trim_end_matches('%').to_string())
+    };
+    let mut x = Vec::new();
+    let mut y = Vec::new();
+    for line in svg.lines() {
+        let Some(t) = text(line) else { continue };
+        let Ok(v) = t.parse::<f64>() else { continue };
+        if line.contains("stroke=\"#ddd\"") {
+            y.push(v);
+        } else if line.contains("stroke=\"#999\"/><text") {
+            x.push(v);
+        }
+    }
+    (x, y)
+}
+
+/// Steps between ticks are 1, 2 or 5 times a power of ten ("nice numbers": Heckbert, "Nice numbers
+/// for graph labels", Graphics Gems, 1990), and every tick label is written with at most 3 decimals.
+fn assert_nice(ticks: &[f64], what: &str) {
+    assert!(ticks.len() >= 2, "{what}: {ticks:?}");
+    let step = ticks[1] - ticks[0];
+    let mantissa = step / 10f64.powf(step.log10().floor());
+    assert!(
+        [1.0, 2.0, 5.0, 10.0]
+            .iter()
+            .any(|n| (mantissa - n).abs() < 1e-6),
+        "{what}: step {step} in {ticks:?}"
+    );
+    for w in ticks.windows(2) {
+        assert!(((w[1] - w[0]) - step).abs() < 1e-9, "{what}: {ticks:?}");
+    }
+}
+
+#[test]
+fn plots_have_nice_ticks_axis_names_and_no_label_past_the_edge() {
+    let mut report = hostile_report(vec![0.05, 0.1, 0.2]);
+    // Radii with awkward values: the histogram's bins and ticks must still be round.
+    for (k, s) in report.samples.iter_mut().enumerate() {
+        s.radius = Some(0.0170121 * (k + 1) as f64);
+    }
+    let page = html::render(&content::build(&report));
+    let svgs: Vec<&str> = page.split("<svg").skip(1).collect();
+    assert_eq!(svgs.len(), 2, "sweep plot and histogram");
+    for (svg, y_name) in svgs.iter().zip(["robust accuracy", "samples"]) {
+        let (x, y) = tick_labels(svg);
+        assert_nice(&x, "x ticks");
+        assert_nice(&y, "y ticks");
+        assert!(svg.contains("rotate(-90 16 "), "no y-axis name");
+        assert!(
+            svg.contains(&format!(">{y_name}</text>")),
+            "y-axis name {y_name}"
+        );
+        // A label centred at the right edge would be cut off: the last x tick is anchored inside.
+        for line in svg.lines().filter(|l| l.contains("text-anchor=\"middle\"")) {
+            let at: f64 = line
+                .split("<text x=\"")
+                .nth(1)
+                .and_then(|r| r.split('"').next())
+                .and_then(|v| v.parse().ok())
+                .unwrap_or(320.0);
+            assert!(at < 640.0 - 20.0 || !line.contains("</text>"), "{line}");
+        }
+    }
+}

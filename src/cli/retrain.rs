@@ -16,7 +16,6 @@ use super::Outcome;
 use crate::certify::PipelineOptions;
 use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
-use crate::train::curves::{plot_svg, Series};
 use crate::train::plain::split_validation;
 use crate::train::retrain::{
     retrain, Keep, NearMisses, RetrainResult, RetrainSettings, RetrainVerdict,
@@ -440,7 +439,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         .with_context(|| format!("{}: creating the folder", folder.display()))?;
     write(&folder.join("log.csv"), &log_csv(&result))?;
     write(&folder.join("checks.csv"), &checks_csv(&result))?;
-    let (accuracy_svg, multiplier_svg) = curves(&result);
+    let (accuracy_svg, multiplier_svg) = crate::sheet::retrain_plots::retrain_plots(&result, floor);
     write(&folder.join("accuracy.svg"), &accuracy_svg)?;
     write(&folder.join("loss_and_multiplier.svg"), &multiplier_svg)?;
     let described = requirement.describe(&|c| parent.class_name(c));
@@ -516,40 +515,6 @@ pub fn checks_csv(result: &RetrainResult) -> String {
         );
     }
     text
-}
-
-fn curves(result: &RetrainResult) -> (String, String) {
-    let epochs = &result.epochs;
-    let series = |name: &str, f: &dyn Fn(&ConstrainedEpoch) -> Option<f64>| Series {
-        name: name.into(),
-        points: epochs
-            .iter()
-            .filter_map(|e| f(e).map(|v| (e.epoch as f64, v)))
-            .collect(),
-        markers_only: false,
-    };
-    let accuracy = plot_svg(
-        "Validation accuracy per epoch",
-        "epoch",
-        "accuracy",
-        &[
-            series("clean", &|e| e.validation_clean_accuracy),
-            series("certified", &|e| e.validation_certified_accuracy),
-        ],
-    );
-    let multiplier = plot_svg(
-        "Training losses and multiplier λ",
-        "epoch",
-        "value",
-        &[
-            series("clean loss", &|e| Some(e.clean_loss)),
-            series("robust loss", &|e| Some(e.robust_loss)),
-            series("λ (largest)", &|e| {
-                e.multipliers.iter().copied().reduce(f64::max)
-            }),
-        ],
-    );
-    (accuracy, multiplier)
 }
 
 fn sheet_markdown(

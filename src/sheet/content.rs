@@ -2,7 +2,8 @@
 //! the figures with their meaning, the tables, the plot data, the digests, the command line and the
 //! cautions. Every string here is raw (unescaped); the renderers escape it. Nothing here formats markup.
 
-use crate::certify::report::{DecidedBy, Report, Status, Verdict};
+pub use super::histogram::Histogram;
+use crate::certify::report::{DecidedBy, Report, Verdict};
 
 /// A table: headers and rows of cells.
 #[derive(Debug, Clone, PartialEq)]
@@ -35,19 +36,6 @@ pub struct SweepPlot {
     pub empirical: Vec<f64>,
     /// The floor, if any.
     pub floor: Option<f64>,
-}
-
-/// A histogram.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Histogram {
-    /// What is counted.
-    pub title: String,
-    /// The x axis label.
-    pub axis: String,
-    /// Bin edges (`counts.len() + 1` values).
-    pub edges: Vec<f64>,
-    /// Count per bin.
-    pub counts: Vec<usize>,
 }
 
 /// Everything a sheet shows.
@@ -325,7 +313,7 @@ pub fn build(report: &Report) -> SheetContent {
     } else {
         (None, None)
     };
-    let histogram = histogram(report);
+    let histogram = super::histogram::histogram(report);
     let stages = Table {
         headers: [
             "stage",
@@ -459,61 +447,4 @@ pub fn build(report: &Report) -> SheetContent {
         command,
         cautions,
     }
-}
-
-/// Bins used by the histogram.
-const BINS: usize = 20;
-
-fn histogram(report: &Report) -> Option<Histogram> {
-    let radii: Vec<f64> = report
-        .samples
-        .iter()
-        .filter_map(|s| s.radius)
-        .filter(|r| r.is_finite())
-        .collect();
-    let (values, title, axis) = if !radii.is_empty() {
-        (
-            radii,
-            "Certified radius per correctly classified sample".to_string(),
-            "largest epsilon proven by the sound bounds".to_string(),
-        )
-    } else {
-        let margins: Vec<f64> = report
-            .samples
-            .iter()
-            .filter(|s| s.status == Status::Certified)
-            .filter_map(|s| s.margin_lower)
-            .filter(|m| m.is_finite())
-            .collect();
-        (
-            margins,
-            "Certified margin per certified sample".to_string(),
-            "sound lower bound on the logit margin over the budget".to_string(),
-        )
-    };
-    if values.is_empty() {
-        return None;
-    }
-    let low = values
-        .iter()
-        .copied()
-        .fold(f64::INFINITY, f64::min)
-        .min(0.0);
-    let mut high = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-    if high <= low {
-        high = low + 1.0;
-    }
-    let width = (high - low) / BINS as f64;
-    let edges: Vec<f64> = (0..=BINS).map(|k| low + k as f64 * width).collect();
-    let mut counts = vec![0usize; BINS];
-    for v in values {
-        let k = (((v - low) / width) as usize).min(BINS - 1);
-        counts[k] += 1;
-    }
-    Some(Histogram {
-        title,
-        axis,
-        edges,
-        counts,
-    })
 }

@@ -67,7 +67,7 @@ pub fn render(c: &SheetContent) -> String {
         for (k, count) in h.counts.iter().enumerate() {
             if *count > 0 {
                 s.push_str(&format!(
-                    "| {:.4} | {:.4} | {count} |\n",
+                    "| {} | {} | {count} |\n",
                     h.edges[k],
                     h.edges[k + 1]
                 ));
