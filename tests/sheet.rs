@@ -349,3 +349,106 @@ fn plots_have_nice_ticks_axis_names_and_no_label_past_the_edge() {
         }
     }
 }
+
+/// Runs the binary in the project root; panics unless it exits with one of `codes`.
+fn run_ok(args: &[&str], codes: &[i32]) {
+    let out = Command::new(env!("CARGO_BIN_EXE_ballast"))
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .args(args)
+        .output()
+        .expect("the binary runs");
+    let code = out.status.code().unwrap_or(-1);
+    assert!(
+        codes.contains(&code),
+        "{args:?}: exit {code}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
+
+/// A model retrained by `ballast retrain` carries its lineage into every sheet certified on it: the
+/// parent's path and SHA-256 (the digest recorded by retrain, checked against the parent file with the
+/// sha2 crate), the rounds, and which data decided what. Certified on data that steered the retraining
+/// (the training file, which also held the validation rows; or the acceptance file when more than one
+/// round was allowed, so its check decided whether to go on), the sheet cautions that the figures are
+/// optimistically biased; on the acceptance file of a one-round run it does not.
+#[test]
+fn retrained_model_sheet_names_its_parent_and_the_data_that_steered_it() {
+    use sha2::Digest;
+    let dir = tempfile::tempdir().unwrap();
+    let parent = "models/pump-mlp.json";
+    let parent_sha = format!(
+        "{:x}",
+        sha2::Sha256::digest(
+            std::fs::read(Path::new(env!("CARGO_MANIFEST_DIR")).join(parent)).unwrap()
+        )
+    );
+    let caution = "optimistically biased";
+    for rounds in ["1", "2"] {
+        let model = dir.path().join(format!("retrained-{rounds}.json"));
+        let model = model.to_str().unwrap();
+        run_ok(
+            &[
+                "retrain",
+                "--model",
+                parent,
+                "--train",
+                "demo-data/train.csv",
+                "--acceptance",
+                "demo-data/acceptance.csv",
+                "--requirement",
+                "demo-data/requirement.toml",
+                "--epochs",
+                "1",
+                "--round-epochs",
+                "1",
+                "--max-rounds",
+                rounds,
+                "--out",
+                model,
+            ],
+            &[0, 1],
+        );
+        for (data, biased) in [
+            ("demo-data/acceptance.csv", rounds == "2"),
+            ("demo-data/train.csv", true),
+        ] {
+            let sheet = dir.path().join(format!("sheet-{rounds}-{}", data.len()));
+            run_ok(
+                &[
+                    "certify",
+                    "--model",
+                    model,
+                    "--data",
+                    data,
+                    "--requirement",
+                    "demo-data/requirement.toml",
+                    "--no-attack",
+                    "--sheet",
+                    sheet.to_str().unwrap(),
+                ],
+                &[0, 1, 3],
+            );
+            let md = std::fs::read_to_string(sheet.join("sheet.md")).unwrap();
+            assert!(md.contains("## Model lineage"), "{md}");
+            assert!(md.contains(&format!("(SHA-256 {parent_sha})")), "{md}");
+            assert!(
+                md.contains(&format!("in 1 of at most {rounds} rounds")) || rounds == "2",
+                "{md}"
+            );
+            let acceptance_row = md
+                .lines()
+                .find(|l| l.starts_with("| acceptance | demo-data/acceptance.csv |"))
+                .expect("the acceptance row");
+            assert_eq!(
+                acceptance_row.ends_with("| yes |"),
+                rounds == "2",
+                "{acceptance_row}"
+            );
+            assert_eq!(
+                md.contains(caution),
+                biased,
+                "{data}, {rounds} rounds: {md}"
+            );
+        }
+    }
+}

@@ -313,6 +313,7 @@ fn empty_report(
                 .collect(),
             parameters: model.parameter_count(),
             arithmetic: Some(model.arithmetic.name().to_string()),
+            lineage: crate::model::lineage::Lineage::of(model),
         },
         data: DataInfo {
             path: sources.data_path.clone(),

@@ -382,6 +382,10 @@ pub struct ModelInfo {
     /// covered exact arithmetic up to a fixed tolerance.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub arithmetic: Option<String>,
+    /// For a model retrained by ballast: its parent, settings, rounds and which data decided what
+    /// (copied from the model's `provenance.retrain.lineage`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub lineage: Option<crate::model::lineage::Lineage>,
 }
 
 /// The acceptance set the report is about.

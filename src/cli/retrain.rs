@@ -12,6 +12,7 @@ use super::common::{load_data, load_model, Epsilons, RequirementArgs};
 use super::Outcome;
 use crate::certify::PipelineOptions;
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
+use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
 use crate::train::retrain::{
     retrain, Keep, NearMisses, RetrainResult, RetrainSettings, RetrainVerdict,
@@ -411,6 +412,13 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
 
     // Outputs: model, then log and sheet in the folder beside it.
     let last = result.rounds.last().expect("at least one round");
+    let lineage = lineage(
+        &args.model.display().to_string(),
+        &parent_sha256,
+        &settings,
+        &result,
+        &retrain_data(&args, train.len(), validation.len(), acceptance.len()),
+    );
     let mut model = result.model.clone();
     model.provenance = Some(serde_json::json!({
         "parent": parent.provenance.clone().unwrap_or(serde_json::Value::Null),
@@ -428,6 +436,8 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "keep": settings.keep, "near_misses": settings.near_misses,
             },
             "rounds": result.rounds,
+            "multipliers": lineage.multipliers,
+            "lineage": lineage,
             "final": {
                 "verdict": result.verdict,
                 "clean_accuracy": last.clean_accuracy,
@@ -449,7 +459,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     let described = requirement.describe(&|c| parent.class_name(c));
     write(
         &folder.join("retrain.md"),
-        &sheet_markdown(&args, &described, floor, &result, acceptance.len()),
+        &format!(
+            "{}\n{}",
+            sheet_markdown(&args, &described, floor, &result, acceptance.len()),
+            crate::sheet::lineage::retrain_sheet_section(&lineage)
+        ),
     )?;
     println!(
         "retrain: {} after {} round(s): certified accuracy {:.4} (floor {}), clean accuracy {:.4}; model {}, sheet {}",
@@ -468,6 +482,30 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         RetrainVerdict::Met => Outcome::Met,
         RetrainVerdict::NotMet => Outcome::NotMet,
     })
+}
+
+/// Where the training, validation and acceptance rows came from (digests of the files as given).
+fn retrain_data(args: &Args, train: usize, validation: usize, acceptance: usize) -> RetrainData {
+    let file = |p: &Path, rows| DataSource {
+        source: p.display().to_string(),
+        sha256: crate::digest::sha256_file(p).ok(),
+        rows,
+    };
+    RetrainData {
+        train: file(&args.train, train),
+        validation: match &args.val {
+            Some(v) => file(v, validation),
+            None => DataSource {
+                source: format!(
+                    "20% of {} held out (seed {})",
+                    args.train.display(),
+                    args.seed
+                ),
+                ..file(&args.train, validation)
+            },
+        },
+        acceptance: args.acceptance.as_deref().map(|a| file(a, acceptance)),
+    }
 }
 
 fn write(path: &Path, text: &str) -> anyhow::Result<()> {

@@ -1,8 +1,9 @@
 //! Models: the `ballast.model/1` JSON layout ([`layout`]) and the canonical ReLU network every stage
-//! works on ([`network`]).
+//! works on ([`network`]), and the retraining record a retrained model carries ([`lineage`]).
 
 pub mod deployed;
 pub mod layout;
+pub mod lineage;
 pub mod network;
 pub mod onnx;
 

@@ -57,6 +57,8 @@ pub struct SheetContent {
     pub requirement: String,
     /// Each feature's tolerance and radius in the input's units (per-feature budgets only).
     pub budget: Option<Table>,
+    /// For a model retrained by ballast: its lineage and which data decided what.
+    pub lineage: Option<super::lineage::LineageContent>,
     /// The headline figures.
     pub figures: Vec<Figure>,
     /// Whether the figures are exact (nothing unresolved).
@@ -420,6 +422,10 @@ pub fn build(report: &Report) -> SheetContent {
         "This sheet is no safety case. Robustness to small input changes is one piece of evidence; defer to the standards that apply to the system and to licensed engineering practice.".into(),
     ];
     cautions.splice(2..2, range_cautions);
+    let lineage = super::lineage::lineage_content(report).map(|(content, caution)| {
+        cautions.splice(2..2, caution);
+        content
+    });
     SheetContent {
         title: format!(
             "Robustness release sheet: {}",
@@ -436,6 +442,7 @@ pub fn build(report: &Report) -> SheetContent {
         incomplete,
         requirement: report.requirement.description.clone(),
         budget: super::budget::budget_table(report),
+        lineage,
         figures,
         exactness,
         classes,

@@ -79,6 +79,14 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
         s.push_str(&table(t));
     }
+    if let Some(l) = &c.lineage {
+        s.push_str(&format!(
+            "<h2>Model lineage</h2>\n<p>{}</p>\n<p>{}</p>\n",
+            h(&l.text),
+            h(&l.this_data)
+        ));
+        s.push_str(&table(&l.data));
+    }
     s.push_str(
         "<h2>Figures</h2>\n<table>\n<tr><th>figure</th><th>value</th><th>meaning</th></tr>\n",
     );

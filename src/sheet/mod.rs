@@ -12,6 +12,7 @@ pub mod escape;
 pub mod finished;
 pub mod histogram;
 pub mod html;
+pub mod lineage;
 pub mod markdown;
 pub mod range_policy;
 pub mod retrain_plots;

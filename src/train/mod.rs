@@ -35,6 +35,7 @@ pub mod bound_gradient;
 pub mod constrained;
 pub mod curves;
 pub mod init;
+pub mod lineage;
 pub mod optimizer;
 pub mod plain;
 pub mod retrain;
