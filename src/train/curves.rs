@@ -169,6 +169,7 @@ impl Plot<'_> {
             top + plot_h / 2.0,
             escape(self.y_label)
         );
+        let mut verticals = 0;
         for g in self.guides {
             match g {
                 Guide::Horizontal { y, label } if y.is_finite() => {
@@ -183,16 +184,23 @@ impl Plot<'_> {
                     );
                 }
                 Guide::Vertical { x, label } if x.is_finite() => {
+                    // Labels beside the line (right of it unless that runs past the plot), one row
+                    // lower for each further vertical guide so that close guides stay readable.
+                    let x0 = px(*x);
+                    let fits_right = x0 + 3.0 + label.chars().count() as f64 * 7.0 < left + plot_w;
+                    let (tx, anchor) = if fits_right {
+                        (x0 + 3.0, "start")
+                    } else {
+                        (x0 - 3.0, "end")
+                    };
                     let _ = writeln!(
                         svg,
-                        r##"<line x1="{x0:.1}" x2="{x0:.1}" y1="{top}" y2="{:.1}" stroke="#333" stroke-width="1.5" stroke-dasharray="5 3"/><text x="{:.1}" y="{:.1}" fill="#333" text-anchor="{}">{}</text>"##,
+                        r##"<line x1="{x0:.1}" x2="{x0:.1}" y1="{top}" y2="{:.1}" stroke="#333" stroke-width="1.5" stroke-dasharray="5 3"/><text x="{tx:.1}" y="{:.1}" fill="#333" text-anchor="{anchor}">{}</text>"##,
                         top + plot_h,
-                        px(*x),
-                        top + 12.0,
-                        axis::anchor(px(*x), label.chars().count(), left + plot_w),
+                        top + 14.0 + 14.0 * verticals as f64,
                         escape(label),
-                        x0 = px(*x),
                     );
+                    verticals += 1;
                 }
                 _ => {}
             }
