@@ -113,6 +113,27 @@ fn verdict_comes_first_and_sweeps_are_plotted() {
     partial.complete = false;
     let page = html::render(&content::build(&partial));
     assert!(page.contains("INCOMPLETE"));
+    // The sweep's floor epsilons: the proven end is a swept epsilon where the floor passed, the
+    // not-refuted end one where it did not fail, and the proven end is never the larger.
+    let ends = report.floor_epsilons.expect("a sweep with a floor");
+    let verdict_at = |e: f64| {
+        report
+            .sweep
+            .iter()
+            .find(|p| p.epsilon == e)
+            .map(|p| p.summary.verdict)
+    };
+    if let Some(e) = ends.certified {
+        assert_eq!(verdict_at(e), Some(ballast::certify::Verdict::Pass));
+        assert!(ends.empirical >= Some(e));
+    }
+    if let Some(e) = ends.empirical {
+        assert_ne!(verdict_at(e), Some(ballast::certify::Verdict::Fail));
+    }
+    assert!(c
+        .figures
+        .iter()
+        .any(|f| f.name == "Largest epsilon meeting the floor"));
     // One epsilon: no plot.
     let single = hostile_report(vec![0.1]);
     let page = html::render(&content::build(&single));

@@ -8,6 +8,7 @@
 //! terminal progress bar). Soundness rules are those of the stages: nothing is certified without a
 //! sound bound or proof, every counterexample is re-validated, and an exhausted search is `unresolved`.
 
+pub mod floor_epsilon;
 pub mod journal;
 pub mod merge;
 pub mod pipeline;
@@ -343,6 +344,7 @@ fn empty_report(
         per_class: Vec::new(),
         stages: Vec::new(),
         sweep: Vec::new(),
+        floor_epsilons: None,
         seconds: 0.0,
         counterexamples: None,
         samples: Vec::new(),

@@ -588,6 +588,9 @@ pub struct Report {
     pub stages: Vec<StageFigures>,
     /// Figures per epsilon (one entry without a sweep).
     pub sweep: Vec<SweepPoint>,
+    /// For a sweep with a floor: the largest swept epsilons that meet it, proven and not refuted.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub floor_epsilons: Option<super::floor_epsilon::FloorEpsilons>,
     /// Total wall-clock seconds of the run (sum over merged shards).
     pub seconds: f64,
     /// File name of the counterexample CSV beside the report, if one was written.
@@ -613,6 +616,7 @@ impl Report {
                 }
             })
             .collect();
+        self.floor_epsilons = super::floor_epsilon::floor_epsilons(&self.sweep, requirement.floor);
         self.per_class = (0..self.model.classes.len())
             .map(|c| {
                 let of: Vec<&SampleRecord> = self.samples.iter().filter(|s| s.label == c).collect();

@@ -285,5 +285,13 @@ pub fn print_summary(report: &Report) {
             );
         }
     }
+    if let Some(f) = report.floor_epsilons {
+        let shown = |e: Option<f64>| e.map_or("none".to_string(), |e| format!("{e}"));
+        println!(
+            "largest epsilon meeting the floor: proven {}, not refuted {}",
+            shown(f.certified),
+            shown(f.empirical)
+        );
+    }
     println!("verdict: {}", s.verdict.name());
 }

@@ -224,6 +224,18 @@ pub fn build(report: &Report) -> SheetContent {
             meaning: "samples the interrupted run did not reach; in none of the figures above, open in the verdict".into(),
         });
     }
+    if let Some(f) = report.floor_epsilons {
+        let shown = |e: Option<f64>| e.map_or("none".to_string(), |e| format!("{e}"));
+        figures.push(Figure {
+            name: "Largest epsilon meeting the floor".into(),
+            value: format!(
+                "proven {}; not refuted {}",
+                shown(f.certified),
+                shown(f.empirical)
+            ),
+            meaning: "of the swept epsilons: the largest up to which the floor is proven at every one (sound bounds), and the largest up to which it is refuted at none (counterexamples); the true largest lies between the first and the swept epsilon after the second".into(),
+        });
+    }
     let (range_figures, range_cautions) = super::range_policy::range_notes(report);
     figures.extend(range_figures);
     if let Some(l) = s.certified_lower_bound {
