@@ -473,3 +473,93 @@ fn retrained_model_sheet_names_its_parent_and_the_data_that_steered_it() {
         }
     }
 }
+
+/// A real interrupt: certify runs on the hard digits instance (the deep model at eps 0.06, where many
+/// samples need the search), SIGINT arrives once the journal holds finished samples, and the run
+/// stops after the samples in progress. The exit code is 128 + 2 (SIGINT, design.md), the report is
+/// marked incomplete, and the sheet's counts are those of the journal's finished samples: "N of 540
+/// finished", a per-class table adding up to N, "Not run" = 540 − N, and --resume offered.
+#[test]
+fn interrupted_run_sheet_counts_the_journal_after_a_real_sigint() {
+    let dir = tempfile::tempdir().unwrap();
+    let report = dir.path().join("r.json");
+    let journal = dir.path().join("r.journal.jsonl");
+    let sheet = dir.path().join("sheet");
+    let mut child = Command::new(env!("CARGO_BIN_EXE_ballast"))
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .args([
+            "certify",
+            "--model",
+            "tests/data/digits_mlp_deep.model.json",
+            "--data",
+            "tests/data/digits_test.csv",
+            "--eps",
+            "0.06",
+            "--budget",
+            "2",
+            "--report",
+        ])
+        .arg(&report)
+        .arg("--sheet")
+        .arg(&sheet)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("the binary starts");
+    // Wait for finished samples in the journal (its first line is the header).
+    loop {
+        let lines = std::fs::read_to_string(&journal)
+            .map(|t| t.lines().count())
+            .unwrap_or(0);
+        if lines >= 3 {
+            break;
+        }
+        if let Some(status) = child.try_wait().unwrap() {
+            panic!("certify ended before the interrupt: {status}");
+        }
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    let sent = Command::new("kill")
+        .args(["-INT", &child.id().to_string()])
+        .status()
+        .expect("kill runs");
+    assert!(sent.success());
+    let status = child.wait().unwrap();
+    assert_eq!(status.code(), Some(130), "128 + SIGINT");
+    let finished = std::fs::read_to_string(&journal).unwrap().lines().count() - 1;
+    let r = Report::from_json_str(&std::fs::read_to_string(&report).unwrap()).unwrap();
+    assert!(!r.complete);
+    assert_eq!(r.samples.len(), finished);
+    assert!(finished < 540, "every sample finished before the interrupt");
+    let md = std::fs::read_to_string(sheet.join("sheet.md")).unwrap();
+    assert!(
+        md.contains(&format!("| Samples | {finished} of 540 finished |")),
+        "{md}"
+    );
+    assert!(
+        md.contains(&format!("| Not run | {} |", 540 - finished)),
+        "{md}"
+    );
+    assert!(md.contains("--resume"), "{md}");
+    // The per-class table's sample column adds up to the finished samples.
+    let per_class = md
+        .split("## Per class")
+        .nth(1)
+        .unwrap()
+        .split("\n## ")
+        .next()
+        .unwrap();
+    let total: usize = per_class
+        .lines()
+        .filter(|l| l.starts_with("| ") && !l.starts_with("| class") && !l.starts_with("| ---"))
+        .map(|l| {
+            l.split(" | ")
+                .nth(1)
+                .unwrap()
+                .trim()
+                .parse::<usize>()
+                .unwrap()
+        })
+        .sum();
+    assert_eq!(total, finished, "{per_class}");
+}

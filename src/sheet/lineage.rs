@@ -13,7 +13,8 @@ use crate::model::lineage::Lineage;
 pub struct LineageContent {
     /// The paragraph.
     pub text: String,
-    /// One row per data use: role, source, SHA-256, rows, what it decided, whether it steered.
+    /// One row per data use: role, source, the first 16 hex digits of its SHA-256 (the report keeps
+    /// the whole digest), rows, what it decided, whether it steered.
     pub data: Table,
     /// Where this sheet's data stands against the retraining's data.
     pub this_data: String,
@@ -52,9 +53,16 @@ fn summary(lineage: &Lineage) -> String {
 
 fn data_table(lineage: &Lineage) -> Table {
     Table {
-        headers: ["data", "source", "SHA-256", "rows", "decided", "steered"]
-            .map(String::from)
-            .to_vec(),
+        headers: [
+            "data",
+            "source",
+            "SHA-256 (start)",
+            "rows",
+            "decided",
+            "steered",
+        ]
+        .map(String::from)
+        .to_vec(),
         rows: lineage
             .data
             .iter()
@@ -62,7 +70,9 @@ fn data_table(lineage: &Lineage) -> Table {
                 vec![
                     d.role.name().to_string(),
                     d.source.clone(),
-                    d.sha256.clone().unwrap_or_else(|| "–".into()),
+                    d.sha256
+                        .as_deref()
+                        .map_or("–".to_string(), |h| format!("{}…", &h[..h.len().min(16)])),
                     d.rows.to_string(),
                     d.decided.clone(),
                     if d.steered { "yes" } else { "no" }.to_string(),
