@@ -558,3 +558,21 @@ fn unnamed_inputs_and_a_tolerance_file_by_name_get_a_hint() {
         "{stderr}"
     );
 }
+
+/// A value the parser cannot read at all (a sign on a count, a word for a number) is one line naming
+/// the flag, exit 2, like the values the validation step refuses.
+#[test]
+fn unreadable_numbers_are_one_line_naming_the_flag() {
+    assert_one_line_error(
+        &[
+            "attack", "--model", MODEL, "--data", DATA, "--eps", "0.1", "--steps", "-1",
+        ],
+        "error: invalid value '-1' for '--steps <STEPS>': invalid digit found in string",
+    );
+    assert_one_line_error(
+        &[
+            "certify", "--model", MODEL, "--data", DATA, "--eps", "0.1", "--floor", "abc",
+        ],
+        "error: invalid value 'abc' for '--floor <F>': invalid float literal",
+    );
+}
