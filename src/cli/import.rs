@@ -34,7 +34,7 @@ pub struct Args {
     /// Class names, comma-separated, one per class (overrides labels found in the graph).
     #[arg(long, value_name = "A,B,..")]
     pub classes: Option<String>,
-    /// Model name (default: the graph name).
+    /// Model name [default: the graph name].
     #[arg(long)]
     pub name: Option<String>,
     /// The graph output holding the scores, when the graph has several floating-point outputs.

@@ -18,6 +18,7 @@ use crate::model::Model;
 use crate::threat::requirement::{Requirement, RequirementSpec};
 use crate::threat::{Budget, Norm, Targets};
 use crate::train::constrained::{ConstrainedSettings, Constraint, Formulation};
+use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
 use crate::train::retrain::{retrain, Keep, NearMisses, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
@@ -141,8 +142,28 @@ pub fn run_demo(
         &settings,
         &mut |_| {},
     )?;
-    let mut retrained = result.model;
+    let mut retrained = result.model.clone();
     retrained.name = Some("pump-mlp-retrained".into());
+    let digest = |path: &Path| crate::digest::sha256_file(path).ok();
+    let data_source = |path: &Path, rows| DataSource {
+        source: path.display().to_string(),
+        sha256: digest(path),
+        rows,
+    };
+    let lineage = lineage(
+        &bundle.mlp_model.display().to_string(),
+        &digest(&bundle.mlp_model).unwrap_or_default(),
+        &settings,
+        &result,
+        &RetrainData {
+            train: data_source(&bundle.train, train.len()),
+            validation: DataSource {
+                source: format!("20% of {} held out", bundle.train.display()),
+                ..data_source(&bundle.train, validation.as_ref().map_or(0, Dataset::len))
+            },
+            acceptance: Some(data_source(&bundle.acceptance, acceptance.len())),
+        },
+    );
     let mut provenance = retrained
         .provenance
         .take()
@@ -152,12 +173,13 @@ pub fn run_demo(
         "rounds": result.rounds,
         "epochs": result.epochs.len(),
         "retrainer_verdict": result.verdict,
+        "lineage": lineage,
     });
     match &mut provenance {
         serde_json::Value::Object(map) => {
-            map.insert("retraining".into(), retraining);
+            map.insert("retrain".into(), retraining);
         }
-        _ => provenance = serde_json::json!({ "retraining": retraining }),
+        _ => provenance = serde_json::json!({ "retrain": retraining }),
     }
     retrained.provenance = Some(provenance);
     let retrained_path = options.out.join(MODEL_FOLDER).join(RETRAINED_FILE);

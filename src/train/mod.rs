@@ -39,6 +39,7 @@ pub mod dual;
 pub mod duality;
 pub mod gap_correction;
 pub mod init;
+pub mod lineage;
 pub mod optimizer;
 pub mod plain;
 pub mod price;
