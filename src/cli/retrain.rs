@@ -15,6 +15,7 @@ use super::common::{
 use super::Outcome;
 use crate::certify::PipelineOptions;
 use crate::threat::requirement::{RequirementSpec, ToleranceSource};
+use crate::train::confidence::{self, Assessment, ConfidenceSettings};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::curves::{plot_svg, Series};
 use crate::train::plain::split_validation;
@@ -52,6 +53,19 @@ pub struct Args {
     /// Required certified fraction on the acceptance data.
     #[arg(long, allow_hyphen_values = true)]
     pub floor: Option<f64>,
+    /// Judge the floor as a reviewer will: the one-sided Clopper–Pearson lower bound at this level
+    /// (e.g. 0.95) on the acceptance set; training aims at the level that makes that check pass. Needs
+    /// --acceptance or --acceptance-size.
+    #[arg(long, allow_hyphen_values = true)]
+    pub confidence: Option<f64>,
+    /// Size of the reviewer's acceptance set, when the set itself stays with the reviewer (with
+    /// --confidence; not with --acceptance).
+    #[arg(long)]
+    pub acceptance_size: Option<usize>,
+    /// Wanted probability that the reviewer's check passes (with --confidence; default: the
+    /// confidence level).
+    #[arg(long, allow_hyphen_values = true)]
+    pub pass_probability: Option<f64>,
     /// A requirement file (TOML or JSON: epsilon, tolerances, norm, floor, forbid_into, forbid_from);
     /// flags override its values.
     #[arg(long)]
@@ -211,6 +225,19 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             args.near_miss
         );
     }
+    if args.acceptance_size.is_some() && args.acceptance.is_some() {
+        bail!(
+            "--acceptance-size: not allowed with --acceptance, whose size is the acceptance set's"
+        );
+    }
+    if args.acceptance_size == Some(0) {
+        bail!("--acceptance-size: 0 is not allowed, expected a whole number ≥ 1");
+    }
+    if let Some(q) = args.pass_probability {
+        if !(q > 0.0 && q < 1.0) {
+            bail!("--pass-probability: {q} is not allowed, expected a level strictly between 0 and 1 (e.g. 0.95)");
+        }
+    }
     if args.checks_per_epoch == 0 {
         bail!("--checks-per-epoch: 0 is not allowed, expected a whole number ≥ 1");
     }
@@ -318,6 +345,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         spec.norm = Some((parse_norm(norm)?, "--norm".into()));
     }
     spec.floor = args.floor.map(|f| (f, "--floor".to_string()));
+    spec.confidence = args.confidence.map(|c| (c, "--confidence".to_string()));
     add_class_change_flags(
         &mut spec,
         args.forbid_into.as_deref(),
@@ -329,6 +357,21 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     };
     if requirement.epsilons.len() != 1 {
         bail!("--eps: retraining takes one epsilon, not a sweep");
+    }
+    let confidence = ConfidenceSettings {
+        acceptance_size: args.acceptance_size,
+        pass_probability: args.pass_probability,
+    };
+    if requirement.confidence.is_none()
+        && (args.acceptance_size.is_some() || args.pass_probability.is_some())
+    {
+        bail!("--acceptance-size / --pass-probability: only used with --confidence (or confidence in the requirement file)");
+    }
+    if requirement.confidence.is_some()
+        && args.acceptance.is_none()
+        && args.acceptance_size.is_none()
+    {
+        bail!("--confidence: the reviewer's check needs the acceptance set: give --acceptance FILE, or --acceptance-size N when the set stays with the reviewer (the validation data cannot stand in for it)");
     }
 
     let initial = match &hidden {
@@ -383,6 +426,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             margin: args.near_miss,
             tries: args.near_miss_tries,
         },
+        confidence,
     };
     let mut print_epoch = |e: &ConstrainedEpoch| {
         eprintln!(
@@ -432,6 +476,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "empirical_robust_accuracy": last.empirical_robust_accuracy,
                 "acceptance_samples": acceptance.len(),
             },
+            "confidence": result.plan.map(|plan| confidence::json(&plan, &round_assessments(&result))),
         }
     }));
     model.save(&args.out)?;
@@ -461,10 +506,17 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         args.out.display(),
         folder.display()
     );
+    if let (Some(plan), Some(assessment)) = (&result.plan, &last.confidence) {
+        println!("{}", confidence::summary_line(plan, assessment));
+    }
     Ok(match result.verdict {
         RetrainVerdict::Met => Outcome::Met,
         RetrainVerdict::NotMet => Outcome::NotMet,
     })
+}
+
+fn round_assessments(result: &RetrainResult) -> Vec<Option<Assessment>> {
+    result.rounds.iter().map(|r| r.confidence).collect()
 }
 
 fn write(path: &Path, text: &str) -> anyhow::Result<()> {
@@ -560,11 +612,11 @@ fn sheet_markdown(
     acceptance: usize,
 ) -> String {
     let mut md = String::new();
-    let verdict = match result.verdict {
-        RetrainVerdict::Met => {
-            "**met**: the certify pipeline proved the floor on the acceptance data"
-        }
-        RetrainVerdict::NotMet => "**not met**: the floor was not proven on the acceptance data",
+    let met = result.verdict == RetrainVerdict::Met;
+    let verdict = match &result.plan {
+        Some(plan) => confidence::verdict_text(plan, met),
+        None if met => "**met**: the certify pipeline proved the floor on the acceptance data",
+        None => "**not met**: the floor was not proven on the acceptance data",
     };
     let _ = writeln!(md, "# Retraining sheet\n");
     let _ = writeln!(md, "- parent model: `{}`", args.model.display());
@@ -606,6 +658,13 @@ fn sheet_markdown(
                 r.round, j.epoch, j.linear_certified, j.pipeline_certified
             );
         }
+    }
+    if let Some(plan) = &result.plan {
+        let _ = writeln!(
+            md,
+            "\n{}",
+            confidence::markdown(plan, &round_assessments(result))
+        );
     }
     let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
     let _ = writeln!(
