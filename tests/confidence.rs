@@ -348,3 +348,64 @@ fn the_requirement_files_confidence_key_applies() {
     // The wanted pass probability defaults to the confidence level.
     assert_abs_diff_eq!(number(&plan["pass_probability"]), 0.9);
 }
+
+#[test]
+fn the_evidence_follows_the_data_given() {
+    use ballast::data::{load_csv, DataOptions};
+    use ballast::model::Model;
+    use ballast::threat::requirement::RequirementSpec;
+    use ballast::train::confidence::ConfidenceSettings;
+    let model = Model::load(&root().join("models/pump-mlp.json")).expect("model");
+    let load = |file: &str| {
+        load_csv(
+            &root().join("demo-data").join(file),
+            &model,
+            &DataOptions::default(),
+        )
+        .expect("data")
+    };
+    let (train, acceptance) = (load("train.csv"), load("acceptance.csv"));
+    let spec = |confidence: Option<f64>| RequirementSpec {
+        epsilons: Some((vec![0.1], "--eps".into())),
+        floor: Some((0.8, "--floor".into())),
+        confidence: confidence.map(|c| (c, "--confidence".into())),
+        ..Default::default()
+    };
+    let with = spec(Some(0.95)).resolve(&model).expect("requirement");
+    let without = spec(None).resolve(&model).expect("requirement");
+    let sized = |size: usize| ConfidenceSettings {
+        acceptance_size: Some(size),
+        pass_probability: None,
+    };
+    let none = ConfidenceSettings::default();
+    // Validation data standing in for the acceptance data: only a stated size will do.
+    assert!(matches!(
+        Plan::for_run(&with, &none, Some(&train), &train),
+        Err(ConfidenceError::Settings(_))
+    ));
+    let plan = Plan::for_run(&with, &sized(360), Some(&train), &train)
+        .expect("plan")
+        .expect("a confidence level");
+    assert_eq!(plan.evidence, Evidence::Prediction);
+    assert_eq!(
+        (plan.rule.acceptance_size, plan.validation_size),
+        (360, train.len())
+    );
+    let checked = plan.check_requirement(&with);
+    assert_eq!((checked.floor, checked.confidence), (None, None));
+    // Acceptance data of its own: its size, which a stated size must match.
+    let plan = Plan::for_run(&with, &none, Some(&train), &acceptance)
+        .expect("plan")
+        .expect("a confidence level");
+    assert_eq!(plan.evidence, Evidence::AcceptanceData);
+    assert_eq!(plan.rule.acceptance_size, acceptance.len());
+    assert_eq!(plan.check_requirement(&with), with);
+    assert!(Plan::for_run(&with, &sized(359), Some(&train), &acceptance).is_err());
+    assert!(Plan::for_run(&with, &none, None, &acceptance).is_err());
+    // Without a confidence level there is no plan, and its settings are refused.
+    assert_eq!(
+        Plan::for_run(&without, &none, Some(&train), &acceptance),
+        Ok(None)
+    );
+    assert!(Plan::for_run(&without, &sized(360), Some(&train), &acceptance).is_err());
+}

@@ -29,7 +29,7 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 #[derive(Debug, clap::Args)]
 #[command(
     allow_negative_numbers = true,
-    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n\nExit codes: 0 floor proven on the acceptance data, 1 not met, 2 usage or input error."
+    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
 )]
 pub struct Args {
     /// The model to fine-tune (with --hidden: only its input range, names and classes are used).

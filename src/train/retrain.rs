@@ -281,7 +281,8 @@ impl SelectionThreshold {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum RetrainVerdict {
-    /// The certify pipeline proved the floor on the acceptance data.
+    /// The certify pipeline proved the floor on the acceptance data (with a confidence level: the
+    /// reviewer's rule holds, see [`Plan::assess`]).
     Met,
     /// The floor was refuted or could not be proven within the rounds.
     NotMet,
