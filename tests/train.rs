@@ -820,6 +820,7 @@ mod primal_dual {
                 pipeline: ballast::certify::PipelineOptions::default(),
                 keep,
                 near_misses,
+                confidence: Default::default(),
             };
             ballast::train::retrain::retrain(
                 &self.model,

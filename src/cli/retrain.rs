@@ -11,6 +11,7 @@ use anyhow::{bail, Context};
 use super::common::{load_data, load_model, Epsilons, RequirementArgs};
 use super::Outcome;
 use crate::certify::PipelineOptions;
+use crate::train::confidence::{self, Assessment, ConfidenceSettings};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
@@ -25,7 +26,7 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 #[derive(Debug, clap::Args)]
 #[command(
     allow_negative_numbers = true,
-    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n\nExit codes: 0 floor proven on the acceptance data, 1 not met, 2 usage or input error."
+    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
 )]
 pub struct Args {
     /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
@@ -62,6 +63,19 @@ pub struct Args {
     /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
     #[arg(long, help_heading = "Training")]
     pub hidden: Option<String>,
+    /// Judge the floor as a reviewer will: the one-sided Clopper–Pearson lower bound at this level
+    /// (e.g. 0.95) on the acceptance set; training aims at the level that makes that check pass. Needs
+    /// --acceptance or --acceptance-size.
+    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
+    pub confidence: Option<f64>,
+    /// Size of the reviewer's acceptance set, when the set itself stays with the reviewer (with
+    /// --confidence; not with --acceptance).
+    #[arg(long, help_heading = "Requirement")]
+    pub acceptance_size: Option<usize>,
+    /// Wanted probability that the reviewer's check passes (with --confidence) [default: the
+    /// confidence level].
+    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
+    pub pass_probability: Option<f64>,
     /// Epochs of the first round.
     #[arg(long, default_value_t = 30, help_heading = "Training")]
     pub epochs: usize,
@@ -252,6 +266,19 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             args.near_miss
         );
     }
+    if args.acceptance_size.is_some() && args.acceptance.is_some() {
+        bail!(
+            "--acceptance-size: not allowed with --acceptance, whose size is the acceptance set's"
+        );
+    }
+    if args.acceptance_size == Some(0) {
+        bail!("--acceptance-size: 0 is not allowed, expected a whole number ≥ 1");
+    }
+    if let Some(q) = args.pass_probability {
+        if !(q > 0.0 && q < 1.0) {
+            bail!("--pass-probability: {q} is not allowed, expected a level strictly between 0 and 1 (e.g. 0.95)");
+        }
+    }
     if args.checks_per_epoch == 0 {
         bail!("--checks-per-epoch: 0 is not allowed, expected a whole number ≥ 1");
     }
@@ -308,7 +335,9 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     check_outputs(&args.out)?;
 
     let parent = load_model(&args.model, args.allow_large)?;
-    let requirement = args.requirement.resolve(&parent, Epsilons::One, |_| {})?;
+    let requirement = args.requirement.resolve(&parent, Epsilons::One, |spec| {
+        spec.confidence = args.confidence.map(|c| (c, "--confidence".to_string()));
+    })?;
     let Some(floor) = requirement.floor else {
         bail!("--floor: retraining needs a floor (give --floor or a requirement file with floor)");
     };
@@ -350,6 +379,22 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         )?,
         None => validation.clone(),
     };
+
+    let confidence = ConfidenceSettings {
+        acceptance_size: args.acceptance_size,
+        pass_probability: args.pass_probability,
+    };
+    if requirement.confidence.is_none()
+        && (args.acceptance_size.is_some() || args.pass_probability.is_some())
+    {
+        bail!("--acceptance-size / --pass-probability: only used with --confidence (or confidence in the requirement file)");
+    }
+    if requirement.confidence.is_some()
+        && args.acceptance.is_none()
+        && args.acceptance_size.is_none()
+    {
+        bail!("--confidence: the reviewer's check needs the acceptance set: give --acceptance FILE, or --acceptance-size N when the set stays with the reviewer (the validation data cannot stand in for it)");
+    }
 
     let initial = match &hidden {
         Some(h) => {
@@ -404,6 +449,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             margin: args.near_miss,
             tries: args.near_miss_tries,
         },
+        confidence,
     };
     let mut print_epoch = |e: &ConstrainedEpoch| {
         eprintln!(
@@ -464,6 +510,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "empirical_robust_accuracy": last.empirical_robust_accuracy,
                 "acceptance_samples": acceptance.len(),
             },
+            "confidence": result.plan.map(|plan| confidence::json(&plan, &round_assessments(&result))),
         }
     }));
     model.save(&args.out)?;
@@ -497,6 +544,9 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         args.out.display(),
         folder.display()
     );
+    if let (Some(plan), Some(assessment)) = (&result.plan, &last.confidence) {
+        println!("{}", confidence::summary_line(plan, assessment));
+    }
     Ok(match result.verdict {
         RetrainVerdict::Met => Outcome::Met,
         RetrainVerdict::NotMet => Outcome::NotMet,
@@ -525,6 +575,10 @@ fn retrain_data(args: &Args, train: usize, validation: usize, acceptance: usize)
         },
         acceptance: args.acceptance.as_deref().map(|a| file(a, acceptance)),
     }
+}
+
+fn round_assessments(result: &RetrainResult) -> Vec<Option<Assessment>> {
+    result.rounds.iter().map(|r| r.confidence).collect()
 }
 
 fn write(path: &Path, text: &str) -> anyhow::Result<()> {
@@ -608,11 +662,11 @@ fn sheet_markdown(
     prices: &[Price],
 ) -> String {
     let mut md = String::new();
-    let verdict = match result.verdict {
-        RetrainVerdict::Met => {
-            "**met**: the certify pipeline proved the floor on the acceptance data"
-        }
-        RetrainVerdict::NotMet => "**not met**: the floor was not proven on the acceptance data",
+    let met = result.verdict == RetrainVerdict::Met;
+    let verdict = match &result.plan {
+        Some(plan) => confidence::verdict_text(plan, met),
+        None if met => "**met**: the certify pipeline proved the floor on the acceptance data",
+        None => "**not met**: the floor was not proven on the acceptance data",
     };
     let _ = writeln!(md, "# Retraining sheet\n");
     let _ = writeln!(md, "- parent model: `{}`", args.model.display());
@@ -670,6 +724,13 @@ fn sheet_markdown(
                 p.meaning
             );
         }
+    }
+    if let Some(plan) = &result.plan {
+        let _ = writeln!(
+            md,
+            "\n{}",
+            confidence::markdown(plan, &round_assessments(result))
+        );
     }
     let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
     let _ = writeln!(

@@ -17,6 +17,7 @@ use crate::data::{load_csv, DataOptions, Dataset};
 use crate::model::Model;
 use crate::threat::requirement::{Requirement, RequirementSpec};
 use crate::threat::{Budget, Norm, Targets};
+use crate::train::confidence::ConfidenceSettings;
 use crate::train::constrained::{ConstrainedSettings, Constraint, Formulation};
 use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
@@ -281,6 +282,7 @@ pub fn retrain_settings(
         pipeline,
         keep: Keep::BestFeasible,
         near_misses: NearMisses::OFF,
+        confidence: ConfidenceSettings::default(),
     }
 }
 

@@ -28,11 +28,13 @@
 //!
 //! [`retrain::retrain`] runs rounds of the primal-dual trainer ([`constrained`]) with a robust loss
 //! ([`robust`]: interval, linear + interval, or PGD) and checks the floor with the certify pipeline
-//! after each round; `ballast retrain` is its command-line front end.
+//! after each round; `ballast retrain` is its command-line front end. With a confidence level in the
+//! requirement, [`confidence`] sets the level it aims at and the rule its verdict follows.
 
 pub mod averaging;
 pub mod backprop;
 pub mod bound_gradient;
+pub mod confidence;
 pub mod constrained;
 pub mod curves;
 pub mod dual;
