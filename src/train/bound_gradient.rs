@@ -7,12 +7,19 @@
 //! region, the loss is `log(1 + Σ_j exp(−b_j))`, i.e. cross-entropy of the logit vector `(0, −b_j …)` at
 //! the label's position; it is small only when every `b_j` is large. The forward interval values come
 //! from [`crate::bound::interval::batch_margin_lower_bounds`] (so training and certification use the
-//! same interval propagation). The backward linear pass is recomputed here because its gradient needs
+//! same interval propagation: a chain of maps is bounded part by part, its radius through the parts'
+//! magnitude maps in turn). The backward linear pass is recomputed here because its gradient needs
 //! every intermediate coefficient matrix, which `bound/` does not expose; it uses the same relaxation
 //! (upper line `s (z − l)`, `s = u / (u − l)`, adaptive lower slope `α ∈ {0, 1}`) and minimises over the
 //! region's bounding box. The gradient is hand-derived reverse-mode differentiation through both
 //! passes, including the dependence of `s` on the interval bounds `l`, `u`; at the measure-zero set of
 //! kinks (a bound exactly 0, a weight exactly 0) one-sided derivatives are taken.
+//!
+//! Every pass runs on the layers' own structured operations ([`Affine::apply_linear`],
+//! [`Affine::transpose_apply`], [`Affine::bias_dot`], [`Affine::backward`] with and without
+//! `magnitude`) over a block of samples at once, one column per (sample, forbidden class) pair: a
+//! convolution is never written out as a dense matrix. Blocks have a fixed size and their gradients are
+//! summed in order, so the result does not depend on the number of threads.
 //!
 //! These bounds steer training only. Whether a model is certified is decided afterwards by `bound/`
 //! and `certify/`; nothing here reports a sample as certified.
@@ -20,12 +27,15 @@
 use nalgebra::{DMatrix, DVector};
 use rayon::prelude::*;
 
-use crate::bound::interval::batch_margin_lower_bounds;
-use crate::model::{Affine, Dense, Network};
+use crate::bound::interval::{batch_margin_lower_bounds, BatchIntervalBounds};
+use crate::model::{Affine, Network};
 use crate::threat::Region;
 
-use super::backprop::zeros_like;
+use super::backprop::{add_scaled, zeros_like};
 use super::TrainError;
+
+/// Samples per block of the structured passes (fixed, so sums do not depend on the thread count).
+const BLOCK: usize = 16;
 
 /// The certified loss over a batch.
 #[derive(Debug, Clone)]
@@ -69,62 +79,40 @@ pub fn certified_cross_entropy(
     let classifier = network.as_classifier();
     let interval = batch_margin_lower_bounds(&classifier, regions, labels, targets)
         .map_err(|e| TrainError::Data(format!("interval bounds: {e}")))?;
-    let hidden = classifier.layers.len() - 1;
-    // The relaxation below reads the layers in dense form; the gradient is pulled back to each
-    // layer's own parameters at the end (`Affine::pull_back`).
-    let dense: Vec<Dense> = classifier.layers.iter().map(Affine::to_dense).collect();
-    let dense_zero = || -> Vec<Dense> {
-        dense
-            .iter()
-            .map(|d| Dense {
-                weights: DMatrix::zeros(d.output_dim(), d.input_dim()),
-                bias: DVector::zeros(d.output_dim()),
-            })
-            .collect()
+    let beta = if classifier.layers.len() == 1 {
+        0.0
+    } else {
+        linear_weight
     };
     let scale = 1.0 / samples.max(1) as f64;
-    let results: Vec<(f64, f64, Vec<Dense>)> = (0..samples)
-        .into_par_iter()
-        .map(|s| {
-            let lower: Vec<DVector<f64>> = (0..hidden)
-                .map(|k| interval.lower[k].column(s).into_owned())
-                .collect();
-            let upper: Vec<DVector<f64>> = (0..hidden)
-                .map(|k| interval.upper[k].column(s).into_owned())
-                .collect();
-            let mut gradient = dense_zero();
-            let sample = SampleBounds {
-                network: &dense,
-                lower: &lower,
-                upper: &upper,
-                input_lower: &regions[s].outer_lower,
-                input_upper: &regions[s].outer_upper,
-                label: labels[s],
-                targets: &targets[s],
-                interval_margins: &interval.margins[s],
-            };
-            let (loss, worst) =
-                sample.loss_and_gradient(linear_weight, weights[s] * scale, &mut gradient);
-            (loss, worst, gradient)
+    let starts: Vec<usize> = (0..samples).step_by(BLOCK).collect();
+    let blocks: Vec<BlockResult> = starts
+        .par_iter()
+        .map(|&start| {
+            let end = (start + BLOCK).min(samples);
+            let block = Block::new(
+                &classifier,
+                &interval,
+                &regions[start..end],
+                start,
+                &labels[start..end],
+                &targets[start..end],
+            );
+            let factors: Vec<f64> = weights[start..end].iter().map(|w| w * scale).collect();
+            block.loss_and_gradient(beta, &factors)
         })
         .collect();
-    let mut sum = dense_zero();
-    let mut loss = 0.0;
+    let mut total = zeros_like(&classifier);
     let mut sample_losses = Vec::with_capacity(samples);
     let mut worst_margins = Vec::with_capacity(samples);
-    for (s, (l, w, g)) in results.into_iter().enumerate() {
-        for (t, a) in sum.iter_mut().zip(&g) {
-            t.weights += &a.weights;
-            t.bias += &a.bias;
-        }
-        loss += weights[s] * scale * l;
-        sample_losses.push(l);
-        worst_margins.push(w);
+    for block in blocks {
+        add_scaled(&mut total, &block.gradient, 1.0);
+        sample_losses.extend(block.losses);
+        worst_margins.extend(block.worst);
     }
-    let mut total = zeros_like(&classifier);
-    for (k, layer) in classifier.layers.iter().enumerate() {
-        layer.pull_back(&sum[k], &mut total.layers[k]);
-    }
+    let loss = (0..samples)
+        .map(|s| weights[s] * scale * sample_losses[s])
+        .sum();
     Ok(CertifiedBatch {
         loss,
         sample_losses,
@@ -162,6 +150,26 @@ fn sign(x: f64) -> f64 {
     }
 }
 
+/// Adds to `gradient` the parameter gradient of `Σ_p outer_pᵀ (L x_p + s_p β)`, with `L` the linear
+/// part of `layer` and `β = layer(0)` its whole bias (for a chain, every part's bias carried through
+/// the later parts): `Σ_p outer_pᵀ layer(x_p)` plus `(Σ_p (s_p − 1) outer_p)ᵀ layer(0)`, each the
+/// layer's own reverse-mode step.
+fn scaled_backward(
+    layer: &Affine,
+    xs: &DMatrix<f64>,
+    outer: &DMatrix<f64>,
+    scales: &DVector<f64>,
+    gradient: &mut Affine,
+) {
+    layer.backward(xs, outer, gradient, false);
+    let correction = outer * scales.map(|s| s - 1.0);
+    if correction.iter().any(|v| *v != 0.0) {
+        let zero = DMatrix::zeros(layer.input_dim(), 1);
+        let correction = DMatrix::from_column_slice(correction.len(), 1, correction.as_slice());
+        layer.backward(&zero, &correction, gradient, false);
+    }
+}
+
 /// How a hidden unit is relaxed, from its interval bounds.
 #[derive(Debug, Clone, Copy)]
 enum Relaxed {
@@ -191,243 +199,355 @@ fn relax(l: f64, u: f64) -> Relaxed {
     }
 }
 
-/// One sample's interval values and what the loss needs.
-struct SampleBounds<'a> {
-    network: &'a [Dense],
-    lower: &'a [DVector<f64>],
-    upper: &'a [DVector<f64>],
-    input_lower: &'a [f64],
-    input_upper: &'a [f64],
-    label: usize,
-    targets: &'a [usize],
-    interval_margins: &'a [f64],
+/// One block's losses, worst margins and gradient (classifier form, weighted by the sample factors).
+struct BlockResult {
+    losses: Vec<f64>,
+    worst: Vec<f64>,
+    gradient: Network,
 }
 
-impl SampleBounds<'_> {
-    /// Adds `factor · ∂loss/∂θ` into `gradient` (classifier form) and returns `(loss, worst margin)`.
-    fn loss_and_gradient(&self, beta: f64, factor: f64, gradient: &mut [Dense]) -> (f64, f64) {
-        let m = self.targets.len();
-        if m == 0 {
-            return (0.0, f64::INFINITY);
-        }
-        let net = self.network;
-        let hidden = net.len() - 1;
-        let beta = if hidden == 0 { 0.0 } else { beta };
-        let y = self.label;
-        // Boxes: index 0 = input, index k + 1 = after hidden layer k.
-        let mut centre = Vec::with_capacity(hidden + 1);
-        let mut radius = Vec::with_capacity(hidden + 1);
-        let lo = DVector::from_column_slice(self.input_lower);
-        let hi = DVector::from_column_slice(self.input_upper);
-        centre.push((&lo + &hi) * 0.5);
-        radius.push((&hi - &lo) * 0.5);
+/// A block of samples: the network, the interval bounds of its hidden layers (one column per
+/// sample), its boxes and its (sample, forbidden class) pairs.
+struct Block<'a> {
+    network: &'a Network,
+    /// `lower[k]`, `upper[k]`: pre-activation bounds of hidden layer `k`.
+    lower: Vec<DMatrix<f64>>,
+    upper: Vec<DMatrix<f64>>,
+    /// Box centres and radii: index 0 the input box, `k + 1` the ReLU outputs of hidden layer `k`.
+    centre: Vec<DMatrix<f64>>,
+    radius: Vec<DMatrix<f64>>,
+    /// The sample of each pair.
+    owner: Vec<usize>,
+    /// Per sample, its range of pairs.
+    pairs: Vec<std::ops::Range<usize>>,
+    /// `e_label − e_target` per pair (classes × pairs).
+    spec: DMatrix<f64>,
+    /// Interval margin bound per pair.
+    interval_margins: Vec<f64>,
+}
+
+impl<'a> Block<'a> {
+    fn new(
+        network: &'a Network,
+        interval: &BatchIntervalBounds,
+        regions: &[Region],
+        first: usize,
+        labels: &[usize],
+        targets: &[Vec<usize>],
+    ) -> Block<'a> {
+        let count = regions.len();
+        let hidden = network.layers.len() - 1;
+        let columns = |m: &DMatrix<f64>| m.columns(first, count).into_owned();
+        let lower: Vec<DMatrix<f64>> = interval.lower[..hidden].iter().map(columns).collect();
+        let upper: Vec<DMatrix<f64>> = interval.upper[..hidden].iter().map(columns).collect();
+        let dim = network.input_dim();
+        let input_lower = DMatrix::from_fn(dim, count, |i, s| regions[s].outer_lower[i]);
+        let input_upper = DMatrix::from_fn(dim, count, |i, s| regions[s].outer_upper[i]);
+        let mut centre = vec![(&input_lower + &input_upper) * 0.5];
+        let mut radius = vec![(&input_upper - &input_lower) * 0.5];
         for k in 0..hidden {
-            let hl = self.lower[k].map(|v| v.max(0.0));
-            let hu = self.upper[k].map(|v| v.max(0.0));
+            let hl = lower[k].map(|v| v.max(0.0));
+            let hu = upper[k].map(|v| v.max(0.0));
             centre.push((&hu + &hl) * 0.5);
             radius.push((&hu - &hl) * 0.5);
         }
-        let last = &net[hidden];
-        // Spec rows e_y − e_j folded into the last layer.
-        let spec_weights = DMatrix::from_fn(m, last.input_dim(), |t, c| {
-            last.weights[(y, c)] - last.weights[(self.targets[t], c)]
-        });
-        let spec_bias = DVector::from_fn(m, |t, _| last.bias[y] - last.bias[self.targets[t]]);
-
-        // Linear relaxation pass (forward), keeping what the backward pass needs.
-        let mut relaxations: Vec<Vec<Relaxed>> = vec![Vec::new(); hidden];
-        let mut lambda_in: Vec<DMatrix<f64>> = vec![DMatrix::zeros(0, 0); hidden];
-        let mut lambda_relaxed: Vec<DMatrix<f64>> = vec![DMatrix::zeros(0, 0); hidden];
-        let mut linear_margins = DVector::zeros(m);
-        let mut lambda_input = DMatrix::zeros(0, 0);
-        if beta > 0.0 {
-            let mut lambda = spec_weights.clone();
-            let mut constant = spec_bias.clone();
-            for k in (0..hidden).rev() {
-                let units: Vec<Relaxed> = (0..self.lower[k].len())
-                    .map(|i| relax(self.lower[k][i], self.upper[k][i]))
-                    .collect();
-                let mut relaxed = lambda.clone();
-                for (i, unit) in units.iter().enumerate() {
-                    for r in 0..m {
-                        let v = lambda[(r, i)];
-                        relaxed[(r, i)] = match *unit {
-                            Relaxed::Zero => 0.0,
-                            Relaxed::Identity => v,
-                            Relaxed::Unstable {
-                                alpha,
-                                slope,
-                                lower,
-                                ..
-                            } => {
-                                if v >= 0.0 {
-                                    alpha * v
-                                } else {
-                                    constant[r] += v * (-slope * lower);
-                                    slope * v
-                                }
-                            }
-                        };
-                    }
-                }
-                let layer = &net[k];
-                let next = &relaxed * &layer.weights;
-                constant += &relaxed * &layer.bias;
-                relaxations[k] = units;
-                lambda_in[k] = lambda;
-                lambda_relaxed[k] = relaxed;
-                lambda = next;
+        let total: usize = targets.iter().map(Vec::len).sum();
+        let mut spec = DMatrix::zeros(network.output_dim(), total);
+        let mut owner = Vec::with_capacity(total);
+        let mut pairs = Vec::with_capacity(count);
+        let mut interval_margins = Vec::with_capacity(total);
+        for s in 0..count {
+            let start = owner.len();
+            for (t, &j) in targets[s].iter().enumerate() {
+                spec[(labels[s], owner.len())] = 1.0;
+                spec[(j, owner.len())] = -1.0;
+                owner.push(s);
+                interval_margins.push(interval.margins[first + s][t]);
             }
-            let magnitude = lambda.abs();
-            linear_margins = constant + &lambda * &centre[0] - magnitude * &radius[0];
-            lambda_input = lambda;
+            pairs.push(start..owner.len());
+        }
+        Block {
+            network,
+            lower,
+            upper,
+            centre,
+            radius,
+            owner,
+            pairs,
+            spec,
+            interval_margins,
+        }
+    }
+
+    /// The block's losses and the gradient of `Σ_s factors[s] · loss_s`.
+    fn loss_and_gradient(&self, beta: f64, factors: &[f64]) -> BlockResult {
+        let layers = &self.network.layers;
+        let hidden = layers.len() - 1;
+        let last = &layers[hidden];
+        let mut gradient = zeros_like(self.network);
+        let count = self.pairs.len();
+        if self.owner.is_empty() {
+            return BlockResult {
+                losses: vec![0.0; count],
+                worst: vec![f64::INFINITY; count],
+                gradient,
+            };
+        }
+        // The spec pulled back through the last layer: the start of the linear pass and the
+        // coefficients of the interval margin over the last box.
+        let start = last.transpose_apply(&self.spec);
+        let linear = (beta > 0.0).then(|| self.linear_pass(&start));
+
+        // Mixed bound and the loss log(1 + Σ exp(−b_t)) per sample.
+        let mut d_bound = vec![0.0; self.owner.len()];
+        let mut losses = Vec::with_capacity(count);
+        let mut worst = Vec::with_capacity(count);
+        for (s, range) in self.pairs.iter().enumerate() {
+            let bounds: Vec<f64> = range
+                .clone()
+                .map(|p| {
+                    let lin = linear.as_ref().map_or(0.0, |l| l.margins[p]);
+                    beta * lin + (1.0 - beta) * self.interval_margins[p]
+                })
+                .collect();
+            if bounds.is_empty() {
+                losses.push(0.0);
+                worst.push(f64::INFINITY);
+                continue;
+            }
+            let shift = bounds.iter().map(|b| -b).fold(0.0f64, f64::max);
+            let sum: f64 = (-shift).exp() + bounds.iter().map(|b| (-b - shift).exp()).sum::<f64>();
+            losses.push(shift + sum.ln());
+            worst.push(bounds.iter().copied().fold(f64::INFINITY, f64::min));
+            for (p, b) in range.clone().zip(&bounds) {
+                d_bound[p] = -factors[s] * (-b - shift).exp() / sum;
+            }
         }
 
-        // Mixed bound and the loss log(1 + Σ exp(−b_t)).
-        let bounds: Vec<f64> = (0..m)
-            .map(|t| beta * linear_margins[t] + (1.0 - beta) * self.interval_margins[t])
-            .collect();
-        let worst = bounds.iter().copied().fold(f64::INFINITY, f64::min);
-        let shift = bounds.iter().map(|b| -b).fold(0.0f64, f64::max);
-        let sum: f64 = (-shift).exp() + bounds.iter().map(|b| (-b - shift).exp()).sum::<f64>();
-        let loss = shift + sum.ln();
-        let d_bound: Vec<f64> = bounds
-            .iter()
-            .map(|b| -factor * (-b - shift).exp() / sum)
-            .collect();
+        let hidden_rows = |k: usize| DMatrix::zeros(self.lower[k].nrows(), count);
+        let mut d_lower: Vec<DMatrix<f64>> = (0..hidden).map(hidden_rows).collect();
+        let mut d_upper: Vec<DMatrix<f64>> = (0..hidden).map(hidden_rows).collect();
+        let mut d_centre = DMatrix::zeros(last.input_dim(), count);
+        let mut d_radius = DMatrix::zeros(last.input_dim(), count);
 
-        let mut d_lower: Vec<DVector<f64>> =
-            self.lower.iter().map(|v| DVector::zeros(v.len())).collect();
-        let mut d_upper: Vec<DVector<f64>> = d_lower.clone();
-        let width = last.input_dim();
-        let mut d_centre = DVector::zeros(width);
-        let mut d_radius = DVector::zeros(width);
-
-        // Interval margin backward: b_t = a_t · c − |a_t| · r + bias_t.
-        let interval_factor = 1.0 - beta;
-        if interval_factor > 0.0 {
-            let last_gradient = &mut gradient[hidden];
-            for t in 0..m {
-                let d = interval_factor * d_bound[t];
-                let j = self.targets[t];
-                for c in 0..width {
-                    let a = spec_weights[(t, c)];
-                    let g = centre[hidden][c] - sign(a) * radius[hidden][c];
-                    last_gradient.weights[(y, c)] += d * g;
-                    last_gradient.weights[(j, c)] -= d * g;
-                    d_centre[c] += d * a;
-                    d_radius[c] -= d * a.abs();
+        // Interval margin backward: b_p = spec_pᵀ last(c) − |Lᵀ spec_p|ᵀ r over the last box.
+        if beta < 1.0 {
+            let d: Vec<f64> = d_bound.iter().map(|v| (1.0 - beta) * v).collect();
+            let mut outer = DMatrix::zeros(self.spec.nrows(), count);
+            let mut signed = DMatrix::zeros(start.nrows(), self.owner.len());
+            let mut weighted = self.spec.clone();
+            for (p, &s) in self.owner.iter().enumerate() {
+                outer.column_mut(s).axpy(d[p], &self.spec.column(p), 1.0);
+                weighted.column_mut(p).scale_mut(-d[p]);
+                for i in 0..start.nrows() {
+                    let g = start[(i, p)];
+                    signed[(i, p)] = sign(g) * self.radius[hidden][(i, s)];
+                    d_radius[(i, s)] -= d[p] * g.abs();
                 }
-                last_gradient.bias[y] += d;
-                last_gradient.bias[j] -= d;
             }
+            let g = &mut gradient.layers[hidden];
+            d_centre += last.backward(&self.centre[hidden], &outer, g, false);
+            let no_bias = DVector::zeros(self.owner.len());
+            scaled_backward(last, &signed, &weighted, &no_bias, g);
         }
 
         // Linear relaxation backward.
-        if beta > 0.0 {
-            let d_linear = DVector::from_fn(m, |t, _| beta * d_bound[t]);
-            let mut d_lambda = DMatrix::from_fn(m, lambda_input.ncols(), |r, c| {
-                d_linear[r] * (centre[0][c] - sign(lambda_input[(r, c)]) * radius[0][c])
+        if let Some(pass) = &linear {
+            let d_linear = DVector::from_fn(self.owner.len(), |p, _| beta * d_bound[p]);
+            let mut d_lambda = DMatrix::from_fn(pass.input.nrows(), self.owner.len(), |i, p| {
+                let s = self.owner[p];
+                d_linear[p]
+                    * (self.centre[0][(i, s)] - sign(pass.input[(i, p)]) * self.radius[0][(i, s)])
             });
-            let d_constant = d_linear;
             for k in 0..hidden {
-                let layer = &net[k];
-                let relaxed = &lambda_relaxed[k];
-                let d_relaxed =
-                    &d_lambda * layer.weights.transpose() + &d_constant * layer.bias.transpose();
-                gradient[k].weights += relaxed.transpose() * &d_lambda;
-                gradient[k].bias += relaxed.transpose() * &d_constant;
-                let input = &lambda_in[k];
-                let mut d_input = DMatrix::zeros(m, input.ncols());
-                for (i, unit) in relaxations[k].iter().enumerate() {
-                    match *unit {
-                        Relaxed::Zero => {}
-                        Relaxed::Identity => {
-                            for r in 0..m {
-                                d_input[(r, i)] = d_relaxed[(r, i)];
-                            }
-                        }
+                let layer = &layers[k];
+                // Λ_in = Lᵀ R and constant += βᵀ R: R receives L dΛ + β d_constant.
+                let d_relaxed = layer.apply_linear(&d_lambda)
+                    + layer.apply_batch(&DMatrix::zeros(layer.input_dim(), 1))
+                        * d_linear.transpose();
+                scaled_backward(
+                    layer,
+                    &d_lambda,
+                    &pass.relaxed[k],
+                    &d_linear,
+                    &mut gradient.layers[k],
+                );
+                d_lambda = self.relaxation_backward(
+                    k,
+                    &pass.lambda[k],
+                    &d_relaxed,
+                    &d_linear,
+                    &mut d_lower[k],
+                    &mut d_upper[k],
+                );
+            }
+            scaled_backward(
+                last,
+                &d_lambda,
+                &self.spec,
+                &d_linear,
+                &mut gradient.layers[hidden],
+            );
+        }
+
+        // Interval propagation backward through the hidden layers: l = layer(c) − |layer|(r),
+        // u = layer(c) + |layer|(r), with |layer| a chain's magnitude maps in turn.
+        for k in (0..hidden).rev() {
+            let mut d_mid = DMatrix::zeros(self.lower[k].nrows(), count);
+            let mut d_spread = d_mid.clone();
+            for s in 0..count {
+                for i in 0..d_mid.nrows() {
+                    let (d_high, d_low) = (
+                        (d_centre[(i, s)] + d_radius[(i, s)]) * 0.5,
+                        (d_centre[(i, s)] - d_radius[(i, s)]) * 0.5,
+                    );
+                    let dl = d_lower[k][(i, s)]
+                        + if self.lower[k][(i, s)] > 0.0 {
+                            d_low
+                        } else {
+                            0.0
+                        };
+                    let du = d_upper[k][(i, s)]
+                        + if self.upper[k][(i, s)] > 0.0 {
+                            d_high
+                        } else {
+                            0.0
+                        };
+                    d_mid[(i, s)] = dl + du;
+                    d_spread[(i, s)] = du - dl;
+                }
+            }
+            let layer = &layers[k];
+            let g = &mut gradient.layers[k];
+            let d_c = layer.backward(&self.centre[k], &d_mid, g, false);
+            let d_r = layer.backward(&self.radius[k], &d_spread, g, true);
+            if k > 0 {
+                d_centre = d_c;
+                d_radius = d_r;
+            }
+        }
+        BlockResult {
+            losses,
+            worst,
+            gradient,
+        }
+    }
+
+    /// The backward linear relaxation from `start` (the spec pulled back through the last layer),
+    /// keeping every coefficient matrix the gradient needs.
+    fn linear_pass(&self, start: &DMatrix<f64>) -> LinearPass {
+        let layers = &self.network.layers;
+        let hidden = layers.len() - 1;
+        let mut lambda_in = vec![DMatrix::zeros(0, 0); hidden];
+        let mut relaxed_all = vec![DMatrix::zeros(0, 0); hidden];
+        let mut lambda = start.clone();
+        let mut constant = layers[hidden].bias_dot(&self.spec);
+        for k in (0..hidden).rev() {
+            let mut relaxed = lambda.clone();
+            for (p, &s) in self.owner.iter().enumerate() {
+                for i in 0..lambda.nrows() {
+                    let v = lambda[(i, p)];
+                    relaxed[(i, p)] = match relax(self.lower[k][(i, s)], self.upper[k][(i, s)]) {
+                        Relaxed::Zero => 0.0,
+                        Relaxed::Identity => v,
                         Relaxed::Unstable {
                             alpha,
                             slope,
                             lower,
-                            upper,
+                            ..
                         } => {
-                            let mut d_slope = 0.0;
-                            let mut d_product = 0.0; // product = slope · lower
-                            for r in 0..m {
-                                let v = input[(r, i)];
-                                if v >= 0.0 {
-                                    d_input[(r, i)] = alpha * d_relaxed[(r, i)];
-                                } else {
-                                    d_input[(r, i)] =
-                                        slope * d_relaxed[(r, i)] - d_constant[r] * slope * lower;
-                                    d_slope += d_relaxed[(r, i)] * v;
-                                    d_product -= d_constant[r] * v;
-                                }
+                            if v >= 0.0 {
+                                alpha * v
+                            } else {
+                                constant[p] += v * (-slope * lower);
+                                slope * v
                             }
+                        }
+                    };
+                }
+            }
+            let next = layers[k].transpose_apply(&relaxed);
+            constant += layers[k].bias_dot(&relaxed);
+            lambda_in[k] = lambda;
+            relaxed_all[k] = relaxed;
+            lambda = next;
+        }
+        let margins = (0..self.owner.len())
+            .map(|p| {
+                let s = self.owner[p];
+                let mut value = constant[p];
+                for i in 0..lambda.nrows() {
+                    let v = lambda[(i, p)];
+                    value += v * self.centre[0][(i, s)] - v.abs() * self.radius[0][(i, s)];
+                }
+                value
+            })
+            .collect();
+        LinearPass {
+            lambda: lambda_in,
+            relaxed: relaxed_all,
+            input: lambda,
+            margins,
+        }
+    }
+
+    /// Reverse step through the relaxation of hidden layer `k`: from `∂/∂R` (`d_relaxed`) and the
+    /// constant's derivative to `∂/∂Λ` (returned), adding the slope's dependence on the bounds into
+    /// `d_lower`, `d_upper`.
+    fn relaxation_backward(
+        &self,
+        k: usize,
+        lambda: &DMatrix<f64>,
+        d_relaxed: &DMatrix<f64>,
+        d_constant: &DVector<f64>,
+        d_lower: &mut DMatrix<f64>,
+        d_upper: &mut DMatrix<f64>,
+    ) -> DMatrix<f64> {
+        let mut d_input = DMatrix::zeros(lambda.nrows(), lambda.ncols());
+        for (p, &s) in self.owner.iter().enumerate() {
+            for i in 0..lambda.nrows() {
+                match relax(self.lower[k][(i, s)], self.upper[k][(i, s)]) {
+                    Relaxed::Zero => {}
+                    Relaxed::Identity => d_input[(i, p)] = d_relaxed[(i, p)],
+                    Relaxed::Unstable {
+                        alpha,
+                        slope,
+                        lower,
+                        upper,
+                    } => {
+                        let v = lambda[(i, p)];
+                        if v >= 0.0 {
+                            d_input[(i, p)] = alpha * d_relaxed[(i, p)];
+                        } else {
+                            // relaxed = s·v, constant += −s·l·v (product = s·l).
+                            d_input[(i, p)] =
+                                slope * d_relaxed[(i, p)] - d_constant[p] * slope * lower;
+                            let d_slope = d_relaxed[(i, p)] * v;
+                            let d_product = -d_constant[p] * v;
                             let gap = upper - lower;
                             let ds_du = -lower / (gap * gap);
                             let ds_dl = upper / (gap * gap);
                             let dp_dl = slope + lower * ds_dl;
                             let dp_du = lower * ds_du;
-                            d_lower[k][i] += d_slope * ds_dl + d_product * dp_dl;
-                            d_upper[k][i] += d_slope * ds_du + d_product * dp_du;
+                            d_lower[(i, s)] += d_slope * ds_dl + d_product * dp_dl;
+                            d_upper[(i, s)] += d_slope * ds_du + d_product * dp_du;
                         }
                     }
                 }
-                d_lambda = d_input;
-            }
-            // The start of the pass: Λ = C W_last, constant = C b_last.
-            let last_gradient = &mut gradient[hidden];
-            for t in 0..m {
-                let j = self.targets[t];
-                for c in 0..width {
-                    last_gradient.weights[(y, c)] += d_lambda[(t, c)];
-                    last_gradient.weights[(j, c)] -= d_lambda[(t, c)];
-                }
-                last_gradient.bias[y] += d_constant[t];
-                last_gradient.bias[j] -= d_constant[t];
             }
         }
-
-        // Interval propagation backward through the hidden layers.
-        for k in (0..hidden).rev() {
-            let d_high = (&d_centre + &d_radius) * 0.5;
-            let d_low = (&d_centre - &d_radius) * 0.5;
-            let n = self.lower[k].len();
-            let mut d_mid = DVector::zeros(n);
-            let mut d_spread = DVector::zeros(n);
-            for i in 0..n {
-                let dl = d_lower[k][i]
-                    + if self.lower[k][i] > 0.0 {
-                        d_low[i]
-                    } else {
-                        0.0
-                    };
-                let du = d_upper[k][i]
-                    + if self.upper[k][i] > 0.0 {
-                        d_high[i]
-                    } else {
-                        0.0
-                    };
-                d_mid[i] = dl + du;
-                d_spread[i] = du - dl;
-            }
-            let layer = &net[k];
-            let g = &mut gradient[k];
-            for c in 0..layer.input_dim() {
-                for i in 0..n {
-                    g.weights[(i, c)] += d_mid[i] * centre[k][c]
-                        + d_spread[i] * radius[k][c] * sign(layer.weights[(i, c)]);
-                }
-            }
-            g.bias += &d_mid;
-            if k > 0 {
-                d_centre = layer.weights.transpose() * &d_mid;
-                d_radius = layer.weights.abs().transpose() * &d_spread;
-            }
-        }
-        (loss, worst)
+        d_input
     }
+}
+
+/// What the backward linear relaxation keeps for its gradient (one column per pair).
+struct LinearPass {
+    /// `lambda[k]`: coefficients on hidden layer `k`'s pre-activations, before relaxation.
+    lambda: Vec<DMatrix<f64>>,
+    /// `relaxed[k]`: the same after relaxation (coefficients on its ReLU outputs).
+    relaxed: Vec<DMatrix<f64>>,
+    /// Coefficients on the input.
+    input: DMatrix<f64>,
+    /// The linear margin bound per pair.
+    margins: Vec<f64>,
 }
