@@ -322,25 +322,6 @@ impl Conv {
         DVector::from_fn(self.shape.output_dim(), |r, _| bias[r / positions])
     }
 
-    /// The kernel gradient from the gradient with respect to the dense form
-    /// ([`Conv::to_dense_weights`]): the dense form is linear in the kernel, so this is the adjoint of
-    /// writing it out (each kernel entry sums the gradient of every dense entry it fills).
-    pub fn kernel_gradient_from_dense(&self, dense: &DMatrix<f64>) -> DMatrix<f64> {
-        let positions = self.positions();
-        let patch = self.shape.patch_len();
-        let mut kernel = DMatrix::zeros(self.shape.out_channels, patch);
-        for o in 0..self.shape.out_channels {
-            for p in 0..positions {
-                for (e, source) in self.table[p * patch..(p + 1) * patch].iter().enumerate() {
-                    if let Some(s) = source {
-                        kernel[(o, e)] += dense[(o * positions + p, *s)];
-                    }
-                }
-            }
-        }
-        kernel
-    }
-
     /// The same layer written out as a dense matrix (for exact references and small layers only).
     pub fn to_dense_weights(&self) -> DMatrix<f64> {
         let inputs = self.shape.input_dim();

@@ -34,6 +34,7 @@
 pub mod averaging;
 pub mod backprop;
 pub mod bound_gradient;
+pub mod cnn;
 pub mod confidence;
 pub mod constrained;
 pub mod curves;
@@ -49,6 +50,7 @@ pub mod retrain;
 pub mod robust;
 pub mod validation;
 
+pub use cnn::{new_cnn, CnnArchitecture, ConvBlock};
 pub use init::{fit_normalization, he_network, new_mlp};
 pub use optimizer::{Optimizer, OptimizerKind};
 pub use plain::{
