@@ -220,3 +220,36 @@ fn the_demo_output_folder_is_ignored_by_git() {
     let ignore = std::fs::read_to_string(root().join(".gitignore")).expect(".gitignore");
     assert!(ignore.lines().any(|l| l.trim() == "ballast-demo/"));
 }
+
+#[test]
+fn progress_line_only_on_a_terminal_or_when_asked() {
+    // The test's stderr is a pipe, not a terminal: silent by default.
+    let args = ["certify", "--model", MODEL, "--data", DATA, "--eps", "0.05"];
+    let (code, stdout, stderr) = ballast(&args);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(!stderr.contains("progress:"), "{stderr}");
+    let samples = stdout
+        .lines()
+        .find_map(|l| l.strip_prefix("samples: "))
+        .expect("summary names the sample count")
+        .to_string();
+    // Asked for: plain lines on stderr, the last one with every sample, the rate and the estimate;
+    // standard output unchanged.
+    let mut asked = args.to_vec();
+    asked.push("--progress");
+    let (code, stdout_asked, stderr) = ballast(&asked);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert_eq!(stdout_asked, stdout);
+    let last = stderr
+        .lines()
+        .rfind(|l| l.starts_with("progress: "))
+        .unwrap_or_else(|| panic!("no progress line in {stderr:?}"));
+    assert!(
+        last.starts_with(&format!("progress: {samples}/{samples} samples ")),
+        "{last}"
+    );
+    assert!(
+        last.contains(" samples/s, ETA 0s") && last.contains("certified "),
+        "{last}"
+    );
+}

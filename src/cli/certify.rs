@@ -17,7 +17,7 @@ use super::common::{
 };
 use super::Outcome;
 use crate::certify::journal::journal_path;
-use crate::certify::progress::TerminalProgress;
+use crate::certify::progress::{ProgressMode, TerminalProgress};
 use crate::certify::{
     certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report,
     Shard, Sources, Verdict,
@@ -99,6 +99,10 @@ pub struct Args {
     /// Accept inputs above the size limits.
     #[arg(long)]
     pub allow_large: bool,
+    /// Write the progress line (rate, estimated time left) to standard error even when it is not a
+    /// terminal: one line every 10 s and one at the end (on a terminal it is always drawn).
+    #[arg(long)]
+    pub progress: bool,
 }
 
 /// Parses `--shard K/N`.
@@ -230,7 +234,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         signal_hook::flag::register(s, Arc::clone(&cancel))?;
         signal_hook::flag::register_usize(s, Arc::clone(&signal), s as usize)?;
     }
-    let progress = TerminalProgress::new();
+    let progress = TerminalProgress::new(if args.progress {
+        ProgressMode::Lines
+    } else {
+        ProgressMode::Terminal
+    });
     let mut report = certify_run(
         &model,
         &data,
