@@ -3,8 +3,10 @@
 //! The converter picks the score output (the one floating-point graph output, looking through a
 //! ZipMap; `--output` chooses when there are several), walks back to find the nodes it depends on, and
 //! evaluates exactly those nodes in file order on symbolic values: constants, or "the data input after
-//! these layers". Affine steps are composed in f64 into a pending affine map that is flushed as a
-//! `dense` (or a leading `normalize`) layer at each Relu. Final argmax-preserving steps (Softmax,
+//! these layers" ([`DataPath`]). Each affine step becomes its own `dense` or `normalize` layer, so the
+//! model computes with the graph's operations and the deployed-arithmetic bound covers the graph as an
+//! inference engine runs it (merges only where the operations stay the same; see `path`). Final
+//! argmax-preserving steps (Softmax,
 //! LogSoftmax, a LinearClassifier post-transform, then Normalizer) are dropped and recorded in the
 //! provenance. It never guesses: any other operation on the score path is an error naming the node.
 
@@ -14,6 +16,7 @@ use nalgebra::{DMatrix, DVector};
 use prost::Message;
 use serde_json::json;
 
+use super::path::DataPath;
 use super::schema::{
     tensor_proto::DataType, tensor_shape_proto::dimension, type_proto, GraphProto, ModelProto,
     NodeProto,
@@ -41,6 +44,9 @@ pub struct ImportOptions {
     pub feature_names: Option<Vec<String>>,
     /// Name of the graph output that holds the scores, when the graph has several.
     pub score_output: Option<String>,
+    /// The arithmetic the model is deployed in (default: float32 when the graph computes in float32,
+    /// i.e. its data input is FLOAT or a Cast to FLOAT lies on the score path; float64 otherwise).
+    pub arithmetic: Option<Arithmetic>,
 }
 
 /// Metadata keys ballast writes on export and reads back on import.
@@ -76,133 +82,6 @@ pub fn import_model(bytes: &[u8], options: &ImportOptions) -> Result<Model, Onnx
 
 fn graph_error(message: String) -> OnnxError {
     OnnxError::Graph { message }
-}
-
-/// The symbolic value of a tensor on the score path: the data input after `layers` and `pending`.
-#[derive(Debug, Clone)]
-struct DataPath {
-    layers: Vec<Layer>,
-    pending: Pending,
-    /// Shape without the batch dimension.
-    shape: Vec<usize>,
-    /// The final argmax-preserving step already applied, if any; only shape-keeping steps may follow.
-    finished_by: Option<String>,
-    /// True when the values are known positive (after a Softmax or a logistic post-transform).
-    positive: bool,
-    /// The model's class labels, when a classifier node on the path carried them.
-    labels: Option<Vec<String>>,
-    /// Set when a one-row binary LinearClassifier produced a single logit.
-    single_logit: bool,
-    /// After a final Sigmoid on one logit: the Sigmoid node and whether the value is `1 − σ(z)`.
-    sigmoid: Option<(usize, bool)>,
-}
-
-#[derive(Debug, Clone)]
-enum Pending {
-    None,
-    /// `x ↦ scale ⊙ x + shift`.
-    Diagonal {
-        scale: DVector<f64>,
-        shift: DVector<f64>,
-    },
-    /// `x ↦ W x + b`.
-    Full {
-        weights: DMatrix<f64>,
-        bias: DVector<f64>,
-    },
-}
-
-impl DataPath {
-    fn width(&self) -> usize {
-        self.shape.iter().product()
-    }
-
-    fn elementwise(&mut self, scale: DVector<f64>, shift: DVector<f64>) {
-        self.pending = match std::mem::replace(&mut self.pending, Pending::None) {
-            Pending::None => Pending::Diagonal { scale, shift },
-            Pending::Diagonal { scale: s, shift: t } => Pending::Diagonal {
-                scale: s.component_mul(&scale),
-                shift: t.component_mul(&scale) + shift,
-            },
-            Pending::Full { mut weights, bias } => {
-                for (r, mut row) in weights.row_iter_mut().enumerate() {
-                    row *= scale[r];
-                }
-                Pending::Full {
-                    weights,
-                    bias: bias.component_mul(&scale) + shift,
-                }
-            }
-        };
-    }
-
-    fn linear(&mut self, weights: DMatrix<f64>, bias: DVector<f64>) {
-        self.pending = match std::mem::replace(&mut self.pending, Pending::None) {
-            Pending::None => Pending::Full { weights, bias },
-            Pending::Diagonal { scale, shift } => {
-                if self.layers.is_empty() && scale.iter().all(|s| *s > 0.0) {
-                    // A leading normalisation stays its own layer (training keeps it apart).
-                    self.layers.push(normalize_layer(&scale, &shift));
-                    Pending::Full { weights, bias }
-                } else {
-                    let b = &weights * &shift + bias;
-                    let mut w = weights;
-                    for (c, mut column) in w.column_iter_mut().enumerate() {
-                        column *= scale[c];
-                    }
-                    Pending::Full {
-                        weights: w,
-                        bias: b,
-                    }
-                }
-            }
-            Pending::Full {
-                weights: w0,
-                bias: b0,
-            } => Pending::Full {
-                bias: &weights * &b0 + bias,
-                weights: weights * w0,
-            },
-        };
-        self.shape = vec![self.pending_width()];
-    }
-
-    fn pending_width(&self) -> usize {
-        match &self.pending {
-            Pending::None => self.width(),
-            Pending::Diagonal { scale, .. } => scale.len(),
-            Pending::Full { weights, .. } => weights.nrows(),
-        }
-    }
-
-    fn flush(&mut self) {
-        match std::mem::replace(&mut self.pending, Pending::None) {
-            Pending::None => {}
-            Pending::Diagonal { scale, shift } => {
-                if scale.iter().all(|s| (*s - 1.0).abs() == 0.0) && shift.iter().all(|t| *t == 0.0)
-                {
-                    return;
-                }
-                if scale.iter().all(|s| *s > 0.0) {
-                    self.layers.push(normalize_layer(&scale, &shift));
-                } else {
-                    self.layers.push(Layer::Dense {
-                        weights: DMatrix::from_diagonal(&scale),
-                        bias: shift,
-                    });
-                }
-            }
-            Pending::Full { weights, bias } => self.layers.push(Layer::Dense { weights, bias }),
-        }
-    }
-}
-
-/// `scale ⊙ x + shift` written as `(x − mean) / std` with `std = 1/scale`, `mean = −shift/scale`.
-fn normalize_layer(scale: &DVector<f64>, shift: &DVector<f64>) -> Layer {
-    Layer::Normalize {
-        mean: DVector::from_fn(scale.len(), |i, _| -shift[i] / scale[i]),
-        std: scale.map(|s| 1.0 / s),
-    }
 }
 
 #[derive(Debug, Clone)]
@@ -360,16 +239,7 @@ impl<'a> Converter<'a> {
         let input_dim = shape.iter().product();
         symbols.insert(
             input_name.clone(),
-            Symbol::Data(Box::new(DataPath {
-                layers: Vec::new(),
-                pending: Pending::None,
-                shape,
-                finished_by: None,
-                positive: false,
-                labels: None,
-                single_logit: false,
-                sigmoid: None,
-            })),
+            Symbol::Data(Box::new(DataPath::input(shape))),
         );
 
         // Nodes the score depends on, found by walking back from it.
@@ -589,6 +459,7 @@ impl<'a> Converter<'a> {
                         format!("casts the scores to element type {to}; only FLOAT and DOUBLE keep them"),
                     ));
                 }
+                path.float32_cast |= to == DataType::Float as i64;
             }
             (false, "Flatten") => {
                 let axis = int_attribute(node, "axis", 1);
@@ -653,14 +524,14 @@ impl<'a> Converter<'a> {
                     let v = if trans_b { b.values[r * d + col] } else { b.values[col * k + r] };
                     alpha * v
                 });
-                let bias = match c {
+                let (bias, bias_set) = match c {
                     Some(c) => {
                         self.require_finite(index, "C", &c.values)?;
-                        self.broadcast(index, &c, &[k], "C")?.map(|v| beta * v)
+                        (self.broadcast(index, &c, &[k], "C")?.map(|v| beta * v), true)
                     }
-                    None => DVector::zeros(k),
+                    None => (DVector::zeros(k), false),
                 };
-                path.linear(weights, bias);
+                path.linear(weights, bias, bias_set);
             }
             (false, "MatMul") => {
                 if is_final {
@@ -678,7 +549,7 @@ impl<'a> Converter<'a> {
                 self.require_finite(index, "weights", &b.values)?;
                 let k = b.dims[1];
                 let weights = DMatrix::from_fn(k, d, |r, col| b.values[col * k + r]);
-                path.linear(weights, DVector::zeros(k));
+                path.linear(weights, DVector::zeros(k), false);
             }
             (false, "Sigmoid") => {
                 if is_final || path.pending_width() != 1 {
@@ -712,21 +583,19 @@ impl<'a> Converter<'a> {
                 self.require_finite(index, "constant operand", &c.values)?;
                 let shape = path.shape.clone();
                 let c = self.broadcast(index, &c, &shape, "constant operand")?;
-                let n = c.len();
-                let (scale, shift) = match (op, data_first) {
-                    ("Add", _) => (DVector::from_element(n, 1.0), c),
-                    ("Sub", true) => (DVector::from_element(n, 1.0), -c),
-                    ("Sub", false) => (DVector::from_element(n, -1.0), c),
-                    ("Mul", _) => (c, DVector::zeros(n)),
+                match (op, data_first) {
+                    ("Add", _) => path.add(c),
+                    ("Sub", true) => path.add(-c),
+                    ("Sub", false) => path.subtract_from(c),
+                    ("Mul", _) => path.multiply(c),
                     ("Div", true) => {
                         if c.iter().any(|v| *v == 0.0) {
                             return Err(self.unsupported(index, "divides by zero"));
                         }
-                        (c.map(|v| 1.0 / v), DVector::zeros(n))
+                        path.divide(c);
                     }
                     _ => return Err(self.unsupported(index, "constant / data is not affine")),
-                };
-                path.elementwise(scale, shift);
+                }
             }
             (false, "BatchNormalization") => {
                 if is_final {
@@ -752,17 +621,19 @@ impl<'a> Converter<'a> {
                     params.push(self.broadcast(index, &c, &[d], what)?);
                 }
                 let epsilon = float_attribute(node, "epsilon", 1e-5);
-                let mut scale = DVector::zeros(d);
-                let mut shift = DVector::zeros(d);
+                let mut deviation = DVector::zeros(d);
                 for i in 0..d {
                     let denominator = params[3][i] + epsilon;
                     if denominator <= 0.0 {
                         return Err(self.unsupported(index, format!("var + epsilon of feature {i} is {denominator}, expected > 0")));
                     }
-                    scale[i] = params[0][i] / denominator.sqrt();
-                    shift[i] = params[1][i] - params[2][i] * scale[i];
+                    deviation[i] = denominator.sqrt();
                 }
-                path.elementwise(scale, shift);
+                // (x − mean) / sqrt(var + epsilon) · scale + B, step by step as the operator reads.
+                path.add(-&params[2]);
+                path.divide(deviation);
+                path.multiply(params[0].clone());
+                path.add(params[1].clone());
             }
             (true, "Scaler") => {
                 if is_final {
@@ -784,8 +655,9 @@ impl<'a> Converter<'a> {
                 let scale = expand(scale, 1.0, "scale")?;
                 self.require_finite(index, "offset", offset.as_slice())?;
                 self.require_finite(index, "scale", scale.as_slice())?;
-                let shift = -offset.component_mul(&scale);
-                path.elementwise(scale, shift);
+                // (x − offset) · scale, as the operator reads.
+                path.add(-offset);
+                path.multiply(scale);
             }
             (true, "LinearClassifier") => {
                 if is_final {
@@ -899,7 +771,7 @@ impl<'a> Converter<'a> {
             ));
         }
         let weights = DMatrix::from_fn(rows, d, |r, c| coefficients[r * d + c]);
-        path.linear(weights, DVector::from_vec(intercepts));
+        path.linear(weights, DVector::from_vec(intercepts), true);
         path.labels = labels;
         path.single_logit = rows == 1;
         let transform = string_attribute(node, "post_transform").unwrap_or_else(|| "NONE".into());
@@ -1221,21 +1093,23 @@ fn assemble(
         dropped,
         graph_labels,
     } = converted;
-    // The graph evaluates in the element type of its data input: float32 unless it is DOUBLE.
-    let float32 = graph
-        .input
-        .iter()
-        .filter(|i| i.name.as_deref() == Some(input_name.as_str()))
-        .filter_map(|i| match i.r#type.as_ref().and_then(|t| t.value.as_ref()) {
-            Some(type_proto::Value::TensorType(t)) => t.elem_type,
-            _ => None,
-        })
-        .any(|e| e == DataType::Float as i32);
-    let arithmetic = if float32 {
+    // The graph evaluates in the element type of its data input (float32 unless it is DOUBLE), and in
+    // float32 from any Cast to FLOAT on the score path on.
+    let float32 = path.float32_cast
+        || graph
+            .input
+            .iter()
+            .filter(|i| i.name.as_deref() == Some(input_name.as_str()))
+            .filter_map(|i| match i.r#type.as_ref().and_then(|t| t.value.as_ref()) {
+                Some(type_proto::Value::TensorType(t)) => t.elem_type,
+                _ => None,
+            })
+            .any(|e| e == DataType::Float as i32);
+    let arithmetic = options.arithmetic.unwrap_or(if float32 {
         Arithmetic::Float32
     } else {
         Arithmetic::Float64
-    };
+    });
     path.flush();
     if path.layers.is_empty() {
         return Err(graph_error(

@@ -4,7 +4,9 @@
 //! Import follows only the path from the graph's one data input to its score output (the logits,
 //! scores or probabilities); label branches (ArgMax, ZipMap, ArrayFeatureExtractor, label casts) are
 //! ignored. Affine operations (Gemm, MatMul + Add, Sub / Mul / Div by constants, BatchNormalization in
-//! inference form, the `ai.onnx.ml` Scaler and LinearClassifier) are composed exactly in f64; a final
+//! inference form, the `ai.onnx.ml` Scaler and LinearClassifier) become one layer each, with the
+//! graph's numbers, so the model computes as the graph does (certification folds them, with the fold's
+//! error bounded); a final
 //! Softmax (or a classifier's post-transform and a following Normalizer) is dropped because it keeps the
 //! argmax, so the imported model's outputs are logits. Anything else on that path is refused with an
 //! error naming the node, its op type and why — import never approximates an operation it does not
@@ -13,6 +15,7 @@
 
 mod export;
 mod import;
+mod path;
 mod schema;
 mod tensor;
 
