@@ -253,3 +253,40 @@ fn progress_line_only_on_a_terminal_or_when_asked() {
         "{last}"
     );
 }
+
+#[test]
+fn progress_line_names_the_search_phase() {
+    // 60 digits rows at eps 0.05 leave samples open after the bounds, so branch and bound runs.
+    let dir = tempfile::tempdir().unwrap();
+    let text = std::fs::read_to_string(root().join("tests/data/digits_test.csv")).unwrap();
+    let rows: Vec<&str> = text.lines().take(61).collect();
+    let data = dir.path().join("digits60.csv");
+    std::fs::write(&data, rows.join("\n") + "\n").unwrap();
+    let (code, _, stderr) = ballast(&[
+        "certify",
+        "--model",
+        "tests/data/digits_mlp.model.json",
+        "--data",
+        data.to_str().unwrap(),
+        "--eps",
+        "0.05",
+        "--budget",
+        "0.05",
+        "--progress",
+    ]);
+    assert!(matches!(code, Some(0)), "{stderr}");
+    assert!(
+        stderr
+            .lines()
+            .any(|l| l.starts_with("progress: ") && l.contains("branch and bound, ETA ")),
+        "{stderr}"
+    );
+    assert!(
+        stderr
+            .lines()
+            .last()
+            .unwrap_or("")
+            .starts_with("progress: 60/60 samples "),
+        "{stderr}"
+    );
+}

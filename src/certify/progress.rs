@@ -5,10 +5,11 @@
 //! plain line at most every [`LINE_INTERVAL`] and a last line at the end. It never touches standard
 //! output.
 //!
-//! The estimate is the plain average over this run: remaining samples ÷ (samples finished ÷ seconds
-//! since the start). Samples decided by the bounds finish together, samples that need branch and bound
-//! one by one, so early estimates are rough; samples taken over from a journal count as finished but
-//! not in the rate.
+//! The estimate is the plain average over the current phase: remaining samples ÷ (samples finished ÷
+//! seconds since the phase began). The bound stages finish most samples together; the samples left for
+//! branch and bound then finish one by one, so from the start of the search the rate counts only them,
+//! and until the first of them finishes the estimate is the search budget: ⌈remaining ÷ threads⌉ × the
+//! longest budget of a sample. Samples taken over from a journal count as finished but not in the rate.
 
 use std::io::IsTerminal;
 use std::sync::atomic::{AtomicUsize, Ordering};
@@ -41,6 +42,8 @@ struct Tally {
     resumed: usize,
     total: usize,
     last_line: Option<Instant>,
+    /// Once branch and bound started: when, finished samples before it, and the budget of a sample.
+    search: Option<(Instant, usize, f64)>,
 }
 
 /// The progress observer.
@@ -103,6 +106,7 @@ impl TerminalProgress {
                 resumed: 0,
                 total: 0,
                 last_line: None,
+                search: None,
             }),
             done: AtomicUsize::new(0),
             certified: AtomicUsize::new(0),
@@ -114,11 +118,26 @@ impl TerminalProgress {
     /// The line's text after the sample counter: rate, estimate and counts.
     fn message(&self, tally: &Tally) -> String {
         let done = self.done.load(Ordering::Relaxed);
-        let here = done.saturating_sub(tally.resumed);
         let remaining = tally.total.saturating_sub(done);
+        let rate = match tally.search {
+            None => rate_and_eta(
+                done.saturating_sub(tally.resumed),
+                remaining,
+                tally.started.elapsed().as_secs_f64(),
+            ),
+            Some((_, before, each)) if done == before => {
+                let rounds = remaining.div_ceil(rayon::current_num_threads().max(1));
+                format!(
+                    "branch and bound, ETA {}",
+                    format_duration(rounds as f64 * each)
+                )
+            }
+            Some((started, before, _)) => {
+                rate_and_eta(done - before, remaining, started.elapsed().as_secs_f64())
+            }
+        };
         format!(
-            "{}  certified {}  counterexample/misclassified {}  open {}",
-            rate_and_eta(here, remaining, tally.started.elapsed().as_secs_f64()),
+            "{rate}  certified {}  counterexample/misclassified {}  open {}",
             self.certified.load(Ordering::Relaxed),
             self.counterexample.load(Ordering::Relaxed),
             self.open.load(Ordering::Relaxed)
@@ -170,6 +189,20 @@ impl Observer for TerminalProgress {
                 tally.last_line = Some(now);
                 self.write_line(&tally);
             }
+        }
+    }
+
+    fn search_started(&self, _samples: usize, seconds_each: f64) {
+        let mut tally = self.tally.lock().unwrap_or_else(|e| e.into_inner());
+        tally.search = Some((
+            Instant::now(),
+            self.done.load(Ordering::Relaxed),
+            seconds_each,
+        ));
+        self.bar.set_message(self.message(&tally));
+        if self.lines {
+            tally.last_line = Some(Instant::now());
+            self.write_line(&tally);
         }
     }
 
