@@ -9,7 +9,8 @@
 //! seconds since the phase began). The bound stages finish most samples together; the samples left for
 //! branch and bound then finish one by one, so from the start of the search the rate counts only them,
 //! and until the first of them finishes the estimate is the search budget: ⌈remaining ÷ threads⌉ × the
-//! longest budget of a sample. Samples taken over from a journal count as finished but not in the rate.
+//! longest budget of a sample. Before 5 % of the samples finished the estimate reads `?`. Samples taken
+//! over from a journal count as finished but not in the rate.
 
 use std::io::IsTerminal;
 use std::sync::atomic::{AtomicUsize, Ordering};
@@ -119,12 +120,12 @@ impl TerminalProgress {
     fn message(&self, tally: &Tally) -> String {
         let done = self.done.load(Ordering::Relaxed);
         let remaining = tally.total.saturating_sub(done);
+        let here = done.saturating_sub(tally.resumed);
+        let pending = tally.total.saturating_sub(tally.resumed);
         let rate = match tally.search {
-            None => rate_and_eta(
-                done.saturating_sub(tally.resumed),
-                remaining,
-                tally.started.elapsed().as_secs_f64(),
-            ),
+            // Before 5 % of the samples finished, a rate says little (one early sample gave "1 h").
+            None if here * 20 < pending => rate_and_eta(0, remaining, 0.0),
+            None => rate_and_eta(here, remaining, tally.started.elapsed().as_secs_f64()),
             Some((_, before, each)) if done == before => {
                 let rounds = remaining.div_ceil(rayon::current_num_threads().max(1));
                 format!(
