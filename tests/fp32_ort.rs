@@ -304,6 +304,11 @@ fn a_float64_certificate_is_caught_by_the_float32_evaluation() {
             "float64",
         ]);
         assert!(said.contains("deployed in float64"), "{said}");
+        let inspected = ballast(&["inspect", json_text]);
+        assert!(
+            inspected.contains("deployed arithmetic: float64"),
+            "{inspected}"
+        );
         let report = certify(graph, json_text, "0", dir.path());
         assert_eq!(report.model.arithmetic.as_deref(), Some("float64"));
         judge(graph, &report, &mut tally);
