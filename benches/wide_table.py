@@ -106,7 +106,7 @@ if ran("a.ballast"):
     ok = s is not None and wall <= 2 * sec and s["certified"] >= c["certified"]
     row("", "crown_reference.py", f"certified {c['certified']} of {c['correct']} correct",
         f"{sec:.2f} s ({threads} BLAS thr.; process {pwall:.1f} s)", rpeak,
-        f"ballast {wall / sec:.0f}× the reference (≤ 2×, certify ≥): {verdict(ok)}")
+        f"ballast {wall / sec:.2f}× the reference (≤ 2×, certify ≥): {verdict(ok)}")
 
 # (b) attack vs batched PGD
 if ran("b.ballast"):
