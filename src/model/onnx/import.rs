@@ -6,9 +6,9 @@
 //! these layers" ([`DataPath`]). Each affine step becomes its own `dense` or `normalize` layer, so the
 //! model computes with the graph's operations and the deployed-arithmetic bound covers the graph as an
 //! inference engine runs it (merges only where the operations stay the same; see `path`). Final
-//! argmax-preserving steps (Softmax,
-//! LogSoftmax, a LinearClassifier post-transform, then Normalizer) are dropped and recorded in the
-//! provenance. It never guesses: any other operation on the score path is an error naming the node.
+//! argmax-preserving steps (Softmax, LogSoftmax, a LinearClassifier post-transform, then Normalizer) are
+//! dropped and recorded in the provenance. It never guesses: any other operation on the score path is
+//! an error naming the node.
 
 use std::collections::{HashMap, HashSet};
 
@@ -1124,7 +1124,7 @@ fn assemble(
     };
     if layers.iter().any(nan_or_inf) {
         return Err(graph_error(
-            "composing the affine steps overflowed to a non-finite number".into(),
+            "converting the affine steps overflowed to a non-finite number".into(),
         ));
     }
     let range =
