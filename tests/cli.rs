@@ -576,3 +576,73 @@ fn unreadable_numbers_are_one_line_naming_the_flag() {
         "error: invalid value 'abc' for '--floor <F>': invalid float literal",
     );
 }
+
+#[test]
+fn progress_line_only_on_a_terminal_or_when_asked() {
+    // The test's stderr is a pipe, not a terminal: silent by default.
+    let args = ["certify", "--model", MODEL, "--data", DATA, "--eps", "0.05"];
+    let (code, stdout, stderr) = ballast(&args);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(!stderr.contains("progress:"), "{stderr}");
+    let samples = stdout
+        .lines()
+        .find_map(|l| l.strip_prefix("samples: "))
+        .expect("summary names the sample count")
+        .to_string();
+    // Asked for: plain lines on stderr, the last one with every sample, the rate and the estimate;
+    // standard output unchanged.
+    let mut asked = args.to_vec();
+    asked.push("--progress");
+    let (code, stdout_asked, stderr) = ballast(&asked);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert_eq!(stdout_asked, stdout);
+    let last = stderr
+        .lines()
+        .rfind(|l| l.starts_with("progress: "))
+        .unwrap_or_else(|| panic!("no progress line in {stderr:?}"));
+    assert!(
+        last.starts_with(&format!("progress: {samples}/{samples} samples ")),
+        "{last}"
+    );
+    assert!(
+        last.contains(" samples/s, ETA 0s") && last.contains("certified "),
+        "{last}"
+    );
+}
+
+#[test]
+fn progress_line_names_the_search_phase() {
+    // 60 digits rows at eps 0.05 leave samples open after the bounds, so branch and bound runs.
+    let dir = tempfile::tempdir().unwrap();
+    let text = std::fs::read_to_string(root().join("tests/data/digits_test.csv")).unwrap();
+    let rows: Vec<&str> = text.lines().take(61).collect();
+    let data = dir.path().join("digits60.csv");
+    std::fs::write(&data, rows.join("\n") + "\n").unwrap();
+    let (code, _, stderr) = ballast(&[
+        "certify",
+        "--model",
+        "tests/data/digits_mlp.model.json",
+        "--data",
+        data.to_str().unwrap(),
+        "--eps",
+        "0.05",
+        "--budget",
+        "0.05",
+        "--progress",
+    ]);
+    assert!(matches!(code, Some(0)), "{stderr}");
+    assert!(
+        stderr
+            .lines()
+            .any(|l| l.starts_with("progress: ") && l.contains("branch and bound, ETA ")),
+        "{stderr}"
+    );
+    assert!(
+        stderr
+            .lines()
+            .last()
+            .unwrap_or("")
+            .starts_with("progress: 60/60 samples "),
+        "{stderr}"
+    );
+}

@@ -40,6 +40,9 @@ pub trait Observer: Sync {
     fn begin(&self, _total: usize, _pending: usize) {}
     /// A sample is finished.
     fn sample_done(&self, _record: &SampleRecord) {}
+    /// Branch and bound starts on `samples` samples (every other sample is finished), each given at
+    /// most `seconds_each` of search.
+    fn search_started(&self, _samples: usize, _seconds_each: f64) {}
     /// The run is over (finished or interrupted).
     fn end(&self) {}
 }
@@ -223,6 +226,16 @@ pub fn run(
         )?;
     }
     if search && bounds_done {
+        let open: Vec<usize> = states
+            .iter()
+            .zip(&by_sample)
+            .filter(|(state, tasks)| {
+                !tasks.is_empty() && !state.attempts.iter().all(Option::is_some)
+            })
+            .map(|(_, tasks)| tasks.len())
+            .collect();
+        let most = open.iter().copied().max().unwrap_or(0);
+        observer.search_started(open.len(), options.budget_seconds * most as f64);
         let searched: Vec<Option<Result<SampleRecord, CertifyError>>> = states
             .par_iter_mut()
             .zip(by_sample.into_par_iter())

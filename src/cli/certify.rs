@@ -14,7 +14,7 @@ use anyhow::{bail, Context};
 use super::common::{load_data_counted, load_model, Epsilons, RequirementArgs};
 use super::Outcome;
 use crate::certify::journal::journal_path;
-use crate::certify::progress::TerminalProgress;
+use crate::certify::progress::{ProgressMode, TerminalProgress};
 use crate::certify::{
     certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report,
     Shard, Sources, Verdict,
@@ -86,6 +86,10 @@ pub struct Args {
     /// Also render the sheet (Markdown + HTML) into this folder.
     #[arg(long, help_heading = "Output")]
     pub sheet: Option<PathBuf>,
+    /// Write the progress line (rate, estimated time left) to standard error even when it is not a
+    /// terminal: one line every 10 s and one at the end (on a terminal it is always drawn).
+    #[arg(long, help_heading = "Output")]
+    pub progress: bool,
 }
 
 /// Parses `--shard K/N`.
@@ -193,7 +197,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         signal_hook::flag::register(s, Arc::clone(&cancel))?;
         signal_hook::flag::register_usize(s, Arc::clone(&signal), s as usize)?;
     }
-    let progress = TerminalProgress::new();
+    let progress = TerminalProgress::new(if args.progress {
+        ProgressMode::Lines
+    } else {
+        ProgressMode::Terminal
+    });
     let mut report = certify_run(
         &model,
         &data,

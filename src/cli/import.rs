@@ -6,12 +6,13 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 
+use crate::engine::Arithmetic;
 use crate::model::onnx::{load_onnx, ImportOptions};
 
 /// Arguments of `ballast import`.
 #[derive(Debug, clap::Args)]
 #[command(
-    after_help = "Example: ballast import --onnx mlp.onnx --out mlp.json --input-range 0,1 --classes normal,worn"
+    after_help = "Example: ballast import --onnx mlp.onnx --out mlp.json --input-range 0,1 --classes normal,worn [--arithmetic float64]"
 )]
 pub struct Args {
     /// The ONNX file to convert.
@@ -40,6 +41,10 @@ pub struct Args {
     /// The graph output holding the scores, when the graph has several floating-point outputs.
     #[arg(long, value_name = "NAME")]
     pub output: Option<String>,
+    /// The arithmetic the model runs in where it is deployed, which certificates cover: float32 or
+    /// float64 (default: the graph's own, float32 for a FLOAT input).
+    #[arg(long, value_name = "float32|float64")]
+    pub arithmetic: Option<String>,
     /// Accept files above the size limits.
     #[arg(long)]
     pub allow_large: bool,
@@ -47,10 +52,19 @@ pub struct Args {
 
 /// Runs `ballast import`.
 pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
+    let arithmetic = match args.arithmetic.as_deref() {
+        None => None,
+        Some("float32") => Some(Arithmetic::Float32),
+        Some("float64") => Some(Arithmetic::Float64),
+        Some(other) => {
+            bail!("--arithmetic: \"{other}\" is not an arithmetic, expected float32 or float64")
+        }
+    };
     let mut options = ImportOptions {
         name: args.name.clone(),
         score_output: args.output.clone(),
         allow_large: args.allow_large,
+        arithmetic,
         ..ImportOptions::default()
     };
     if let Some(classes) = &args.classes {
@@ -98,13 +112,14 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     crate::atomic::write_file(&args.out, text.as_bytes())
         .with_context(|| format!("writing {}", args.out.display()))?;
     println!(
-        "imported {} -> {}: {} inputs, {} outputs, {} layers, {} parameters",
+        "imported {} -> {}: {} inputs, {} outputs, {} layers, {} parameters, deployed in {}",
         args.onnx.display(),
         args.out.display(),
         model.input.dim,
         model.output_dim(),
         model.layers.len(),
-        model.parameter_count()
+        model.parameter_count(),
+        model.arithmetic.name()
     );
     Ok(super::Outcome::Finished)
 }

@@ -117,6 +117,11 @@ pub fn describe(model: &Model) -> String {
         .map(|c| model.class_name(c))
         .collect();
     let _ = writeln!(s, "classes: {}", classes.join(", "));
+    let _ = writeln!(
+        s,
+        "deployed arithmetic: {} (certificates cover evaluation in it)",
+        model.arithmetic.name()
+    );
     let _ = writeln!(s, "input range:");
     for i in 0..model.input.dim {
         let _ = writeln!(

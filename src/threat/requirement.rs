@@ -228,7 +228,8 @@ impl RequirementSpec {
             }
         }
         epsilons.sort_by(f64::total_cmp);
-        epsilons.dedup_by(|a, b| (*a - *b).abs() <= 1e-15 * b.abs().max(1.0));
+        // Values within rounding of each other (relative, so a sweep of tiny radii keeps its values).
+        epsilons.dedup_by(|a, b| (*a - *b).abs() <= 1e-15 * b.abs());
         let fraction = |value: &Option<(f64, String)>,
                         open_ends: bool|
          -> Result<Option<f64>, RequirementError> {
@@ -683,6 +684,20 @@ mod tests {
         assert!(e.contains("--eps") && e.contains("abc"), "{e}");
         assert!(parse_epsilon_list("-1", "--eps").is_err());
         assert!(parse_epsilon_list("0.1:0.05:0.01", "--eps").is_err());
+    }
+
+    #[test]
+    fn a_sweep_keeps_tiny_distinct_radii_and_merges_rounding_twins() {
+        let spec = |v: Vec<f64>| RequirementSpec {
+            epsilons: Some((v, "--eps".into())),
+            ..Default::default()
+        };
+        let r = spec(vec![3e-17, 1e-17, 2e-17]).resolve(&model()).unwrap();
+        assert_eq!(r.epsilons.len(), 3, "{:?}", r.epsilons);
+        assert!(r.epsilons[0] < r.epsilons[1] && r.epsilons[1] < r.epsilons[2]);
+        // 0.1 + 0.2 and 0.3 differ by one unit in the last place: one radius.
+        let r = spec(vec![0.1 + 0.2, 0.3]).resolve(&model()).unwrap();
+        assert_eq!(r.epsilons.len(), 1);
     }
 
     #[test]

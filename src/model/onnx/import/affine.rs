@@ -1,10 +1,11 @@
 //! The affine nodes on flat features: Gemm, MatMul, elementwise Add / Sub / Mul / Div with a
-//! constant, BatchNormalization on `[batch, features]`, and the `ai.onnx.ml` Scaler. Each becomes a
-//! step of the pending affine map ([`DataPath`]), composed in f64.
+//! constant, BatchNormalization on `[batch, features]`, and the `ai.onnx.ml` Scaler. Each becomes its
+//! own step of the [`DataPath`], with the graph's numbers and operations (never composed with its
+//! neighbours: that would change the rounding the deployed-arithmetic bound covers).
 //!
-//! Guarantee: the composed map is the node's definition applied to the data, up to the f64 rounding of
-//! the composition (a subtraction followed by a division is kept exactly). Constants are broadcast by
-//! numpy rules and refused, naming the node, when they do not fit.
+//! Guarantee: each layer computes the node's definition as the operator reads it (BatchNormalization
+//! as `(x − mean) / sqrt(var + epsilon) · scale + B`, Scaler as `(x − offset) · scale`). Constants are
+//! broadcast by numpy rules and refused, naming the node, when they do not fit.
 
 use nalgebra::{DMatrix, DVector};
 
@@ -68,15 +69,18 @@ impl Converter<'_> {
             };
             alpha * v
         });
-        let bias = match operands.constant_at(2) {
+        let (bias, bias_set) = match operands.constant_at(2) {
             Some(c) => {
                 self.require_finite(index, "C", &c.values)?;
-                self.broadcast(index, &c, &[k], "C")?.map(|v| beta * v)
+                (
+                    self.broadcast(index, &c, &[k], "C")?.map(|v| beta * v),
+                    true,
+                )
             }
-            None => DVector::zeros(k),
+            None => (DVector::zeros(k), false),
         };
-        path.linear(weights, bias);
-        Ok(())
+        path.linear(weights, bias, bias_set)
+            .map_err(|e| self.unsupported(index, e))
     }
 
     pub(super) fn matmul(&self, operands: &Operands, path: &mut DataPath) -> Result<(), OnnxError> {
@@ -103,8 +107,8 @@ impl Converter<'_> {
         self.require_finite(index, "weights", &b.values)?;
         let k = b.dims[1];
         let weights = DMatrix::from_fn(k, d, |r, col| b.values[col * k + r]);
-        path.linear(weights, DVector::zeros(k));
-        Ok(())
+        path.linear(weights, DVector::zeros(k), false)
+            .map_err(|e| self.unsupported(index, e))
     }
 
     /// Add, Sub, Mul or Div of the data and a constant (either order; Div only as data / constant).
@@ -129,20 +133,19 @@ impl Converter<'_> {
         self.require_finite(index, "constant operand", &c.values)?;
         let shape = path.shape.clone();
         let c = self.broadcast(index, c, &shape, "constant operand")?;
-        let n = c.len();
         match (op, operands.data_first) {
-            ("Add", _) => path.elementwise(DVector::from_element(n, 1.0), c),
-            ("Sub", true) => path.subtract(c),
-            ("Sub", false) => path.elementwise(DVector::from_element(n, -1.0), c),
-            ("Mul", _) => path.elementwise(c, DVector::zeros(n)),
+            ("Add", _) => path.add(c),
+            ("Sub", true) => path.add(-c),
+            ("Sub", false) => path.subtract_from(c),
+            ("Mul", _) => path.multiply(c),
             _ => {
                 if c.iter().any(|v| *v == 0.0) {
                     return Err(self.unsupported(index, "divides by zero"));
                 }
-                path.divide(c);
+                path.divide(c)
             }
         }
-        Ok(())
+        .map_err(|e| self.unsupported(index, e))
     }
 
     /// The four parameter inputs of a BatchNormalization broadcast to `channels` values each
@@ -204,10 +207,14 @@ impl Converter<'_> {
         let d = path.width();
         let ([gamma, beta, mean, variance], epsilon) =
             self.batch_norm_parameters(operands, path, d)?;
-        let scale = DVector::from_fn(d, |i, _| gamma[i] / (variance[i] + epsilon).sqrt());
-        let shift = DVector::from_fn(d, |i, _| beta[i] - mean[i] * scale[i]);
-        path.elementwise(scale, shift);
-        Ok(())
+        let deviation = DVector::from_fn(d, |i, _| (variance[i] + epsilon).sqrt());
+        // (x − mean) / sqrt(var + epsilon) · scale + B, step by step as the operator reads.
+        let index = operands.index;
+        path.add(-mean)
+            .and_then(|()| path.divide(deviation))
+            .and_then(|()| path.multiply(gamma))
+            .and_then(|()| path.add(beta))
+            .map_err(|e| self.unsupported(index, e))
     }
 
     pub(super) fn scaler(&self, index: usize, path: &mut DataPath) -> Result<(), OnnxError> {
@@ -231,9 +238,10 @@ impl Converter<'_> {
         let scale = expand(scale, 1.0, "scale")?;
         self.require_finite(index, "offset", offset.as_slice())?;
         self.require_finite(index, "scale", scale.as_slice())?;
-        let shift = -offset.component_mul(&scale);
-        path.elementwise(scale, shift);
-        Ok(())
+        // (x − offset) · scale, as the operator reads.
+        path.add(-offset)
+            .and_then(|()| path.multiply(scale))
+            .map_err(|e| self.unsupported(index, e))
     }
 
     /// Broadcasts a constant (numpy rules, leading batch dimension of size 1 allowed) to `shape`.

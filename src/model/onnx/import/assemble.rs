@@ -95,21 +95,23 @@ pub(super) fn assemble(
         dropped,
         graph_labels,
     } = converted;
-    // The graph evaluates in the element type of its data input: float32 unless it is DOUBLE.
-    let float32 = graph
-        .input
-        .iter()
-        .filter(|i| i.name.as_deref() == Some(input_name.as_str()))
-        .filter_map(|i| match i.r#type.as_ref().and_then(|t| t.value.as_ref()) {
-            Some(type_proto::Value::TensorType(t)) => t.elem_type,
-            _ => None,
-        })
-        .any(|e| e == DataType::Float as i32);
-    let arithmetic = if float32 {
+    // The graph evaluates in the element type of its data input (float32 unless it is DOUBLE), and in
+    // float32 from any Cast to FLOAT on the score path on.
+    let float32 = path.float32_cast
+        || graph
+            .input
+            .iter()
+            .filter(|i| i.name.as_deref() == Some(input_name.as_str()))
+            .filter_map(|i| match i.r#type.as_ref().and_then(|t| t.value.as_ref()) {
+                Some(type_proto::Value::TensorType(t)) => t.elem_type,
+                _ => None,
+            })
+            .any(|e| e == DataType::Float as i32);
+    let arithmetic = options.arithmetic.unwrap_or(if float32 {
         Arithmetic::Float32
     } else {
         Arithmetic::Float64
-    };
+    });
     path.flush()
         .map_err(|e| graph_error(format!("at the score output: {e}")))?;
     if path.layers.is_empty() {
@@ -140,7 +142,7 @@ pub(super) fn assemble(
     };
     if layers.iter().any(nan_or_inf) {
         return Err(graph_error(
-            "composing the affine steps overflowed to a non-finite number".into(),
+            "converting the affine steps overflowed to a non-finite number".into(),
         ));
     }
     let range =

@@ -180,7 +180,8 @@ impl Converter<'_> {
             ));
         }
         let weights = DMatrix::from_fn(rows, d, |r, c| coefficients[r * d + c]);
-        path.linear(weights, DVector::from_vec(intercepts));
+        path.linear(weights, DVector::from_vec(intercepts), true)
+            .map_err(|e| self.unsupported(index, e))?;
         path.labels = labels;
         path.single_logit = rows == 1;
         let transform = string_attribute(node, "post_transform").unwrap_or_else(|| "NONE".into());

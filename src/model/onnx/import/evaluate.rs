@@ -138,6 +138,7 @@ impl Converter<'_> {
                         format!("casts the scores to element type {to}; only FLOAT and DOUBLE keep them"),
                     ));
                 }
+                path.float32_cast |= to == DataType::Float as i64;
             }
             (false, "Flatten") => {
                 let axis = int_attribute(node, "axis", 1);

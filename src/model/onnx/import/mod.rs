@@ -3,10 +3,10 @@
 //! The converter picks the score output (the one floating-point graph output, looking through a
 //! ZipMap; `--output` chooses when there are several), walks back to find the nodes it depends on, and
 //! evaluates exactly those nodes in file order on symbolic values: constants, or "the data input after
-//! these layers" ([`path::DataPath`]). Affine steps on flat features are composed in f64 and written as
-//! a `dense` (or a leading `normalize`) layer at each Relu; convolutions, pooling and batch
-//! normalisation on channel data become the layout's `conv`, `maxpool` / `averagepool` and `batchnorm`
-//! layers one for one. Final argmax-preserving steps (Softmax, LogSoftmax, a LinearClassifier
+//! these layers" ([`path::DataPath`]). Each affine step becomes its own `dense` or `normalize` layer
+//! (never composed with its neighbours, so the deployed-arithmetic bound covers the graph as an
+//! inference engine runs it); convolutions, pooling and batch normalisation on channel data become the
+//! layout's `conv`, `maxpool` / `averagepool` and `batchnorm` layers one for one. Final argmax-preserving steps (Softmax, LogSoftmax, a LinearClassifier
 //! post-transform, then Normalizer) are dropped and recorded in the provenance. It never guesses: any
 //! other operation or attribute on the score path is an error naming the node and its op type.
 //!
@@ -33,6 +33,7 @@ use prost::Message;
 use super::schema::{GraphProto, ModelProto, NodeProto};
 use super::tensor::{attribute, decode_tensor, floats_attribute, ints_attribute, Constant};
 use super::OnnxError;
+use crate::engine::Arithmetic;
 use crate::model::Model;
 use path::DataPath;
 
@@ -56,6 +57,9 @@ pub struct ImportOptions {
     /// that unfolds into more window entries than that, is refused (the graph only claims these
     /// sizes; no tensor in the file backs them).
     pub allow_large: bool,
+    /// The arithmetic the model is deployed in (default: float32 when the graph computes in float32,
+    /// i.e. its data input is FLOAT or a Cast to FLOAT lies on the score path; float64 otherwise).
+    pub arithmetic: Option<Arithmetic>,
 }
 
 /// Metadata keys ballast writes on export and reads back on import.

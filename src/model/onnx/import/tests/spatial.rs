@@ -120,7 +120,7 @@ fn elementwise_steps_on_channels_stay_channel_layers() {
             && e.to_string().contains("vary within a channel"),
         "{e}"
     );
-    // Before a flatten and a dense map the same factor is composed into the dense layer.
+    // Before a flatten the same factor is a diagonal dense layer after the flatten.
     let mut inits = inits;
     inits.push(constant("v", &[6, 1], &[1.0, 2.0, 3.0, 4.0, 5.0, 6.0]));
     let nodes = vec![
@@ -131,7 +131,15 @@ fn elementwise_steps_on_channels_stay_channel_layers() {
     ];
     let model = import_shaped(nodes, inits, &[2, 3], "y").unwrap();
     assert!(
-        matches!(model.layers[1], Layer::Flatten),
+        matches!(
+            model.layers[..],
+            [
+                Layer::Conv(_),
+                Layer::Flatten,
+                Layer::Dense { .. },
+                Layer::Dense { .. }
+            ]
+        ),
         "{:?}",
         model.layers
     );
