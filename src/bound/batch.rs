@@ -8,7 +8,7 @@
 use nalgebra::{DMatrix, DVector};
 
 use super::{Domain, LayerBounds, MarginBounds, Method, SplitState, CERTIFY_TOLERANCE};
-use crate::engine::backward::{self, Choices, Objectives};
+use crate::engine::backward::{self, Choices, Keep, Objectives};
 use crate::engine::intermediate::{self, Given, HiddenBounds, Tightness};
 use crate::engine::slopes::{self, SlopeSettings};
 use crate::engine::{Domains, Engine};
@@ -119,7 +119,7 @@ pub(crate) fn margin_bounds(
                 &domains,
                 objectives.clone(),
                 Choices::default(),
-                false,
+                Keep::Minimisers,
             );
             (Some(result.lower), Some(result.minimiser))
         }

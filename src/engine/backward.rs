@@ -42,12 +42,24 @@ pub struct Choices<'a> {
     pub multipliers: Option<&'a [DMatrix<f64>]>,
 }
 
+/// What [`run`] returns besides the bounds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Keep {
+    /// Only the lower bounds (the minimiser matrix has no rows).
+    Bounds,
+    /// The bounds and each column's minimiser.
+    Minimisers,
+    /// Also the coefficients on every hidden layer's output.
+    Everything,
+}
+
 /// The result of a backward pass.
 #[derive(Debug, Clone)]
 pub struct Backward {
     /// Sound lower bound per column (`+∞` for a column of an empty domain).
     pub lower: Vec<f64>,
-    /// Per column, the input minimising the final linear function over the domain's input set.
+    /// Per column, the input minimising the final linear function over the domain's input set (no
+    /// rows unless asked for).
     pub minimiser: DMatrix<f64>,
     /// When recorded: per hidden layer, the coefficients on its ReLU output (units × columns).
     pub on_hidden: Vec<DMatrix<f64>>,
@@ -73,7 +85,7 @@ pub fn run(
     domains: &Domains,
     objectives: Objectives,
     choices: Choices,
-    record: bool,
+    keep: Keep,
 ) -> Backward {
     let Objectives {
         top,
@@ -98,7 +110,11 @@ pub fn run(
         }
         k -= 1;
         let relax = &hidden.relax[k];
-        let mut next = g.clone();
+        let (mut next, original) = if keep == Keep::Everything {
+            (g.clone(), Some(g))
+        } else {
+            (g, None)
+        };
         for j in 0..columns {
             let d = domain[j];
             let lower_slope = relax.lower_slope.column(d);
@@ -127,7 +143,7 @@ pub fn run(
             }
             constant[j] += add;
         }
-        if record {
+        if let Some(g) = original {
             on_hidden.push(g);
         }
         a = next;
@@ -136,7 +152,8 @@ pub fn run(
     // Concretise over each domain's input set.
     let dim = g.nrows();
     let mut lower = vec![0.0; columns];
-    let mut minimiser = DMatrix::zeros(dim, columns);
+    let minimisers = keep != Keep::Bounds;
+    let mut minimiser = DMatrix::zeros(if minimisers { dim } else { 0 }, columns);
     for j in 0..columns {
         let d = domain[j];
         let region = domains.regions[d];
@@ -150,6 +167,9 @@ pub fn run(
                     let (lo, hi) = (domains.lower[(i, d)], domains.upper[(i, d)]);
                     value += if w > 0.0 { w * lo } else { w * hi };
                     size += w.abs() * domains.magnitude[(i, d)];
+                    if !minimisers {
+                        continue;
+                    }
                     let (inner_lo, inner_hi) =
                         (domains.inner_lower[(i, d)], domains.inner_upper[(i, d)]);
                     minimiser[(i, j)] = if w > 0.0 {
@@ -167,7 +187,9 @@ pub fn run(
                 let row: Vec<f64> = coefficients.iter().copied().collect();
                 let (value, point) = concretise::minimum_with_point(region, &row);
                 lower[j] = constant[j] + value;
-                minimiser.column_mut(j).copy_from_slice(&point);
+                if minimisers {
+                    minimiser.column_mut(j).copy_from_slice(&point);
+                }
                 // |aᵀc| + Σ|aᵢ δᵢ| + μ(Σ δᵢ²/rᵢ² + 1) with |δᵢ| ≤ rᵢ and μ ≤ ‖a∘r‖/2 (docs/bounds.md).
                 let mut size = 0.0;
                 let mut norm = 0.0;

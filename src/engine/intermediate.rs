@@ -11,7 +11,7 @@
 use nalgebra::DMatrix;
 use rayon::prelude::*;
 
-use super::backward::{self, Choices, Objectives};
+use super::backward::{self, Choices, Keep, Objectives};
 use super::{Domains, Engine};
 use crate::bound::LayerBounds;
 
@@ -247,7 +247,7 @@ fn refine(
                 domains,
                 objectives,
                 Choices::default(),
-                false,
+                Keep::Bounds,
             );
             chunk
                 .iter()

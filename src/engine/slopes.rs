@@ -11,7 +11,7 @@
 
 use nalgebra::{DMatrix, DVector};
 
-use super::backward::{self, Backward, Choices, Objectives};
+use super::backward::{self, Backward, Choices, Keep, Objectives};
 use super::intermediate::HiddenBounds;
 use super::{Domains, Engine};
 
@@ -120,7 +120,7 @@ pub fn optimise(
         domains,
         objectives.clone(),
         Choices::default(),
-        false,
+        Keep::Minimisers,
     );
     let mut open: Vec<usize> = (0..columns)
         .filter(|&j| best.lower[j] <= threshold[j] && best.lower[j].is_finite())
@@ -161,7 +161,7 @@ pub fn optimise(
                 slopes: Some(&sub_slopes),
                 multipliers: has_splits.then_some(&sub_multipliers[..]),
             },
-            true,
+            Keep::Everything,
         );
         for (c, &j) in open.iter().enumerate() {
             if result.lower[c] > best.lower[j] {

@@ -19,7 +19,7 @@ use rayon::prelude::*;
 
 use super::SearchSettings;
 use crate::bound::{LayerBounds, Method, SplitState};
-use crate::engine::backward::{self, Choices, Objectives};
+use crate::engine::backward::{self, Choices, Keep, Objectives};
 use crate::engine::intermediate::{self, Given, HiddenBounds, Tightness};
 use crate::engine::slopes::{self, SlopeSettings};
 use crate::engine::{Domains, Engine};
@@ -217,7 +217,7 @@ fn bound_chunk(
             &domains,
             objectives.clone(),
             Choices::default(),
-            false,
+            Keep::Minimisers,
         )),
         Method::OptimisedLinear => {
             let threshold = vec![settings.threshold; objectives.domain.len()];

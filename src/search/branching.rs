@@ -16,7 +16,7 @@
 //! order of work, never a verdict.
 
 use crate::bound::{LayerBounds, Method, ReluSplit, SplitState};
-use crate::engine::backward::{self, Choices};
+use crate::engine::backward::{self, Choices, Keep};
 use crate::engine::intermediate::Tightness;
 use crate::engine::Engine;
 use crate::threat::Region;
@@ -63,7 +63,7 @@ pub(crate) fn ranked_units(
         &domains,
         objectives,
         Choices::default(),
-        true,
+        Keep::Everything,
     );
     parents
         .iter()

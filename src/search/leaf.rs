@@ -22,7 +22,7 @@ use nalgebra::{DMatrix, DVector};
 use super::solver::{minimise, LinearProgram, LpOutcome, Row};
 use super::SearchError;
 use crate::bound::{concretise, LayerBounds, ReluSplit, SplitState};
-use crate::engine::backward::{self, Choices, Objectives};
+use crate::engine::backward::{self, Choices, Keep, Objectives};
 use crate::engine::intermediate::{self, Given, Tightness};
 use crate::engine::{Domains, Engine};
 use crate::model::Network;
@@ -200,7 +200,7 @@ pub(crate) fn engine_bound(leaf: &LeafDomain, region: &Region, multipliers: &[f6
         slopes: None,
         multipliers: Some(&terms),
     };
-    backward::run(engine, &hidden, &domains, objectives, choices, false).lower[0]
+    backward::run(engine, &hidden, &domains, objectives, choices, Keep::Bounds).lower[0]
 }
 
 /// Multipliers of the split rows from the dual LP over the region's bounding box:
