@@ -809,3 +809,45 @@ fn cli_rejects_bad_input_with_exit_2_and_writes_nothing() {
     assert_eq!(output.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&output.stderr).contains("no-such-model.json"));
 }
+
+/// `--untargeted-only` runs the plain PGD schedule (no FGSM point, no targeted runs): it never finds a
+/// sample the full schedule misses on these settings' starts, and the flag is accepted with every
+/// other attack flag. Counts: the samples with a counterexample, read from stdout.
+#[test]
+fn cli_untargeted_only_runs_a_subset_of_the_schedule() {
+    let count = |extra: &[&str]| -> usize {
+        let output = ballast()
+            .args([
+                "attack",
+                "--model",
+                DIGITS_MODEL,
+                "--data",
+                DIGITS_TEST,
+                "--eps",
+                "0.05",
+                "--steps",
+                "20",
+                "--restarts",
+                "1",
+            ])
+            .args(extra)
+            .output()
+            .expect("runs");
+        let stdout = String::from_utf8_lossy(&output.stdout);
+        assert_eq!(output.status.code(), Some(0), "{stdout}");
+        stdout
+            .lines()
+            .find_map(|l| l.strip_prefix("counterexamples: "))
+            .expect("count line")
+            .trim()
+            .parse()
+            .expect("a number")
+    };
+    let full = count(&[]);
+    let plain = count(&["--untargeted-only"]);
+    assert!(
+        plain <= full,
+        "untargeted only {plain}, full schedule {full}"
+    );
+    assert!(full > 0);
+}

@@ -51,6 +51,10 @@ pub struct Args {
     /// Untargeted PGD runs per sample (the first from the sample, the others from random points).
     #[arg(long, default_value_t = 5, help_heading = "Attack")]
     pub restarts: usize,
+    /// Only the untargeted PGD runs: no FGSM point first, no targeted run per other class when they
+    /// fail (finds fewer counterexamples on some samples; the plain PGD-steps×restarts schedule).
+    #[arg(long, help_heading = "Attack")]
+    pub untargeted_only: bool,
     /// Seed of the random starts (per-sample seeds are derived from it).
     #[arg(long, default_value_t = 0, help_heading = "Attack")]
     pub seed: u64,
@@ -96,6 +100,8 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
         restarts: args.restarts,
         seed: args.seed,
         precision,
+        fgsm_first: !args.untargeted_only,
+        targeted: !args.untargeted_only,
         ..AttackSettings::default()
     };
     let summary = attack_data_set(&model, &data, &requirement, &settings)?;

@@ -68,13 +68,13 @@ pub struct Backward {
 /// Adds `|a[:, j]|ᵀ m[:, domain[j]]` to `sum[j]` for every column.
 fn accumulate(sum: &mut [f64], a: &DMatrix<f64>, m: &DMatrix<f64>, domain: &[usize]) {
     for (j, column) in a.column_iter().enumerate() {
-        let weights = m.column(domain[j]);
-        sum[j] += column
-            .iter()
-            .zip(weights.iter())
-            .map(|(x, w)| x.abs() * w)
-            .sum::<f64>();
+        sum[j] += weighted_abs(column.as_slice(), m.column(domain[j]).as_slice());
     }
+}
+
+/// `Σᵢ |aᵢ| mᵢ`.
+fn weighted_abs(a: &[f64], m: &[f64]) -> f64 {
+    a.iter().zip(m).map(|(x, w)| x.abs() * w).sum()
 }
 
 /// Runs the backward pass for `objectives` on domains with hidden bounds `hidden` (which must cover
@@ -98,11 +98,11 @@ pub fn run(
     let mut fold = vec![0.0; columns];
     let mut on_hidden: Vec<DMatrix<f64>> = Vec::new();
     let mut k = top;
+    accumulate(&mut magnitude, &a, &hidden.rounding[k], &domain);
+    if let Some(f) = &hidden.fold[k] {
+        accumulate(&mut fold, &a, f, &domain);
+    }
     let g = loop {
-        accumulate(&mut magnitude, &a, &hidden.rounding[k], &domain);
-        if let Some(f) = &hidden.fold[k] {
-            accumulate(&mut fold, &a, f, &domain);
-        }
         constant += engine.layer(k).bias_dot(&a);
         let g = engine.layer(k).transpose_apply(&a);
         if k == 0 {
@@ -115,6 +115,9 @@ pub fn run(
         } else {
             (g, None)
         };
+        // The next layer's rounding and fold terms are accumulated here, while each column of the
+        // new coefficients is in cache (the same sums `accumulate` takes).
+        let (rounding, fold_terms) = (&hidden.rounding[k], hidden.fold[k].as_ref());
         for j in 0..columns {
             let d = domain[j];
             let lower_slope = relax.lower_slope.column(d);
@@ -142,6 +145,10 @@ pub fn run(
                 }
             }
             constant[j] += add;
+            magnitude[j] += weighted_abs(column.as_slice(), rounding.column(d).as_slice());
+            if let Some(f) = fold_terms {
+                fold[j] += weighted_abs(column.as_slice(), f.column(d).as_slice());
+            }
         }
         if let Some(g) = original {
             on_hidden.push(g);
