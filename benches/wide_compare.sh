@@ -73,10 +73,13 @@ run a.ballast "$BALLAST" certify --model "$M2" --data "$DATA" --eps 0.02 --budge
 run_ref a.crown crown_reference.py --model "$M2" --data "$DATA" --eps 0.02
 fi
 
-# (b) attacks: PGD 100 steps x 5 restarts (ballast adds FGSM and targeted runs; see --targeted)
+# (b) attacks: PGD 100 steps x 5 restarts, ballast's full schedule (FGSM first, targeted runs when the
+# untargeted ones fail; against the reference's --targeted) and --untargeted-only (against its default)
 if wanted b; then
 run b.ballast "$BALLAST" attack --model "$M2" --data "$DATA" --eps 0.02 --steps 100 --restarts 5 \
     --out "$OUT/b.ballast.csv"
+run b.ballast-untargeted "$BALLAST" attack --model "$M2" --data "$DATA" --eps 0.02 --steps 100 \
+    --restarts 5 --untargeted-only --out "$OUT/b.ballast-untargeted.csv"
 run_ref b.pgd pgd_batched_reference.py --model "$M2" --data "$DATA" --eps 0.02
 run_ref b.pgd-targeted pgd_batched_reference.py --model "$M2" --data "$DATA" --eps 0.02 --targeted
 fi
