@@ -9,6 +9,7 @@
 //! sound bound or proof, every counterexample is re-validated, and an exhausted search is `unresolved`.
 
 pub mod journal;
+pub mod lines;
 pub mod merge;
 pub mod pipeline;
 pub mod progress;
@@ -339,6 +340,7 @@ fn empty_report(
         sweep: Vec::new(),
         seconds: 0.0,
         counterexamples: None,
+        requirements: Vec::new(),
         samples: Vec::new(),
     }
 }

@@ -13,10 +13,11 @@ use anyhow::{bail, Context};
 
 use super::common::{
     add_class_change_flags, load_data, load_model, parse_epsilon_argument, parse_norm,
-    resolve_requirement, EpsilonArgument,
+    EpsilonArgument,
 };
 use super::Outcome;
 use crate::certify::journal::journal_path;
+use crate::certify::lines::{judge_list, with_line_epsilons};
 use crate::certify::progress::TerminalProgress;
 use crate::certify::{
     certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report,
@@ -193,7 +194,18 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         &args.out_of_range,
         args.allow_large,
     )?;
-    let requirement = resolve_requirement(args.requirement.as_deref(), flags_spec(&args)?, &model)?;
+    let spec = match args.requirement.as_deref() {
+        Some(p) => RequirementSpec::from_file(p)?,
+        None => RequirementSpec::default(),
+    }
+    .overridden_by(flags_spec(&args)?);
+    let lines = spec.resolve_lines(&model)?;
+    let requirement = with_line_epsilons(&spec.resolve(&model)?, &lines);
+    if !lines.is_empty() && shard.is_some() {
+        bail!(
+            "--shard: not available with a list of requirements (certify the whole set in one run)"
+        );
+    }
     if let Some(report) = &args.report {
         check_writable_folder(report)?;
         if args.resume && !journal_path(report).is_file() {
@@ -241,6 +253,19 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         &progress,
         &cancel,
     )?;
+    if !lines.is_empty() && report.complete && !cancel.load(Ordering::SeqCst) {
+        judge_list(
+            &mut report,
+            &lines,
+            &model,
+            &data,
+            &requirement,
+            &sources,
+            &options,
+            &progress,
+            &cancel,
+        )?;
+    }
     let interrupted = signal.load(Ordering::SeqCst);
 
     if let Some(path) = &args.report {
@@ -321,6 +346,15 @@ pub fn print_summary(report: &Report) {
                 p.summary.unresolved
             );
         }
+    }
+    for l in &report.requirements {
+        println!(
+            "  {}: measured {:.4}, floor {:.4}: {}",
+            l.requirement,
+            l.measured,
+            l.floor,
+            l.verdict.name()
+        );
     }
     println!("verdict: {}", s.verdict.name());
 }

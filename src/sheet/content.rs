@@ -69,6 +69,8 @@ pub struct SheetContent {
     pub requirement: String,
     /// Each feature's tolerance and radius in the input's units (per-feature budgets only).
     pub budget: Option<Table>,
+    /// One row per line of a requirement list: requirement, measured, floor, verdict.
+    pub requirement_lines: Option<Table>,
     /// The headline figures.
     pub figures: Vec<Figure>,
     /// Whether the figures are exact (nothing unresolved).
@@ -116,6 +118,16 @@ pub fn build(report: &Report) -> SheetContent {
         .map(|c| format!("{:.0}%", c * 100.0))
         .unwrap_or_default();
     let reason = match (s.verdict, s.decided_by) {
+        (_, DecidedBy::RequirementList) => {
+            let count = |v: Verdict| report.requirements.iter().filter(|l| l.verdict == v).count();
+            format!(
+                "Of {} requirements, {} pass, {} fail and {} are undecided; the release needs every one.",
+                report.requirements.len(),
+                count(Verdict::Pass),
+                count(Verdict::Fail),
+                count(Verdict::Undecided)
+            )
+        }
         (Verdict::Pass, DecidedBy::ConfidenceBound) => format!(
             "The {confidence} lower confidence bound on the certified fraction, {}, is at least the floor {}.",
             optional_percent(s.certified_lower_bound),
@@ -170,6 +182,7 @@ pub fn build(report: &Report) -> SheetContent {
         DecidedBy::ConfidenceBound => "decided by the one-sided Clopper–Pearson lower confidence bound",
         DecidedBy::CleanAccuracy => "decided by the clean accuracy",
         DecidedBy::NoRule => "no rule to decide",
+        DecidedBy::RequirementList => "decided by every line of the requirement list (all must pass)",
     }
     .to_string();
     let finished = super::finished::Finished::of(report);
@@ -434,6 +447,7 @@ pub fn build(report: &Report) -> SheetContent {
         incomplete,
         requirement: report.requirement.description.clone(),
         budget: super::budget::budget_table(report),
+        requirement_lines: requirement_lines(report),
         figures,
         exactness,
         classes,
@@ -445,6 +459,37 @@ pub fn build(report: &Report) -> SheetContent {
         command,
         cautions,
     }
+}
+
+/// The table of a requirement list's lines (none for a single requirement).
+fn requirement_lines(report: &Report) -> Option<Table> {
+    if report.requirements.is_empty() {
+        return None;
+    }
+    Some(Table {
+        headers: ["requirement", "measured", "floor", "verdict"]
+            .map(String::from)
+            .to_vec(),
+        rows: report
+            .requirements
+            .iter()
+            .map(|l| {
+                let measured = match l.lower_bound {
+                    Some(b) => format!("{} (lower bound {})", percent(l.measured), percent(b)),
+                    None if l.kind == "certified" => {
+                        format!("{} (empirical {})", percent(l.measured), percent(l.upper))
+                    }
+                    None => percent(l.measured),
+                };
+                vec![
+                    l.requirement.clone(),
+                    measured,
+                    percent(l.floor),
+                    l.verdict.name().to_string(),
+                ]
+            })
+            .collect(),
+    })
 }
 
 /// Bins used by the histogram.

@@ -79,6 +79,10 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
         s.push_str(&table(t));
     }
+    if let Some(t) = &c.requirement_lines {
+        s.push_str("<p>Requirements (every one must pass):</p>\n");
+        s.push_str(&table(t));
+    }
     s.push_str(
         "<h2>Figures</h2>\n<table>\n<tr><th>figure</th><th>value</th><th>meaning</th></tr>\n",
     );

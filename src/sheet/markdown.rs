@@ -43,6 +43,11 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&table(t));
         s.push('\n');
     }
+    if let Some(t) = &c.requirement_lines {
+        s.push_str("Requirements (every one must pass):\n\n");
+        s.push_str(&table(t));
+        s.push('\n');
+    }
     s.push_str("## Figures\n\n| figure | value | meaning |\n| --- | --- | --- |\n");
     for f in &c.figures {
         s.push_str(&format!(
