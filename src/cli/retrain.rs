@@ -334,6 +334,14 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         args.forbid_into.as_deref(),
         args.forbid_from.as_deref(),
     )?;
+    if let Some(path) = args.requirement.as_deref() {
+        if !RequirementSpec::from_file(path)?.lines.is_empty() {
+            bail!(
+                "{}: requirements: retrain takes one requirement (epsilon and floor at the top level); a list of requirements is judged by certify, retraining against a list is not available yet",
+                path.display()
+            );
+        }
+    }
     let requirement = resolve_requirement(args.requirement.as_deref(), spec, &parent)?;
     let Some(floor) = requirement.floor else {
         bail!("--floor: retraining needs a floor (give --floor or a requirement file with floor)");

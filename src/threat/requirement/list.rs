@@ -175,17 +175,18 @@ impl LineSpec {
                 format!("{epsilon} is not allowed, expected a finite number ≥ 0"),
             ));
         }
-        let confidence =
-            match self.confidence {
-                None => None,
-                Some(c) if c.is_finite() && c > 0.0 && c < 1.0 => Some(c),
-                Some(c) => return Err(invalid(
+        let confidence = match self.confidence {
+            None => None,
+            Some(c) if c.is_finite() && c > 0.0 && c < 1.0 => Some(c),
+            Some(c) => {
+                return Err(invalid(
                     field("confidence"),
                     format!(
                         "{c} is not allowed, expected a level strictly between 0 and 1 (e.g. 0.95)"
                     ),
-                )),
-            };
+                ))
+            }
+        };
         let classes = |names: &[String], key: &str| -> Result<Vec<usize>, RequirementError> {
             let mut out = Vec::new();
             for name in names {
