@@ -10,7 +10,7 @@ cargo build --release --quiet
 [ -f "$FIX/digits_cnn_wide.model.json" ] || "$PYTHON" tests/reference/cnn_fixtures.py --bench "$FIX"
 for eps in "${@:-0.02 0.04}"; do
   for m in digits_cnn_wide digits_cnn_wide_dense; do
-    /usr/bin/time -f "$m eps $eps: %e s wall, %M KB peak" target/release/ballast certify \
+    /usr/bin/time -f "$m eps $eps: %e s wall, %U s user, %S s sys, %M KB peak" target/release/ballast certify \
       --model "$FIX/$m.model.json" --data "$FIX/digits_cnn_rows.csv" --eps "$eps" --budget 0 \
       --report "$FIX/$m.$eps.report.json" 2>&1 | grep -E "^certified [0-9]|wall"
   done

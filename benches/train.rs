@@ -281,6 +281,7 @@ fn tradeoff() {
                 margin: env_or("BALLAST_BENCH_NEAR_MISS", 0.03),
                 tries: env_or("BALLAST_BENCH_NEAR_MISS_TRIES", 3usize),
             },
+            confidence: Default::default(),
         };
         let start = Instant::now();
         let result = retrain(

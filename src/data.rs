@@ -100,7 +100,8 @@ impl Default for DataOptions {
 pub const RANGE_ULPS: u64 = 4;
 
 /// The input-range policy: what happens to a value outside the model's input range.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "snake_case")]
 pub enum OutOfRange {
     /// Refuse the file, naming the row, column, value and range (the default).
     #[default]
@@ -109,6 +110,17 @@ pub enum OutOfRange {
     Clip,
     /// Leave the whole row out.
     Skip,
+}
+
+impl OutOfRange {
+    /// The policy's name as given to `--out-of-range`.
+    pub fn name(self) -> &'static str {
+        match self {
+            OutOfRange::Error => "error",
+            OutOfRange::Clip => "clip",
+            OutOfRange::Skip => "skip",
+        }
+    }
 }
 
 impl std::str::FromStr for OutOfRange {
@@ -125,13 +137,30 @@ impl std::str::FromStr for OutOfRange {
     }
 }
 
-/// How many rows the input-range policy changed.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+/// What the input-range policy did to a file: the rows it changed, by their row numbers in the file
+/// (1-based, the header is row 1, as in error messages). Recorded in the report (`data.out_of_range`).
+#[derive(Debug, Clone, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
 pub struct RangeCounts {
-    /// Rows with at least one value set to an end of the range (by `clip`).
-    pub clipped_rows: usize,
-    /// Rows left out (by `skip`).
-    pub skipped_rows: usize,
+    /// The policy the file was read with.
+    pub policy: OutOfRange,
+    /// Data rows in the file (blank lines not counted), kept or not.
+    pub rows_in_file: usize,
+    /// Rows with at least one value set to an end of the range (by `clip`), ascending.
+    pub clipped: Vec<usize>,
+    /// Rows left out (by `skip`), ascending. The data set's sample indices count the rows kept.
+    pub skipped: Vec<usize>,
+}
+
+impl RangeCounts {
+    /// Number of rows clipped.
+    pub fn clipped_rows(&self) -> usize {
+        self.clipped.len()
+    }
+
+    /// Number of rows left out.
+    pub fn skipped_rows(&self) -> usize {
+        self.skipped.len()
+    }
 }
 
 /// One unit in the last place at `x` (finite, ≥ 0): the gap to the next larger double.
@@ -280,7 +309,10 @@ pub fn parse_csv_counted(
     let classes = model.class_count();
     let mut values: Vec<f64> = Vec::new();
     let mut labels = Vec::new();
-    let mut counts = RangeCounts::default();
+    let mut counts = RangeCounts {
+        policy: options.out_of_range,
+        ..RangeCounts::default()
+    };
     for (r, record) in reader.records().enumerate() {
         let row = r + 2;
         let record = record.map_err(|e| (format!("row {row}"), e.to_string()))?;
@@ -335,15 +367,18 @@ pub fn parse_csv_counted(
             };
             row_values.push(v);
         }
+        counts.rows_in_file += 1;
         if skipped {
-            counts.skipped_rows += 1;
+            counts.skipped.push(row);
             continue;
         }
-        counts.clipped_rows += usize::from(clipped);
+        if clipped {
+            counts.clipped.push(row);
+        }
         labels.push(label);
         values.extend(row_values);
     }
-    if labels.is_empty() && counts.skipped_rows > 0 {
+    if labels.is_empty() && !counts.skipped.is_empty() {
         return Err((
             "file".into(),
             "every row lies outside the model's input range and was skipped".into(),

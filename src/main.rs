@@ -8,13 +8,22 @@ fn main() -> ExitCode {
     let cli = match ballast::cli::Cli::try_parse() {
         Ok(cli) => cli,
         Err(e) => {
-            let code = if e.use_stderr() {
-                ballast::cli::EXIT_INPUT_ERROR
-            } else {
-                0
-            };
-            let _ = e.print();
-            return ExitCode::from(code);
+            if !e.use_stderr() {
+                let _ = e.print();
+                return ExitCode::from(0);
+            }
+            // A value the parser cannot read (a word for a number, a sign on a count) gets the one
+            // line naming the flag; other usage errors keep clap's usage hint.
+            match e.kind() {
+                clap::error::ErrorKind::ValueValidation | clap::error::ErrorKind::InvalidValue => {
+                    let text = e.render().to_string();
+                    eprintln!("{}", text.lines().next().unwrap_or("error: invalid value"));
+                }
+                _ => {
+                    let _ = e.print();
+                }
+            }
+            return ExitCode::from(ballast::cli::EXIT_INPUT_ERROR);
         }
     };
     match ballast::cli::run(cli) {

@@ -220,3 +220,359 @@ fn the_demo_output_folder_is_ignored_by_git() {
     let ignore = std::fs::read_to_string(root().join(".gitignore")).expect(".gitignore");
     assert!(ignore.lines().any(|l| l.trim() == "ballast-demo/"));
 }
+
+/// The rows the input-range policy changed reach the report (policy, rows in the file, row numbers)
+/// and the sheet (a figure and a caution). The fixture's rows 3 and 5 (header = row 1) lie outside
+/// [0, 1]; row 4 lies within four units in the last place of 1 and counts as on it.
+#[test]
+fn range_policy_counts_reach_the_report_and_the_sheet() {
+    let (m, d) = range_fixture(
+        "counts",
+        "0.5,0.2,0\n1.5,0.2,0\n1.0000000000000002,0.9,1\n0.1,-3,1\n0.3,0.4,1\n",
+    );
+    let dir = m.parent().unwrap().to_path_buf();
+    for (policy, clipped, skipped, samples) in [
+        ("clip", vec![3, 5], vec![], 5),
+        ("skip", vec![], vec![3, 5], 3),
+    ] {
+        let report = dir.join(format!("{policy}.json"));
+        let sheet = dir.join(format!("{policy}-sheet"));
+        let (code, _, stderr) = ballast(&[
+            "certify",
+            "--model",
+            m.to_str().unwrap(),
+            "--data",
+            d.to_str().unwrap(),
+            "--eps",
+            "0.01",
+            "--out-of-range",
+            policy,
+            "--report",
+            report.to_str().unwrap(),
+            "--sheet",
+            sheet.to_str().unwrap(),
+        ]);
+        assert_eq!(code, Some(0), "{stderr}");
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(&report).unwrap()).unwrap();
+        let range = &json["data"]["out_of_range"];
+        assert_eq!(range["policy"], policy);
+        assert_eq!(range["rows_in_file"], 5);
+        assert_eq!(range["clipped"], serde_json::json!(clipped));
+        assert_eq!(range["skipped"], serde_json::json!(skipped));
+        assert_eq!(json["data"]["samples"], samples);
+        let md = std::fs::read_to_string(sheet.join("sheet.md")).unwrap();
+        let figure = if policy == "clip" {
+            "| Rows clipped | 2 of 5 |"
+        } else {
+            "| Rows left out | 2 of 5 |"
+        };
+        assert!(md.contains(figure), "{md}");
+        assert!(md.contains("rows 3 and 5 (header = row 1)"), "{md}");
+    }
+}
+
+/// Reads a CSV file into its header and rows of fields.
+fn read_csv(path: &Path) -> (Vec<String>, Vec<Vec<String>>) {
+    let text = std::fs::read_to_string(path).expect("CSV written");
+    let mut lines = text.lines();
+    let header = lines
+        .next()
+        .expect("a header")
+        .split(',')
+        .map(String::from)
+        .collect();
+    let rows = lines
+        .map(|l| l.split(',').map(String::from).collect())
+        .collect();
+    (header, rows)
+}
+
+/// `attack` takes the tolerance file and the class-change flags as `certify` does. Checked against the
+/// files themselves: every counterexample moves a faulty pump into `normal` (the only class the rule
+/// forbids; a normal sample has nothing forbidden) and moves each feature by at most its tolerance from
+/// the tolerance file (the L-inf ball of docs/requirement-format.md, radius = 1 × tolerance), measured
+/// from the sample's row in the data file.
+#[test]
+fn attack_takes_the_tolerance_file_and_the_class_change_rule() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("cx.csv");
+    let (code, stdout, stderr) = ballast(&[
+        "attack",
+        "--model",
+        MODEL,
+        "--data",
+        DATA,
+        "--eps",
+        "demo-data/tolerances.json",
+        "--forbid-into",
+        "normal",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(
+        stdout.contains("only a change into normal counts"),
+        "{stdout}"
+    );
+    let tolerances: serde_json::Map<String, serde_json::Value> = serde_json::from_str(
+        &std::fs::read_to_string(root().join("demo-data/tolerances.json")).unwrap(),
+    )
+    .unwrap();
+    let (data_header, data_rows) = read_csv(&root().join(DATA));
+    let (header, rows) = read_csv(&out);
+    assert!(!rows.is_empty(), "the demo model has counterexamples here");
+    for row in &rows {
+        assert_eq!(row[2], "normal", "{row:?}");
+        assert_ne!(row[1], "normal", "{row:?}");
+        let sample: usize = row[0].parse().unwrap();
+        let original = &data_rows[sample];
+        assert_eq!(original[0], row[1], "label of sample {sample}");
+        for (name, tolerance) in &tolerances {
+            let c = header.iter().position(|h| h == name).unwrap();
+            let d = data_header.iter().position(|h| h == name).unwrap();
+            let moved =
+                (row[c].parse::<f64>().unwrap() - original[d].parse::<f64>().unwrap()).abs();
+            // The CSV holds the data's decimals; allow the rounding of one subtraction.
+            assert!(
+                moved <= tolerance.as_f64().unwrap() * (1.0 + 1e-12),
+                "sample {sample}, {name}: moved {moved}"
+            );
+        }
+    }
+    // The requirement file gives the same budget and rule (docs: demo-data/requirement.toml), and
+    // its floor decides the exit: an attack can refute a floor (1) or leave it open (3), never pass it.
+    let (code, stdout, stderr) = ballast(&[
+        "attack",
+        "--model",
+        MODEL,
+        "--data",
+        DATA,
+        "--requirement",
+        "demo-data/requirement.toml",
+    ]);
+    assert!(matches!(code, Some(1 | 3)), "{stderr}");
+    let found: usize = stdout
+        .lines()
+        .find_map(|l| l.strip_prefix("counterexamples: "))
+        .and_then(|n| n.parse().ok())
+        .expect("a count of counterexamples");
+    // The file's rule is the same for faulty pumps and adds any change of a normal sample; a sample's
+    // attack outcome does not depend on the other samples of the batch (docs/attack.md), so every
+    // counterexample of the first run is found again.
+    assert!(found >= rows.len(), "{stdout}");
+}
+
+#[test]
+fn retrain_and_attack_offer_only_the_budget_forms_they_accept() {
+    let one = "error: --eps: no budget given: pass --eps with one number or a tolerance file, or --tolerances FILE, or --requirement FILE with epsilon or tolerances";
+    assert_one_line_error(
+        &[
+            "retrain",
+            "--model",
+            MODEL,
+            "--train",
+            TRAIN,
+            "--floor",
+            "0.5",
+            "--out",
+            "unused.json",
+        ],
+        one,
+    );
+    assert_one_line_error(&["attack", "--model", MODEL, "--data", DATA], one);
+    assert_one_line_error(
+        &["certify", "--model", MODEL, "--data", DATA],
+        "error: --eps: no budget given: pass --eps with a number, a list, a range or a tolerance file, or --tolerances FILE, or --requirement FILE with epsilon or tolerances",
+    );
+    assert_one_line_error(
+        &[
+            "retrain", "--model", MODEL, "--train", TRAIN, "--eps", "0.1,0.2", "--floor", "0.5",
+            "--out", "unused.json",
+        ],
+        "error: --eps: \"0.1,0.2\" is a sweep, expected one number or a tolerance file (only certify sweeps)",
+    );
+    // --tolerances reaches the requirement: a missing file is named.
+    let (code, _, stderr) = ballast(&[
+        "retrain",
+        "--model",
+        MODEL,
+        "--train",
+        TRAIN,
+        "--tolerances",
+        "no-such-tolerances.json",
+        "--floor",
+        "0.5",
+        "--out",
+        "unused.json",
+    ]);
+    assert_eq!(code, Some(2));
+    assert!(stderr.contains("no-such-tolerances.json"), "{stderr}");
+    assert!(!root().join("unused.json").exists());
+}
+
+#[test]
+fn retrain_checks_its_output_before_training() {
+    let dir = tempfile::tempdir().unwrap();
+    let folder = dir.path().to_str().unwrap();
+    assert_one_line_error(
+        &[
+            "retrain", "--model", MODEL, "--train", TRAIN, "--eps", "0.1", "--floor", "0.5",
+            "--out", folder,
+        ],
+        &format!("error: --out: {folder}: is a folder, expected a file name"),
+    );
+    let missing = dir.path().join("no-such-folder").join("m.json");
+    assert_one_line_error(
+        &[
+            "retrain",
+            "--model",
+            MODEL,
+            "--train",
+            TRAIN,
+            "--eps",
+            "0.1",
+            "--floor",
+            "0.5",
+            "--out",
+            missing.to_str().unwrap(),
+        ],
+        &format!(
+            "error: --out: {}: the folder {} does not exist",
+            missing.display(),
+            dir.path().join("no-such-folder").display()
+        ),
+    );
+    // A file where the log and sheet folder goes.
+    let out = dir.path().join("m.json");
+    std::fs::write(dir.path().join("m.retrain"), "in the way").unwrap();
+    assert_one_line_error(
+        &[
+            "retrain",
+            "--model",
+            MODEL,
+            "--train",
+            TRAIN,
+            "--eps",
+            "0.1",
+            "--floor",
+            "0.5",
+            "--out",
+            out.to_str().unwrap(),
+        ],
+        &format!(
+            "error: --out: {} is a file, but the log and sheet go into a folder of that name",
+            dir.path().join("m.retrain").display()
+        ),
+    );
+    assert!(!out.exists());
+}
+
+/// The help of `certify`, `attack` and `retrain`: options grouped under headings, the requirement
+/// flags word for word the same in all three, every default in one form (`[default: …]`).
+#[test]
+fn help_is_grouped_and_the_requirement_flags_read_the_same() {
+    let section = |help: &str, heading: &str| -> String {
+        let start = help.find(&format!("\n{heading}:\n")).expect(heading);
+        let rest = &help[start + heading.len() + 3..];
+        rest[..rest.find("\n\n").unwrap_or(rest.len())].to_string()
+    };
+    let mut requirement_blocks = Vec::new();
+    for command in ["certify", "attack", "retrain"] {
+        let (code, help, _) = ballast(&[command, "--help"]);
+        assert_eq!(code, Some(0));
+        for heading in ["Inputs", "Requirement", "Output"] {
+            assert!(
+                help.contains(&format!("\n{heading}:\n")),
+                "{command}: {heading}"
+            );
+        }
+        assert!(!help.contains("(default"), "{command}: {help}");
+        let block = section(&help, "Requirement");
+        for flag in [
+            "--eps",
+            "--tolerances",
+            "--requirement",
+            "--norm",
+            "--floor",
+            "--forbid-into",
+            "--forbid-from",
+        ] {
+            assert!(block.contains(flag), "{command}: {flag}");
+        }
+        // The shared flags come first; certify adds its own after them. Clap lays long help out
+        // in one or two columns, so compare the words.
+        let words = block.split_whitespace().collect::<Vec<_>>().join(" ");
+        let end = "(others: any change counts)";
+        let shared = &words[..words.find(end).expect("--forbid-from's help") + end.len()];
+        requirement_blocks.push(shared.to_string());
+    }
+    assert_eq!(requirement_blocks[0], requirement_blocks[1]);
+    assert_eq!(requirement_blocks[0], requirement_blocks[2]);
+}
+
+/// An ONNX model imported without input names, with a tolerance file keyed by the data's names: the
+/// error says what the inputs are called and how to name them (the ONNX fixture is scikit-learn's
+/// breast-cancer pipeline, 30 inputs, see tests/reference/onnx_fixtures.py).
+#[test]
+fn unnamed_inputs_and_a_tolerance_file_by_name_get_a_hint() {
+    let dir = tempfile::tempdir().unwrap();
+    let tolerances = dir.path().join("t.csv");
+    std::fs::write(&tolerances, "feature,tolerance\narea_error,1.0\n").unwrap();
+    let data = dir.path().join("d.csv");
+    let header: Vec<String> = (0..30).map(|i| format!("f{i}")).collect();
+    std::fs::write(
+        &data,
+        format!("{},label\n{}0\n", header.join(","), "1,".repeat(30)),
+    )
+    .unwrap();
+    assert_one_line_error(
+        &[
+            "certify",
+            "--model",
+            "tests/data/onnx/sklearn_breast_cancer_mlp.onnx",
+            "--data",
+            data.to_str().unwrap(),
+            "--tolerances",
+            tolerances.to_str().unwrap(),
+        ],
+        &format!(
+            "error: {}: row 2, column \"tolerance\": \"area_error\" is not an input feature of the model: the model names no inputs, so they are x0 … x29 (an ONNX file imports without names unless its metadata has them); name them with `ballast import --onnx FILE --input-range-file R.json --out M.json`, R.json holding lower, upper and names, or key the tolerances by x0 … x29",
+            tolerances.display()
+        ),
+    );
+    // With names, the message lists the first of them.
+    std::fs::write(&tolerances, "feature,tolerance\nrpm,1.0\n").unwrap();
+    let (code, _, stderr) = ballast(&[
+        "certify",
+        "--model",
+        MODEL,
+        "--data",
+        DATA,
+        "--tolerances",
+        tolerances.to_str().unwrap(),
+    ]);
+    assert_eq!(code, Some(2));
+    assert!(
+        stderr.contains("\"rpm\" is not an input feature of the model, expected one of its 12 input names (vel_1x_mm_s, vel_2x_mm_s, vel_high_band_mm_s, vel_axial_mm_s, …)"),
+        "{stderr}"
+    );
+}
+
+/// A value the parser cannot read at all (a sign on a count, a word for a number) is one line naming
+/// the flag, exit 2, like the values the validation step refuses.
+#[test]
+fn unreadable_numbers_are_one_line_naming_the_flag() {
+    assert_one_line_error(
+        &[
+            "attack", "--model", MODEL, "--data", DATA, "--eps", "0.1", "--steps", "-1",
+        ],
+        "error: invalid value '-1' for '--steps <STEPS>': invalid digit found in string",
+    );
+    assert_one_line_error(
+        &[
+            "certify", "--model", MODEL, "--data", DATA, "--eps", "0.1", "--floor", "abc",
+        ],
+        "error: invalid value 'abc' for '--floor <F>': invalid float literal",
+    );
+}

@@ -1,5 +1,6 @@
 //! The bundled pump-fleet demo: generator determinism, the committed data and models, and
-//! `ballast demo --quick` end to end from another working directory.
+//! `ballast demo --quick` end to end from another working directory (the spectra and the CNN:
+//! tests/demo_spectrum.rs).
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -8,7 +9,7 @@ use approx::assert_abs_diff_eq;
 use ballast::cli::evaluate::evaluate;
 use ballast::data::{load_csv, DataOptions, Dataset};
 use ballast::demo::{bundle, files, generator, models, scenario};
-use ballast::model::Model;
+use ballast::model::{Layer, Model};
 
 fn root() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
@@ -79,6 +80,30 @@ fn committed_demo_data_equal_the_generator_output() {
         read(&folder.join(files::REQUIREMENT_FILE)) == files::requirement_toml(),
         "requirement.toml is stale"
     );
+    assert!(
+        read(&folder.join(files::SPECTRUM_TRAIN_FILE)) == data.spectrum_train.to_csv(),
+        "spectrum-train.csv is stale"
+    );
+    assert!(
+        read(&folder.join(files::SPECTRUM_ACCEPTANCE_FILE)) == data.spectrum_acceptance.to_csv(),
+        "spectrum-acceptance.csv is stale"
+    );
+    assert!(
+        read(&folder.join(files::SPECTRUM_TOLERANCE_FILE)) == files::spectrum_tolerance_json(),
+        "spectrum-tolerances.json is stale"
+    );
+    assert!(
+        read(&folder.join(files::SPECTRUM_REQUIREMENT_FILE)) == files::spectrum_requirement_toml(),
+        "spectrum-requirement.toml is stale"
+    );
+    // The spectra come from their own streams: no row equals another file's row.
+    let train_csv = data.spectrum_train.to_csv();
+    let train_rows: std::collections::HashSet<&str> = train_csv.lines().skip(1).collect();
+    let acceptance_csv = data.spectrum_acceptance.to_csv();
+    assert!(acceptance_csv
+        .lines()
+        .skip(1)
+        .all(|l| !train_rows.contains(l)));
 }
 
 #[test]
@@ -240,6 +265,19 @@ fn retraining_the_demo_models_gives_comparable_accuracy() {
             "{file}: fresh {fresh}, committed {committed}"
         );
     }
+    let cnn = models::train_cnn_model(
+        &data.spectrum_train,
+        scenario::DEFAULT_SEED,
+        scenario::DEFAULT_SEED,
+    )
+    .expect("trains");
+    let acceptance = data.spectrum_acceptance.to_dataset();
+    let fresh = evaluate(&cnn.model, &acceptance).accuracy;
+    let committed = evaluate(&committed_model(models::CNN_FILE), &acceptance).accuracy;
+    assert!(
+        (fresh - committed).abs() <= 0.02,
+        "pump-cnn: fresh {fresh}, committed {committed}"
+    );
 }
 
 #[test]
@@ -263,10 +301,17 @@ fn demo_quick_runs_from_another_folder_and_writes_its_files() {
     for (name, text) in bundle::MODEL_FILES {
         assert!(read(&out.join("models").join(name)) == text, "{name}");
     }
-    let retrained =
-        Model::load(&out.join("models/pump-mlp-retrained.json")).expect("retrained model loads");
-    assert_eq!(retrained.name.as_deref(), Some("pump-mlp-retrained"));
-    for stage in ["before", "after"] {
+    for name in ["pump-mlp-retrained", "pump-cnn-retrained"] {
+        let retrained =
+            Model::load(&out.join(format!("models/{name}.json"))).expect("retrained model loads");
+        assert_eq!(retrained.name.as_deref(), Some(name));
+    }
+    let cnn = Model::load(&out.join("models/pump-cnn-retrained.json")).expect("loads");
+    assert!(
+        cnn.layers.iter().any(|l| matches!(l, Layer::Conv(_))),
+        "the retrained CNN keeps its convolutions"
+    );
+    for stage in ["before", "after", "cnn-before", "cnn-after"] {
         let folder = out.join(stage);
         for file in ["report.json", "sheet.md", "sheet.html"] {
             assert!(folder.join(file).is_file(), "{stage}/{file} missing");

@@ -293,3 +293,47 @@ fn data_columns_match_by_name_and_labels_by_name_or_index() {
     assert_eq!(data.sample(0), &[0.1, 0.2, 3.0]);
     assert_eq!(data.sample(1), &[0.3, 0.4, 1.0]);
 }
+
+/// Outside reference: scikit-learn 1.9.1 `Pipeline(MinMaxScaler, MLPClassifier)` on the bundled
+/// breast-cancer data, exported by `export_pipeline` exactly as docs/model-format.md prints it
+/// (tests/reference/pipeline_fixture.py). ballast's sigmoid of the one logit matches the pipeline's
+/// `predict_proba[:, 1]` on the 171 test rows (clipped to the training range, which the recipe declares
+/// as the input range, so the CSV path accepts every row as it is).
+#[test]
+fn pipeline_recipe_matches_scikit_learn_predict_proba() {
+    let text = std::fs::read_to_string("tests/reference/out/pipeline_minmax.json").unwrap();
+    let reference: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let model =
+        Model::from_json_str(&reference["model"].to_string()).expect("the recipe's model loads");
+    assert!(matches!(
+        model.layers.first(),
+        Some(ballast::model::Layer::Normalize { .. })
+    ));
+    let names: Vec<String> = (0..model.input.dim)
+        .map(|i| model.feature_name(i))
+        .collect();
+    let rows = reference["rows"].as_array().unwrap();
+    let labels = reference["labels"].as_array().unwrap();
+    let mut csv = format!("{},label\n", names.join(","));
+    for (row, label) in rows.iter().zip(labels) {
+        let cells: Vec<String> = row
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|v| format!("{}", v.as_f64().unwrap()))
+            .collect();
+        csv.push_str(&format!("{},{}\n", cells.join(","), label));
+    }
+    let data = parse_csv(&csv, &model, &DataOptions::default())
+        .expect("every clipped row lies in the declared range");
+    assert_eq!(data.len(), 171);
+    let network = model.network();
+    let expected = reference["probability_class_1"].as_array().unwrap();
+    assert_eq!(expected.len(), data.len());
+    for (i, want) in expected.iter().enumerate() {
+        let z = network.forward(data.sample(i))[0];
+        let p = 1.0 / (1.0 + (-z).exp());
+        let want = want.as_f64().unwrap();
+        assert!((p - want).abs() <= 1e-9, "row {i}: {p} vs {want}");
+    }
+}

@@ -113,6 +113,27 @@ fn verdict_comes_first_and_sweeps_are_plotted() {
     partial.complete = false;
     let page = html::render(&content::build(&partial));
     assert!(page.contains("INCOMPLETE"));
+    // The sweep's floor epsilons: the proven end is a swept epsilon where the floor passed, the
+    // not-refuted end one where it did not fail, and the proven end is never the larger.
+    let ends = report.floor_epsilons.expect("a sweep with a floor");
+    let verdict_at = |e: f64| {
+        report
+            .sweep
+            .iter()
+            .find(|p| p.epsilon == e)
+            .map(|p| p.summary.verdict)
+    };
+    if let Some(e) = ends.certified {
+        assert_eq!(verdict_at(e), Some(ballast::certify::Verdict::Pass));
+        assert!(ends.empirical >= Some(e));
+    }
+    if let Some(e) = ends.empirical {
+        assert_ne!(verdict_at(e), Some(ballast::certify::Verdict::Fail));
+    }
+    assert!(c
+        .figures
+        .iter()
+        .any(|f| f.name == "Largest epsilon meeting the floor"));
     // One epsilon: no plot.
     let single = hostile_report(vec![0.1]);
     let page = html::render(&content::build(&single));
@@ -275,4 +296,270 @@ fn interrupted_sheet_counts_finished_samples_only() {
     assert!(c.reason.contains("--resume"), "{}", c.reason);
     assert!(certified > 0, "the check needs a certified finished sample");
     assert!(!text.contains("More search time (--budget)"), "{text}");
+}
+
+/// The tick labels of every axis in `svg`: the text of `<text>` elements that sit at the tick rows
+/// (x ticks) or beside the plot (y ticks, right-aligned), parsed as numbers; `%` is dropped.
+fn tick_labels(svg: &str) -> (Vec<f64>, Vec<f64>) {
+    let text = |line: &str| -> Option<String> {
+        let start = line.find("<text")?;
+        let body = &line[start..];
+        let open = body.find('>')? + 1;
+        let close = body.find("</text>")?;
+        Some(body[open..close].trim_end_matches('%').to_string())
+    };
+    let mut x = Vec::new();
+    let mut y = Vec::new();
+    for line in svg.lines() {
+        let Some(t) = text(line) else { continue };
+        let Ok(v) = t.parse::<f64>() else { continue };
+        if line.contains("stroke=\"#ddd\"") {
+            y.push(v);
+        } else if line.contains("stroke=\"#999\"/><text") {
+            x.push(v);
+        }
+    }
+    (x, y)
+}
+
+/// Steps between ticks are 1, 2 or 5 times a power of ten ("nice numbers": Heckbert, "Nice numbers
+/// for graph labels", Graphics Gems, 1990), and every tick label is written with at most 3 decimals.
+fn assert_nice(ticks: &[f64], what: &str) {
+    assert!(ticks.len() >= 2, "{what}: {ticks:?}");
+    let step = ticks[1] - ticks[0];
+    let mantissa = step / 10f64.powf(step.log10().floor());
+    assert!(
+        [1.0, 2.0, 5.0, 10.0]
+            .iter()
+            .any(|n| (mantissa - n).abs() < 1e-6),
+        "{what}: step {step} in {ticks:?}"
+    );
+    for w in ticks.windows(2) {
+        assert!(((w[1] - w[0]) - step).abs() < 1e-9, "{what}: {ticks:?}");
+    }
+}
+
+#[test]
+fn plots_have_nice_ticks_axis_names_and_no_label_past_the_edge() {
+    let mut report = hostile_report(vec![0.05, 0.1, 0.2]);
+    // Radii with awkward values: the histogram's bins and ticks must still be round.
+    for (k, s) in report.samples.iter_mut().enumerate() {
+        s.radius = Some(0.0170121 * (k + 1) as f64);
+    }
+    let page = html::render(&content::build(&report));
+    let svgs: Vec<&str> = page.split("<svg").skip(1).collect();
+    assert_eq!(svgs.len(), 2, "sweep plot and histogram");
+    for (svg, y_name) in svgs.iter().zip(["robust accuracy", "samples"]) {
+        let (x, y) = tick_labels(svg);
+        assert_nice(&x, "x ticks");
+        assert_nice(&y, "y ticks");
+        assert!(svg.contains("rotate(-90 16 "), "no y-axis name");
+        assert!(
+            svg.contains(&format!(">{y_name}</text>")),
+            "y-axis name {y_name}"
+        );
+        // A label centred at the right edge would be cut off: the last x tick is anchored inside.
+        for line in svg.lines().filter(|l| l.contains("text-anchor=\"middle\"")) {
+            let at: f64 = line
+                .split("<text x=\"")
+                .nth(1)
+                .and_then(|r| r.split('"').next())
+                .and_then(|v| v.parse().ok())
+                .unwrap_or(320.0);
+            assert!(at < 640.0 - 20.0 || !line.contains("</text>"), "{line}");
+        }
+    }
+}
+
+/// Runs the binary in the project root; panics unless it exits with one of `codes`.
+fn run_ok(args: &[&str], codes: &[i32]) {
+    let out = Command::new(env!("CARGO_BIN_EXE_ballast"))
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .args(args)
+        .output()
+        .expect("the binary runs");
+    let code = out.status.code().unwrap_or(-1);
+    assert!(
+        codes.contains(&code),
+        "{args:?}: exit {code}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
+
+/// A model retrained by `ballast retrain` carries its lineage into every sheet certified on it: the
+/// parent's path and SHA-256 (the digest recorded by retrain, checked against the parent file with the
+/// sha2 crate), the rounds, and which data decided what. Certified on data that steered the retraining
+/// (the training file, which also held the validation rows; or the acceptance file when more than one
+/// round was allowed, so its check decided whether to go on), the sheet cautions that the figures are
+/// optimistically biased; on the acceptance file of a one-round run it does not.
+#[test]
+fn retrained_model_sheet_names_its_parent_and_the_data_that_steered_it() {
+    use sha2::Digest;
+    let dir = tempfile::tempdir().unwrap();
+    let parent = "models/pump-mlp.json";
+    let parent_sha = format!(
+        "{:x}",
+        sha2::Sha256::digest(
+            std::fs::read(Path::new(env!("CARGO_MANIFEST_DIR")).join(parent)).unwrap()
+        )
+    );
+    let caution = "optimistically biased";
+    for rounds in ["1", "2"] {
+        let model = dir.path().join(format!("retrained-{rounds}.json"));
+        let model = model.to_str().unwrap();
+        run_ok(
+            &[
+                "retrain",
+                "--model",
+                parent,
+                "--train",
+                "demo-data/train.csv",
+                "--acceptance",
+                "demo-data/acceptance.csv",
+                "--requirement",
+                "demo-data/requirement.toml",
+                "--epochs",
+                "1",
+                "--round-epochs",
+                "1",
+                "--max-rounds",
+                rounds,
+                "--out",
+                model,
+            ],
+            &[0, 1],
+        );
+        for (data, biased) in [
+            ("demo-data/acceptance.csv", rounds == "2"),
+            ("demo-data/train.csv", true),
+        ] {
+            let sheet = dir.path().join(format!("sheet-{rounds}-{}", data.len()));
+            run_ok(
+                &[
+                    "certify",
+                    "--model",
+                    model,
+                    "--data",
+                    data,
+                    "--requirement",
+                    "demo-data/requirement.toml",
+                    "--no-attack",
+                    "--sheet",
+                    sheet.to_str().unwrap(),
+                ],
+                &[0, 1, 3],
+            );
+            let md = std::fs::read_to_string(sheet.join("sheet.md")).unwrap();
+            assert!(md.contains("## Model lineage"), "{md}");
+            assert!(md.contains(&format!("(SHA-256 {parent_sha})")), "{md}");
+            assert!(
+                md.contains(&format!("in 1 of at most {rounds} rounds")) || rounds == "2",
+                "{md}"
+            );
+            let acceptance_row = md
+                .lines()
+                .find(|l| l.starts_with("| acceptance | demo-data/acceptance.csv |"))
+                .expect("the acceptance row");
+            assert_eq!(
+                acceptance_row.ends_with("| yes |"),
+                rounds == "2",
+                "{acceptance_row}"
+            );
+            assert_eq!(
+                md.contains(caution),
+                biased,
+                "{data}, {rounds} rounds: {md}"
+            );
+        }
+    }
+}
+
+/// A real interrupt: certify runs on the hard digits instance (the deep model at eps 0.06, where many
+/// samples need the search), SIGINT arrives once the journal holds finished samples, and the run
+/// stops after the samples in progress. The exit code is 128 + 2 (SIGINT, design.md), the report is
+/// marked incomplete, and the sheet's counts are those of the journal's finished samples: "N of 540
+/// finished", a per-class table adding up to N, "Not run" = 540 − N, and --resume offered.
+#[test]
+fn interrupted_run_sheet_counts_the_journal_after_a_real_sigint() {
+    let dir = tempfile::tempdir().unwrap();
+    let report = dir.path().join("r.json");
+    let journal = dir.path().join("r.journal.jsonl");
+    let sheet = dir.path().join("sheet");
+    let mut child = Command::new(env!("CARGO_BIN_EXE_ballast"))
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .args([
+            "certify",
+            "--model",
+            "tests/data/digits_mlp_deep.model.json",
+            "--data",
+            "tests/data/digits_test.csv",
+            "--eps",
+            "0.06",
+            "--budget",
+            "2",
+            "--report",
+        ])
+        .arg(&report)
+        .arg("--sheet")
+        .arg(&sheet)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("the binary starts");
+    // Wait for finished samples in the journal (its first line is the header).
+    loop {
+        let lines = std::fs::read_to_string(&journal)
+            .map(|t| t.lines().count())
+            .unwrap_or(0);
+        if lines >= 3 {
+            break;
+        }
+        if let Some(status) = child.try_wait().unwrap() {
+            panic!("certify ended before the interrupt: {status}");
+        }
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    let sent = Command::new("kill")
+        .args(["-INT", &child.id().to_string()])
+        .status()
+        .expect("kill runs");
+    assert!(sent.success());
+    let status = child.wait().unwrap();
+    assert_eq!(status.code(), Some(130), "128 + SIGINT");
+    let finished = std::fs::read_to_string(&journal).unwrap().lines().count() - 1;
+    let r = Report::from_json_str(&std::fs::read_to_string(&report).unwrap()).unwrap();
+    assert!(!r.complete);
+    assert_eq!(r.samples.len(), finished);
+    assert!(finished < 540, "every sample finished before the interrupt");
+    let md = std::fs::read_to_string(sheet.join("sheet.md")).unwrap();
+    assert!(
+        md.contains(&format!("| Samples | {finished} of 540 finished |")),
+        "{md}"
+    );
+    assert!(
+        md.contains(&format!("| Not run | {} |", 540 - finished)),
+        "{md}"
+    );
+    assert!(md.contains("--resume"), "{md}");
+    // The per-class table's sample column adds up to the finished samples.
+    let per_class = md
+        .split("## Per class")
+        .nth(1)
+        .unwrap()
+        .split("\n## ")
+        .next()
+        .unwrap();
+    let total: usize = per_class
+        .lines()
+        .filter(|l| l.starts_with("| ") && !l.starts_with("| class") && !l.starts_with("| ---"))
+        .map(|l| {
+            l.split(" | ")
+                .nth(1)
+                .unwrap()
+                .trim()
+                .parse::<usize>()
+                .unwrap()
+        })
+        .sum();
+    assert_eq!(total, finished, "{per_class}");
 }

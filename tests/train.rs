@@ -1,6 +1,8 @@
 //! Training checks: gradients against central finite differences, the plain trainer against
 //! scikit-learn's MLPClassifier on load_digits, and constrained retraining end to end.
 
+mod common;
+
 use std::path::Path;
 
 use approx::assert_relative_eq;
@@ -9,7 +11,7 @@ use ballast::model::{predicted_class, Model, Network};
 use ballast::train::backprop::{classifier_logits, softmax_cross_entropy};
 use ballast::train::plain::cross_entropy_gradient;
 use ballast::train::{he_network, new_mlp, train_cross_entropy, OptimizerKind, TrainSettings};
-use nalgebra::DMatrix;
+use common::gradient::{check_gradient, random_batch};
 
 fn fixture_model() -> Model {
     Model::load(Path::new("tests/data/digits_mlp.model.json")).expect("fixture model loads")
@@ -30,55 +32,6 @@ fn accuracy(model: &Model, data: &Dataset) -> f64 {
         .filter(|&i| predicted_class(logits.column(i).as_slice()) == data.labels[i])
         .count();
     correct as f64 / data.len() as f64
-}
-
-/// Central finite difference of `loss` with respect to every weight and bias of `network`, compared
-/// with `analytic` (relative tolerance on the larger of the two, absolute floor `floor`).
-fn check_gradient(
-    network: &Network,
-    analytic: &Network,
-    loss: &dyn Fn(&Network) -> f64,
-    floor: f64,
-) {
-    let h = 1e-6;
-    let mut checked = 0;
-    for (k, layer) in network.layers.iter().enumerate() {
-        let slots: Vec<usize> = layer.parameters().iter().map(|p| p.len()).collect();
-        for (slot, len) in slots.into_iter().enumerate() {
-            for i in 0..len {
-                let mut plus = network.clone();
-                plus.layers[k].parameters_mut()[slot][i] += h;
-                let mut minus = network.clone();
-                minus.layers[k].parameters_mut()[slot][i] -= h;
-                let numeric = (loss(&plus) - loss(&minus)) / (2.0 * h);
-                let exact = analytic.layers[k].parameters()[slot][i];
-                assert!(
-                    (numeric - exact).abs() <= 1e-5 * numeric.abs().max(exact.abs()) + floor,
-                    "layer {k} parameter slot {slot} entry {i}: finite difference {numeric}, \
-                     backprop {exact}"
-                );
-                checked += 1;
-            }
-        }
-    }
-    assert!(checked > 0);
-    let size: f64 = analytic
-        .layers
-        .iter()
-        .flat_map(|l| l.parameters())
-        .flatten()
-        .map(|v| v.abs())
-        .sum();
-    assert!(
-        size > 1e-6,
-        "the analytic gradient is (nearly) zero: the check would be vacuous"
-    );
-}
-
-fn random_batch(dim: usize, samples: usize, seed: u64) -> DMatrix<f64> {
-    use rand::{Rng, SeedableRng};
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
-    DMatrix::from_fn(dim, samples, |_, _| rng.gen_range(-1.0..1.0))
 }
 
 // Common practice: backpropagation must agree with central differences (error O(h²)).
@@ -543,6 +496,7 @@ mod primal_dual {
     };
     use ballast::train::plain::TrainableModel;
     use ballast::train::robust::RobustLoss;
+    use nalgebra::DMatrix;
     use rand::{Rng, SeedableRng};
 
     /// Three overlapping classes in 2-D (class means on a line, std 0.6).
@@ -820,6 +774,7 @@ mod primal_dual {
                 pipeline: ballast::certify::PipelineOptions::default(),
                 keep,
                 near_misses,
+                confidence: Default::default(),
             };
             ballast::train::retrain::retrain(
                 &self.model,

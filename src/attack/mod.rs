@@ -14,6 +14,7 @@ pub mod evaluate;
 mod lockstep;
 pub mod runner;
 pub mod step;
+pub mod survey;
 
 pub use counterexample::{forbidden_margin, validate, Counterexample};
 pub use evaluate::margin_and_gradient;

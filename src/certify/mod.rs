@@ -8,6 +8,7 @@
 //! terminal progress bar). Soundness rules are those of the stages: nothing is certified without a
 //! sound bound or proof, every counterexample is re-validated, and an exhausted search is `unresolved`.
 
+pub mod floor_epsilon;
 pub mod journal;
 pub mod lines;
 pub mod merge;
@@ -90,6 +91,8 @@ pub struct Sources {
     pub data_path: String,
     /// SHA-256 of the data file.
     pub data_sha256: String,
+    /// What the input-range policy did while reading the data file (absent: not recorded).
+    pub data_range: Option<crate::data::RangeCounts>,
 }
 
 impl Sources {
@@ -100,6 +103,7 @@ impl Sources {
             model_sha256: crate::digest::sha256_file(model)?,
             data_path: data.display().to_string(),
             data_sha256: crate::digest::sha256_file(data)?,
+            data_range: None,
         })
     }
 
@@ -118,6 +122,7 @@ impl Sources {
             model_sha256: crate::digest::sha256_bytes(model.to_json_string().as_bytes()),
             data_path: "(in memory)".into(),
             data_sha256: crate::digest::sha256_bytes(&bytes),
+            data_range: None,
         }
     }
 }
@@ -310,12 +315,14 @@ fn empty_report(
                 .collect(),
             parameters: model.parameter_count(),
             arithmetic: Some(model.arithmetic.name().to_string()),
+            lineage: crate::model::lineage::Lineage::of(model),
         },
         data: DataInfo {
             path: sources.data_path.clone(),
             sha256: sources.data_sha256.clone(),
             samples: data.len(),
             rows: data.len(),
+            out_of_range: sources.data_range.clone(),
         },
         requirement: RequirementRecord::new(requirement, &class_name),
         settings: Settings {
@@ -338,6 +345,7 @@ fn empty_report(
         per_class: Vec::new(),
         stages: Vec::new(),
         sweep: Vec::new(),
+        floor_epsilons: None,
         seconds: 0.0,
         counterexamples: None,
         requirements: Vec::new(),
@@ -353,6 +361,7 @@ pub fn fingerprint(report: &Report) -> serde_json::Value {
         "model_sha256": report.model.sha256,
         "data_sha256": report.data.sha256,
         "data_rows": report.data.rows,
+        "data_out_of_range": report.data.out_of_range,
         "requirement": report.requirement,
         "settings": report.settings,
     })

@@ -384,6 +384,10 @@ pub struct ModelInfo {
     /// covered exact arithmetic up to a fixed tolerance.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub arithmetic: Option<String>,
+    /// For a model retrained by ballast: its parent, settings, rounds and which data decided what
+    /// (copied from the model's `provenance.retrain.lineage`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub lineage: Option<crate::model::lineage::Lineage>,
 }
 
 /// The acceptance set the report is about.
@@ -395,8 +399,14 @@ pub struct DataInfo {
     pub sha256: String,
     /// Samples covered by this report.
     pub samples: usize,
-    /// Samples in the whole file (differs from `samples` for a shard).
+    /// Samples in the whole file (differs from `samples` for a shard); rows left out by
+    /// `--out-of-range skip` are not counted (see `out_of_range`).
     pub rows: usize,
+    /// What the input-range policy (`--out-of-range`) did while reading the file: the rows it set to
+    /// the range's nearest end or left out, by row number in the file (header = row 1). Absent in
+    /// reports of earlier versions and of data held in memory.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub out_of_range: Option<crate::data::RangeCounts>,
 }
 
 /// The requirement as recorded in the report.
@@ -580,6 +590,9 @@ pub struct Report {
     pub stages: Vec<StageFigures>,
     /// Figures per epsilon (one entry without a sweep).
     pub sweep: Vec<SweepPoint>,
+    /// For a sweep with a floor: the largest swept epsilons that meet it, proven and not refuted.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub floor_epsilons: Option<super::floor_epsilon::FloorEpsilons>,
     /// Total wall-clock seconds of the run (sum over merged shards).
     pub seconds: f64,
     /// File name of the counterexample CSV beside the report, if one was written.
@@ -614,6 +627,7 @@ impl Report {
                 }
             })
             .collect();
+        self.floor_epsilons = super::floor_epsilon::floor_epsilons(&self.sweep, requirement.floor);
         self.per_class = (0..self.model.classes.len())
             .map(|c| {
                 let of: Vec<&SampleRecord> = self.samples.iter().filter(|s| s.label == c).collect();

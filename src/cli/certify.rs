@@ -11,10 +11,7 @@ use std::sync::Arc;
 
 use anyhow::{bail, Context};
 
-use super::common::{
-    add_class_change_flags, load_data, load_model, parse_epsilon_argument, parse_norm,
-    EpsilonArgument,
-};
+use super::common::{load_data_counted, load_model, Epsilons, RequirementArgs};
 use super::Outcome;
 use crate::certify::journal::journal_path;
 use crate::certify::lines::{judge_list, with_line_epsilons};
@@ -23,7 +20,6 @@ use crate::certify::{
     certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report,
     Shard, Sources, Verdict,
 };
-use crate::threat::requirement::{RequirementSpec, ToleranceSource};
 
 /// Arguments of `ballast certify`.
 #[derive(Debug, clap::Args)]
@@ -32,74 +28,65 @@ use crate::threat::requirement::{RequirementSpec, ToleranceSource};
     after_help = "Examples:\n  ballast certify --model m.json --data acceptance.csv --eps 0.05 --floor 0.9 --report r.json --sheet sheet/\n  ballast certify --model m.json --data d.csv --eps tolerances.csv --forbid-into normal --floor 0.95\n  ballast certify --model m.json --data d.csv --eps 0.01,0.02,0.05 --radius --report sweep.json\n\nExit codes: 0 requirement met (or no floor and finished), 1 not met, 2 usage or input error, 3 undecided, 130/143 interrupted."
 )]
 pub struct Args {
-    /// The model file (ballast.model/1 JSON).
-    #[arg(long)]
+    /// The model file (ballast.model/1 JSON, or ONNX).
+    #[arg(long, help_heading = "Inputs")]
     pub model: PathBuf,
     /// The acceptance set (CSV with a label column).
-    #[arg(long)]
+    #[arg(long, help_heading = "Inputs")]
     pub data: PathBuf,
-    /// The budget: a number, a sweep `0.01,0.02,0.05` or `start:stop:step`, or a per-feature tolerance
-    /// file (JSON or CSV; radius = scale × tolerance, scale 1).
-    #[arg(long, allow_hyphen_values = true)]
-    pub eps: Option<String>,
-    /// Per-feature tolerance file; `--eps` then gives the scale (default 1).
-    #[arg(long)]
-    pub tolerances: Option<PathBuf>,
-    /// A requirement file (TOML or JSON); flags override its values.
-    #[arg(long)]
-    pub requirement: Option<PathBuf>,
-    /// The norm of the ball: linf or l2 (default linf).
-    #[arg(long)]
-    pub norm: Option<String>,
-    /// Required robust fraction in [0, 1].
-    #[arg(long, allow_hyphen_values = true)]
-    pub floor: Option<f64>,
-    /// Required clean accuracy in [0, 1].
-    #[arg(long, allow_hyphen_values = true)]
-    pub min_clean_accuracy: Option<f64>,
-    /// Judge the floor by the one-sided Clopper–Pearson lower bound at this level (e.g. 0.95).
-    #[arg(long, allow_hyphen_values = true)]
-    pub confidence: Option<f64>,
-    /// Only changes into these classes count (comma-separated names or indices).
-    #[arg(long)]
-    pub forbid_into: Option<String>,
-    /// Apply --forbid-into only to samples of these true classes (others: any change counts).
-    #[arg(long)]
-    pub forbid_from: Option<String>,
-    /// Seconds of branch and bound per sample and epsilon (0 = bounds only).
-    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
-    pub budget: f64,
-    /// Write the report here (JSON); the journal and counterexamples go beside it.
-    #[arg(long)]
-    pub report: Option<PathBuf>,
-    /// Also render the sheet (Markdown + HTML) into this folder.
-    #[arg(long)]
-    pub sheet: Option<PathBuf>,
-    /// Certify only the K-th of N disjoint slices of the samples (round robin by row index).
-    #[arg(long)]
-    pub shard: Option<String>,
-    /// Continue from the journal beside --report.
-    #[arg(long)]
-    pub resume: bool,
-    /// Also compute each sample's certified radius (bisection with the sound bounds).
-    #[arg(long)]
-    pub radius: bool,
-    /// Seed of the attacks.
-    #[arg(long, default_value_t = 0)]
-    pub seed: u64,
-    /// Skip the quick attack.
-    #[arg(long)]
-    pub no_attack: bool,
     /// Name of the label column.
-    #[arg(long, default_value = "label")]
+    #[arg(long, default_value = "label", help_heading = "Inputs")]
     pub label_column: String,
     /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
     /// Values within a few units in the last place of an end count as on it.
-    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    #[arg(
+        long,
+        default_value = "error",
+        value_name = "error|clip|skip",
+        help_heading = "Inputs"
+    )]
     pub out_of_range: String,
     /// Accept inputs above the size limits.
-    #[arg(long)]
+    #[arg(long, help_heading = "Inputs")]
     pub allow_large: bool,
+    /// Budget, norm, floor, class-change rule, requirement file.
+    #[command(flatten)]
+    pub requirement: RequirementArgs,
+    /// Required clean accuracy in [0, 1].
+    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
+    pub min_clean_accuracy: Option<f64>,
+    /// Judge the floor by the one-sided Clopper–Pearson lower bound at this level (e.g. 0.95).
+    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
+    pub confidence: Option<f64>,
+    /// Seconds of branch and bound per sample and epsilon (0 = bounds only).
+    #[arg(
+        long,
+        default_value_t = 0.0,
+        allow_hyphen_values = true,
+        help_heading = "Search"
+    )]
+    pub budget: f64,
+    /// Also compute each sample's certified radius (bisection with the sound bounds).
+    #[arg(long, help_heading = "Search")]
+    pub radius: bool,
+    /// Seed of the attacks.
+    #[arg(long, default_value_t = 0, help_heading = "Search")]
+    pub seed: u64,
+    /// Skip the quick attack.
+    #[arg(long, help_heading = "Search")]
+    pub no_attack: bool,
+    /// Certify only the K-th of N disjoint slices of the samples (round robin by row index).
+    #[arg(long, value_name = "K/N", help_heading = "Search")]
+    pub shard: Option<String>,
+    /// Continue from the journal beside --report.
+    #[arg(long, help_heading = "Search")]
+    pub resume: bool,
+    /// Write the report here (JSON); the journal and counterexamples go beside it.
+    #[arg(long, help_heading = "Output")]
+    pub report: Option<PathBuf>,
+    /// Also render the sheet (Markdown + HTML) into this folder.
+    #[arg(long, help_heading = "Output")]
+    pub sheet: Option<PathBuf>,
 }
 
 /// Parses `--shard K/N`.
@@ -120,38 +107,6 @@ pub fn parse_shard(text: &str) -> anyhow::Result<Shard> {
         }
         _ => bail!("--shard: \"{text}\" is not allowed, expected K/N with 1 ≤ K ≤ N (e.g. 2/4)"),
     }
-}
-
-fn flags_spec(args: &Args) -> anyhow::Result<RequirementSpec> {
-    let mut spec = RequirementSpec::default();
-    if let Some(e) = &args.eps {
-        match parse_epsilon_argument(e)? {
-            EpsilonArgument::Values(v) => spec.epsilons = Some((v, "--eps".into())),
-            EpsilonArgument::ToleranceFile(p) => {
-                if args.tolerances.is_some() {
-                    bail!("--eps names a tolerance file and --tolerances is given too; give the file once and the scale with --eps");
-                }
-                spec.tolerances = Some((ToleranceSource::File(p), "--eps".into()));
-            }
-        }
-    }
-    if let Some(t) = &args.tolerances {
-        spec.tolerances = Some((ToleranceSource::File(t.clone()), "--tolerances".into()));
-    }
-    if let Some(n) = &args.norm {
-        spec.norm = Some((parse_norm(n)?, "--norm".into()));
-    }
-    spec.floor = args.floor.map(|v| (v, "--floor".to_string()));
-    spec.min_clean_accuracy = args
-        .min_clean_accuracy
-        .map(|v| (v, "--min-clean-accuracy".to_string()));
-    spec.confidence = args.confidence.map(|v| (v, "--confidence".to_string()));
-    add_class_change_flags(
-        &mut spec,
-        args.forbid_into.as_deref(),
-        args.forbid_from.as_deref(),
-    )?;
-    Ok(spec)
 }
 
 /// The exit outcome of a verdict.
@@ -187,20 +142,22 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     }
     let shard = args.shard.as_deref().map(parse_shard).transpose()?;
     let model = load_model(&args.model, args.allow_large)?;
-    let data = load_data(
+    let (data, range) = load_data_counted(
         &args.data,
         &model,
         &args.label_column,
         &args.out_of_range,
         args.allow_large,
     )?;
-    let spec = match args.requirement.as_deref() {
-        Some(p) => RequirementSpec::from_file(p)?,
-        None => RequirementSpec::default(),
-    }
-    .overridden_by(flags_spec(&args)?);
-    let lines = spec.resolve_lines(&model)?;
-    let requirement = with_line_epsilons(&spec.resolve(&model)?, &lines);
+    let (requirement, lines) =
+        args.requirement
+            .resolve_with_lines(&model, Epsilons::Sweep, |spec| {
+                spec.min_clean_accuracy = args
+                    .min_clean_accuracy
+                    .map(|v| (v, "--min-clean-accuracy".to_string()));
+                spec.confidence = args.confidence.map(|v| (v, "--confidence".to_string()));
+            })?;
+    let requirement = with_line_epsilons(&requirement, &lines);
     if !lines.is_empty() && shard.is_some() {
         bail!(
             "--shard: not available with a list of requirements (certify the whole set in one run)"
@@ -215,8 +172,11 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             );
         }
     }
-    let sources =
-        Sources::from_files(&args.model, &args.data).context("reading inputs for their digests")?;
+    let sources = Sources {
+        data_range: Some(range),
+        ..Sources::from_files(&args.model, &args.data)
+            .context("reading inputs for their digests")?
+    };
     let options = CertifyOptions {
         pipeline: PipelineOptions {
             budget_seconds: args.budget,
@@ -346,6 +306,14 @@ pub fn print_summary(report: &Report) {
                 p.summary.unresolved
             );
         }
+    }
+    if let Some(f) = report.floor_epsilons {
+        let shown = |e: Option<f64>| e.map_or("none".to_string(), |e| format!("{e}"));
+        println!(
+            "largest epsilon meeting the floor: proven {}, not refuted {}",
+            shown(f.certified),
+            shown(f.empirical)
+        );
     }
     for l in &report.requirements {
         println!(

@@ -1,13 +1,15 @@
-//! Argument pieces shared by several subcommands: loading models and data with their context, and
-//! turning `--eps` / `--norm` into a checked [`Budget`].
+//! Argument pieces shared by several subcommands: loading models and data with their context, the
+//! requirement flags that `certify`, `attack` and `retrain` share ([`RequirementArgs`]: budget, norm,
+//! floor, class-change rule, requirement file) parsed by one function.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::bail;
 
-use crate::data::{load_csv_counted, DataOptions, Dataset, OutOfRange};
+use crate::data::{load_csv_counted, DataOptions, Dataset, OutOfRange, RangeCounts};
 use crate::model::Model;
-use crate::threat::{Budget, Norm};
+use crate::threat::requirement::{Requirement, RequirementLine, RequirementSpec, ToleranceSource};
+use crate::threat::Norm;
 
 /// Loads a model file (the JSON layout, or ONNX when the name ends in `.onnx`), refusing models above the parameter limit unless allowed.
 pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
@@ -18,7 +20,11 @@ pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
     };
     let model = if crate::model::onnx::is_onnx_path(path) {
         // ONNX is converted in memory; its input range is unbounded unless the file's metadata says so.
-        crate::model::onnx::load_onnx(path, max_bytes, &Default::default())?
+        let options = crate::model::onnx::ImportOptions {
+            allow_large,
+            ..Default::default()
+        };
+        crate::model::onnx::load_onnx(path, max_bytes, &options)?
     } else {
         Model::load_with_limit(path, max_bytes)?
     };
@@ -34,14 +40,14 @@ pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
 }
 
 /// Loads a data file for `model` under the input-range policy `out_of_range` (`--out-of-range`);
-/// says on stderr how many rows the policy clipped or skipped.
-pub fn load_data(
+/// says on stderr how many rows the policy clipped or skipped and returns what it did (for the report).
+pub fn load_data_counted(
     path: &Path,
     model: &Model,
     label_column: &str,
     out_of_range: &str,
     allow_large: bool,
-) -> anyhow::Result<Dataset> {
+) -> anyhow::Result<(Dataset, RangeCounts)> {
     let options = DataOptions {
         label_column: label_column.to_owned(),
         out_of_range: out_of_range
@@ -54,60 +60,40 @@ pub fn load_data(
         },
     };
     let (data, counts) = load_csv_counted(path, model, &options)?;
-    if counts.clipped_rows > 0 {
+    if counts.clipped_rows() > 0 {
         eprintln!(
             "note: {}: {} of {} rows had values outside the model's input range, set to its nearest end (--out-of-range clip)",
             path.display(),
-            counts.clipped_rows,
+            counts.clipped_rows(),
             data.len()
         );
     }
-    if counts.skipped_rows > 0 {
+    if counts.skipped_rows() > 0 {
         eprintln!(
             "note: {}: {} rows lie outside the model's input range and were left out (--out-of-range skip); {} remain",
             path.display(),
-            counts.skipped_rows,
+            counts.skipped_rows(),
             data.len()
         );
     }
-    Ok(data)
+    Ok((data, counts))
+}
+
+/// [`load_data_counted`] without the record of what the policy did.
+pub fn load_data(
+    path: &Path,
+    model: &Model,
+    label_column: &str,
+    out_of_range: &str,
+    allow_large: bool,
+) -> anyhow::Result<Dataset> {
+    load_data_counted(path, model, label_column, out_of_range, allow_large).map(|(d, _)| d)
 }
 
 /// Parses `--norm`.
 pub fn parse_norm(text: &str) -> anyhow::Result<Norm> {
     text.parse::<Norm>()
         .map_err(|m| anyhow::anyhow!("--norm: {m}"))
-}
-
-/// Parses `--eps` as one non-negative finite number for all features.
-pub fn parse_epsilon(text: &str) -> anyhow::Result<f64> {
-    let value: f64 = text
-        .trim()
-        .parse()
-        .map_err(|_| anyhow::anyhow!("--eps: \"{text}\" is not a number"))?;
-    if !value.is_finite() || value < 0.0 {
-        bail!("--eps: {value} is not allowed, expected a finite number ≥ 0");
-    }
-    Ok(value)
-}
-
-/// The uniform budget of `--eps E --norm N` for `model`.
-pub fn uniform_budget(eps: &str, norm: &str, model: &Model) -> anyhow::Result<Budget> {
-    Ok(Budget::uniform(
-        parse_norm(norm)?,
-        parse_epsilon(eps)?,
-        model.input.dim,
-    ))
-}
-
-/// Checks `--floor` lies in [0, 1].
-pub fn check_floor(floor: Option<f64>) -> anyhow::Result<Option<f64>> {
-    if let Some(f) = floor {
-        if !(0.0..=1.0).contains(&f) {
-            bail!("--floor: {f} is not allowed, expected a fraction in [0, 1]");
-        }
-    }
-    Ok(floor)
 }
 
 /// What a `--eps` value names: epsilon values (one number, a comma list or a `start:stop:step` range)
@@ -156,7 +142,7 @@ pub fn parse_class_list(text: &str, flag: &str) -> anyhow::Result<Vec<String>> {
 
 /// Adds `--forbid-into` / `--forbid-from` (comma-separated class names or indices) to a flag spec.
 pub fn add_class_change_flags(
-    spec: &mut crate::threat::requirement::RequirementSpec,
+    spec: &mut RequirementSpec,
     forbid_into: Option<&str>,
     forbid_from: Option<&str>,
 ) -> anyhow::Result<()> {
@@ -175,16 +161,125 @@ pub fn add_class_change_flags(
     Ok(())
 }
 
-/// The requirement of a run: the requirement file's values (if a file is given), overridden by the
-/// command-line flags, resolved against `model`.
-pub fn resolve_requirement(
-    file: Option<&Path>,
-    flags: crate::threat::requirement::RequirementSpec,
-    model: &Model,
-) -> anyhow::Result<crate::threat::requirement::Requirement> {
-    let file_spec = match file {
-        Some(p) => crate::threat::requirement::RequirementSpec::from_file(p)?,
-        None => crate::threat::requirement::RequirementSpec::default(),
-    };
-    Ok(file_spec.overridden_by(flags).resolve(model)?)
+/// How many epsilons a command takes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Epsilons {
+    /// One or a sweep (a list or a range).
+    Sweep,
+    /// Exactly one.
+    One,
+}
+
+/// The requirement flags shared by `certify`, `attack` and `retrain`; parsed by one function
+/// ([`RequirementArgs::spec`]) so every command reads them the same way.
+#[derive(Debug, Clone, clap::Args)]
+#[command(next_help_heading = "Requirement")]
+pub struct RequirementArgs {
+    /// The budget: a number (raw input units), a sweep `0.01,0.02,0.05` or `start:stop:step`
+    /// (certify only), or a per-feature tolerance file (JSON or CSV; radius = scale × tolerance, scale 1).
+    #[arg(long, allow_hyphen_values = true, value_name = "E|FILE")]
+    pub eps: Option<String>,
+    /// Per-feature tolerance file (JSON or CSV); --eps then gives the scale [default: 1].
+    #[arg(long, value_name = "FILE")]
+    pub tolerances: Option<PathBuf>,
+    /// A requirement file (TOML or JSON: epsilon, tolerances, norm, floor, forbid_into, forbid_from, …);
+    /// flags override its values.
+    #[arg(long, value_name = "FILE")]
+    pub requirement: Option<PathBuf>,
+    /// The norm of the ball: linf or l2 [default: linf].
+    #[arg(long, value_name = "linf|l2")]
+    pub norm: Option<String>,
+    /// Required robust fraction in [0, 1].
+    #[arg(long, allow_hyphen_values = true, value_name = "F")]
+    pub floor: Option<f64>,
+    /// Only changes into these classes count (comma-separated names or indices) [default: any change].
+    #[arg(long, value_name = "CLASSES")]
+    pub forbid_into: Option<String>,
+    /// Apply --forbid-into only to samples of these true classes (others: any change counts).
+    #[arg(long, value_name = "CLASSES")]
+    pub forbid_from: Option<String>,
+}
+
+impl RequirementArgs {
+    /// The flags as an unchecked spec (values named by their flag), taking `epsilons` of them.
+    pub fn spec(&self, epsilons: Epsilons) -> anyhow::Result<RequirementSpec> {
+        let mut spec = RequirementSpec::default();
+        if let Some(e) = &self.eps {
+            match parse_epsilon_argument(e)? {
+                EpsilonArgument::Values(v) if v.len() > 1 && epsilons == Epsilons::One => {
+                    bail!("--eps: \"{e}\" is a sweep, expected one number or a tolerance file (only certify sweeps)")
+                }
+                EpsilonArgument::Values(v) => spec.epsilons = Some((v, "--eps".into())),
+                EpsilonArgument::ToleranceFile(p) => {
+                    if self.tolerances.is_some() {
+                        bail!("--eps names a tolerance file and --tolerances is given too; give the file once and the scale with --eps");
+                    }
+                    spec.tolerances = Some((ToleranceSource::File(p), "--eps".into()));
+                }
+            }
+        }
+        if let Some(t) = &self.tolerances {
+            spec.tolerances = Some((ToleranceSource::File(t.clone()), "--tolerances".into()));
+        }
+        if let Some(n) = &self.norm {
+            spec.norm = Some((parse_norm(n)?, "--norm".into()));
+        }
+        spec.floor = self.floor.map(|v| (v, "--floor".to_string()));
+        add_class_change_flags(
+            &mut spec,
+            self.forbid_into.as_deref(),
+            self.forbid_from.as_deref(),
+        )?;
+        Ok(spec)
+    }
+
+    /// The requirement of the run: the requirement file's values overridden by the flags (`extra`
+    /// adds command-specific flags to the spec), resolved against `model`. Without any budget the
+    /// error lists only the forms this command accepts.
+    pub fn resolve(
+        &self,
+        model: &Model,
+        epsilons: Epsilons,
+        extra: impl FnOnce(&mut RequirementSpec),
+    ) -> anyhow::Result<Requirement> {
+        Ok(self.resolve_with_lines(model, epsilons, extra)?.0)
+    }
+
+    /// As [`RequirementArgs::resolve`], with the checked lines of the file's requirement list (empty
+    /// without a list). With a list the top-level budget may be absent: the lines carry theirs.
+    pub fn resolve_with_lines(
+        &self,
+        model: &Model,
+        epsilons: Epsilons,
+        extra: impl FnOnce(&mut RequirementSpec),
+    ) -> anyhow::Result<(Requirement, Vec<RequirementLine>)> {
+        let mut flags = self.spec(epsilons)?;
+        extra(&mut flags);
+        let file = match &self.requirement {
+            Some(p) => RequirementSpec::from_file(p)?,
+            None => RequirementSpec::default(),
+        };
+        let merged = file.overridden_by(flags);
+        if merged.epsilons.is_none() && merged.tolerances.is_none() && merged.lines.is_empty() {
+            bail!(
+                "--eps: no budget given: pass --eps with {}, or --tolerances FILE, or --requirement FILE with epsilon or tolerances",
+                match epsilons {
+                    Epsilons::Sweep => "a number, a list, a range or a tolerance file",
+                    Epsilons::One => "one number or a tolerance file",
+                }
+            );
+        }
+        if epsilons == Epsilons::One {
+            if let Some((values, place)) = &merged.epsilons {
+                if values.len() > 1 {
+                    bail!(
+                        "{place}: {} epsilons, expected one (only certify sweeps)",
+                        values.len()
+                    );
+                }
+            }
+        }
+        let lines = merged.resolve_lines(model)?;
+        Ok((merged.resolve(model)?, lines))
+    }
 }

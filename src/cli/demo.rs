@@ -1,6 +1,7 @@
 //! `ballast demo [--out DIR] [--quick]`: the whole job on the bundled pump-fleet demo (the files are
-//! embedded in the binary, so it works from any folder): certify `pump-mlp`, retrain it toward the
-//! floor, certify again, write both reports and sheets, print a short summary with the paths.
+//! embedded in the binary, so it works from any folder): for `pump-mlp` (twelve readings) and
+//! `pump-cnn` (64-bin spectra), certify, retrain toward the floor, certify again, write the reports
+//! and sheets, print a short summary with the paths.
 //!
 //! It exits 0 when every stage ran, whatever the verdicts; the verdicts are in the summary and reports.
 
@@ -37,14 +38,21 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     }
     let outcome = run_demo(&options, &mut |line| println!("{line}"))?;
     println!();
-    println!("summary ({} acceptance samples)", outcome.samples);
-    println!("  bundled model   {}", outcome.before.model.display());
-    println!("    {}", describe(&outcome.before.summary));
-    println!("    report {}", outcome.before.report.display());
-    println!("    sheet  {}", outcome.before.sheet_html.display());
-    println!("  retrained model {}", outcome.after.model.display());
-    println!("    {}", describe(&outcome.after.summary));
-    println!("    report {}", outcome.after.report.display());
-    println!("    sheet  {}", outcome.after.sheet_html.display());
+    println!("summary ({} acceptance samples per model)", outcome.samples);
+    for (form, case) in [
+        ("twelve readings", &outcome.mlp),
+        ("64-bin spectra", &outcome.cnn),
+    ] {
+        println!("  {form}");
+        for (what, certified) in [
+            ("bundled model  ", &case.before),
+            ("retrained model", &case.after),
+        ] {
+            println!("    {what} {}", certified.model.display());
+            println!("      {}", describe(&certified.summary));
+            println!("      report {}", certified.report.display());
+            println!("      sheet  {}", certified.sheet_html.display());
+        }
+    }
     Ok(super::Outcome::Finished)
 }

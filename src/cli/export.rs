@@ -1,5 +1,6 @@
 //! `ballast export --model M.json --onnx M.onnx [--float64]`: writes a model as a plain ONNX graph (Gemm /
-//! Relu, normalisation as Sub / Div) so a retrained model goes back into an ONNX inference stack.
+//! Relu, normalisation as Sub / Div, Conv / BatchNormalization / MaxPool / AveragePool / Flatten) so a
+//! retrained model goes back into an ONNX inference stack.
 
 use std::path::PathBuf;
 

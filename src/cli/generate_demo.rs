@@ -1,6 +1,6 @@
 //! `ballast generate-demo --out DIR [--seed S]`: regenerate the bundled pump-fleet demo: data,
-//! tolerance and requirement files under `DIR/demo-data/`, and the two models, retrained by the plain
-//! cross-entropy trainer, under `DIR/models/`.
+//! tolerance and requirement files of both input forms under `DIR/demo-data/`, and the three models,
+//! trained from scratch by the plain cross-entropy trainer, under `DIR/models/`.
 
 use std::path::PathBuf;
 
@@ -35,13 +35,29 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     let folder = args.out.join("models");
     std::fs::create_dir_all(&folder).map_err(|e| anyhow::anyhow!("{}: {e}", folder.display()))?;
     let (linear, mlp) = models::train_demo_models(&data.train, args.seed)?;
+    let cnn = models::train_cnn_model(&data.spectrum_train, args.seed, args.seed)?;
     let acceptance = data.acceptance.to_dataset();
-    for (file, trained) in [(models::LINEAR_FILE, &linear), (models::MLP_FILE, &mlp)] {
+    let spectrum_acceptance = data.spectrum_acceptance.to_dataset();
+    for (file, trained, acceptance, acceptance_file) in [
+        (
+            models::LINEAR_FILE,
+            &linear,
+            &acceptance,
+            files::ACCEPTANCE_FILE,
+        ),
+        (models::MLP_FILE, &mlp, &acceptance, files::ACCEPTANCE_FILE),
+        (
+            models::CNN_FILE,
+            &cnn,
+            &spectrum_acceptance,
+            files::SPECTRUM_ACCEPTANCE_FILE,
+        ),
+    ] {
         let path = folder.join(file);
         trained.model.save(&path)?;
-        let accuracy = evaluate(&trained.model, &acceptance).accuracy;
+        let accuracy = evaluate(&trained.model, acceptance).accuracy;
         println!(
-            "wrote {} ({} epochs, best {}, clean accuracy on acceptance.csv {:.4})",
+            "wrote {} ({} epochs, best {}, clean accuracy on {acceptance_file} {:.4})",
             path.display(),
             trained.log.epochs.len(),
             trained.log.best_epoch,

@@ -1,5 +1,6 @@
-//! `ballast import --onnx M.onnx --out M.json`: converts an ONNX graph of fully connected layers into the
-//! `ballast.model/1` layout, adding the valid input range, class names and a name.
+//! `ballast import --onnx M.onnx --out M.json`: converts an ONNX graph of fully connected or
+//! convolutional layers into the `ballast.model/1` layout, adding the valid input range, class names
+//! and a name.
 
 use std::path::{Path, PathBuf};
 
@@ -33,7 +34,7 @@ pub struct Args {
     /// Class names, comma-separated, one per class (overrides labels found in the graph).
     #[arg(long, value_name = "A,B,..")]
     pub classes: Option<String>,
-    /// Model name (default: the graph name).
+    /// Model name [default: the graph name].
     #[arg(long)]
     pub name: Option<String>,
     /// The graph output holding the scores, when the graph has several floating-point outputs.
@@ -49,6 +50,7 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
     let mut options = ImportOptions {
         name: args.name.clone(),
         score_output: args.output.clone(),
+        allow_large: args.allow_large,
         ..ImportOptions::default()
     };
     if let Some(classes) = &args.classes {

@@ -40,7 +40,14 @@ pub fn describe(model: &Model) -> String {
     use std::fmt::Write;
     let mut s = String::new();
     let _ = writeln!(s, "model: {}", model.name.as_deref().unwrap_or("(unnamed)"));
-    let _ = writeln!(s, "inputs: {}", model.input.dim);
+    let unnamed = match &model.input.names {
+        Some(_) => String::new(),
+        None => format!(
+            " (unnamed: tolerance files call them x0 … x{}, data columns are taken in order)",
+            model.input.dim.saturating_sub(1)
+        ),
+    };
+    let _ = writeln!(s, "inputs: {}{unnamed}", model.input.dim);
     let mut width = model.input.dim;
     for (i, layer) in model.layers.iter().enumerate() {
         match layer {

@@ -70,7 +70,7 @@ pub enum Command {
     /// Attacks only: search for counterexamples.
     Attack(attack::Args),
     /// Retrain a model until the certified floor holds.
-    Retrain(retrain::Args),
+    Retrain(Box<retrain::Args>),
     /// Render Markdown and HTML from a saved report.
     Sheet(sheet::Args),
     /// Combine the reports of `--shard K/N` runs into one report.
@@ -92,7 +92,7 @@ pub fn run(cli: Cli) -> anyhow::Result<Outcome> {
         Command::GenerateDemo(a) => generate_demo::run(a),
         Command::Certify(a) => certify::run(a),
         Command::Attack(a) => attack::run(a),
-        Command::Retrain(a) => retrain::run(a),
+        Command::Retrain(a) => retrain::run(*a),
         Command::Sheet(a) => sheet::run(a),
         Command::Merge(a) => merge::run(a),
         Command::Inspect(a) => inspect::run(a),

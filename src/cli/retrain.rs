@@ -8,15 +8,13 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 
-use super::common::{
-    add_class_change_flags, load_data, load_model, parse_epsilon_argument, parse_norm,
-    resolve_requirement, EpsilonArgument,
-};
+use super::common::{load_data, load_model, Epsilons, RequirementArgs};
 use super::Outcome;
 use crate::certify::PipelineOptions;
-use crate::threat::requirement::{RequirementSpec, ToleranceSource};
+use crate::threat::requirement::RequirementSpec;
+use crate::train::confidence::{self, Assessment, ConfidenceSettings};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
-use crate::train::curves::{plot_svg, Series};
+use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
 use crate::train::price::{prices, Price};
 use crate::train::retrain::{
@@ -29,126 +27,164 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 #[derive(Debug, clap::Args)]
 #[command(
     allow_negative_numbers = true,
-    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n\nExit codes: 0 floor proven on the acceptance data, 1 not met, 2 usage or input error."
+    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
 )]
 pub struct Args {
     /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
-    #[arg(long)]
+    #[arg(long, help_heading = "Inputs")]
     pub model: PathBuf,
     /// Training data (CSV).
-    #[arg(long)]
+    #[arg(long, help_heading = "Inputs")]
     pub train: PathBuf,
-    /// Validation data (CSV); default: 20% held out from --train.
-    #[arg(long)]
+    /// Validation data (CSV): decides which weights each round keeps [default: 20% of --train held out].
+    #[arg(long, help_heading = "Inputs")]
     pub val: Option<PathBuf>,
-    /// Acceptance data for the final certify check; default: the validation data.
-    #[arg(long)]
+    /// Acceptance data: the certify check after each round, which decides whether another round runs
+    /// [default: the validation data].
+    #[arg(long, help_heading = "Inputs")]
     pub acceptance: Option<PathBuf>,
-    /// The budget: one number, or a per-feature tolerance file (radius = tolerance).
-    #[arg(long, allow_hyphen_values = true)]
-    pub eps: Option<String>,
-    /// Norm of the ball: linf or l2 (default linf).
-    #[arg(long)]
-    pub norm: Option<String>,
-    /// Required certified fraction on the acceptance data.
-    #[arg(long, allow_hyphen_values = true)]
-    pub floor: Option<f64>,
-    /// A requirement file (TOML or JSON: epsilon, tolerances, norm, floor, forbid_into, forbid_from);
-    /// flags override its values.
-    #[arg(long)]
-    pub requirement: Option<PathBuf>,
-    /// Only changes into these classes count (names or indices, comma-separated).
-    #[arg(long)]
-    pub forbid_into: Option<String>,
-    /// True classes the --forbid-into restriction applies to (names or indices, comma-separated).
-    #[arg(long)]
-    pub forbid_from: Option<String>,
+    /// Name of the label column.
+    #[arg(long, default_value = "label", help_heading = "Inputs")]
+    pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(
+        long,
+        default_value = "error",
+        value_name = "error|clip|skip",
+        help_heading = "Inputs"
+    )]
+    pub out_of_range: String,
+    /// Accept inputs above the size limits.
+    #[arg(long, help_heading = "Inputs")]
+    pub allow_large: bool,
+    /// Budget, norm, floor, class-change rule, requirement file.
+    #[command(flatten)]
+    pub requirement: RequirementArgs,
+    /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
+    #[arg(long, help_heading = "Training")]
+    pub hidden: Option<String>,
+    /// Judge the floor as a reviewer will: the one-sided Clopper–Pearson lower bound at this level
+    /// (e.g. 0.95) on the acceptance set; training aims at the level that makes that check pass. Needs
+    /// --acceptance or --acceptance-size.
+    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
+    pub confidence: Option<f64>,
+    /// Size of the reviewer's acceptance set, when the set itself stays with the reviewer (with
+    /// --confidence; not with --acceptance).
+    #[arg(long, help_heading = "Requirement")]
+    pub acceptance_size: Option<usize>,
+    /// Wanted probability that the reviewer's check passes (with --confidence) [default: the
+    /// confidence level].
+    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
+    pub pass_probability: Option<f64>,
     /// Epochs of the first round.
-    #[arg(long, default_value_t = 30)]
+    #[arg(long, default_value_t = 30, help_heading = "Training")]
     pub epochs: usize,
-    /// Epochs of every further round (default: half of --epochs).
-    #[arg(long)]
+    /// Epochs of every further round [default: half of --epochs].
+    #[arg(long, help_heading = "Training")]
     pub round_epochs: Option<usize>,
     /// Largest number of train-then-certify rounds.
-    #[arg(long, default_value_t = 3)]
+    #[arg(long, default_value_t = 3, help_heading = "Training")]
     pub max_rounds: usize,
+    /// Epochs over which epsilon ramps up from 0 [default: 40% of --epochs].
+    #[arg(long, help_heading = "Training")]
+    pub ramp_epochs: Option<usize>,
+    /// Adam learning rate.
+    #[arg(
+        long,
+        default_value_t = 0.002,
+        allow_hyphen_values = true,
+        help_heading = "Training"
+    )]
+    pub learning_rate: f64,
+    /// Step-size factor at the end of --epochs: the rate is held through the epsilon ramp, then
+    /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
+    #[arg(
+        long,
+        default_value_t = 1.0,
+        allow_hyphen_values = true,
+        help_heading = "Training"
+    )]
+    pub final_rate: f64,
+    /// Mini-batch size.
+    #[arg(long, default_value_t = 64, help_heading = "Training")]
+    pub batch_size: usize,
     /// Seed of initialisation, shuffling and attacks.
-    #[arg(long, default_value_t = 0)]
+    #[arg(long, default_value_t = 0, help_heading = "Training")]
     pub seed: u64,
     /// Robust loss: certified (linear + interval bounds), interval, or adversarial (PGD).
-    #[arg(long, default_value = "certified")]
+    #[arg(long, default_value = "certified", help_heading = "Training")]
     pub loss: String,
     /// Constraint: error (robust error rate ≤ 1 − floor − slack) or loss (robust loss ≤ --level).
-    #[arg(long, default_value = "error")]
+    #[arg(long, default_value = "error", help_heading = "Training")]
     pub constraint: String,
     /// Robust loss level for --constraint loss.
-    #[arg(long, allow_hyphen_values = true)]
+    #[arg(long, allow_hyphen_values = true, help_heading = "Training")]
     pub level: Option<f64>,
     /// Extra margin on the robust-error constraint in the first round.
-    #[arg(long, default_value_t = 0.02, allow_hyphen_values = true)]
+    #[arg(
+        long,
+        default_value_t = 0.02,
+        allow_hyphen_values = true,
+        help_heading = "Training"
+    )]
     pub slack: f64,
     /// Slack added in every further round.
-    #[arg(long, default_value_t = 0.03, allow_hyphen_values = true)]
+    #[arg(
+        long,
+        default_value_t = 0.03,
+        allow_hyphen_values = true,
+        help_heading = "Training"
+    )]
     pub slack_step: f64,
     /// Fixed penalty weight instead of the primal-dual multiplier (for comparison).
-    #[arg(long, allow_hyphen_values = true)]
+    #[arg(long, allow_hyphen_values = true, help_heading = "Training")]
     pub penalty: Option<f64>,
     /// One constraint and multiplier per class.
-    #[arg(long)]
+    #[arg(long, help_heading = "Training")]
     pub per_class: bool,
+    /// Dual step size of the multiplier update.
+    #[arg(
+        long,
+        default_value_t = 0.05,
+        allow_hyphen_values = true,
+        help_heading = "Training"
+    )]
+    pub dual_step: f64,
     /// Which epoch's weights each round returns: best-feasible (lowest validation clean loss among
     /// epochs whose validation certified accuracy reaches the floor), earliest-feasible (the earliest
     /// of them within one standard error of that loss), both primal-dual only; or last.
-    #[arg(long, default_value = "best-feasible")]
+    #[arg(long, default_value = "best-feasible", help_heading = "Kept weights")]
     pub keep: String,
     /// Validation checks per epoch (≥ 1): each is a candidate for --keep; more checks follow
     /// certified accuracy more finely at the cost of one linear-bound pass over the validation data
     /// each.
-    #[arg(long, default_value_t = 4)]
+    #[arg(long, default_value_t = 4, help_heading = "Kept weights")]
     pub checks_per_epoch: usize,
     /// Checks up to this fraction below the floor by linear bounds are candidates for --keep too,
     /// kept only when the certify pipeline proves the floor for them on the validation data; 0 = off.
-    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
+    #[arg(
+        long,
+        default_value_t = 0.0,
+        allow_hyphen_values = true,
+        help_heading = "Kept weights"
+    )]
     pub near_miss: f64,
     /// Most certify runs on the validation data per round to judge near misses.
-    #[arg(long, default_value_t = 3)]
+    #[arg(long, default_value_t = 3, help_heading = "Kept weights")]
     pub near_miss_tries: usize,
-    /// Step-size factor at the end of --epochs: the rate is held through the epsilon ramp, then
-    /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
-    #[arg(long, default_value_t = 1.0, allow_hyphen_values = true)]
-    pub final_rate: f64,
-    /// Dual step size of the multiplier update (it follows the --final-rate schedule).
-    #[arg(long, default_value_t = 0.05, allow_hyphen_values = true)]
-    pub dual_step: f64,
     /// Average the weights and multipliers over this last fraction of --epochs' steps and use the
     /// average with --keep last (primal recovery; docs/retrain.md); 0 = off.
-    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
+    #[arg(
+        long,
+        default_value_t = 0.0,
+        allow_hyphen_values = true,
+        help_heading = "Training"
+    )]
     pub average_tail: f64,
-    /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
-    #[arg(long)]
-    pub hidden: Option<String>,
-    /// Adam learning rate.
-    #[arg(long, default_value_t = 0.002, allow_hyphen_values = true)]
-    pub learning_rate: f64,
-    /// Mini-batch size.
-    #[arg(long, default_value_t = 64)]
-    pub batch_size: usize,
-    /// Epochs over which epsilon ramps up from 0 (default: 40% of --epochs).
-    #[arg(long)]
-    pub ramp_epochs: Option<usize>,
     /// Where to write the retrained model (the log and sheet go to a folder beside it).
-    #[arg(long)]
+    #[arg(long, help_heading = "Output")]
     pub out: PathBuf,
-    /// Name of the label column.
-    #[arg(long, default_value = "label")]
-    pub label_column: String,
-    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
-    /// Values within a few units in the last place of an end count as on it.
-    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
-    pub out_of_range: String,
-    /// Accept inputs above the size limits.
-    #[arg(long)]
-    pub allow_large: bool,
 }
 
 fn parse_hidden(text: &str) -> anyhow::Result<Vec<usize>> {
@@ -174,10 +210,25 @@ pub fn sheet_folder(out: &Path) -> PathBuf {
     out.with_file_name(format!("{stem}.retrain"))
 }
 
+/// Checks, before any training, that the model can be written at `out` and the log and sheet in the
+/// folder beside it.
+fn check_outputs(out: &Path) -> anyhow::Result<()> {
+    crate::atomic::check_writable(out)
+        .map_err(|m| anyhow::anyhow!("--out: {}: {m}", out.display()))?;
+    let folder = sheet_folder(out);
+    if folder.exists() && !folder.is_dir() {
+        bail!(
+            "--out: {} is a file, but the log and sheet go into a folder of that name",
+            folder.display()
+        );
+    }
+    Ok(())
+}
+
 /// Runs `ballast retrain`.
 pub fn run(args: Args) -> anyhow::Result<Outcome> {
     // Validate the plain values first.
-    if let Some(floor) = args.floor {
+    if let Some(floor) = args.requirement.floor {
         if !(0.0..=1.0).contains(&floor) {
             bail!("--floor: {floor} is not allowed, expected a fraction in [0, 1]");
         }
@@ -216,6 +267,19 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             args.near_miss
         );
     }
+    if args.acceptance_size.is_some() && args.acceptance.is_some() {
+        bail!(
+            "--acceptance-size: not allowed with --acceptance, whose size is the acceptance set's"
+        );
+    }
+    if args.acceptance_size == Some(0) {
+        bail!("--acceptance-size: 0 is not allowed, expected a whole number ≥ 1");
+    }
+    if let Some(q) = args.pass_probability {
+        if !(q > 0.0 && q < 1.0) {
+            bail!("--pass-probability: {q} is not allowed, expected a level strictly between 0 and 1 (e.g. 0.95)");
+        }
+    }
     if args.checks_per_epoch == 0 {
         bail!("--checks-per-epoch: 0 is not allowed, expected a whole number ≥ 1");
     }
@@ -248,7 +312,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     };
     let constraint = match args.constraint.as_str() {
         "error" => Constraint::RobustError {
-            floor: args.floor.unwrap_or(0.0),
+            floor: args.requirement.floor.unwrap_or(0.0),
             slack: args.slack,
         },
         "loss" => match args.level {
@@ -269,13 +333,23 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         ),
     };
     let hidden = args.hidden.as_deref().map(parse_hidden).transpose()?;
-    if let Some(parent) = args.out.parent() {
-        if !parent.as_os_str().is_empty() && !parent.is_dir() {
-            bail!("--out: the folder {} does not exist", parent.display());
-        }
-    }
+    check_outputs(&args.out)?;
 
     let parent = load_model(&args.model, args.allow_large)?;
+    if let Some(path) = args.requirement.requirement.as_deref() {
+        if !RequirementSpec::from_file(path)?.lines.is_empty() {
+            bail!(
+                "{}: requirements: retrain takes one requirement (epsilon and floor at the top level); a list of requirements is judged by certify, retraining against a list is not available yet",
+                path.display()
+            );
+        }
+    }
+    let requirement = args.requirement.resolve(&parent, Epsilons::One, |spec| {
+        spec.confidence = args.confidence.map(|c| (c, "--confidence".to_string()));
+    })?;
+    let Some(floor) = requirement.floor else {
+        bail!("--floor: retraining needs a floor (give --floor or a requirement file with floor)");
+    };
     let parent_sha256 = crate::digest::sha256_file(&args.model)
         .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
     let train_all = load_data(
@@ -315,39 +389,20 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         None => validation.clone(),
     };
 
-    let mut spec = RequirementSpec::default();
-    if let Some(eps) = &args.eps {
-        match parse_epsilon_argument(eps)? {
-            EpsilonArgument::Values(v) if v.len() == 1 => spec.epsilons = Some((v, "--eps".into())),
-            EpsilonArgument::Values(_) => bail!("--eps: retraining takes one epsilon, not a sweep"),
-            EpsilonArgument::ToleranceFile(p) => {
-                spec.tolerances = Some((ToleranceSource::File(p), "--eps".into()))
-            }
-        }
-    }
-    if let Some(norm) = &args.norm {
-        spec.norm = Some((parse_norm(norm)?, "--norm".into()));
-    }
-    spec.floor = args.floor.map(|f| (f, "--floor".to_string()));
-    add_class_change_flags(
-        &mut spec,
-        args.forbid_into.as_deref(),
-        args.forbid_from.as_deref(),
-    )?;
-    if let Some(path) = args.requirement.as_deref() {
-        if !RequirementSpec::from_file(path)?.lines.is_empty() {
-            bail!(
-                "{}: requirements: retrain takes one requirement (epsilon and floor at the top level); a list of requirements is judged by certify, retraining against a list is not available yet",
-                path.display()
-            );
-        }
-    }
-    let requirement = resolve_requirement(args.requirement.as_deref(), spec, &parent)?;
-    let Some(floor) = requirement.floor else {
-        bail!("--floor: retraining needs a floor (give --floor or a requirement file with floor)");
+    let confidence = ConfidenceSettings {
+        acceptance_size: args.acceptance_size,
+        pass_probability: args.pass_probability,
     };
-    if requirement.epsilons.len() != 1 {
-        bail!("--eps: retraining takes one epsilon, not a sweep");
+    if requirement.confidence.is_none()
+        && (args.acceptance_size.is_some() || args.pass_probability.is_some())
+    {
+        bail!("--acceptance-size / --pass-probability: only used with --confidence (or confidence in the requirement file)");
+    }
+    if requirement.confidence.is_some()
+        && args.acceptance.is_none()
+        && args.acceptance_size.is_none()
+    {
+        bail!("--confidence: the reviewer's check needs the acceptance set: give --acceptance FILE, or --acceptance-size N when the set stays with the reviewer (the validation data cannot stand in for it)");
     }
 
     let initial = match &hidden {
@@ -403,6 +458,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             margin: args.near_miss,
             tries: args.near_miss_tries,
         },
+        confidence,
     };
     let mut print_epoch = |e: &ConstrainedEpoch| {
         eprintln!(
@@ -429,6 +485,13 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     // Outputs: model, then log and sheet in the folder beside it.
     let last = result.rounds.last().expect("at least one round");
     let prices = final_prices(&settings, floor, &result, &|c| parent.class_name(c));
+    let lineage = lineage(
+        &args.model.display().to_string(),
+        &parent_sha256,
+        &settings,
+        &result,
+        &retrain_data(&args, train.len(), validation.len(), acceptance.len()),
+    );
     let mut model = result.model.clone();
     model.provenance = Some(serde_json::json!({
         "parent": parent.provenance.clone().unwrap_or(serde_json::Value::Null),
@@ -447,6 +510,8 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             },
             "rounds": result.rounds,
             "prices": &prices,
+            "multipliers": lineage.multipliers,
+            "lineage": lineage,
             "final": {
                 "verdict": result.verdict,
                 "clean_accuracy": last.clean_accuracy,
@@ -454,6 +519,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "empirical_robust_accuracy": last.empirical_robust_accuracy,
                 "acceptance_samples": acceptance.len(),
             },
+            "confidence": result.plan.map(|plan| confidence::json(&plan, &round_assessments(&result))),
         }
     }));
     model.save(&args.out)?;
@@ -462,13 +528,17 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         .with_context(|| format!("{}: creating the folder", folder.display()))?;
     write(&folder.join("log.csv"), &log_csv(&result))?;
     write(&folder.join("checks.csv"), &checks_csv(&result))?;
-    let (accuracy_svg, multiplier_svg) = curves(&result);
+    let (accuracy_svg, multiplier_svg) = crate::sheet::retrain_plots::retrain_plots(&result, floor);
     write(&folder.join("accuracy.svg"), &accuracy_svg)?;
     write(&folder.join("loss_and_multiplier.svg"), &multiplier_svg)?;
     let described = requirement.describe(&|c| parent.class_name(c));
     write(
         &folder.join("retrain.md"),
-        &sheet_markdown(&args, &described, floor, &result, acceptance.len(), &prices),
+        &format!(
+            "{}\n{}",
+            sheet_markdown(&args, &described, floor, &result, acceptance.len(), &prices),
+            crate::sheet::lineage::retrain_sheet_section(&lineage)
+        ),
     )?;
     println!(
         "retrain: {} after {} round(s): certified accuracy {:.4} (floor {}), clean accuracy {:.4}; model {}, sheet {}",
@@ -483,10 +553,41 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         args.out.display(),
         folder.display()
     );
+    if let (Some(plan), Some(assessment)) = (&result.plan, &last.confidence) {
+        println!("{}", confidence::summary_line(plan, assessment));
+    }
     Ok(match result.verdict {
         RetrainVerdict::Met => Outcome::Met,
         RetrainVerdict::NotMet => Outcome::NotMet,
     })
+}
+
+/// Where the training, validation and acceptance rows came from (digests of the files as given).
+fn retrain_data(args: &Args, train: usize, validation: usize, acceptance: usize) -> RetrainData {
+    let file = |p: &Path, rows| DataSource {
+        source: p.display().to_string(),
+        sha256: crate::digest::sha256_file(p).ok(),
+        rows,
+    };
+    RetrainData {
+        train: file(&args.train, train),
+        validation: match &args.val {
+            Some(v) => file(v, validation),
+            None => DataSource {
+                source: format!(
+                    "20% of {} held out (seed {})",
+                    args.train.display(),
+                    args.seed
+                ),
+                ..file(&args.train, validation)
+            },
+        },
+        acceptance: args.acceptance.as_deref().map(|a| file(a, acceptance)),
+    }
+}
+
+fn round_assessments(result: &RetrainResult) -> Vec<Option<Assessment>> {
+    result.rounds.iter().map(|r| r.confidence).collect()
 }
 
 fn write(path: &Path, text: &str) -> anyhow::Result<()> {
@@ -540,40 +641,6 @@ pub fn checks_csv(result: &RetrainResult) -> String {
     text
 }
 
-fn curves(result: &RetrainResult) -> (String, String) {
-    let epochs = &result.epochs;
-    let series = |name: &str, f: &dyn Fn(&ConstrainedEpoch) -> Option<f64>| Series {
-        name: name.into(),
-        points: epochs
-            .iter()
-            .filter_map(|e| f(e).map(|v| (e.epoch as f64, v)))
-            .collect(),
-        markers_only: false,
-    };
-    let accuracy = plot_svg(
-        "Validation accuracy per epoch",
-        "epoch",
-        "accuracy",
-        &[
-            series("clean", &|e| e.validation_clean_accuracy),
-            series("certified", &|e| e.validation_certified_accuracy),
-        ],
-    );
-    let multiplier = plot_svg(
-        "Training losses and multiplier λ",
-        "epoch",
-        "value",
-        &[
-            series("clean loss", &|e| Some(e.clean_loss)),
-            series("robust loss", &|e| Some(e.robust_loss)),
-            series("λ (largest)", &|e| {
-                e.multipliers.iter().copied().reduce(f64::max)
-            }),
-        ],
-    );
-    (accuracy, multiplier)
-}
-
 /// The prices of the constraint at the last epoch's multipliers (none for a fixed penalty).
 fn final_prices(
     settings: &RetrainSettings,
@@ -604,11 +671,11 @@ fn sheet_markdown(
     prices: &[Price],
 ) -> String {
     let mut md = String::new();
-    let verdict = match result.verdict {
-        RetrainVerdict::Met => {
-            "**met**: the certify pipeline proved the floor on the acceptance data"
-        }
-        RetrainVerdict::NotMet => "**not met**: the floor was not proven on the acceptance data",
+    let met = result.verdict == RetrainVerdict::Met;
+    let verdict = match &result.plan {
+        Some(plan) => confidence::verdict_text(plan, met),
+        None if met => "**met**: the certify pipeline proved the floor on the acceptance data",
+        None => "**not met**: the floor was not proven on the acceptance data",
     };
     let _ = writeln!(md, "# Retraining sheet\n");
     let _ = writeln!(md, "- parent model: `{}`", args.model.display());
@@ -666,6 +733,13 @@ fn sheet_markdown(
                 p.meaning
             );
         }
+    }
+    if let Some(plan) = &result.plan {
+        let _ = writeln!(
+            md,
+            "\n{}",
+            confidence::markdown(plan, &round_assessments(result))
+        );
     }
     let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
     let _ = writeln!(

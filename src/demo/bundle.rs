@@ -7,8 +7,12 @@
 
 use std::path::{Path, PathBuf};
 
-use super::files::{write_all, ACCEPTANCE_FILE, REQUIREMENT_FILE, TOLERANCE_FILE, TRAIN_FILE};
-use super::models::{LINEAR_FILE, MLP_FILE};
+use super::files::{
+    write_all, ACCEPTANCE_FILE, REQUIREMENT_FILE, SPECTRUM_ACCEPTANCE_FILE,
+    SPECTRUM_REQUIREMENT_FILE, SPECTRUM_TOLERANCE_FILE, SPECTRUM_TRAIN_FILE, TOLERANCE_FILE,
+    TRAIN_FILE,
+};
+use super::models::{CNN_FILE, LINEAR_FILE, MLP_FILE};
 use super::DemoError;
 
 /// Folder of the data files inside a bundle.
@@ -17,7 +21,7 @@ pub const DATA_FOLDER: &str = "demo-data";
 pub const MODEL_FOLDER: &str = "models";
 
 /// The committed `demo-data/` files as `(file name, text)`.
-pub const DATA_FILES: [(&str, &str); 4] = [
+pub const DATA_FILES: [(&str, &str); 8] = [
     (TRAIN_FILE, include_str!("../../demo-data/train.csv")),
     (
         ACCEPTANCE_FILE,
@@ -31,12 +35,29 @@ pub const DATA_FILES: [(&str, &str); 4] = [
         REQUIREMENT_FILE,
         include_str!("../../demo-data/requirement.toml"),
     ),
+    (
+        SPECTRUM_TRAIN_FILE,
+        include_str!("../../demo-data/spectrum-train.csv"),
+    ),
+    (
+        SPECTRUM_ACCEPTANCE_FILE,
+        include_str!("../../demo-data/spectrum-acceptance.csv"),
+    ),
+    (
+        SPECTRUM_TOLERANCE_FILE,
+        include_str!("../../demo-data/spectrum-tolerances.json"),
+    ),
+    (
+        SPECTRUM_REQUIREMENT_FILE,
+        include_str!("../../demo-data/spectrum-requirement.toml"),
+    ),
 ];
 
 /// The committed `models/` files as `(file name, text)`.
-pub const MODEL_FILES: [(&str, &str); 2] = [
+pub const MODEL_FILES: [(&str, &str); 3] = [
     (LINEAR_FILE, include_str!("../../models/pump-linear.json")),
     (MLP_FILE, include_str!("../../models/pump-mlp.json")),
+    (CNN_FILE, include_str!("../../models/pump-cnn.json")),
 ];
 
 /// Where the bundle's files went.
@@ -54,6 +75,14 @@ pub struct BundlePaths {
     pub linear_model: PathBuf,
     /// The ReLU model.
     pub mlp_model: PathBuf,
+    /// The spectrum training data.
+    pub spectrum_train: PathBuf,
+    /// The spectrum acceptance data.
+    pub spectrum_acceptance: PathBuf,
+    /// The spectrum requirement file.
+    pub spectrum_requirement: PathBuf,
+    /// The spectrum CNN.
+    pub cnn_model: PathBuf,
 }
 
 /// Writes the embedded files into `folder/demo-data/` and `folder/models/` (created if missing).
@@ -69,6 +98,10 @@ pub fn write_bundle(folder: &Path) -> Result<BundlePaths, DemoError> {
         requirement: data.join(REQUIREMENT_FILE),
         linear_model: models.join(LINEAR_FILE),
         mlp_model: models.join(MLP_FILE),
+        spectrum_train: data.join(SPECTRUM_TRAIN_FILE),
+        spectrum_acceptance: data.join(SPECTRUM_ACCEPTANCE_FILE),
+        spectrum_requirement: data.join(SPECTRUM_REQUIREMENT_FILE),
+        cnn_model: models.join(CNN_FILE),
     })
 }
 
@@ -94,6 +127,22 @@ mod tests {
         assert!(
             DATA_FILES[3].1 == crate::demo::files::requirement_toml(),
             "requirement.toml is stale"
+        );
+        assert!(
+            DATA_FILES[4].1 == data.spectrum_train.to_csv(),
+            "spectrum-train.csv is stale"
+        );
+        assert!(
+            DATA_FILES[5].1 == data.spectrum_acceptance.to_csv(),
+            "spectrum-acceptance.csv is stale"
+        );
+        assert!(
+            DATA_FILES[6].1 == crate::demo::files::spectrum_tolerance_json(),
+            "spectrum-tolerances.json is stale"
+        );
+        assert!(
+            DATA_FILES[7].1 == crate::demo::files::spectrum_requirement_toml(),
+            "spectrum-requirement.toml is stale"
         );
     }
 }

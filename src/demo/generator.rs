@@ -23,8 +23,10 @@ const ACCEPTANCE_STREAM: u64 = 2;
 /// Generated rows: features rounded as written, labels as class indices.
 #[derive(Debug, Clone, PartialEq)]
 pub struct GeneratedSet {
+    /// The feature (column) names, in input order.
+    pub names: Vec<String>,
     /// One row of feature values per sample, in input order, already rounded.
-    pub rows: Vec<[f64; 12]>,
+    pub rows: Vec<Vec<f64>>,
     /// Class index of each row.
     pub labels: Vec<usize>,
 }
@@ -33,9 +35,9 @@ impl GeneratedSet {
     /// The CSV text: header `label,<feature names>`, labels as class names, fixed decimals, `\n` endings.
     pub fn to_csv(&self) -> String {
         let mut text = String::from("label");
-        for f in &FEATURES {
+        for name in &self.names {
             text.push(',');
-            text.push_str(f.name);
+            text.push_str(name);
         }
         text.push('\n');
         for (row, &label) in self.rows.iter().zip(&self.labels) {
@@ -53,32 +55,57 @@ impl GeneratedSet {
     pub fn to_dataset(&self) -> Dataset {
         let values: Vec<f64> = self.rows.iter().flat_map(|r| r.iter().copied()).collect();
         Dataset {
-            features: DMatrix::from_vec(FEATURES.len(), self.rows.len(), values),
+            features: DMatrix::from_vec(self.names.len(), self.rows.len(), values),
             labels: self.labels.clone(),
         }
     }
 }
 
-/// The two bundled sets for one seed.
+/// The bundled sets for one seed: the twelve-feature readings and the spectra.
 #[derive(Debug, Clone, PartialEq)]
 pub struct GeneratedData {
     /// Training rows ([`TRAIN_ROWS`]).
     pub train: GeneratedSet,
     /// Acceptance rows ([`ACCEPTANCE_ROWS`]), drawn independently of the training rows.
     pub acceptance: GeneratedSet,
+    /// Spectrum training rows ([`super::spectrum`]; [`TRAIN_ROWS`]).
+    pub spectrum_train: GeneratedSet,
+    /// Spectrum acceptance rows ([`ACCEPTANCE_ROWS`]), from their own stream.
+    pub spectrum_acceptance: GeneratedSet,
 }
 
-/// Generates the training and acceptance sets for `seed`.
+/// Generates the training and acceptance sets of both input forms for `seed`.
 pub fn generate(seed: u64) -> GeneratedData {
+    let (spectrum_train, spectrum_acceptance) = super::spectrum::generate(seed);
     GeneratedData {
         train: generate_set(seed, TRAIN_STREAM, TRAIN_ROWS),
         acceptance: generate_set(seed, ACCEPTANCE_STREAM, ACCEPTANCE_ROWS),
+        spectrum_train,
+        spectrum_acceptance,
     }
 }
 
 /// Generates `rows` rows (rounded down to a multiple of the class count, equal counts per class, in
 /// shuffled order) from ChaCha stream `stream` of `seed`.
 pub fn generate_set(seed: u64, stream: u64, rows: usize) -> GeneratedSet {
+    draw_set(
+        seed,
+        stream,
+        rows,
+        super::scenario::feature_names(),
+        |source, c| draw_row(source, c).to_vec(),
+    )
+}
+
+/// `rows` rows (rounded down to a multiple of the class count, equal counts per class, in shuffled
+/// order) drawn by `draw` from ChaCha stream `stream` of `seed`, with columns `names`.
+pub(super) fn draw_set(
+    seed: u64,
+    stream: u64,
+    rows: usize,
+    names: Vec<String>,
+    mut draw: impl FnMut(&mut Source, usize) -> Vec<f64>,
+) -> GeneratedSet {
     let mut source = Source::new(seed, stream);
     let per_class = rows / CLASSES.len();
     let mut labels: Vec<usize> = (0..CLASSES.len())
@@ -89,12 +116,16 @@ pub fn generate_set(seed: u64, stream: u64, rows: usize) -> GeneratedSet {
         let j = source.below(i as u64 + 1) as usize;
         labels.swap(i, j);
     }
-    let rows = labels.iter().map(|&c| draw_row(&mut source, c)).collect();
-    GeneratedSet { rows, labels }
+    let rows = labels.iter().map(|&c| draw(&mut source, c)).collect();
+    GeneratedSet {
+        names,
+        rows,
+        labels,
+    }
 }
 
 /// Random numbers from ChaCha8 using integer arithmetic only.
-struct Source {
+pub(super) struct Source {
     rng: ChaCha8Rng,
 }
 
@@ -113,13 +144,13 @@ impl Source {
     }
 
     /// Uniform in [low, high).
-    fn between(&mut self, low: f64, high: f64) -> f64 {
+    pub(super) fn between(&mut self, low: f64, high: f64) -> f64 {
         low + (high - low) * self.uniform()
     }
 
     /// Approximately standard normal: sum of twelve uniforms minus 6 (Irwin–Hall; mean 0, variance 1,
     /// support [−6, 6]).
-    fn gaussian(&mut self) -> f64 {
+    pub(super) fn gaussian(&mut self) -> f64 {
         let mut sum = 0.0;
         for _ in 0..12 {
             sum += self.uniform();
@@ -222,7 +253,7 @@ fn draw_row(source: &mut Source, class: usize) -> [f64; 12] {
 }
 
 /// Rounds to [`DECIMALS`] decimals exactly as the CSV writes it (decimal formatting, then parsing).
-fn round(value: f64) -> f64 {
+pub(super) fn round(value: f64) -> f64 {
     format!("{value:.DECIMALS$}")
         .parse()
         .expect("a formatted finite number parses")

@@ -1,18 +1,22 @@
 //! The bundled demo scenario: an invented pump-fleet condition-monitoring data set, its seeded
 //! generator, its files and its models.
 //!
-//! [`scenario`] holds the tables (features, units, ranges, tolerances, classes), [`generator`] makes
-//! the data deterministically from a seed, [`files`] writes the data, tolerance and requirement files,
-//! [`models`] trains the two demo models, [`bundle`] embeds the committed files in the binary and
-//! [`pipeline`] runs the whole job (`ballast demo`).
+//! [`scenario`] holds the tables (features, units, ranges, tolerances, classes), [`spectrum`] the
+//! second input form (64-bin vibration spectra and their generator), [`generator`] makes the data
+//! deterministically from a seed, [`files`] writes the data, tolerance and requirement files,
+//! [`models`] trains the three demo models, [`bundle`] embeds the committed files in the binary,
+//! [`case`] certifies, retrains and certifies again one model, and [`pipeline`] runs the whole job
+//! (`ballast demo`).
 //! Everything here is invented for the demo only; nothing here decides robustness itself.
 
 pub mod bundle;
+pub mod case;
 pub mod files;
 pub mod generator;
 pub mod models;
 pub mod pipeline;
 pub mod scenario;
+pub mod spectrum;
 
 /// Why a demo step failed.
 #[derive(Debug, thiserror::Error)]

@@ -1,7 +1,8 @@
 //! The whole job on the bundled demo, as `ballast demo` runs it: write the embedded files, evaluate
-//! both models, certify `pump-mlp` against the demo requirement, retrain it toward the floor with the
-//! constrained (primal-dual) retrainer, certify the retrained model again, and write both reports and
-//! sheets.
+//! the models, then for `pump-mlp` (twelve readings) and `pump-cnn` (64-bin spectra) in turn certify
+//! the bundled model against its requirement, retrain it toward the floor with the constrained
+//! (primal-dual) retrainer, certify the retrained model again, and write both reports and sheets
+//! ([`super::case`]).
 //!
 //! Every verdict comes from the certify pipeline ([`crate::certify::certify`], sound bounds, validated
 //! counterexamples, search with a time budget); this module only chooses the demo's settings and
@@ -9,32 +10,39 @@
 
 use std::path::{Path, PathBuf};
 
-use crate::certify::{
-    certify, write_counterexamples, CertifyOptions, PipelineOptions, Report, Sources, Summary,
-};
+use crate::certify::PipelineOptions;
 use crate::cli::evaluate::evaluate;
 use crate::data::{load_csv, DataOptions, Dataset};
 use crate::model::Model;
 use crate::threat::requirement::{Requirement, RequirementSpec};
 use crate::threat::{Budget, Norm, Targets};
+use crate::train::confidence::ConfidenceSettings;
 use crate::train::constrained::{ConstrainedSettings, Constraint, Formulation};
-use crate::train::plain::split_validation;
-use crate::train::retrain::{retrain, Keep, NearMisses, RetrainSettings, RetrainVerdict};
+use crate::train::retrain::{Keep, NearMisses, RetrainSettings};
 use crate::train::robust::RobustLoss;
 use crate::train::{OptimizerKind, TrainSettings};
 
-use super::bundle::{write_bundle, BundlePaths, MODEL_FOLDER};
+use super::bundle::{write_bundle, BundlePaths};
+use super::case::{run_case, Case, CaseOutcome};
+use super::scenario::{DEFAULT_SEED, FEATURES};
+use super::spectrum;
 use super::DemoError;
 
-/// File name of the retrained model inside the models folder.
-pub const RETRAINED_FILE: &str = "pump-mlp-retrained.json";
-/// Folder (inside the output folder) of the report and sheet of the bundled model.
+pub use super::case::{describe, CertifiedModel, REPORT_FILE};
+
+/// Name of the retrained MLP (file `models/pump-mlp-retrained.json`).
+pub const RETRAINED_NAME: &str = "pump-mlp-retrained";
+/// Name of the retrained CNN (file `models/pump-cnn-retrained.json`).
+pub const CNN_RETRAINED_NAME: &str = "pump-cnn-retrained";
+/// Folder (inside the output folder) of the report and sheet of the bundled MLP.
 pub const BEFORE_FOLDER: &str = "before";
-/// Folder of the report and sheet of the retrained model.
+/// Folder of the report and sheet of the retrained MLP.
 pub const AFTER_FOLDER: &str = "after";
-/// File name of a report inside its folder.
-pub const REPORT_FILE: &str = "report.json";
-/// Acceptance rows used by `--quick` (the first rows of acceptance.csv).
+/// Folder of the report and sheet of the bundled CNN.
+pub const CNN_BEFORE_FOLDER: &str = "cnn-before";
+/// Folder of the report and sheet of the retrained CNN.
+pub const CNN_AFTER_FOLDER: &str = "cnn-after";
+/// Acceptance rows used by `--quick` (the first rows of each acceptance file).
 pub const QUICK_ROWS: usize = 48;
 
 /// How to run the demo.
@@ -48,42 +56,23 @@ pub struct DemoOptions {
     pub command_line: Vec<String>,
 }
 
-/// One certified model: where its report and sheet went and what it found.
-#[derive(Debug, Clone)]
-pub struct CertifiedModel {
-    /// The model file certified.
-    pub model: PathBuf,
-    /// The report (`ballast.report/1`).
-    pub report: PathBuf,
-    /// The Markdown sheet.
-    pub sheet_markdown: PathBuf,
-    /// The HTML sheet.
-    pub sheet_html: PathBuf,
-    /// The report's summary (verdict, certified and empirical robust accuracy).
-    pub summary: Summary,
-}
-
 /// What the demo did.
 #[derive(Debug, Clone)]
 pub struct DemoOutcome {
     /// The files written from the bundle.
     pub bundle: BundlePaths,
-    /// Acceptance samples used (all, or [`QUICK_ROWS`] with `--quick`).
+    /// Acceptance samples used per model (all, or [`QUICK_ROWS`] with `--quick`).
     pub samples: usize,
     /// Clean accuracy of `pump-linear` on the acceptance samples.
     pub linear_clean_accuracy: f64,
-    /// Clean accuracy of `pump-mlp` on the acceptance samples.
-    pub mlp_clean_accuracy: f64,
-    /// The requirement in plain words.
+    /// The requirement on the twelve readings, in plain words.
     pub requirement: String,
-    /// The bundled `pump-mlp` against the requirement.
-    pub before: CertifiedModel,
-    /// The retrainer's own verdict on its final round.
-    pub retrain_verdict: RetrainVerdict,
-    /// Rounds the retrainer ran.
-    pub retrain_rounds: usize,
-    /// The retrained model against the requirement.
-    pub after: CertifiedModel,
+    /// The requirement on the spectra, in plain words.
+    pub spectrum_requirement: String,
+    /// `pump-mlp`: certified, retrained, certified again.
+    pub mlp: CaseOutcome,
+    /// `pump-cnn`: certified, retrained, certified again.
+    pub cnn: CaseOutcome,
 }
 
 /// Runs the whole demo into `options.out`; `progress` receives one line per step.
@@ -98,112 +87,76 @@ pub fn run_demo(
     ));
     let linear = Model::load(&bundle.linear_model)?;
     let mlp = Model::load(&bundle.mlp_model)?;
+    let cnn = Model::load(&bundle.cnn_model)?;
     let train = load_data(&bundle.train, &mlp)?;
+    let spectrum_train = load_data(&bundle.spectrum_train, &cnn)?;
     let mut acceptance = load_data(&bundle.acceptance, &mlp)?;
+    let mut spectrum_acceptance = load_data(&bundle.spectrum_acceptance, &cnn)?;
     if options.quick {
         acceptance = first_rows(&acceptance, QUICK_ROWS);
+        spectrum_acceptance = first_rows(&spectrum_acceptance, QUICK_ROWS);
     }
     let linear_clean_accuracy = evaluate(&linear, &acceptance).accuracy;
-    let mlp_clean_accuracy = evaluate(&mlp, &acceptance).accuracy;
     progress(&format!(
-        "clean accuracy on {} acceptance samples: pump-linear {linear_clean_accuracy:.4}, pump-mlp {mlp_clean_accuracy:.4}",
-        acceptance.len()
+        "clean accuracy on {} acceptance samples: pump-linear {linear_clean_accuracy:.4}, pump-mlp {:.4}, pump-cnn {:.4} (spectra)",
+        acceptance.len(),
+        evaluate(&mlp, &acceptance).accuracy,
+        evaluate(&cnn, &spectrum_acceptance).accuracy,
     ));
     let requirement = RequirementSpec::from_file(&bundle.requirement)?.resolve(&mlp)?;
+    let spectrum_requirement =
+        RequirementSpec::from_file(&bundle.spectrum_requirement)?.resolve(&cnn)?;
     let described = requirement.describe(&|c| mlp.class_name(c));
+    let spectrum_described = spectrum_requirement.describe(&|c| cnn.class_name(c));
     progress(&format!("requirement: {described}"));
     let pipeline = pipeline_options(options.quick);
-    let quick_rows = options.quick.then_some(acceptance.len());
-
-    let before = certify_model(
-        &mlp,
-        &bundle.mlp_model,
-        &bundle.acceptance,
-        &acceptance,
-        &requirement,
-        &pipeline,
-        &options.out.join(BEFORE_FOLDER),
-        &options.command_line,
-        quick_rows,
-    )?;
-    progress(&format!("pump-mlp: {}", describe(&before.summary)));
-
-    progress("retraining pump-mlp toward the floor (constrained primal-dual trainer)");
-    let settings = retrain_settings(&requirement, options.quick, pipeline.clone());
-    // As `ballast retrain` does by default: 20% of the training rows steer and select (validation).
-    let (train, validation) = split_validation(&train, 0.2, super::scenario::DEFAULT_SEED);
-    let result = retrain(
-        &mlp,
-        &train,
-        validation.as_ref(),
-        &acceptance,
-        &requirement,
-        &settings,
-        &mut |_| {},
-    )?;
-    let mut retrained = result.model;
-    retrained.name = Some("pump-mlp-retrained".into());
-    let mut provenance = retrained
-        .provenance
-        .take()
-        .unwrap_or(serde_json::Value::Null);
-    let retraining = serde_json::json!({
-        "retrained_from": format!("{MODEL_FOLDER}/{}", super::models::MLP_FILE),
-        "rounds": result.rounds,
-        "epochs": result.epochs.len(),
-        "retrainer_verdict": result.verdict,
-    });
-    match &mut provenance {
-        serde_json::Value::Object(map) => {
-            map.insert("retraining".into(), retraining);
-        }
-        _ => provenance = serde_json::json!({ "retraining": retraining }),
-    }
-    retrained.provenance = Some(provenance);
-    let retrained_path = options.out.join(MODEL_FOLDER).join(RETRAINED_FILE);
-    retrained.save(&retrained_path)?;
-    progress(&format!(
-        "wrote {} ({} rounds, {} epochs)",
-        retrained_path.display(),
-        result.rounds.len(),
-        result.epochs.len()
-    ));
-
-    let after = certify_model(
-        &retrained,
-        &retrained_path,
-        &bundle.acceptance,
-        &acceptance,
-        &requirement,
-        &pipeline,
-        &options.out.join(AFTER_FOLDER),
-        &options.command_line,
-        quick_rows,
-    )?;
-    progress(&format!("pump-mlp-retrained: {}", describe(&after.summary)));
+    let first_rows_only = options.quick.then_some(acceptance.len());
+    let mlp_case = Case {
+        model: &mlp,
+        model_path: &bundle.mlp_model,
+        train: &train,
+        train_path: &bundle.train,
+        acceptance: &acceptance,
+        acceptance_path: &bundle.acceptance,
+        requirement: &requirement,
+        pipeline: &pipeline,
+        retrain: retrain_settings(&requirement, options.quick, pipeline.clone()),
+        retrained_name: RETRAINED_NAME,
+        folders: (
+            options.out.join(BEFORE_FOLDER),
+            options.out.join(AFTER_FOLDER),
+        ),
+        first_rows_only,
+        command_line: &options.command_line,
+    };
+    let mlp_outcome = run_case(&mlp_case, &options.out, DEFAULT_SEED, progress)?;
+    progress(&format!("spectrum requirement: {spectrum_described}"));
+    let cnn_case = Case {
+        model: &cnn,
+        model_path: &bundle.cnn_model,
+        train: &spectrum_train,
+        train_path: &bundle.spectrum_train,
+        acceptance: &spectrum_acceptance,
+        acceptance_path: &bundle.spectrum_acceptance,
+        requirement: &spectrum_requirement,
+        retrain: cnn_retrain_settings(&spectrum_requirement, options.quick, pipeline.clone()),
+        retrained_name: CNN_RETRAINED_NAME,
+        folders: (
+            options.out.join(CNN_BEFORE_FOLDER),
+            options.out.join(CNN_AFTER_FOLDER),
+        ),
+        ..mlp_case
+    };
+    let cnn_outcome = run_case(&cnn_case, &options.out, DEFAULT_SEED, progress)?;
     Ok(DemoOutcome {
         bundle,
         samples: acceptance.len(),
         linear_clean_accuracy,
-        mlp_clean_accuracy,
         requirement: described,
-        before,
-        retrain_verdict: result.verdict,
-        retrain_rounds: result.rounds.len(),
-        after,
+        spectrum_requirement: spectrum_described,
+        mlp: mlp_outcome,
+        cnn: cnn_outcome,
     })
-}
-
-/// One line of figures from a summary.
-pub fn describe(summary: &Summary) -> String {
-    format!(
-        "verdict {}, certified {:.4} (lower bound), empirical robust {:.4} (upper bound), clean {:.4}, unresolved {}",
-        summary.verdict.name(),
-        summary.certified_accuracy,
-        summary.empirical_robust_accuracy,
-        summary.clean_accuracy,
-        summary.unresolved
-    )
 }
 
 /// The certify pipeline settings of the demo: every bounding stage and the quick attack; half a second
@@ -211,19 +164,46 @@ pub fn describe(summary: &Summary) -> String {
 pub fn pipeline_options(quick: bool) -> PipelineOptions {
     PipelineOptions {
         budget_seconds: if quick { 0.0 } else { 0.5 },
-        seed: super::scenario::DEFAULT_SEED,
+        seed: DEFAULT_SEED,
         ..PipelineOptions::default()
     }
 }
 
-/// The retrainer settings of the demo (budget, targets and floor are taken from `requirement`).
+/// The retrainer settings of the demo for `pump-mlp` (budget, targets and floor are taken from
+/// `requirement`): 60 epochs with a 20-epoch epsilon ramp, later rounds of 20 epochs.
 pub fn retrain_settings(
     requirement: &Requirement,
     quick: bool,
     pipeline: PipelineOptions,
 ) -> RetrainSettings {
+    let schedule = (60, 20, 20, 4);
+    settings_with(requirement, quick, pipeline, FEATURES.len(), schedule)
+}
+
+/// The retrainer settings of the demo for `pump-cnn`: as [`retrain_settings`] with a shorter
+/// schedule, 16 epochs with a 6-epoch ramp, later rounds of 8 epochs, and one validation check per
+/// epoch (each check bounds every validation row; on the CNN these bounds cost most of the
+/// retraining time, docs/benchmarks/cnn-retrain.md).
+pub fn cnn_retrain_settings(
+    requirement: &Requirement,
+    quick: bool,
+    pipeline: PipelineOptions,
+) -> RetrainSettings {
+    let schedule = (16, 6, 8, 1);
+    settings_with(requirement, quick, pipeline, spectrum::BINS, schedule)
+}
+
+/// `(epochs, ramp_epochs, round_epochs, checks_per_epoch)` of a full run; `quick` runs 4 epochs
+/// with a 1-epoch ramp in one round.
+fn settings_with(
+    requirement: &Requirement,
+    quick: bool,
+    pipeline: PipelineOptions,
+    dim: usize,
+    (epochs, ramp_epochs, round_epochs, checks_per_epoch): (usize, usize, usize, usize),
+) -> RetrainSettings {
     let floor = requirement.floor.unwrap_or(0.0);
-    let epochs = if quick { 4 } else { 60 };
+    let epochs = if quick { 4 } else { epochs };
     RetrainSettings {
         constrained: ConstrainedSettings {
             train: TrainSettings {
@@ -231,11 +211,11 @@ pub fn retrain_settings(
                 batch_size: 32,
                 optimizer: OptimizerKind::adam(0.002),
                 weight_decay: 1e-4,
-                seed: super::scenario::DEFAULT_SEED,
+                seed: DEFAULT_SEED,
                 validation_fraction: 0.0,
                 patience: None,
             },
-            budget: Budget::uniform(Norm::Linf, 0.0, super::scenario::FEATURES.len()),
+            budget: Budget::uniform(Norm::Linf, 0.0, dim),
             targets: Targets::Any,
             loss: RobustLoss::LinearInterval {
                 final_linear_weight: 0.0,
@@ -246,73 +226,21 @@ pub fn retrain_settings(
                 initial_multiplier: 0.1,
                 per_class: false,
             },
-            ramp_epochs: if quick { 1 } else { 20 },
+            ramp_epochs: if quick { 1 } else { ramp_epochs },
             measure_certified: true,
             gap_correction: true,
-            checks_per_epoch: 4,
+            checks_per_epoch,
             final_rate_factor: 1.0,
             average_tail: 0.0,
         },
-        round_epochs: if quick { 1 } else { 20 },
+        round_epochs: if quick { 1 } else { round_epochs },
         max_rounds: if quick { 1 } else { 3 },
         slack_step: 0.02,
         pipeline,
         keep: Keep::BestFeasible,
         near_misses: NearMisses::OFF,
+        confidence: ConfidenceSettings::default(),
     }
-}
-
-#[allow(clippy::too_many_arguments)]
-fn certify_model(
-    model: &Model,
-    model_path: &Path,
-    data_path: &Path,
-    data: &Dataset,
-    requirement: &Requirement,
-    pipeline: &PipelineOptions,
-    folder: &Path,
-    command_line: &[String],
-    first_rows_only: Option<usize>,
-) -> Result<CertifiedModel, DemoError> {
-    std::fs::create_dir_all(folder).map_err(|cause| DemoError::Io {
-        path: folder.display().to_string(),
-        cause,
-    })?;
-    let mut sources =
-        Sources::from_files(model_path, data_path).map_err(|cause| DemoError::Io {
-            path: model_path.display().to_string(),
-            cause,
-        })?;
-    if let Some(rows) = first_rows_only {
-        sources.data_path = format!("{} (first {rows} rows, --quick)", data_path.display());
-    }
-    let options = CertifyOptions {
-        pipeline: pipeline.clone(),
-        label_column: "label".into(),
-        command_line: command_line.to_vec(),
-        ..CertifyOptions::default()
-    };
-    let mut report: Report = certify(model, data, requirement, &sources, &options)?;
-    let report_path = folder.join(REPORT_FILE);
-    if report.summary.counterexample > 0 {
-        let csv = folder.join("report.counterexamples.csv");
-        write_counterexamples(&report, &csv)?;
-        report.counterexamples = Some("report.counterexamples.csv".into());
-    }
-    crate::atomic::write_file(&report_path, report.to_json_string().as_bytes()).map_err(
-        |cause| DemoError::Io {
-            path: report_path.display().to_string(),
-            cause,
-        },
-    )?;
-    let (sheet_markdown, sheet_html) = crate::sheet::write_sheet(&report, folder)?;
-    Ok(CertifiedModel {
-        model: model_path.to_path_buf(),
-        report: report_path,
-        sheet_markdown,
-        sheet_html,
-        summary: report.summary,
-    })
 }
 
 fn load_data(path: &Path, model: &Model) -> Result<Dataset, DemoError> {

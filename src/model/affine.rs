@@ -279,55 +279,6 @@ impl Affine {
         }
     }
 
-    /// Adds to `gradient` (shaped like `self`) the parameter gradient that corresponds to
-    /// `dense_gradient`, a gradient with respect to [`Affine::to_dense`]'s weights and bias (chain rule
-    /// through writing the layer out; for a chain, each part's gradient is `Postᵀ G Preᵀ` with `Pre`,
-    /// `Post` the dense forms of the parts before and after it, plus `Postᵀ g_b b_preᵀ` from the
-    /// earlier parts' bias).
-    pub fn pull_back(&self, dense_gradient: &Dense, gradient: &mut Affine) {
-        match (self, gradient) {
-            (Affine::Dense(_), Affine::Dense(g)) => {
-                g.weights += &dense_gradient.weights;
-                g.bias += &dense_gradient.bias;
-            }
-            (Affine::Conv(c), Affine::Conv(g)) => {
-                g.kernel += c.kernel_gradient_from_dense(&dense_gradient.weights);
-                let positions = c.positions();
-                for (r, v) in dense_gradient.bias.iter().enumerate() {
-                    g.bias[r / positions] += v;
-                }
-            }
-            (Affine::Sparse(_), Affine::Sparse(_)) => {}
-            (Affine::Chain(parts), Affine::Chain(grads)) => {
-                for k in 0..parts.len() {
-                    if parts[k].parameter_count() == 0 {
-                        continue;
-                    }
-                    let before = parts[..k]
-                        .iter()
-                        .map(Affine::to_dense)
-                        .reduce(|a, b| b.after(&a));
-                    let after = parts[k + 1..]
-                        .iter()
-                        .map(Affine::to_dense)
-                        .reduce(|a, b| b.after(&a));
-                    let (mut weights, mut bias) =
-                        (dense_gradient.weights.clone(), dense_gradient.bias.clone());
-                    if let Some(post) = &after {
-                        weights = post.weights.tr_mul(&weights);
-                        bias = post.weights.tr_mul(&bias);
-                    }
-                    if let Some(pre) = &before {
-                        // W_k also scales the earlier parts' bias: b = Post (W_k b_pre + b_k) + …
-                        weights = weights * pre.weights.transpose() + &bias * pre.bias.transpose();
-                    }
-                    parts[k].pull_back(&Dense { weights, bias }, &mut grads[k]);
-                }
-            }
-            _ => panic!("a gradient has the shape of its layer"),
-        }
-    }
-
     /// `|W| X` without bias.
     pub fn magnitude_linear(&self, xs: &DMatrix<f64>) -> DMatrix<f64> {
         match self {

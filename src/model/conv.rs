@@ -11,6 +11,9 @@
 
 use nalgebra::{DMatrix, DVector, RealField};
 
+/// Entries of unfolded patches processed at once (about 2 MB of f64).
+const CHUNK_ENTRIES: usize = 1 << 18;
+
 /// The geometry of a convolution.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct ConvShape {
@@ -212,6 +215,40 @@ impl Conv {
         kernel: &DMatrix<T>,
         xs: &DMatrix<T>,
     ) -> DMatrix<T> {
+        self.in_chunks(xs, self.shape.output_dim(), |part| {
+            self.correlate_block(kernel, part)
+        })
+    }
+
+    /// Runs `f` on column blocks of `xs` small enough for the unfolded patches to stay in cache (and
+    /// their buffers to be reused), gathering the results into one `rows × columns` matrix.
+    fn in_chunks<T: RealField + Copy>(
+        &self,
+        xs: &DMatrix<T>,
+        rows: usize,
+        f: impl Fn(&DMatrix<T>) -> DMatrix<T>,
+    ) -> DMatrix<T> {
+        let per_column = self.shape.patch_len() * self.positions();
+        let chunk = (CHUNK_ENTRIES / per_column.max(1)).max(1);
+        if xs.ncols() <= chunk {
+            return f(xs);
+        }
+        let mut out = DMatrix::zeros(rows, xs.ncols());
+        let mut start = 0;
+        while start < xs.ncols() {
+            let n = chunk.min(xs.ncols() - start);
+            let part = f(&xs.columns(start, n).into_owned());
+            out.columns_mut(start, n).copy_from(&part);
+            start += n;
+        }
+        out
+    }
+
+    fn correlate_block<T: RealField + Copy>(
+        &self,
+        kernel: &DMatrix<T>,
+        xs: &DMatrix<T>,
+    ) -> DMatrix<T> {
         let positions = self.positions();
         let channels = self.shape.out_channels;
         // (C_out × patch) · (patch × B·P): column b·P + p holds every channel at (b, p).
@@ -237,6 +274,16 @@ impl Conv {
     /// the kernel already transposed (`patch_len × out_channels`: a blocked product, where a
     /// transposed product would take one dot product per entry).
     pub fn correlate_transpose<T: RealField + Copy>(
+        &self,
+        kernel_transposed: &DMatrix<T>,
+        coefficients: &DMatrix<T>,
+    ) -> DMatrix<T> {
+        self.in_chunks(coefficients, self.shape.input_dim(), |part| {
+            self.correlate_transpose_block(kernel_transposed, part)
+        })
+    }
+
+    fn correlate_transpose_block<T: RealField + Copy>(
         &self,
         kernel_transposed: &DMatrix<T>,
         coefficients: &DMatrix<T>,
@@ -273,25 +320,6 @@ impl Conv {
     pub fn bias_per_output<T: RealField + Copy>(&self, bias: &DVector<T>) -> DVector<T> {
         let positions = self.positions();
         DVector::from_fn(self.shape.output_dim(), |r, _| bias[r / positions])
-    }
-
-    /// The kernel gradient from the gradient with respect to the dense form
-    /// ([`Conv::to_dense_weights`]): the dense form is linear in the kernel, so this is the adjoint of
-    /// writing it out (each kernel entry sums the gradient of every dense entry it fills).
-    pub fn kernel_gradient_from_dense(&self, dense: &DMatrix<f64>) -> DMatrix<f64> {
-        let positions = self.positions();
-        let patch = self.shape.patch_len();
-        let mut kernel = DMatrix::zeros(self.shape.out_channels, patch);
-        for o in 0..self.shape.out_channels {
-            for p in 0..positions {
-                for (e, source) in self.table[p * patch..(p + 1) * patch].iter().enumerate() {
-                    if let Some(s) = source {
-                        kernel[(o, e)] += dense[(o * positions + p, *s)];
-                    }
-                }
-            }
-        }
-        kernel
     }
 
     /// The same layer written out as a dense matrix (for exact references and small layers only).

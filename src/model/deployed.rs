@@ -5,12 +5,20 @@
 //! layer is charged for `(x − mean) / std` as the deployed code computes it. Per layer, with `X` a bound
 //! on the exact input's magnitude and `e` the error carried in, in the standard model of floating-point
 //! arithmetic (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed., §2.2 and §3.1):
-//! - input: `e = u·|x|` in float32 (the input is rounded to the format), `0` in float64;
-//! - normalize: `e' = (e + e_mean)/std·(1 + γ₄) + γ₄·|y|` (`e_mean = u·|mean|` in float32, where the
-//!   mean is stored rounded);
-//! - dense (fan-in `n`): `e' = |W| e + γ_{n+1}(|W|(X + e) + |b|)`, plus `u(|W|(X + e) + |b|)` in
-//!   float32 for weights stored rounded;
+//! - input: `e = u·|x| + λ` in float32 (the input is rounded to the format), `0` in float64;
+//! - normalize: `e' = (e + e_mean + λ)/std·(1 + γ₄) + γ₄·|y| + λ` (`e_mean = u·|mean|` in float32,
+//!   where the mean is stored rounded);
+//! - dense (fan-in `n`): `e' = |W| e + γ_{n+3}(|W|(X + e) + |b|) + (n + 3)·λ`, plus
+//!   `u(|W|(X + e) + |b|) + λ(Σ(X + e) + 1)` in float32 for weights stored rounded. `n + 3` roundings
+//!   per term cover the dot product, the bias and a Gemm's `alpha` and `beta` (an inference engine may
+//!   apply them as separate operations);
 //! - ReLU: `e' = e` (it is 1-Lipschitz).
+//!
+//! `λ` is the format's smallest positive normal number: the standard model holds only without
+//! underflow, and an operation whose result falls below `λ` is off by at most `λ` absolutely, with
+//! gradual underflow or when the engine flushes subnormal numbers to zero. Overflow has no such bound:
+//! when any value or partial sum could reach half the format's largest finite number, the bound is
+//! `+∞` (nothing is certified: the deployed model may compute an infinity or a NaN there).
 //!
 //! Magnitudes come from interval propagation of the input box through the layers as written,
 //! intersected at each ReLU with the caller's sound pre-activation bounds. Guarantee: for every input
@@ -146,14 +154,21 @@ impl DeployedError {
     /// in order; may be shorter or empty).
     pub fn bound(&self, lower: &[f64], upper: &[f64], hidden: &[LayerBounds]) -> Vec<f64> {
         let u = self.arithmetic.unit_roundoff();
-        let stored = match self.arithmetic {
-            Arithmetic::Float64 => 0.0,
-            Arithmetic::Float32 => u,
+        let (stored, tiny, limit) = match self.arithmetic {
+            Arithmetic::Float64 => (0.0, f64::MIN_POSITIVE, f64::MAX / 2.0),
+            Arithmetic::Float32 => (u, f64::from(f32::MIN_POSITIVE), f64::from(f32::MAX) / 2.0),
         };
+        let overflow = vec![f64::INFINITY; self.outputs];
+        // A NaN counts as too large.
+        let too_large = |v: &DVector<f64>| v.iter().any(|x| x.is_nan() || *x > limit);
         let widen = 1.0 + 8.0 * UNIT_ROUNDOFF_F64;
         let mut lo = DVector::from_column_slice(lower);
         let mut hi = DVector::from_column_slice(upper);
-        let mut error = max_abs(&lo, &hi) * stored;
+        if too_large(&max_abs(&lo, &hi)) {
+            return overflow;
+        }
+        let input_tiny = if stored > 0.0 { tiny } else { 0.0 };
+        let mut error = max_abs(&lo, &hi) * stored + DVector::from_element(lo.len(), input_tiny);
         let mut relu = 0;
         let mut last_was_relu = false;
         for step in &self.steps {
@@ -163,26 +178,45 @@ impl DeployedError {
                     let new_lo = (&lo - mean).component_div(std);
                     let new_hi = (&hi - mean).component_div(std);
                     let magnitude = max_abs(&new_lo, &new_hi) * widen;
-                    let carried = (&error + mean.abs() * stored).component_div(std) * (1.0 + g);
-                    error = carried + magnitude * g;
+                    if too_large(&(max_abs(&lo, &hi) + mean.abs() + &error))
+                        || too_large(&magnitude)
+                    {
+                        return overflow;
+                    }
+                    let carried = (&error + mean.abs() * stored)
+                        .add_scalar(tiny)
+                        .component_div(std)
+                        * (1.0 + g);
+                    error = (carried + magnitude * g).add_scalar(tiny);
                     (lo, hi) = (new_lo, new_hi);
                     last_was_relu = false;
                 }
                 Step::Linear { map, layer } => {
-                    let n = layer.fan_in();
+                    // The fan-in plus two: Gemm's alpha/beta and a separately added bias.
+                    let n = layer.fan_in() + 2;
                     let g = gamma(n, u) + stored;
                     let x = max_abs(&lo, &hi);
                     let column =
                         |v: &DVector<f64>| DMatrix::from_column_slice(v.len(), 1, v.as_slice());
                     let vector = |m: DMatrix<f64>| DVector::from_column_slice(m.as_slice());
                     let touched = vector(layer.magnitude_apply(&column(&(&x + &error))));
+                    if too_large(&(&touched * (1.0 + g) * widen)) {
+                        return overflow;
+                    }
+                    // Underflow: each of the n operations, and (float32) each stored weight and bias.
+                    let absolute = n as f64 * tiny
+                        + if stored > 0.0 {
+                            tiny * ((&x + &error).sum() + 1.0)
+                        } else {
+                            0.0
+                        };
                     let carried = vector(map.magnitude_linear(&column(&error)));
                     let (new_lo, new_hi) = layer.interval(&column(&lo), &column(&hi));
                     let slack =
                         vector(layer.magnitude_apply(&column(&x))) * gamma(n, UNIT_ROUNDOFF_F64);
                     lo = vector(new_lo) - &slack;
                     hi = vector(new_hi) + &slack;
-                    error = (carried + touched * g) * widen;
+                    error = (carried + touched * g).add_scalar(absolute) * widen;
                     last_was_relu = false;
                 }
                 Step::MaxPool { windows, levels } => {
@@ -356,5 +390,46 @@ mod tests {
         // float64 bounds are about 2^29 times smaller.
         let f64_errors = DeployedError::new(&model("float64")).bound(&lower, &upper, &[]);
         assert!(f64_errors[0] < errors[0] * 1e-7);
+    }
+
+    fn scaled(arithmetic: &str, w1: f64, w2: f64) -> Model {
+        let text = format!(
+            r#"{{"format": "ballast.model/1", "input": {{"dim": 1}}, "arithmetic": "{arithmetic}",
+            "layers": [{{"kind": "dense", "weights": [[{w1:e}]], "bias": [0.0]}}, {{"kind": "relu"}},
+                       {{"kind": "dense", "weights": [[{w2:e}], [1.0]], "bias": [0.0, 0.0]}}]}}"#
+        );
+        Model::from_json_str(&text).unwrap()
+    }
+
+    #[test]
+    fn float32_subnormal_values_stay_within_the_bound() {
+        // x · 1e-25 for x in [1e-15, 1e-14] is a float32 subnormal (below 2^-126 ≈ 1.2e-38), rounded
+        // to a multiple of 2^-149: relative errors up to ~1e-5, far above float32's unit roundoff, then
+        // multiplied by 1e37. Rust's f32 arithmetic (IEEE 754 with gradual underflow) is the check.
+        let m = scaled("float32", 1e-25, 1e37);
+        let (lower, upper) = ([1e-15], [1e-14]);
+        let errors = DeployedError::new(&m).bound(&lower, &upper, &[]);
+        let net = m.network();
+        let mut worst: f64 = 0.0;
+        for i in 0..=200 {
+            let x = 1e-15 + 9e-15 * i as f64 / 200.0;
+            let h = ((x as f32) * (1e-25f32)).max(0.0);
+            let single = f64::from(h * 1e37f32);
+            let exact = net.forward(&[x])[0];
+            worst = worst.max((single - exact).abs());
+            assert!((single - exact).abs() <= errors[0], "x {x}");
+        }
+        // The underflow is real here: the relative-error model alone (unit roundoff times the
+        // magnitudes, ~1e-9) would not cover it.
+        assert!(worst > 1e-9, "{worst}");
+    }
+
+    #[test]
+    fn a_possible_float32_overflow_leaves_no_bound() {
+        // Logits up to 4e38 exceed float32's largest finite number (about 3.4e38).
+        let errors = DeployedError::new(&scaled("float32", 1e38, 1.0)).bound(&[1.0], &[4.0], &[]);
+        assert!(errors.iter().all(|e| e.is_infinite()));
+        let errors = DeployedError::new(&scaled("float64", 1e38, 1.0)).bound(&[1.0], &[4.0], &[]);
+        assert!(errors.iter().all(|e| e.is_finite()));
     }
 }

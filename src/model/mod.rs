@@ -1,10 +1,11 @@
 //! Models: the `ballast.model/1` JSON layout ([`layout`]) and the canonical ReLU network every stage
-//! works on ([`network`]).
+//! works on ([`network`]), and the retraining record a retrained model carries ([`lineage`]).
 
 pub mod affine;
 pub mod conv;
 pub mod deployed;
 pub mod layout;
+pub mod lineage;
 pub mod network;
 pub mod onnx;
 pub mod pool;

@@ -302,12 +302,37 @@ pub fn parse(
                     ),
                 )
             })?;
+            check_unfolded(h, w, shape.channels * kernel.0 * kernel.1, shape, place)?;
             shape.height = h;
             shape.width = w;
             Ok(Layer::Pool(pool))
         }
         _ => parse_conv(object, shape, place),
     }
+}
+
+/// Refuses a layer whose window table (`out_h · out_w · entries`) or input would exceed the parameter
+/// limit: sizes claimed by `input.shape` are not backed by any number in the file, so they are checked
+/// before anything is allocated from them.
+fn check_unfolded(
+    h: usize,
+    w: usize,
+    entries: usize,
+    shape: &Shape,
+    place: &str,
+) -> Result<(), ModelError> {
+    let limit = crate::limits::MAX_PARAMETERS;
+    let table = h.checked_mul(w).and_then(|p| p.checked_mul(entries));
+    if table.is_none_or(|t| t > limit) || shape.size() > limit {
+        return Err(invalid(
+            place,
+            format!(
+                "an input of {:?} unfolds into more than {limit} window entries (the size limit)",
+                shape.dims()
+            ),
+        ));
+    }
+    Ok(())
 }
 
 fn parse_conv(object: &Value, shape: &mut Shape, place: &str) -> Result<Layer, ModelError> {
@@ -401,6 +426,7 @@ fn parse_conv(object: &Value, shape: &mut Shape, place: &str) -> Result<Layer, M
             ),
         )
     })?;
+    check_unfolded(h, w, patch, shape, place)?;
     *shape = Shape {
         channels: out_channels,
         height: h,

@@ -2,7 +2,8 @@
 //! the figures with their meaning, the tables, the plot data, the digests, the command line and the
 //! cautions. Every string here is raw (unescaped); the renderers escape it. Nothing here formats markup.
 
-use crate::certify::report::{DecidedBy, Report, Status, Verdict};
+pub use super::histogram::Histogram;
+use crate::certify::report::{DecidedBy, Report, Verdict};
 
 /// A table: headers and rows of cells.
 #[derive(Debug, Clone, PartialEq)]
@@ -37,19 +38,6 @@ pub struct SweepPlot {
     pub floor: Option<f64>,
 }
 
-/// A histogram.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Histogram {
-    /// What is counted.
-    pub title: String,
-    /// The x axis label.
-    pub axis: String,
-    /// Bin edges (`counts.len() + 1` values).
-    pub edges: Vec<f64>,
-    /// Count per bin.
-    pub counts: Vec<usize>,
-}
-
 /// Everything a sheet shows.
 #[derive(Debug, Clone, PartialEq)]
 pub struct SheetContent {
@@ -71,6 +59,8 @@ pub struct SheetContent {
     pub budget: Option<Table>,
     /// One row per line of a requirement list: requirement, measured, floor, verdict.
     pub requirement_lines: Option<Table>,
+    /// For a model retrained by ballast: its lineage and which data decided what.
+    pub lineage: Option<super::lineage::LineageContent>,
     /// The headline figures.
     pub figures: Vec<Figure>,
     /// Whether the figures are exact (nothing unresolved).
@@ -93,7 +83,7 @@ pub struct SheetContent {
     pub cautions: Vec<String>,
 }
 
-fn percent(v: f64) -> String {
+pub(super) fn percent(v: f64) -> String {
     format!("{:.2}%", v * 100.0)
 }
 
@@ -247,6 +237,20 @@ pub fn build(report: &Report) -> SheetContent {
             meaning: "samples the interrupted run did not reach; in none of the figures above, open in the verdict".into(),
         });
     }
+    if let Some(f) = report.floor_epsilons {
+        let shown = |e: Option<f64>| e.map_or("none".to_string(), |e| format!("{e}"));
+        figures.push(Figure {
+            name: "Largest epsilon meeting the floor".into(),
+            value: format!(
+                "proven {}; not refuted {}",
+                shown(f.certified),
+                shown(f.empirical)
+            ),
+            meaning: "of the swept epsilons: the largest up to which the floor is proven at every one (sound bounds), and the largest up to which it is refuted at none (counterexamples); the true largest lies between the first and the swept epsilon after the second".into(),
+        });
+    }
+    let (range_figures, range_cautions) = super::range_policy::range_notes(report);
+    figures.extend(range_figures);
     if let Some(l) = s.certified_lower_bound {
         figures.push(Figure {
             name: format!("{confidence} lower confidence bound"),
@@ -336,7 +340,7 @@ pub fn build(report: &Report) -> SheetContent {
     } else {
         (None, None)
     };
-    let histogram = histogram(report);
+    let histogram = super::histogram::histogram(report);
     let stages = Table {
         headers: [
             "stage",
@@ -375,7 +379,18 @@ pub fn build(report: &Report) -> SheetContent {
         ),
         ("Data".to_string(), report.data.path.clone()),
         ("Data SHA-256".to_string(), report.data.sha256.clone()),
-        ("Samples in file".to_string(), report.data.rows.to_string()),
+        (
+            "Samples in file".to_string(),
+            match &report.data.out_of_range {
+                Some(r) if !r.skipped.is_empty() => format!(
+                    "{} of {} rows ({} left out by --out-of-range skip)",
+                    report.data.rows,
+                    r.rows_in_file,
+                    r.skipped.len()
+                ),
+                _ => report.data.rows.to_string(),
+            },
+        ),
         (
             "Tool".to_string(),
             format!("{} {}", report.tool.name, report.tool.version),
@@ -425,12 +440,17 @@ pub fn build(report: &Report) -> SheetContent {
             report.requirement.epsilon, report.requirement.norm
         )
     };
-    let cautions = vec![
+    let mut cautions = vec![
         format!("A certificate covers only the stated budget ({budget}, inside the model's valid input range) and nothing beyond it."),
         "It covers only this model file (the SHA-256 above) and only these samples; any change to either voids it.".into(),
         "Certified and empirical figures describe this acceptance set. Statements about other inputs need the confidence bound, and that bound assumes the samples were drawn independently from the inputs met in service.".into(),
         "This sheet is no safety case. Robustness to small input changes is one piece of evidence; defer to the standards that apply to the system and to licensed engineering practice.".into(),
     ];
+    cautions.splice(2..2, range_cautions);
+    let lineage = super::lineage::lineage_content(report).map(|(content, caution)| {
+        cautions.splice(2..2, caution);
+        content
+    });
     SheetContent {
         title: format!(
             "Robustness release sheet: {}",
@@ -447,7 +467,8 @@ pub fn build(report: &Report) -> SheetContent {
         incomplete,
         requirement: report.requirement.description.clone(),
         budget: super::budget::budget_table(report),
-        requirement_lines: requirement_lines(report),
+        requirement_lines: super::requirement_lines::table(report),
+        lineage,
         figures,
         exactness,
         classes,
@@ -459,92 +480,4 @@ pub fn build(report: &Report) -> SheetContent {
         command,
         cautions,
     }
-}
-
-/// The table of a requirement list's lines (none for a single requirement).
-fn requirement_lines(report: &Report) -> Option<Table> {
-    if report.requirements.is_empty() {
-        return None;
-    }
-    Some(Table {
-        headers: ["requirement", "measured", "floor", "verdict"]
-            .map(String::from)
-            .to_vec(),
-        rows: report
-            .requirements
-            .iter()
-            .map(|l| {
-                let measured = match l.lower_bound {
-                    Some(b) => format!("{} (lower bound {})", percent(l.measured), percent(b)),
-                    None if l.kind == "certified" => {
-                        format!("{} (empirical {})", percent(l.measured), percent(l.upper))
-                    }
-                    None => percent(l.measured),
-                };
-                vec![
-                    l.requirement.clone(),
-                    measured,
-                    percent(l.floor),
-                    l.verdict.name().to_string(),
-                ]
-            })
-            .collect(),
-    })
-}
-
-/// Bins used by the histogram.
-const BINS: usize = 20;
-
-fn histogram(report: &Report) -> Option<Histogram> {
-    let radii: Vec<f64> = report
-        .samples
-        .iter()
-        .filter_map(|s| s.radius)
-        .filter(|r| r.is_finite())
-        .collect();
-    let (values, title, axis) = if !radii.is_empty() {
-        (
-            radii,
-            "Certified radius per correctly classified sample".to_string(),
-            "largest epsilon proven by the sound bounds".to_string(),
-        )
-    } else {
-        let margins: Vec<f64> = report
-            .samples
-            .iter()
-            .filter(|s| s.status == Status::Certified)
-            .filter_map(|s| s.margin_lower)
-            .filter(|m| m.is_finite())
-            .collect();
-        (
-            margins,
-            "Certified margin per certified sample".to_string(),
-            "sound lower bound on the logit margin over the budget".to_string(),
-        )
-    };
-    if values.is_empty() {
-        return None;
-    }
-    let low = values
-        .iter()
-        .copied()
-        .fold(f64::INFINITY, f64::min)
-        .min(0.0);
-    let mut high = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-    if high <= low {
-        high = low + 1.0;
-    }
-    let width = (high - low) / BINS as f64;
-    let edges: Vec<f64> = (0..=BINS).map(|k| low + k as f64 * width).collect();
-    let mut counts = vec![0usize; BINS];
-    for v in values {
-        let k = (((v - low) / width) as usize).min(BINS - 1);
-        counts[k] += 1;
-    }
-    Some(Histogram {
-        title,
-        axis,
-        edges,
-        counts,
-    })
 }

@@ -18,11 +18,14 @@ code,pre{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.9em}pre{ba
 dl{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px}dt{font-weight:600}dd{margin:0;word-break:break-all}\
 .cautions{background:#f6f6f6;padding:8px 20px;border-radius:6px}.small{color:#555;font-size:.9em}";
 
+/// A cell holding only a number, a percentage, a count list like `289 / 37 / 34`, or `–`.
 fn numeric(cell: &str) -> bool {
     cell.chars()
         .next()
-        .map(|c| c.is_ascii_digit() || c == '–')
-        .unwrap_or(false)
+        .is_some_and(|c| c.is_ascii_digit() || c == '–')
+        && cell
+            .chars()
+            .all(|c| c.is_ascii_digit() || ".,%–-+e /".contains(c))
 }
 
 fn table(t: &Table) -> String {
@@ -82,6 +85,14 @@ pub fn render(c: &SheetContent) -> String {
     if let Some(t) = &c.requirement_lines {
         s.push_str("<p>Requirements (every one must pass):</p>\n");
         s.push_str(&table(t));
+    }
+    if let Some(l) = &c.lineage {
+        s.push_str(&format!(
+            "<h2>Model lineage</h2>\n<p>{}</p>\n<p>{}</p>\n",
+            h(&l.text),
+            h(&l.this_data)
+        ));
+        s.push_str(&table(&l.data));
     }
     s.push_str(
         "<h2>Figures</h2>\n<table>\n<tr><th>figure</th><th>value</th><th>meaning</th></tr>\n",

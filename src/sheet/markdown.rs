@@ -5,7 +5,8 @@
 use super::content::{SheetContent, Table};
 use super::escape::{code_fence, markdown as md};
 
-fn table(t: &Table) -> String {
+/// A Markdown table with every cell escaped.
+pub fn table(t: &Table) -> String {
     let mut s = String::new();
     s.push_str(&format!(
         "| {} |\n",
@@ -48,6 +49,15 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&table(t));
         s.push('\n');
     }
+    if let Some(l) = &c.lineage {
+        s.push_str(&format!(
+            "## Model lineage\n\n{}\n\n{}\n\n",
+            md(&l.text),
+            md(&l.this_data)
+        ));
+        s.push_str(&table(&l.data));
+        s.push('\n');
+    }
     s.push_str("## Figures\n\n| figure | value | meaning |\n| --- | --- | --- |\n");
     for f in &c.figures {
         s.push_str(&format!(
@@ -72,7 +82,7 @@ pub fn render(c: &SheetContent) -> String {
         for (k, count) in h.counts.iter().enumerate() {
             if *count > 0 {
                 s.push_str(&format!(
-                    "| {:.4} | {:.4} | {count} |\n",
+                    "| {} | {} | {count} |\n",
                     h.edges[k],
                     h.edges[k + 1]
                 ));

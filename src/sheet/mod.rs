@@ -5,12 +5,18 @@
 //! [`html`] render it, [`svg`] draws the plots, [`escape`] makes every string from a model or data file
 //! inert. The sheet only restates the report: it never recomputes or rounds a verdict.
 
+pub mod axis;
 pub mod budget;
 pub mod content;
 pub mod escape;
 pub mod finished;
+pub mod histogram;
 pub mod html;
+pub mod lineage;
 pub mod markdown;
+pub mod range_policy;
+pub mod requirement_lines;
+pub mod retrain_plots;
 pub mod svg;
 
 use std::path::{Path, PathBuf};

@@ -1,6 +1,6 @@
 //! New models for training from scratch: a normalize layer fitted to the data's mean and standard
 //! deviation, then dense layers with He initialisation (He et al., 2015: weights drawn from
-//! N(0, 2 / fan-in), biases 0), ReLU between them.
+//! N(0, 2 / fan-in), biases 0), ReLU between them. Convolutional models: [`super::cnn`].
 //!
 //! Everything is seeded (ChaCha8), so the same seed gives the same model bit for bit.
 
@@ -46,7 +46,7 @@ pub fn he_network(input: usize, hidden: &[usize], outputs: usize, seed: u64) -> 
         .windows(2)
         .map(|pair| {
             let (fan_in, fan_out) = (pair[0], pair[1]);
-            let normal = Normal::new(0.0, (2.0 / fan_in.max(1) as f64).sqrt()).expect("finite std");
+            let normal = he_normal(fan_in);
             Dense {
                 weights: DMatrix::from_fn(fan_out, fan_in, |_, _| normal.sample(&mut rng)),
                 bias: DVector::zeros(fan_out),
@@ -66,6 +66,19 @@ pub fn new_mlp(
     data: &Dataset,
     seed: u64,
 ) -> Result<Model, TrainError> {
+    check_new_model(input, classes, hidden, data)?;
+    let normalization = fit_normalization(data);
+    let network = he_network(input.dim, hidden, classes, seed);
+    Ok(empty_model(input).with_network(Some(&normalization), &network))
+}
+
+/// Checks what every new model needs: two or more classes, no empty hidden layer, data that fits.
+pub(super) fn check_new_model(
+    input: &InputSpec,
+    classes: usize,
+    hidden: &[usize],
+    data: &Dataset,
+) -> Result<(), TrainError> {
     if classes < 2 {
         return Err(TrainError::Settings(format!(
             "a classifier needs at least 2 classes, got {classes}"
@@ -86,17 +99,24 @@ pub fn new_mlp(
     if data.is_empty() {
         return Err(TrainError::Settings("no training samples".into()));
     }
-    let normalization = fit_normalization(data);
-    let network = he_network(input.dim, hidden, classes, seed);
-    let template = Model {
+    Ok(())
+}
+
+/// A model for `input` with no layers, name, classes or provenance yet.
+pub(super) fn empty_model(input: &InputSpec) -> Model {
+    Model {
         name: None,
         input: input.clone(),
         classes: None,
         layers: Vec::new(),
         provenance: None,
         arithmetic: Default::default(),
-    };
-    Ok(template.with_network(Some(&normalization), &network))
+    }
+}
+
+/// He et al. (2015): N(0, 2 / fan-in).
+pub(super) fn he_normal(fan_in: usize) -> Normal<f64> {
+    Normal::new(0.0, (2.0 / fan_in.max(1) as f64).sqrt()).expect("finite std")
 }
 
 #[cfg(test)]

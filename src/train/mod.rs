@@ -28,17 +28,21 @@
 //!
 //! [`retrain::retrain`] runs rounds of the primal-dual trainer ([`constrained`]) with a robust loss
 //! ([`robust`]: interval, linear + interval, or PGD) and checks the floor with the certify pipeline
-//! after each round; `ballast retrain` is its command-line front end.
+//! after each round; `ballast retrain` is its command-line front end. With a confidence level in the
+//! requirement, [`confidence`] sets the level it aims at and the rule its verdict follows.
 
 pub mod averaging;
 pub mod backprop;
 pub mod bound_gradient;
+pub mod cnn;
+pub mod confidence;
 pub mod constrained;
 pub mod curves;
 pub mod dual;
 pub mod duality;
 pub mod gap_correction;
 pub mod init;
+pub mod lineage;
 pub mod optimizer;
 pub mod plain;
 pub mod price;
@@ -46,6 +50,7 @@ pub mod retrain;
 pub mod robust;
 pub mod validation;
 
+pub use cnn::{new_cnn, CnnArchitecture, ConvBlock};
 pub use init::{fit_normalization, he_network, new_mlp};
 pub use optimizer::{Optimizer, OptimizerKind};
 pub use plain::{

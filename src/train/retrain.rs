@@ -17,12 +17,16 @@
 //! It guarantees an honest verdict: [`RetrainVerdict::Met`] only when the certify pipeline's verdict is
 //! `pass` for the returned model on the acceptance data; anything else (refuted, or not proven because
 //! samples stay unresolved) is [`RetrainVerdict::NotMet`]. It never reads the training loss as evidence.
+//! With a confidence level in the requirement, the floor above is replaced by the level
+//! [`super::confidence::Plan`] aims at, and the verdict follows the reviewer's rule
+//! ([`super::confidence::Plan::assess`]).
 
 use crate::certify::{certify, CertifyOptions, PipelineOptions, Report, Sources, Verdict};
 use crate::data::Dataset;
 use crate::model::{Model, Network};
 use crate::threat::requirement::Requirement;
 
+use super::confidence::{Assessment, ConfidenceSettings, Plan};
 use super::constrained::{
     train_constrained_epochs_with_checks, ConstrainedEpoch, ConstrainedSettings, ConstrainedState,
     Constraint, ValidationCheck,
@@ -48,6 +52,8 @@ pub struct RetrainSettings {
     pub keep: Keep,
     /// Near-miss candidates (see [`NearMisses`]).
     pub near_misses: NearMisses,
+    /// The reviewer's acceptance size and the wanted pass probability (with a confidence level).
+    pub confidence: ConfidenceSettings,
 }
 
 /// Validation checks just below the round's threshold by linear bounds that may still be kept when
@@ -276,7 +282,8 @@ impl SelectionThreshold {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum RetrainVerdict {
-    /// The certify pipeline proved the floor on the acceptance data.
+    /// The certify pipeline proved the floor on the acceptance data (with a confidence level: the
+    /// reviewer's rule holds, see [`Plan::assess`]).
     Met,
     /// The floor was refuted or could not be proven within the rounds.
     NotMet,
@@ -307,6 +314,8 @@ pub struct RoundRecord {
     pub empirical_robust_accuracy: f64,
     /// The pipeline's verdict (`pass`, `fail`, `undecided`).
     pub verdict: Verdict,
+    /// The returned weights against the reviewer's rule (with a confidence level).
+    pub confidence: Option<Assessment>,
 }
 
 /// A near miss judged by the certify pipeline (see [`NearMisses`]).
@@ -335,11 +344,14 @@ pub struct RetrainResult {
     pub verdict: RetrainVerdict,
     /// The certify report of the returned model on the acceptance data.
     pub report: Report,
+    /// The level aimed at under the reviewer's rule (with a confidence level).
+    pub plan: Option<Plan>,
 }
 
 /// Retrains `initial` toward `requirement` (budget, targets and floor, which must be given): constrained
 /// training on `train` (validation measurements on `validation`), then a certify check on `acceptance`
-/// after each round. `observer` sees every epoch.
+/// after each round. `observer` sees every epoch. With a confidence level in the requirement, training
+/// and the kept weights aim at [`Plan::aimed_level`] instead of the floor.
 pub fn retrain(
     initial: &Model,
     train: &Dataset,
@@ -370,11 +382,16 @@ pub fn retrain(
             near_misses.margin
         )));
     }
+    let plan = Plan::for_run(requirement, &settings.confidence, validation, acceptance)
+        .map_err(|e| TrainError::Settings(e.to_string()))?;
+    // The level training and the choice of weights aim at: the floor, or the reviewer's aimed level.
+    let aim = plan.map_or(floor, |p| p.aimed_level);
+    let checked = plan.map_or_else(|| requirement.clone(), |p| p.check_requirement(requirement));
     let mut constrained = settings.constrained.clone();
     constrained.budget = requirement.budget(requirement.epsilon(), initial.input.dim);
     constrained.targets = requirement.targets.clone();
     if let Constraint::RobustError { slack, .. } = constrained.constraint {
-        constrained.constraint = Constraint::RobustError { floor, slack };
+        constrained.constraint = Constraint::RobustError { floor: aim, slack };
     }
     constrained.validate()?;
     let trainable = TrainableModel::new(initial);
@@ -386,7 +403,7 @@ pub fn retrain(
         && constrained.measure_certified
         && constrained.formulation.is_primal_dual();
     let mut candidates = Candidates::default();
-    let mut selection = SelectionThreshold::new(floor, settings.slack_step);
+    let mut selection = SelectionThreshold::new(aim, settings.slack_step);
     let mut checks = Vec::new();
     let options = CertifyOptions {
         pipeline: settings.pipeline.clone(),
@@ -397,7 +414,7 @@ pub fn retrain(
         certify(
             model,
             data,
-            requirement,
+            &checked,
             &Sources::in_memory(model, data),
             &options,
         )
@@ -480,6 +497,10 @@ pub fn retrain(
                 .map_err(|e| TrainError::Data(format!("certifying the retrained model: {e}")))?,
         };
         let summary = &report.summary;
+        let assessment = plan
+            .map(|p| p.assess(summary, requirement))
+            .transpose()
+            .map_err(|e| TrainError::Data(format!("the reviewer's rule: {e}")))?;
         rounds.push(RoundRecord {
             round,
             slack,
@@ -491,8 +512,9 @@ pub fn retrain(
             certified_accuracy: summary.certified_accuracy,
             empirical_robust_accuracy: summary.empirical_robust_accuracy,
             verdict: summary.verdict,
+            confidence: assessment,
         });
-        let met = summary.verdict == Verdict::Pass;
+        let met = assessment.map_or(summary.verdict == Verdict::Pass, |a| a.met);
         selection.record_round(feasible_on_validation, met);
         if met || round == settings.max_rounds {
             return Ok(RetrainResult {
@@ -506,6 +528,7 @@ pub fn retrain(
                     RetrainVerdict::NotMet
                 },
                 report,
+                plan,
             });
         }
     }

@@ -29,7 +29,8 @@ Sources of the models:
     transB=1 and alpha/beta, BatchNormalization (inference), Relu, MatMul+Add,
     Identity, Cast, Flatten, Reshape, a Constant node, final Softmax; float32
     and a float64 copy; initializers partly in raw_data, partly typed;
-  - two unsupported graphs: a Sigmoid hidden activation and a Conv node.
+  - an unsupported graph: a Sigmoid hidden activation (refused convolution
+    graphs are built by cnn_onnx_fixtures.py).
 """
 import json
 import os
@@ -211,27 +212,16 @@ def hand_graph(dtype):
     return model, X
 
 
-def unsupported(kind):
+def unsupported():
     rng = np.random.default_rng(3)
     w1 = numpy_helper.from_array(rng.normal(0, 1, (4, 3)).astype(np.float32), "w1")
     w2 = numpy_helper.from_array(rng.normal(0, 1, (3, 2)).astype(np.float32), "w2")
-    if kind == "sigmoid":
-        nodes = [helper.make_node("MatMul", ["x", "w1"], ["h"], name="dense1"),
-                 helper.make_node("Sigmoid", ["h"], ["s"], name="hidden_sigmoid"),
-                 helper.make_node("MatMul", ["s", "w2"], ["y"], name="dense2")]
-        inputs = [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 4])]
-        inits = [w1, w2]
-    else:
-        k = numpy_helper.from_array(rng.normal(0, 1, (1, 1, 3, 3)).astype(np.float32), "kernel")
-        w = numpy_helper.from_array(rng.normal(0, 1, (4, 2)).astype(np.float32), "w")
-        shape = numpy_helper.from_array(np.array([-1, 4], dtype=np.int64), "shape")
-        nodes = [helper.make_node("Conv", ["x", "kernel"], ["c"], name="conv1"),
-                 helper.make_node("Reshape", ["c", "shape"], ["f"], name="flatten"),
-                 helper.make_node("MatMul", ["f", "w"], ["y"], name="dense")]
-        inputs = [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 1, 4, 4])]
-        inits = [k, w, shape]
-    graph = helper.make_graph(nodes, f"unsupported_{kind}", inputs,
-                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 2])], inits)
+    nodes = [helper.make_node("MatMul", ["x", "w1"], ["h"], name="dense1"),
+             helper.make_node("Sigmoid", ["h"], ["s"], name="hidden_sigmoid"),
+             helper.make_node("MatMul", ["s", "w2"], ["y"], name="dense2")]
+    inputs = [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 4])]
+    graph = helper.make_graph(nodes, "unsupported_sigmoid", inputs,
+                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 2])], [w1, w2])
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 15)], producer_name="onnx.helper")
     model.ir_version = 8
     return model
@@ -295,8 +285,7 @@ def main():
         path = save(model, f"{stem}.onnx")
         fx[stem] = {"file": path, "inputs": rows(X), "ort": run_ort(path, X),
                     "source": f"hand-built ai.onnx.ml LinearClassifier, one coefficient row, post_transform {post}, run by onnxruntime"}
-    for kind in ["sigmoid", "conv"]:
-        save(unsupported(kind), f"unsupported_{kind}.onnx")
+    save(unsupported(), "unsupported_sigmoid.onnx")
     exported_fixtures(fx)
     with open(OUT_FILE, "w") as f:
         json.dump(out, f)

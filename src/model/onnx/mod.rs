@@ -1,15 +1,19 @@
-//! ONNX import and export: turns an ONNX graph of fully connected layers into a [`Model`] and writes a
-//! [`Model`] back as a plain ONNX graph (Gemm / Relu, normalisation as Sub / Div).
+//! ONNX import and export: turns an ONNX graph of fully connected or convolutional layers into a
+//! [`Model`] and writes a [`Model`] back as a plain ONNX graph (Gemm / Relu, normalisation as Sub / Div,
+//! Conv, BatchNormalization, MaxPool, AveragePool, Flatten).
 //!
 //! Import follows only the path from the graph's one data input to its score output (the logits,
 //! scores or probabilities); label branches (ArgMax, ZipMap, ArrayFeatureExtractor, label casts) are
-//! ignored. Affine operations (Gemm, MatMul + Add, Sub / Mul / Div by constants, BatchNormalization in
-//! inference form, the `ai.onnx.ml` Scaler and LinearClassifier) are composed exactly in f64; a final
-//! Softmax (or a classifier's post-transform and a following Normalizer) is dropped because it keeps the
-//! argmax, so the imported model's outputs are logits. Anything else on that path is refused with an
-//! error naming the node, its op type and why — import never approximates an operation it does not
-//! model. The file size is checked against a limit before reading, and every tensor's claimed shape is
-//! checked against the bytes actually present before anything is allocated from it.
+//! ignored. Affine operations on flat features (Gemm, MatMul + Add, Sub / Mul / Div by constants,
+//! BatchNormalization in inference form, the `ai.onnx.ml` Scaler and LinearClassifier) are composed
+//! exactly in f64; convolutions, pooling and batch normalisation on channel data become the layout's
+//! layers of the same kind with the same numbers. A final Softmax (or a classifier's post-transform and
+//! a following Normalizer) is dropped because it keeps the argmax, so the imported model's outputs are
+//! logits. Anything else on that path is refused with an error naming the node, its op type and why —
+//! import never approximates an operation it does not model. The file size is checked against a limit
+//! before reading, every tensor's claimed shape is checked against the bytes actually present before
+//! anything is allocated from it, and sizes only the graph claims (the data input's width, a layer's
+//! unfolding) are checked against the size limit.
 
 mod export;
 mod import;

@@ -75,12 +75,7 @@ pub(super) fn resolve_tolerances(
     for (name, value, at) in &entries {
         let index = (0..dim)
             .find(|i| model.feature_name(*i) == *name)
-            .ok_or_else(|| {
-                invalid(
-                    at,
-                    format!("\"{name}\" is not an input feature of the model"),
-                )
-            })?;
+            .ok_or_else(|| invalid(at, unknown_feature(name, model)))?;
         if !values[index].is_nan() {
             return Err(invalid(at, format!("feature \"{name}\" is given twice")));
         }
@@ -107,6 +102,30 @@ pub(super) fn resolve_tolerances(
         values,
         origin,
     })
+}
+
+/// The message for a tolerance naming no input of `model`, with what the inputs are called and, when
+/// the model names none (as after importing ONNX without names), how to name them.
+fn unknown_feature(name: &str, model: &Model) -> String {
+    let dim = model.input.dim;
+    match &model.input.names {
+        None => format!(
+            "\"{name}\" is not an input feature of the model: the model names no inputs, so they are \
+             x0 … x{} (an ONNX file imports without names unless its metadata has them); name them with \
+             `ballast import --onnx FILE --input-range-file R.json --out M.json`, R.json holding \
+             lower, upper and names, or key the tolerances by x0 … x{}",
+            dim.saturating_sub(1),
+            dim.saturating_sub(1)
+        ),
+        Some(names) => {
+            let shown: Vec<&str> = names.iter().take(4).map(String::as_str).collect();
+            format!(
+                "\"{name}\" is not an input feature of the model, expected one of its {dim} input names ({}{})",
+                shown.join(", "),
+                if dim > shown.len() { ", …" } else { "" }
+            )
+        }
+    }
 }
 
 fn parse_tolerance_csv(

@@ -1,22 +1,28 @@
 //! Writing a [`Model`] as a plain ONNX graph: `normalize` as Sub / Div, `dense` as Gemm (transB = 1,
-//! the weights stored one row per output unit exactly as in the layout), `relu` as Relu.
+//! the weights stored one row per output unit exactly as in the layout), `relu` as Relu, and the
+//! spatial layers as Conv, BatchNormalization, MaxPool, AveragePool and Flatten ([`spatial`]).
 //!
-//! The graph has one input `input` of shape [batch, features] and one output `logits` of shape
-//! [batch, outputs] (a binary 1-logit model keeps its single logit: class 1 iff it is > 0). Tensors are
-//! float32 (rounded from ballast's f64, the usual precision of inference stacks) or float64. Class
-//! names, feature names and the input range travel in the model's metadata so that an import gives
-//! the same model back. Export never changes the function computed beyond that rounding.
+//! The graph has one input `input` of shape [batch, features] (or [batch, C, L] / [batch, C, H, W]
+//! when the model states `input.shape`) and one output `logits` of shape [batch, outputs] (a binary
+//! 1-logit model keeps its single logit: class 1 iff it is > 0). A Flatten is written before a dense
+//! layer that reads channel data without a `flatten` layer. Tensors are float32 (rounded from
+//! ballast's f64, the usual precision of inference stacks) or float64. Class names, feature names and
+//! the input range travel in the model's metadata so that an import gives the same model back. Export
+//! never changes the function computed beyond that rounding.
+
+mod proto;
+mod spatial;
 
 use prost::Message;
 
 use super::import::{META_CLASSES, META_LOWER, META_NAMES, META_UPPER};
 use super::schema::{
-    tensor_proto::DataType, tensor_shape_proto::dimension, tensor_shape_proto::Dimension,
-    type_proto, AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto,
-    StringStringEntryProto, TensorProto, TensorShapeProto, TypeProto, ValueInfoProto,
+    tensor_proto::DataType, GraphProto, ModelProto, OperatorSetIdProto, StringStringEntryProto,
 };
 use super::OnnxError;
+use crate::model::spatial::Shape;
 use crate::model::{Layer, Model};
+use proto::{int, value_info, Graph};
 
 /// Element type of the exported tensors.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
@@ -47,15 +53,27 @@ pub const EXPORT_OUTPUT: &str = "logits";
 
 /// Encodes `model` as ONNX protobuf bytes.
 pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, OnnxError> {
+    if model.layers.is_empty() {
+        return Err(OnnxError::Graph {
+            message: "the model has no layers".into(),
+        });
+    }
     let element = match options.precision {
         FloatPrecision::Float32 => DataType::Float,
         FloatPrecision::Float64 => DataType::Double,
     };
-    let mut nodes = Vec::new();
-    let mut initializers = Vec::new();
+    let mut graph = Graph {
+        nodes: Vec::new(),
+        initializers: Vec::new(),
+        element,
+    };
+    let mut shape = match &model.input.shape {
+        Some(dims) => Shape::from_dims(dims, model.input.dim)?,
+        None => Shape::flat(model.input.dim),
+    };
+    let input_dims = shape.dims();
     let mut current = EXPORT_INPUT.to_owned();
-    let mut width = model.input.dim;
-    let last = model.layers.len().saturating_sub(1);
+    let last = model.layers.len() - 1;
     for (i, layer) in model.layers.iter().enumerate() {
         let output = if i == last {
             EXPORT_OUTPUT.to_owned()
@@ -64,66 +82,78 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
         };
         match layer {
             Layer::Normalize { mean, std } => {
-                let mean_name = format!("layer{i}.mean");
-                let std_name = format!("layer{i}.std");
-                initializers.push(tensor(&mean_name, &[mean.len()], mean.as_slice(), element));
-                initializers.push(tensor(&std_name, &[std.len()], std.as_slice(), element));
+                let dims = shape.dims();
+                let mean = graph.tensor(format!("layer{i}.mean"), &dims, mean.as_slice());
+                let std = graph.tensor(format!("layer{i}.std"), &dims, std.as_slice());
                 let centred = format!("layer{i}.centred");
-                nodes.push(node(
+                graph.node(
                     "Sub",
                     &format!("layer{i}_sub"),
-                    &[&current, &mean_name],
+                    &[&current, &mean],
                     &centred,
                     vec![],
-                ));
-                nodes.push(node(
+                );
+                graph.node(
                     "Div",
                     &format!("layer{i}_div"),
-                    &[&centred, &std_name],
+                    &[&centred, &std],
                     &output,
                     vec![],
-                ));
+                );
             }
             Layer::Dense { weights, bias } => {
+                if shape.spatial_rank > 0 {
+                    let flat = format!("layer{i}.flat");
+                    graph.node(
+                        "Flatten",
+                        &format!("layer{i}_flatten"),
+                        &[&current],
+                        &flat,
+                        vec![int("axis", 1)],
+                    );
+                    current = flat;
+                }
                 let (rows, cols) = weights.shape();
                 let row_major: Vec<f64> = (0..rows)
                     .flat_map(|r| weights.row(r).iter().copied().collect::<Vec<_>>())
                     .collect();
-                let w_name = format!("layer{i}.weights");
-                let b_name = format!("layer{i}.bias");
-                initializers.push(tensor(&w_name, &[rows, cols], &row_major, element));
-                initializers.push(tensor(&b_name, &[rows], bias.as_slice(), element));
-                let trans_b = AttributeProto {
-                    name: Some("transB".into()),
-                    r#type: Some(super::schema::attribute_proto::AttributeType::Int as i32),
-                    i: Some(1),
-                    ..Default::default()
-                };
-                nodes.push(node(
+                let w = graph.tensor(format!("layer{i}.weights"), &[rows, cols], &row_major);
+                let b = graph.tensor(format!("layer{i}.bias"), &[rows], bias.as_slice());
+                graph.node(
                     "Gemm",
                     &format!("layer{i}_gemm"),
-                    &[&current, &w_name, &b_name],
+                    &[&current, &w, &b],
                     &output,
-                    vec![trans_b],
-                ));
-                width = rows;
+                    vec![int("transB", 1)],
+                );
+                shape = Shape::flat(rows);
             }
             Layer::Relu => {
-                nodes.push(node(
+                graph.node(
                     "Relu",
                     &format!("layer{i}_relu"),
                     &[&current],
                     &output,
                     vec![],
-                ));
+                );
             }
-            Layer::Conv(_) | Layer::BatchNorm { .. } | Layer::Pool(_) | Layer::Flatten => {
-                return Err(OnnxError::Graph {
-                    message: format!(
-                        "layers[{i}]: exporting conv, batchnorm, pooling and flatten layers to \
-                         ONNX is not supported yet; keep the JSON layout for this model"
-                    ),
-                });
+            Layer::Flatten => {
+                graph.node(
+                    "Flatten",
+                    &format!("layer{i}_flatten"),
+                    &[&current],
+                    &output,
+                    vec![int("axis", 1)],
+                );
+                shape = Shape::flat(shape.size());
+            }
+            Layer::Conv(_) | Layer::BatchNorm { .. } | Layer::Pool(_) => {
+                if shape.spatial_rank == 0 {
+                    return Err(OnnxError::Graph {
+                        message: format!("layers[{i}]: a spatial layer on flat features"),
+                    });
+                }
+                shape = spatial::write(&mut graph, i, layer, shape, &current, &output);
             }
         }
         current = output;
@@ -158,11 +188,11 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
         put(META_UPPER, v);
     }
     let graph = GraphProto {
-        node: nodes,
+        node: graph.nodes,
         name: Some(model.name.clone().unwrap_or_else(|| "ballast-model".into())),
-        initializer: initializers,
-        input: vec![value_info(EXPORT_INPUT, element, model.input.dim)],
-        output: vec![value_info(EXPORT_OUTPUT, element, width)],
+        initializer: graph.initializers,
+        input: vec![value_info(EXPORT_INPUT, element, &input_dims)],
+        output: vec![value_info(EXPORT_OUTPUT, element, &shape.dims())],
         ..Default::default()
     };
     let proto = ModelProto {
@@ -177,70 +207,7 @@ pub fn export_model(model: &Model, options: &ExportOptions) -> Result<Vec<u8>, O
         metadata_props: metadata,
         ..Default::default()
     };
-    if model.layers.is_empty() {
-        return Err(OnnxError::Graph {
-            message: "the model has no layers".into(),
-        });
-    }
     Ok(proto.encode_to_vec())
-}
-
-fn node(
-    op: &str,
-    name: &str,
-    inputs: &[&str],
-    output: &str,
-    attribute: Vec<AttributeProto>,
-) -> NodeProto {
-    NodeProto {
-        input: inputs.iter().map(|s| (*s).to_owned()).collect(),
-        output: vec![output.to_owned()],
-        name: Some(name.to_owned()),
-        op_type: Some(op.to_owned()),
-        attribute,
-        ..Default::default()
-    }
-}
-
-fn tensor(name: &str, dims: &[usize], values: &[f64], element: DataType) -> TensorProto {
-    let raw: Vec<u8> = match element {
-        DataType::Double => values.iter().flat_map(|v| v.to_le_bytes()).collect(),
-        _ => values
-            .iter()
-            .flat_map(|v| (*v as f32).to_le_bytes())
-            .collect(),
-    };
-    TensorProto {
-        dims: dims.iter().map(|d| *d as i64).collect(),
-        data_type: Some(element as i32),
-        name: Some(name.to_owned()),
-        raw_data: Some(raw),
-        ..Default::default()
-    }
-}
-
-fn value_info(name: &str, element: DataType, features: usize) -> ValueInfoProto {
-    let dims = vec![
-        Dimension {
-            value: Some(dimension::Value::DimParam("batch".into())),
-            ..Default::default()
-        },
-        Dimension {
-            value: Some(dimension::Value::DimValue(features as i64)),
-            ..Default::default()
-        },
-    ];
-    ValueInfoProto {
-        name: Some(name.to_owned()),
-        r#type: Some(TypeProto {
-            value: Some(type_proto::Value::TensorType(type_proto::Tensor {
-                elem_type: Some(element as i32),
-                shape: Some(TensorShapeProto { dim: dims }),
-            })),
-            ..Default::default()
-        }),
-        ..Default::default()
-    }
 }
 
 #[cfg(test)]

@@ -1,0 +1,168 @@
+//! Builds the [`Lineage`] of a retrained model from the retrainer's settings and result and the data it
+//! was given: the settings in words, rounds, epochs, kept epochs, final multipliers, and for each data
+//! set what it decided. A data set "steered" the retraining when it chose among weights: the
+//! validation data when it picks the kept weights or tightens the constraint, the acceptance data when
+//! its check decides whether another round runs (more than one round allowed). It reads the settings as
+//! they were used; it never changes them.
+
+use super::constrained::{Constraint, Formulation};
+use super::retrain::{Keep, RetrainResult, RetrainSettings, RetrainVerdict};
+use super::OptimizerKind;
+use crate::model::lineage::{DataUse, Lineage, Role};
+
+/// Where a data set came from.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DataSource {
+    /// A file path, or a description of the rows.
+    pub source: String,
+    /// SHA-256 of the file the rows came from.
+    pub sha256: Option<String>,
+    /// Rows used.
+    pub rows: usize,
+}
+
+/// The data of a retraining run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RetrainData {
+    /// The training rows.
+    pub train: DataSource,
+    /// The validation rows (possibly held out of the training file).
+    pub validation: DataSource,
+    /// The acceptance rows; `None` when the validation data served as acceptance data.
+    pub acceptance: Option<DataSource>,
+}
+
+/// The settings in one line of words.
+pub fn describe_settings(settings: &RetrainSettings) -> String {
+    let c = &settings.constrained;
+    let formulation = match c.formulation {
+        Formulation::PrimalDual {
+            dual_step,
+            per_class,
+            ..
+        } => format!(
+            "primal-dual multiplier{} (dual step {dual_step})",
+            if per_class { " per class" } else { "" }
+        ),
+        Formulation::Penalty { weight } => format!("fixed penalty weight {weight}"),
+    };
+    let constraint = match c.constraint {
+        Constraint::RobustError { slack, .. } => format!(
+            "robust error ≤ 1 − floor − slack (slack {slack}, +{} per further round)",
+            settings.slack_step
+        ),
+        Constraint::RobustLossLevel { level } => format!("robust loss ≤ {level}"),
+    };
+    let optimizer = match c.train.optimizer {
+        OptimizerKind::Adam { learning_rate, .. } => format!("Adam, learning rate {learning_rate}"),
+        OptimizerKind::Sgd {
+            learning_rate,
+            momentum,
+        } => format!("SGD, learning rate {learning_rate}, momentum {momentum}"),
+    };
+    let keep = match settings.keep {
+        Keep::BestFeasible => "best-feasible",
+        Keep::EarliestFeasible => "earliest-feasible",
+        Keep::Last => "last",
+    };
+    format!(
+        "{} robust loss, {formulation}, {constraint}; {} epochs in round 1 and {} in each further round (at most {} rounds), epsilon ramped over {} epochs; {optimizer}, batches of {}, final rate factor {}; kept weights: {keep}, {} validation checks per epoch; seed {}",
+        c.loss.name(),
+        c.train.epochs,
+        settings.round_epochs,
+        settings.max_rounds,
+        c.ramp_epochs,
+        c.train.batch_size,
+        c.final_rate_factor,
+        c.checks_per_epoch,
+        c.train.seed
+    )
+}
+
+/// The lineage of `result`, retrained from the model at `parent_path` (digest `parent_sha256`) with
+/// `settings` on `data`.
+pub fn lineage(
+    parent_path: &str,
+    parent_sha256: &str,
+    settings: &RetrainSettings,
+    result: &RetrainResult,
+    data: &RetrainData,
+) -> Lineage {
+    let c = &settings.constrained;
+    let selecting = settings.keep != Keep::Last
+        && c.measure_certified
+        && matches!(c.formulation, Formulation::PrimalDual { .. });
+    let mut validation_decided = Vec::new();
+    if selecting {
+        validation_decided.push("which epoch's weights each round kept (best feasible iterate)");
+    }
+    if c.gap_correction {
+        validation_decided.push("the generalisation gap that tightens the constraint");
+    }
+    let validation_steered = !validation_decided.is_empty();
+    if validation_decided.is_empty() {
+        validation_decided.push("nothing (measured only)");
+    }
+    let several_rounds = settings.max_rounds > 1;
+    let acceptance_decided = if several_rounds {
+        format!(
+            "the certify check after each round: whether another round ran (at most {}) and the threshold of later rounds",
+            settings.max_rounds
+        )
+    } else {
+        "the final certify check only (one round allowed)".to_string()
+    };
+    let use_of = |role, d: &DataSource, decided: String, steered| DataUse {
+        role,
+        source: d.source.clone(),
+        sha256: d.sha256.clone(),
+        rows: d.rows,
+        decided,
+        steered,
+    };
+    let mut uses = vec![
+        use_of(
+            Role::Train,
+            &data.train,
+            "the weights (every gradient step)".into(),
+            true,
+        ),
+        use_of(
+            Role::Validation,
+            &data.validation,
+            validation_decided.join("; "),
+            validation_steered,
+        ),
+    ];
+    let (acceptance, steered) = match &data.acceptance {
+        Some(a) => (a, several_rounds),
+        None => (&data.validation, several_rounds || validation_steered),
+    };
+    uses.push(use_of(
+        Role::Acceptance,
+        acceptance,
+        acceptance_decided,
+        steered,
+    ));
+    Lineage {
+        retrained_by: format!("ballast {}", env!("CARGO_PKG_VERSION")),
+        parent_path: parent_path.to_string(),
+        parent_sha256: parent_sha256.to_string(),
+        settings: describe_settings(settings),
+        rounds: result.rounds.len(),
+        max_rounds: settings.max_rounds,
+        epochs: result.epochs.len(),
+        kept_epochs: result.rounds.iter().map(|r| r.selected_epoch).collect(),
+        multipliers: result
+            .epochs
+            .last()
+            .map(|e| e.multipliers.clone())
+            .unwrap_or_default(),
+        verdict: match result.verdict {
+            RetrainVerdict::Met => "met",
+            RetrainVerdict::NotMet => "not met",
+        }
+        .into(),
+        data: uses,
+    }
+}
