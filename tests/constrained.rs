@@ -96,6 +96,8 @@ fn train_case(case: &serde_json::Value, seed: u64) -> ProblemFigures {
         constraint: Constraint::RobustLossLevel {
             level: number(&constraint["level"]),
         },
+        terms: Vec::new(),
+        relax: None,
         formulation: Formulation::PrimalDual {
             dual_step: DUAL_STEP,
             initial_multiplier: 0.0,

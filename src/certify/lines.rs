@@ -14,7 +14,7 @@ use std::sync::atomic::AtomicBool;
 use serde::{Deserialize, Serialize};
 
 use super::report::{decide, Counts, Report, Verdict};
-use super::{certify_run, CertifyError, CertifyOptions, Observer, Sources};
+use super::{certify_run, CertifyError, CertifyOptions, Observer, Silent, Sources};
 use crate::data::Dataset;
 use crate::model::Model;
 use crate::threat::requirement::{CertifiedFloor, Requirement, RequirementLine, NO_FLOOR_RULE};
@@ -91,7 +91,7 @@ pub fn judge(
             let n = labels.len().max(1) as f64;
             let clean = 1.0 - counts.misclassified as f64 / n;
             Some(LineVerdict {
-                requirement: format!("clean accuracy at least {:.2}%", minimum * 100.0),
+                requirement: describe_line(line, class_name),
                 kind: "clean_accuracy".into(),
                 epsilon: None,
                 class: None,
@@ -137,6 +137,32 @@ fn judge_certified(
         Targets::Any => (Vec::new(), None),
         Targets::Into { classes, from } => (classes.clone(), from.clone()),
     };
+    let words = describe_line(&RequirementLine::Certified(line.clone()), class_name);
+    Some(LineVerdict {
+        requirement: words,
+        kind: "certified".into(),
+        epsilon: Some(line.epsilon),
+        class: line.class,
+        forbid_into,
+        forbid_from,
+        samples: total,
+        measured: counts.certified as f64 / n,
+        upper: 1.0 - (counts.misclassified + counts.counterexample) as f64 / n,
+        lower_bound,
+        confidence: line.confidence,
+        floor: line.floor,
+        verdict,
+    })
+}
+
+/// A line in words, as the report's `requirements` list and the retrain sheet name it.
+pub fn describe_line(line: &RequirementLine, class_name: &dyn Fn(usize) -> String) -> String {
+    let line = match line {
+        RequirementLine::CleanAccuracy { minimum } => {
+            return format!("clean accuracy at least {:.2}%", minimum * 100.0)
+        }
+        RequirementLine::Certified(c) => c,
+    };
     let names = |list: &[usize]| -> String {
         list.iter()
             .map(|c| class_name(*c))
@@ -159,30 +185,51 @@ fn judge_certified(
     if let Some(c) = line.class {
         words.push_str(&format!(", samples of class {}", class_name(c)));
     }
-    if !forbid_into.is_empty() {
-        words.push_str(&format!(
-            ", only changes into {} count",
-            names(&forbid_into)
-        ));
-        if let Some(f) = &forbid_from {
+    if let Targets::Into { classes, from } = &line.targets {
+        words.push_str(&format!(", only changes into {} count", names(classes)));
+        if let Some(f) = from {
             words.push_str(&format!(" (for class {})", names(f)));
         }
     }
-    Some(LineVerdict {
-        requirement: words,
-        kind: "certified".into(),
-        epsilon: Some(line.epsilon),
-        class: line.class,
-        forbid_into,
-        forbid_from,
-        samples: total,
-        measured: counts.certified as f64 / n,
-        upper: 1.0 - (counts.misclassified + counts.counterexample) as f64 / n,
-        lower_bound,
-        confidence: line.confidence,
-        floor: line.floor,
-        verdict,
-    })
+    words
+}
+
+/// Certifies `model` on `data` against `requirement` and, with a requirement list, judges every
+/// line ([`judge_list`]; `requirement` built with [`with_line_epsilons`]): the report's verdict is
+/// then the lines' conjunction, as `ballast certify` gives it.
+pub fn certify_with_lines(
+    model: &Model,
+    data: &Dataset,
+    requirement: &Requirement,
+    lines: &[RequirementLine],
+    options: &CertifyOptions,
+) -> Result<Report, CertifyError> {
+    let sources = Sources::in_memory(model, data);
+    let cancel = AtomicBool::new(false);
+    let mut report = certify_run(
+        model,
+        data,
+        requirement,
+        &sources,
+        options,
+        None,
+        &Silent,
+        &cancel,
+    )?;
+    if !lines.is_empty() {
+        judge_list(
+            &mut report,
+            lines,
+            model,
+            data,
+            requirement,
+            &sources,
+            options,
+            &Silent,
+            &cancel,
+        )?;
+    }
+    Ok(report)
 }
 
 fn add_epsilons(epsilons: &mut Vec<f64>, more: impl Iterator<Item = f64>) {
