@@ -1,7 +1,8 @@
-//! `ballast retrain`: constrained (primal-dual) retraining toward a certified floor, then an honest
-//! check with the certify pipeline. Writes the model (atomically, with provenance), a log CSV and a small
-//! sheet (Markdown + SVG curves) in a folder beside the model. Exit 0 when the floor is proven on the
-//! acceptance data, 1 when it is not.
+//! `ballast retrain`: constrained (primal-dual) retraining toward a certified floor or a requirement
+//! list (one constraint per line), then an honest check with the certify pipeline. Writes the model
+//! (atomically, with provenance), a log CSV and a small sheet (Markdown + SVG curves) in a folder
+//! beside the model. Exit 0 when the floor (every line of a list) is proven on the acceptance data, 1
+//! when it is not.
 
 use std::path::{Path, PathBuf};
 
@@ -26,7 +27,7 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 #[derive(Debug, clap::Args)]
 #[command(
     allow_negative_numbers = true,
-    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
+    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --requirement release.toml --train train.csv --acceptance acc.csv --out m2.json\n  ballast retrain --model m.json --requirement release.toml --train train.csv --relax --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
 )]
 pub struct Args {
     /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
@@ -35,11 +36,12 @@ pub struct Args {
     /// Training data (CSV).
     #[arg(long, help_heading = "Inputs")]
     pub train: PathBuf,
-    /// Validation data (CSV): decides which weights each round keeps [default: 20% of --train held out].
+    /// Validation data (CSV): decides which weights each round keeps and, by the certify check after
+    /// each round, whether another round runs [default: 20% of --train held out].
     #[arg(long, help_heading = "Inputs")]
     pub val: Option<PathBuf>,
-    /// Acceptance data: the certify check after each round, which decides whether another round runs
-    /// [default: the validation data].
+    /// Acceptance data: certified once, after the last round, for the verdict; it never steers the
+    /// rounds [default: the validation data, with a caution].
     #[arg(long, help_heading = "Inputs")]
     pub acceptance: Option<PathBuf>,
     /// Name of the label column.
