@@ -75,6 +75,8 @@ fn constrained_settings(
             floor,
             slack: env_or("BALLAST_BENCH_SLACK", 0.0),
         },
+        terms: Vec::new(),
+        relax: None,
         formulation,
         ramp_epochs: (epochs * 2) / 5,
         measure_certified: true,
@@ -282,6 +284,7 @@ fn tradeoff() {
                 tries: env_or("BALLAST_BENCH_NEAR_MISS_TRIES", 3usize),
             },
             confidence: Default::default(),
+            lines: Vec::new(),
         };
         let start = Instant::now();
         let result = retrain(

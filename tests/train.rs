@@ -531,6 +531,8 @@ mod primal_dual {
             targets: Targets::Any,
             loss,
             constraint,
+            terms: Vec::new(),
+            relax: None,
             formulation,
             ramp_epochs: 0,
             measure_certified: true,
@@ -775,6 +777,7 @@ mod primal_dual {
                 keep,
                 near_misses,
                 confidence: Default::default(),
+                lines: Vec::new(),
             };
             ballast::train::retrain::retrain(
                 &self.model,

@@ -10,6 +10,7 @@
 
 pub mod floor_epsilon;
 pub mod journal;
+pub mod lines;
 pub mod merge;
 pub mod pipeline;
 pub mod progress;
@@ -347,6 +348,7 @@ fn empty_report(
         floor_epsilons: None,
         seconds: 0.0,
         counterexamples: None,
+        requirements: Vec::new(),
         samples: Vec::new(),
     }
 }

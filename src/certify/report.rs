@@ -198,6 +198,8 @@ pub enum DecidedBy {
     CleanAccuracy,
     /// Nothing to decide.
     NoRule,
+    /// The conjunction of the lines of a requirement list (`requirements`).
+    RequirementList,
 }
 
 /// The fixed summary figures plus counts.
@@ -595,6 +597,10 @@ pub struct Report {
     pub seconds: f64,
     /// File name of the counterexample CSV beside the report, if one was written.
     pub counterexamples: Option<String>,
+    /// Each line's verdict when the requirement is a list (absent for a single requirement); the
+    /// summary's verdict is then their conjunction.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub requirements: Vec<super::lines::LineVerdict>,
     /// Per-sample results, by index.
     pub samples: Vec<SampleRecord>,
 }
@@ -606,6 +612,11 @@ impl Report {
         let total = self.data.samples;
         let counts = Counts::from_statuses(self.samples.iter().map(|s| s.status), total);
         self.summary = summarize(&counts, &requirement);
+        if !self.requirements.is_empty() {
+            self.summary.verdict =
+                super::lines::conjunction(self.requirements.iter().map(|l| &l.verdict));
+            self.summary.decided_by = DecidedBy::RequirementList;
+        }
         self.sweep = (0..requirement.epsilons.len())
             .map(|k| {
                 let counts =

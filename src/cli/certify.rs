@@ -14,6 +14,7 @@ use anyhow::{bail, Context};
 use super::common::{load_data_counted, load_model, Epsilons, RequirementArgs};
 use super::Outcome;
 use crate::certify::journal::journal_path;
+use crate::certify::lines::{judge_list, with_line_epsilons};
 use crate::certify::progress::{ProgressMode, TerminalProgress};
 use crate::certify::{
     certify_run, write_counterexamples, CertifyOptions, JournalOptions, PipelineOptions, Report,
@@ -152,12 +153,20 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         &args.out_of_range,
         args.allow_large,
     )?;
-    let requirement = args.requirement.resolve(&model, Epsilons::Sweep, |spec| {
-        spec.min_clean_accuracy = args
-            .min_clean_accuracy
-            .map(|v| (v, "--min-clean-accuracy".to_string()));
-        spec.confidence = args.confidence.map(|v| (v, "--confidence".to_string()));
-    })?;
+    let (requirement, lines) =
+        args.requirement
+            .resolve_with_lines(&model, Epsilons::Sweep, |spec| {
+                spec.min_clean_accuracy = args
+                    .min_clean_accuracy
+                    .map(|v| (v, "--min-clean-accuracy".to_string()));
+                spec.confidence = args.confidence.map(|v| (v, "--confidence".to_string()));
+            })?;
+    let requirement = with_line_epsilons(&requirement, &lines);
+    if !lines.is_empty() && shard.is_some() {
+        bail!(
+            "--shard: not available with a list of requirements (certify the whole set in one run)"
+        );
+    }
     if let Some(report) = &args.report {
         check_writable_folder(report)?;
         if args.resume && !journal_path(report).is_file() {
@@ -212,6 +221,19 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         &progress,
         &cancel,
     )?;
+    if !lines.is_empty() && report.complete && !cancel.load(Ordering::SeqCst) {
+        judge_list(
+            &mut report,
+            &lines,
+            &model,
+            &data,
+            &requirement,
+            &sources,
+            &options,
+            &progress,
+            &cancel,
+        )?;
+    }
     let interrupted = signal.load(Ordering::SeqCst);
 
     if let Some(path) = &args.report {
@@ -299,6 +321,15 @@ pub fn print_summary(report: &Report) {
             "largest epsilon meeting the floor: proven {}, not refuted {}",
             shown(f.certified),
             shown(f.empirical)
+        );
+    }
+    for l in &report.requirements {
+        println!(
+            "  {}: measured {:.4}, floor {:.4}: {}",
+            l.requirement,
+            l.measured,
+            l.floor,
+            l.verdict.name()
         );
     }
     println!("verdict: {}", s.verdict.name());

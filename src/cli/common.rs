@@ -8,7 +8,7 @@ use anyhow::bail;
 
 use crate::data::{load_csv_counted, DataOptions, Dataset, OutOfRange, RangeCounts};
 use crate::model::Model;
-use crate::threat::requirement::{Requirement, RequirementSpec, ToleranceSource};
+use crate::threat::requirement::{Requirement, RequirementLine, RequirementSpec, ToleranceSource};
 use crate::threat::Norm;
 
 /// Loads a model file (the JSON layout, or ONNX when the name ends in `.onnx`), refusing models above the parameter limit unless allowed.
@@ -242,6 +242,17 @@ impl RequirementArgs {
         epsilons: Epsilons,
         extra: impl FnOnce(&mut RequirementSpec),
     ) -> anyhow::Result<Requirement> {
+        Ok(self.resolve_with_lines(model, epsilons, extra)?.0)
+    }
+
+    /// As [`RequirementArgs::resolve`], with the checked lines of the file's requirement list (empty
+    /// without a list). With a list the top-level budget may be absent: the lines carry theirs.
+    pub fn resolve_with_lines(
+        &self,
+        model: &Model,
+        epsilons: Epsilons,
+        extra: impl FnOnce(&mut RequirementSpec),
+    ) -> anyhow::Result<(Requirement, Vec<RequirementLine>)> {
         let mut flags = self.spec(epsilons)?;
         extra(&mut flags);
         let file = match &self.requirement {
@@ -249,7 +260,7 @@ impl RequirementArgs {
             None => RequirementSpec::default(),
         };
         let merged = file.overridden_by(flags);
-        if merged.epsilons.is_none() && merged.tolerances.is_none() {
+        if merged.epsilons.is_none() && merged.tolerances.is_none() && merged.lines.is_empty() {
             bail!(
                 "--eps: no budget given: pass --eps with {}, or --tolerances FILE, or --requirement FILE with epsilon or tolerances",
                 match epsilons {
@@ -268,6 +279,7 @@ impl RequirementArgs {
                 }
             }
         }
-        Ok(merged.resolve(model)?)
+        let lines = merged.resolve_lines(model)?;
+        Ok((merged.resolve(model)?, lines))
     }
 }

@@ -12,6 +12,7 @@ pub mod import;
 pub mod inspect;
 pub mod merge;
 pub mod retrain;
+pub mod retrain_sheet;
 pub mod sheet;
 
 use clap::{Parser, Subcommand};

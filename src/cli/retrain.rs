@@ -1,24 +1,25 @@
-//! `ballast retrain`: constrained (primal-dual) retraining toward a certified floor, then an honest
-//! check with the certify pipeline. Writes the model (atomically, with provenance), a log CSV and a small
-//! sheet (Markdown + SVG curves) in a folder beside the model. Exit 0 when the floor is proven on the
-//! acceptance data, 1 when it is not.
+//! `ballast retrain`: constrained (primal-dual) retraining toward a certified floor or a requirement
+//! list (one constraint per line), then an honest check with the certify pipeline. Writes the model
+//! (atomically, with provenance), a log CSV and a small sheet (Markdown + SVG curves) in a folder
+//! beside the model. Exit 0 when the floor (every line of a list) is proven on the acceptance data, 1
+//! when it is not.
 
-use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 
 use super::common::{load_data, load_model, Epsilons, RequirementArgs};
+pub use super::retrain_sheet::{checks_csv, log_csv};
+use super::retrain_sheet::{final_prices, round_assessments, sheet_markdown};
 use super::Outcome;
+use crate::certify::lines::LineVerdict;
 use crate::certify::PipelineOptions;
-use crate::train::confidence::{self, Assessment, ConfidenceSettings};
+use crate::threat::requirement::RequirementLine;
+use crate::train::confidence::{self, ConfidenceSettings};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
-use crate::train::price::{prices, Price};
-use crate::train::retrain::{
-    retrain, Keep, NearMisses, RetrainResult, RetrainSettings, RetrainVerdict,
-};
+use crate::train::retrain::{retrain, Keep, NearMisses, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
 use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 
@@ -26,7 +27,7 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 #[derive(Debug, clap::Args)]
 #[command(
     allow_negative_numbers = true,
-    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
+    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --requirement release.toml --train train.csv --acceptance acc.csv --out m2.json\n  ballast retrain --model m.json --requirement release.toml --train train.csv --relax --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
 )]
 pub struct Args {
     /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
@@ -35,11 +36,12 @@ pub struct Args {
     /// Training data (CSV).
     #[arg(long, help_heading = "Inputs")]
     pub train: PathBuf,
-    /// Validation data (CSV): decides which weights each round keeps [default: 20% of --train held out].
+    /// Validation data (CSV): decides which weights each round keeps and, by the certify check after
+    /// each round, whether another round runs [default: 20% of --train held out].
     #[arg(long, help_heading = "Inputs")]
     pub val: Option<PathBuf>,
-    /// Acceptance data: the certify check after each round, which decides whether another round runs
-    /// [default: the validation data].
+    /// Acceptance data: certified once, after the last round, for the verdict; it never steers the
+    /// rounds [default: the validation data, with a caution].
     #[arg(long, help_heading = "Inputs")]
     pub acceptance: Option<PathBuf>,
     /// Name of the label column.
@@ -181,6 +183,17 @@ pub struct Args {
         help_heading = "Training"
     )]
     pub average_tail: f64,
+    /// Resilient relaxation (Hounie et al., 2023): every constraint may loosen by a slack that costs
+    /// COST/2 · slack² in the objective, learned with the weights; when the floors cannot all hold,
+    /// training settles on the closest levels it can reach and the result names the lines that fail.
+    /// The verdict stays strict [COST default: 10].
+    #[arg(long, num_args = 0..=1, default_missing_value = "10", value_name = "COST", help_heading = "Requirement")]
+    pub relax: Option<f64>,
+    /// A named group of settings: `landing` = --slack 0 --checks-per-epoch 16 --final-rate 0.1
+    /// --keep earliest-feasible --near-miss 0.03 (lands close to the floor, docs/retrain.md §7);
+    /// flags given explicitly still win.
+    #[arg(long, value_name = "NAME", help_heading = "Training")]
+    pub preset: Option<String>,
     /// Where to write the retrained model (the log and sheet go to a folder beside it).
     #[arg(long, help_heading = "Output")]
     pub out: PathBuf,
@@ -225,7 +238,15 @@ fn check_outputs(out: &Path) -> anyhow::Result<()> {
 }
 
 /// Runs `ballast retrain`.
-pub fn run(args: Args) -> anyhow::Result<Outcome> {
+pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
+    if let Some(name) = args.preset.clone() {
+        apply_preset(&mut args, &name, &std::env::args().collect::<Vec<_>>())?;
+    }
+    if let Some(cost) = args.relax {
+        if !(cost.is_finite() && cost > 0.0) {
+            bail!("--relax: {cost} is not allowed, expected a slack cost > 0");
+        }
+    }
     // Validate the plain values first.
     if let Some(floor) = args.requirement.floor {
         if !(0.0..=1.0).contains(&floor) {
@@ -335,11 +356,22 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     check_outputs(&args.out)?;
 
     let parent = load_model(&args.model, args.allow_large)?;
-    let requirement = args.requirement.resolve(&parent, Epsilons::One, |spec| {
-        spec.confidence = args.confidence.map(|c| (c, "--confidence".to_string()));
-    })?;
-    let Some(floor) = requirement.floor else {
-        bail!("--floor: retraining needs a floor (give --floor or a requirement file with floor)");
+    let (requirement, lines) =
+        args.requirement
+            .resolve_with_lines(&parent, Epsilons::One, |spec| {
+                spec.confidence = args.confidence.map(|c| (c, "--confidence".to_string()));
+            })?;
+    let floor = match requirement.floor {
+        Some(floor) => floor,
+        None if !lines.is_empty() => {
+            if args.constraint != "error" || args.per_class {
+                bail!("--constraint / --per-class: a requirement list gives one constraint per line; leave these at their defaults");
+            }
+            lowest_floor(&lines)
+        }
+        None => bail!(
+            "--floor: retraining needs a floor (give --floor or a requirement file with floor)"
+        ),
     };
     let parent_sha256 = crate::digest::sha256_file(&args.model)
         .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
@@ -423,12 +455,15 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         patience: None,
     };
     let settings = RetrainSettings {
+        lines: lines.clone(),
         constrained: ConstrainedSettings {
             train: train_settings,
             budget: requirement.budget(requirement.epsilon(), parent.input.dim),
             targets: requirement.targets.clone(),
             loss,
             constraint,
+            terms: Vec::new(),
+            relax: args.relax,
             formulation,
             ramp_epochs: args.ramp_epochs.unwrap_or((args.epochs * 2) / 5),
             measure_certified: true,
@@ -474,8 +509,8 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     )?;
 
     // Outputs: model, then log and sheet in the folder beside it.
-    let last = result.rounds.last().expect("at least one round");
-    let prices = final_prices(&settings, floor, &result, &|c| parent.class_name(c));
+    let last = &result.report.summary;
+    let prices = final_prices(&result, settings.constrained.formulation.is_primal_dual());
     let lineage = lineage(
         &args.model.display().to_string(),
         &parent_sha256,
@@ -509,6 +544,8 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
                 "certified_accuracy": last.certified_accuracy,
                 "empirical_robust_accuracy": last.empirical_robust_accuracy,
                 "acceptance_samples": acceptance.len(),
+                "on_unseen_data": result.verdict_on_unseen_data,
+                "requirements": &result.report.requirements,
             },
             "confidence": result.plan.map(|plan| confidence::json(&plan, &round_assessments(&result))),
         }
@@ -522,6 +559,10 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
     let (accuracy_svg, multiplier_svg) = crate::sheet::retrain_plots::retrain_plots(&result, floor);
     write(&folder.join("accuracy.svg"), &accuracy_svg)?;
     write(&folder.join("loss_and_multiplier.svg"), &multiplier_svg)?;
+    let names: Vec<String> = prices.iter().map(|p| p.constraint.clone()).collect();
+    if let Some(svg) = crate::sheet::retrain_plots::multiplier_plot(&result, &names) {
+        write(&folder.join("multipliers.svg"), &svg)?;
+    }
     let described = requirement.describe(&|c| parent.class_name(c));
     write(
         &folder.join("retrain.md"),
@@ -544,8 +585,13 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         args.out.display(),
         folder.display()
     );
-    if let (Some(plan), Some(assessment)) = (&result.plan, &last.confidence) {
+    let last_round = result.rounds.last().expect("at least one round");
+    if let (Some(plan), Some(assessment)) = (&result.plan, &last_round.confidence) {
         println!("{}", confidence::summary_line(plan, assessment));
+    }
+    print_lines(&result.report.requirements, &prices);
+    for caution in super::retrain_sheet::cautions(&args, &result) {
+        eprintln!("caution: {caution}");
     }
     Ok(match result.verdict {
         RetrainVerdict::Met => Outcome::Met,
@@ -577,169 +623,73 @@ fn retrain_data(args: &Args, train: usize, validation: usize, acceptance: usize)
     }
 }
 
-fn round_assessments(result: &RetrainResult) -> Vec<Option<Assessment>> {
-    result.rounds.iter().map(|r| r.confidence).collect()
-}
-
 fn write(path: &Path, text: &str) -> anyhow::Result<()> {
     crate::atomic::write_file(path, text.as_bytes())
         .with_context(|| format!("{}: writing", path.display()))
 }
 
-fn option(v: Option<f64>) -> String {
-    v.map(|x| format!("{x:.6}")).unwrap_or_default()
-}
-
-/// The per-epoch log as CSV (epoch, epsilon scale, clean loss, robust loss, robust error, λ, gap
-/// correction, validation clean loss and its standard error, clean and certified accuracy); per-class multipliers are joined with `;`.
-pub fn log_csv(result: &RetrainResult) -> String {
-    let mut text = String::from(
-        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,gap_correction,val_clean_loss,val_clean_loss_error,val_clean_accuracy,val_certified_accuracy\n",
-    );
-    for e in &result.epochs {
-        let lambda: Vec<String> = e.multipliers.iter().map(|m| format!("{m:.6}")).collect();
-        let _ = writeln!(
-            text,
-            "{},{:.4},{:.6},{:.6},{:.6},{},{:.6},{},{},{},{}",
-            e.epoch,
-            e.epsilon_scale,
-            e.clean_loss,
-            e.robust_loss,
-            e.robust_error,
-            lambda.join(";"),
-            e.gap_correction,
-            option(e.validation_clean_loss),
-            option(e.validation_clean_loss_error),
-            option(e.validation_clean_accuracy),
-            option(e.validation_certified_accuracy)
-        );
-    }
-    text
-}
-
-/// The validation checks as CSV: position in epochs, validation clean loss and its standard error,
-/// validation certified accuracy (sound linear bounds at the full budget).
-pub fn checks_csv(result: &RetrainResult) -> String {
-    let mut text =
-        String::from("epoch_position,val_clean_loss,val_clean_loss_error,val_certified_accuracy\n");
-    for c in &result.checks {
-        let _ = writeln!(
-            text,
-            "{},{:.6},{:.6},{:.6}",
-            c.epoch_position, c.clean_loss, c.clean_loss_error, c.certified_accuracy
-        );
-    }
-    text
-}
-
-/// The prices of the constraint at the last epoch's multipliers (none for a fixed penalty).
-fn final_prices(
-    settings: &RetrainSettings,
-    floor: f64,
-    result: &RetrainResult,
-    class_name: &dyn Fn(usize) -> String,
-) -> Vec<Price> {
-    let constrained = &settings.constrained;
-    let (Some(last), true) = (
-        result.epochs.last(),
-        constrained.formulation.is_primal_dual(),
-    ) else {
-        return Vec::new();
-    };
-    let constraint = match constrained.constraint {
-        Constraint::RobustError { slack, .. } => Constraint::RobustError { floor, slack },
-        other => other,
-    };
-    prices(&constraint, &last.multipliers, class_name)
-}
-
-fn sheet_markdown(
-    args: &Args,
-    requirement: &str,
-    floor: f64,
-    result: &RetrainResult,
-    acceptance: usize,
-    prices: &[Price],
-) -> String {
-    let mut md = String::new();
-    let met = result.verdict == RetrainVerdict::Met;
-    let verdict = match &result.plan {
-        Some(plan) => confidence::verdict_text(plan, met),
-        None if met => "**met**: the certify pipeline proved the floor on the acceptance data",
-        None => "**not met**: the floor was not proven on the acceptance data",
-    };
-    let _ = writeln!(md, "# Retraining sheet\n");
-    let _ = writeln!(md, "- parent model: `{}`", args.model.display());
-    let _ = writeln!(md, "- retrained model: `{}`", args.out.display());
-    let _ = writeln!(md, "- requirement (floor {floor}): {requirement}");
-    let formulation = match args.penalty {
-        Some(w) => format!("fixed penalty weight {w}"),
-        None => format!(
-            "primal-dual (dual step {}{})",
-            args.dual_step,
-            if args.per_class { ", per class" } else { "" }
-        ),
-    };
-    let _ = writeln!(md, "- loss: {}, {formulation}", args.loss);
-    let _ = writeln!(md, "- acceptance samples: {acceptance}");
-    let _ = writeln!(md, "- verdict: {verdict}\n");
-    let _ = writeln!(md, "| round | slack | epochs | kept epoch | clean accuracy | certified accuracy | empirical robust accuracy | pipeline verdict |");
-    let _ = writeln!(md, "| --- | --- | --- | --- | --- | --- | --- | --- |");
-    for r in &result.rounds {
-        let _ = writeln!(
-            md,
-            "| {} | {:.3} | {} | {}{} | {:.4} | {:.4} | {:.4} | {:?} |",
-            r.round,
-            r.slack,
-            r.epochs,
-            r.selected_epoch,
-            if r.near_miss { " (near miss)" } else { "" },
-            r.clean_accuracy,
-            r.certified_accuracy,
-            r.empirical_robust_accuracy,
-            r.verdict
-        );
-    }
-    for r in &result.rounds {
-        for j in &r.near_misses_judged {
-            let _ = writeln!(
-                md,
-                "\nRound {}: near miss at epoch {} judged by the certify pipeline on the validation data: {:.4} by linear bounds, {:.4} by the pipeline.",
-                r.round, j.epoch, j.linear_certified, j.pipeline_certified
-            );
-        }
-    }
-    if !prices.is_empty() {
-        let _ = writeln!(md, "\n## Price of the requirement\n");
-        let _ = writeln!(md, "The final multipliers read as prices: the sensitivity of the best clean training loss to each constraint's level (Boyd & Vandenberghe, *Convex Optimization*, §5.6).\n");
-        let _ = writeln!(md, "| constraint | multiplier | binding | meaning |");
-        let _ = writeln!(md, "| --- | --- | --- | --- |");
-        for p in prices {
-            let _ = writeln!(
-                md,
-                "| {} | {:.4} | {} | {} |",
-                p.constraint,
+/// Prints each requirement line's verdict with its price (a requirement list only).
+fn print_lines(lines: &[LineVerdict], prices: &[crate::train::price::Price]) {
+    for (k, l) in lines.iter().enumerate() {
+        let price = prices.get(k).map_or(String::new(), |p| {
+            format!(
+                ", multiplier {:.4}{}",
                 p.multiplier,
-                if p.binding { "yes" } else { "no" },
-                p.meaning
-            );
-        }
-    }
-    if let Some(plan) = &result.plan {
-        let _ = writeln!(
-            md,
-            "\n{}",
-            confidence::markdown(plan, &round_assessments(result))
+                if p.relaxed_by > 0.0 {
+                    format!(", relaxed by {:.4}", p.relaxed_by)
+                } else {
+                    String::new()
+                }
+            )
+        });
+        println!(
+            "  {}: measured {:.4}, floor {:.4}: {}{price}",
+            l.requirement,
+            l.measured,
+            l.floor,
+            l.verdict.name()
         );
     }
-    let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
-    let _ = writeln!(
-        md,
-        "![accuracy](accuracy.svg)\n\n![losses and multiplier](loss_and_multiplier.svg)\n"
-    );
-    let _ = writeln!(
-        md,
-        "Per-epoch figures: `log.csv`; every validation check (the candidates for the kept weights): `checks.csv`."
-    );
-    md
+}
+
+/// The lowest floor of a requirement list (drawn on the accuracy plot).
+fn lowest_floor(lines: &[RequirementLine]) -> f64 {
+    lines
+        .iter()
+        .map(|l| match l {
+            RequirementLine::Certified(c) => c.floor,
+            RequirementLine::CleanAccuracy { minimum } => *minimum,
+        })
+        .fold(1.0, f64::min)
+}
+
+/// Applies the named group of settings `name` to `args`, leaving every flag present on
+/// `command_line` as given.
+fn apply_preset(args: &mut Args, name: &str, command_line: &[String]) -> anyhow::Result<()> {
+    let given = |flag: &str| {
+        command_line
+            .iter()
+            .any(|a| a == flag || a.starts_with(&format!("{flag}=")))
+    };
+    match name {
+        "landing" => {
+            if !given("--slack") {
+                args.slack = 0.0;
+            }
+            if !given("--checks-per-epoch") {
+                args.checks_per_epoch = 16;
+            }
+            if !given("--final-rate") {
+                args.final_rate = 0.1;
+            }
+            if !given("--keep") {
+                args.keep = "earliest-feasible".into();
+            }
+            if !given("--near-miss") {
+                args.near_miss = 0.03;
+            }
+            Ok(())
+        }
+        other => bail!("--preset: \"{other}\" is not allowed, expected landing"),
+    }
 }

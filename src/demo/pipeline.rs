@@ -221,6 +221,8 @@ fn settings_with(
                 final_linear_weight: 0.0,
             },
             constraint: Constraint::RobustError { floor, slack: 0.02 },
+            terms: Vec::new(),
+            relax: None,
             formulation: Formulation::PrimalDual {
                 dual_step: 0.5,
                 initial_multiplier: 0.1,
@@ -240,6 +242,7 @@ fn settings_with(
         keep: Keep::BestFeasible,
         near_misses: NearMisses::OFF,
         confidence: ConfidenceSettings::default(),
+        lines: Vec::new(),
     }
 }
 

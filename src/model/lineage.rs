@@ -1,7 +1,7 @@
 //! The lineage of a retrained model: which model it was retrained from (path and SHA-256), with which
 //! settings, in how many rounds and epochs, with which final multipliers, and which data decided what
-//! (training data the weights, validation data the kept weights, acceptance data whether another round
-//! ran). `ballast retrain` writes it into the model's `provenance.retrain.lineage`; certify copies it
+//! (training data the weights, validation data the kept weights and whether another round ran,
+//! acceptance data the final verdict). `ballast retrain` writes it into the model's `provenance.retrain.lineage`; certify copies it
 //! into the report so the sheet can say the model was retrained and whether the data it certifies on
 //! steered that retraining (then the figure on it is optimistically biased).
 //!

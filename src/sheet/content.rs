@@ -57,6 +57,8 @@ pub struct SheetContent {
     pub requirement: String,
     /// Each feature's tolerance and radius in the input's units (per-feature budgets only).
     pub budget: Option<Table>,
+    /// One row per line of a requirement list: requirement, measured, floor, verdict.
+    pub requirement_lines: Option<Table>,
     /// For a model retrained by ballast: its lineage and which data decided what.
     pub lineage: Option<super::lineage::LineageContent>,
     /// The headline figures.
@@ -81,7 +83,7 @@ pub struct SheetContent {
     pub cautions: Vec<String>,
 }
 
-fn percent(v: f64) -> String {
+pub(super) fn percent(v: f64) -> String {
     format!("{:.2}%", v * 100.0)
 }
 
@@ -106,6 +108,16 @@ pub fn build(report: &Report) -> SheetContent {
         .map(|c| format!("{:.0}%", c * 100.0))
         .unwrap_or_default();
     let reason = match (s.verdict, s.decided_by) {
+        (_, DecidedBy::RequirementList) => {
+            let count = |v: Verdict| report.requirements.iter().filter(|l| l.verdict == v).count();
+            format!(
+                "Of {} requirements, {} pass, {} fail and {} are undecided; the release needs every one.",
+                report.requirements.len(),
+                count(Verdict::Pass),
+                count(Verdict::Fail),
+                count(Verdict::Undecided)
+            )
+        }
         (Verdict::Pass, DecidedBy::ConfidenceBound) => format!(
             "The {confidence} lower confidence bound on the certified fraction, {}, is at least the floor {}.",
             optional_percent(s.certified_lower_bound),
@@ -160,6 +172,7 @@ pub fn build(report: &Report) -> SheetContent {
         DecidedBy::ConfidenceBound => "decided by the one-sided Clopper–Pearson lower confidence bound",
         DecidedBy::CleanAccuracy => "decided by the clean accuracy",
         DecidedBy::NoRule => "no rule to decide",
+        DecidedBy::RequirementList => "decided by every line of the requirement list (all must pass)",
     }
     .to_string();
     let finished = super::finished::Finished::of(report);
@@ -454,6 +467,7 @@ pub fn build(report: &Report) -> SheetContent {
         incomplete,
         requirement: report.requirement.description.clone(),
         budget: super::budget::budget_table(report),
+        requirement_lines: super::requirement_lines::table(report),
         lineage,
         figures,
         exactness,

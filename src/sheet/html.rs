@@ -82,6 +82,10 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
         s.push_str(&table(t));
     }
+    if let Some(t) = &c.requirement_lines {
+        s.push_str("<p>Requirements (every one must pass):</p>\n");
+        s.push_str(&table(t));
+    }
     if let Some(l) = &c.lineage {
         s.push_str(&format!(
             "<h2>Model lineage</h2>\n<p>{}</p>\n<p>{}</p>\n",

@@ -44,6 +44,11 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&table(t));
         s.push('\n');
     }
+    if let Some(t) = &c.requirement_lines {
+        s.push_str("Requirements (every one must pass):\n\n");
+        s.push_str(&table(t));
+        s.push('\n');
+    }
     if let Some(l) = &c.lineage {
         s.push_str(&format!(
             "## Model lineage\n\n{}\n\n{}\n\n",

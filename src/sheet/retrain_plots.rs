@@ -1,5 +1,6 @@
-//! The retraining sheet's two plots: validation accuracy per epoch (clean and certified) with the floor
-//! as a line, and the training losses with the largest multiplier. Both mark where each round's kept
+//! The retraining sheet's plots: validation accuracy per epoch (clean and certified) with the floor
+//! as a line, the training losses with the largest multiplier, and with several constraints each
+//! one's multiplier (its price history). Both mark where each round's kept
 //! weights were taken and count epochs in whole numbers. They draw the retrainer's log as it is; the
 //! certified curve is the validation check's sound linear-bound figure, not the acceptance verdict.
 
@@ -69,4 +70,36 @@ pub fn retrain_plots(result: &RetrainResult, floor: f64) -> (String, String) {
     }
     .svg();
     (accuracy, losses)
+}
+
+/// `multipliers.svg`: the multiplier of each constraint per epoch, named by `names` (one per
+/// constraint, in multiplier order). `None` with a single constraint (the losses plot shows it).
+pub fn multiplier_plot(result: &RetrainResult, names: &[String]) -> Option<String> {
+    if names.len() < 2 {
+        return None;
+    }
+    let series: Vec<Series> = names
+        .iter()
+        .enumerate()
+        .map(|(k, name)| Series {
+            name: format!("λ{}: {name}", k + 1),
+            points: result
+                .epochs
+                .iter()
+                .filter_map(|e| e.multipliers.get(k).map(|m| (e.epoch as f64, *m)))
+                .collect(),
+            markers_only: false,
+        })
+        .collect();
+    Some(
+        Plot {
+            title: "Multiplier of each requirement per epoch",
+            x_label: "epoch",
+            y_label: "multiplier (clean loss per unit of the constraint)",
+            series: &series,
+            guides: &kept_markers(result),
+            integer_x: true,
+        }
+        .svg(),
+    )
 }

@@ -30,7 +30,7 @@ use rand_chacha::ChaCha8Rng;
 
 use crate::data::Dataset;
 use crate::model::Network;
-use crate::threat::{Budget, Region, Targets};
+use crate::threat::{Budget, Targets};
 
 pub use super::dual::{Constraint, Formulation};
 pub use super::gap_correction::GapCorrection;
@@ -43,10 +43,10 @@ use super::plain::{
     check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainSettings,
     TrainableModel,
 };
-use super::robust::{robust_loss, RegionMap, RobustLoss};
-use super::validation::{
-    linear_bound_errors, mean_standard_error, per_sample_cross_entropy, validation_check,
-};
+use super::robust::{RegionMap, RobustLoss};
+use super::term_batch::term_on_batch;
+use super::terms::ConstraintTerm;
+use super::validation::{mean_standard_error, per_sample_cross_entropy, validation_check};
 use super::TrainError;
 
 /// Settings of the constrained trainer.
@@ -62,8 +62,15 @@ pub struct ConstrainedSettings {
     pub targets: Targets,
     /// The robust loss.
     pub loss: RobustLoss,
-    /// The constraint.
+    /// The constraint (when `terms` is empty).
     pub constraint: Constraint,
+    /// Several constraints, one multiplier each (e.g. one per line of a requirement list); when
+    /// given they replace `constraint`, `budget`, `targets` and the per-class split
+    /// ([`ConstrainedSettings::terms`]).
+    pub terms: Vec<ConstraintTerm>,
+    /// Resilient relaxation: each constraint gets a slack paying `cost/2 · slack²`, learned with the
+    /// weights ([`Formulation::relaxed_slack`]); `None` keeps every constraint strict.
+    pub relax: Option<f64>,
     /// Multipliers or a fixed penalty.
     pub formulation: Formulation,
     /// Epochs over which epsilon ramps from 0 to the full budget (0 = full from the start).
@@ -110,7 +117,17 @@ impl ConstrainedSettings {
             return bad(format!("budget radius {r} must be a finite number ≥ 0"));
         }
         self.constraint.validate()?;
+        for term in &self.terms {
+            term.constraint.validate()?;
+        }
         self.formulation.validate()?;
+        if let Some(cost) = self.relax {
+            if !(cost.is_finite() && cost > 0.0) {
+                return bad(format!(
+                    "relaxation cost {cost} must be a finite number > 0"
+                ));
+            }
+        }
         if !(0.0..=1.0).contains(&self.average_tail) {
             return bad(format!(
                 "averaged tail {} must be a fraction in [0, 1]",
@@ -149,8 +166,10 @@ pub struct ConstrainedEpoch {
     pub robust_loss: f64,
     /// Robust error rate measured on the training batches (the constraint's measure).
     pub robust_error: f64,
-    /// The multipliers at the end of the epoch (one, or one per class).
+    /// The multipliers at the end of the epoch (one per constraint term).
     pub multipliers: Vec<f64>,
+    /// The relaxation slacks at the end of the epoch (all 0 without relaxation).
+    pub slacks: Vec<f64>,
     /// Each constraint's measurement (robust error rate or mean robust loss, on its rows) averaged
     /// over the epoch's batches, in the order of the multipliers (NaN when no batch had its rows).
     pub measured: Vec<f64>,
@@ -175,6 +194,8 @@ pub struct ConstrainedState {
     pub optimizer: Optimizer,
     /// The multipliers.
     pub multipliers: Vec<f64>,
+    /// The relaxation slacks, one per multiplier (0 without relaxation).
+    pub slacks: Vec<f64>,
     /// Epochs run so far.
     pub epochs_done: usize,
     /// The allowance correction carried across epochs and rounds.
@@ -190,7 +211,8 @@ impl ConstrainedState {
         settings: &ConstrainedSettings,
         classes: usize,
     ) -> ConstrainedState {
-        let multipliers = settings.formulation.initial_multipliers(classes);
+        let count = settings.terms(classes).len();
+        let start = settings.formulation.initial_multipliers(1)[0];
         ConstrainedState {
             network: trainable.network.clone(),
             optimizer: Optimizer::new(
@@ -198,7 +220,8 @@ impl ConstrainedState {
                 settings.train.weight_decay,
                 &trainable.network,
             ),
-            multipliers,
+            multipliers: vec![start; count],
+            slacks: vec![0.0; count],
             epochs_done: 0,
             correction: GapCorrection::default(),
             average: None,
@@ -252,11 +275,14 @@ pub fn train_constrained_epochs_with_checks(
     let classes = model.class_count();
     let features = trainable.to_network_units(&train.features);
     let map = RegionMap::new(model, trainable.normalization.as_ref());
-    let targets: Vec<Vec<usize>> = train
-        .labels
-        .iter()
-        .map(|&y| settings.targets.forbidden_for(y, classes))
-        .collect();
+    let terms = settings.terms(classes);
+    if state.multipliers.len() != terms.len() {
+        return Err(TrainError::Settings(format!(
+            "{} multipliers for {} constraints",
+            state.multipliers.len(),
+            terms.len()
+        )));
+    }
     let batches_per_epoch = train.len().div_ceil(settings.train.batch_size);
     let ramp_steps = settings.ramp_epochs * batches_per_epoch;
     // Steps after which the iterate average runs (never when it is off).
@@ -307,71 +333,64 @@ pub fn train_constrained_epochs_with_checks(
             if !clean.is_finite() {
                 return Err(TrainError::Diverged { epoch });
             }
-            let budget = settings.budget.scaled(scale);
             let rate = rate_factor(
                 step,
                 ramp_steps,
                 settings.train.epochs * batches_per_epoch,
                 settings.final_rate_factor,
             );
-            let allowed = match settings.constraint {
-                Constraint::RobustError { .. } => {
-                    (settings.constraint.allowed() - state.correction.gap).max(0.0)
-                }
-                Constraint::RobustLossLevel { .. } => settings.constraint.allowed(),
-            };
-            // One robust term per constraint: the batch's rows overall, or one class's rows (so
-            // each term is a class mean); each measured on its own rows.
-            let per_class = state.multipliers.len() > 1;
-            for (k, multiplier) in state.multipliers.iter_mut().enumerate() {
+            // One term per constraint, each measured on its own rows with its own ball; the gap
+            // correction tightens the robust-error allowances.
+            for (k, term) in terms.iter().enumerate() {
                 let rows: Vec<usize> = (0..chunk.len())
-                    .filter(|&s| !per_class || labels[s] == k)
+                    .filter(|&s| term.applies_to(labels[s]))
                     .collect();
                 if rows.is_empty() {
                     continue;
                 }
-                let regions: Vec<Region> = rows
-                    .iter()
-                    .map(|&s| map.region(train.sample(chunk[s]), &budget))
-                    .collect();
-                let row_labels: Vec<usize> = rows.iter().map(|&s| labels[s]).collect();
-                let row_targets: Vec<Vec<usize>> =
-                    rows.iter().map(|&s| targets[chunk[s]].clone()).collect();
-                let robust = robust_loss(
-                    settings.loss,
+                let allowed = match term.constraint {
+                    Constraint::RobustError { .. } => {
+                        (term.constraint.allowed() - state.correction.gap).max(0.0)
+                    }
+                    _ => term.constraint.allowed(),
+                };
+                let measured = term_on_batch(
+                    settings,
                     &state.network,
-                    &regions,
-                    &row_labels,
-                    &row_targets,
-                    &vec![1.0; rows.len()],
+                    term,
+                    &map,
+                    classes,
+                    train,
+                    &features,
+                    chunk,
+                    &rows,
+                    scale,
                     beta,
                     settings.train.seed ^ step as u64,
                 )?;
-                if !robust.loss.is_finite() {
+                if !measured.mean_loss.is_finite() {
                     return Err(TrainError::Diverged { epoch });
                 }
-                let errors = if settings.loss.is_certified() {
-                    linear_bound_errors(&state.network, &regions, &row_labels, &row_targets)?
-                } else {
-                    robust.errors.clone()
-                };
-                let count = rows.len() as f64;
-                let mean_robust = robust.sample_losses.iter().sum::<f64>() / count;
-                let error_rate = errors.iter().filter(|e| **e).count() as f64 / count;
-                let measured = match settings.constraint {
-                    Constraint::RobustError { .. } => error_rate,
-                    Constraint::RobustLossLevel { .. } => mean_robust,
-                };
-                let weight = settings.formulation.primal_weight(*multiplier);
-                add_scaled(&mut gradient, &robust.gradient, weight);
-                *multiplier =
-                    settings
+                let multiplier = state.multipliers[k];
+                let weight = settings.formulation.primal_weight(multiplier);
+                add_scaled(&mut gradient, &measured.gradient, weight);
+                let slack = state.slacks[k];
+                state.multipliers[k] = settings.formulation.after_batch(
+                    multiplier,
+                    measured.measured,
+                    allowed + slack,
+                    rate,
+                );
+                if let Some(cost) = settings.relax {
+                    state.slacks[k] = settings
                         .formulation
-                        .after_batch(*multiplier, measured, allowed, rate);
-                measured_total[k] += measured * count;
+                        .relaxed_slack(slack, multiplier, cost, rate);
+                }
+                let count = rows.len() as f64;
+                measured_total[k] += measured.measured * count;
                 measured_rows[k] += count;
-                robust_total += mean_robust * count;
-                error_total += error_rate * count;
+                robust_total += measured.mean_loss * count;
+                error_total += measured.error_rate * count;
             }
             clean_total += clean * chunk.len() as f64;
             state.optimizer.step(&mut state.network, &gradient, rate);
@@ -400,13 +419,16 @@ pub fn train_constrained_epochs_with_checks(
             .map(|(t, n)| if *n > 0.0 { t / n } else { f64::NAN })
             .collect();
         let n = train.len() as f64;
+        // Rows counted once per term they belong to (each row once without overlapping terms).
+        let term_rows = measured_rows.iter().sum::<f64>().max(1.0);
         let mut record = ConstrainedEpoch {
             epoch,
             epsilon_scale: scale,
             clean_loss: clean_total / n,
-            robust_loss: robust_total / n,
-            robust_error: error_total / n,
+            robust_loss: robust_total / term_rows,
+            robust_error: error_total / term_rows,
             multipliers: state.multipliers.clone(),
+            slacks: state.slacks.clone(),
             measured,
             gap_correction: state.correction.gap,
             validation_clean_loss: None,
@@ -423,24 +445,17 @@ pub fn train_constrained_epochs_with_checks(
             record.validation_clean_loss_error = Some(clean_loss_error);
             record.validation_clean_accuracy = Some(accuracy);
             if settings.measure_certified {
-                let certified = certified_accuracy(
-                    trainable,
-                    &state.network,
-                    v,
-                    &settings.budget,
-                    &settings.targets,
-                )?;
-                let check = ValidationCheck {
-                    epoch_position: epoch as f64,
-                    clean_loss,
-                    clean_loss_error,
-                    certified_accuracy: certified,
-                };
+                let check = validation_check(trainable, &state.network, v, settings, epoch as f64)?;
+                let certified = check.certified_accuracy;
                 checks(&check, &state.network);
                 record.validation_certified_accuracy = Some(certified);
                 // Only epochs at the full budget throughout measure the gap the floor is stated at.
                 let full_epoch = ramp_steps <= (epoch - 1) * batches_per_epoch;
-                if settings.gap_correction && full_epoch && settings.loss.is_certified() {
+                if settings.gap_correction
+                    && settings.terms.is_empty()
+                    && full_epoch
+                    && settings.loss.is_certified()
+                {
                     state
                         .correction
                         .update(1.0 - record.robust_error, certified);

@@ -26,13 +26,23 @@ pub enum Constraint {
         /// The allowed mean robust loss.
         level: f64,
     },
+    /// Clean error rate on the training data ≤ `1 − floor − slack` (a clean-accuracy floor; its
+    /// differentiable surrogate is the clean cross-entropy of its rows).
+    CleanError {
+        /// Required clean accuracy.
+        floor: f64,
+        /// Extra margin demanded during training.
+        slack: f64,
+    },
 }
 
 impl Constraint {
     /// The allowed value of the measured quantity.
     pub fn allowed(&self) -> f64 {
         match self {
-            Constraint::RobustError { floor, slack } => (1.0 - floor - slack).max(0.0),
+            Constraint::RobustError { floor, slack } | Constraint::CleanError { floor, slack } => {
+                (1.0 - floor - slack).max(0.0)
+            }
             Constraint::RobustLossLevel { level } => *level,
         }
     }
@@ -41,7 +51,7 @@ impl Constraint {
     pub fn validate(&self) -> Result<(), TrainError> {
         let bad = |m: String| Err(TrainError::Settings(m));
         match *self {
-            Constraint::RobustError { floor, slack } => {
+            Constraint::RobustError { floor, slack } | Constraint::CleanError { floor, slack } => {
                 if !(0.0..=1.0).contains(&floor) {
                     return bad(format!("floor {floor} must lie in [0, 1]"));
                 }
@@ -130,6 +140,20 @@ impl Formulation {
         }
     }
 
+    /// The slack of a relaxed constraint after a mini-batch (resilient constrained learning, Hounie,
+    /// Ribeiro, Chamon et al., NeurIPS 2023): the relaxation `u ≥ 0` pays `cost/2 · u²` and moves by
+    /// projected descent on the Lagrangian, `u ← max(0, u − r η (cost · u − λ))`, so at rest
+    /// `u = λ / cost`: a constraint that cannot hold is loosened until its price equals the marginal
+    /// cost of loosening it further. A fixed penalty never relaxes.
+    pub fn relaxed_slack(&self, slack: f64, multiplier: f64, cost: f64, rate: f64) -> f64 {
+        match *self {
+            Formulation::PrimalDual { dual_step, .. } => {
+                (slack - rate * dual_step * (cost * slack - multiplier)).max(0.0)
+            }
+            _ => slack,
+        }
+    }
+
     /// Checks the values, naming the bad one.
     pub fn validate(&self) -> Result<(), TrainError> {
         let bad = |m: String| Err(TrainError::Settings(m));
@@ -194,5 +218,32 @@ mod tests {
         assert!(Constraint::RobustLossLevel { level: -1.0 }
             .validate()
             .is_err());
+    }
+
+    #[test]
+    fn a_relaxed_slack_settles_where_its_cost_equals_the_multiplier() {
+        let f = Formulation::PrimalDual {
+            dual_step: 0.1,
+            initial_multiplier: 0.0,
+            per_class: false,
+        };
+        // Fixed multiplier 0.4, cost 2: the fixed point of u ← u − η (2u − 0.4) is u = 0.2.
+        let mut u = 0.0;
+        for _ in 0..500 {
+            u = f.relaxed_slack(u, 0.4, 2.0, 1.0);
+        }
+        assert!((u - 0.2).abs() < 1e-9, "{u}");
+        assert_eq!(f.relaxed_slack(0.0, 0.0, 2.0, 1.0), 0.0);
+        let clean = Constraint::CleanError {
+            floor: 0.95,
+            slack: 0.01,
+        };
+        assert!((clean.allowed() - 0.04).abs() < 1e-12);
+        assert!(Constraint::CleanError {
+            floor: 1.5,
+            slack: 0.0
+        }
+        .validate()
+        .is_err());
     }
 }

@@ -13,11 +13,12 @@
 //! losses.
 
 use crate::data::Dataset;
-use crate::model::Network;
+use crate::model::{predicted_class, Network};
 use crate::threat::Region;
 
+use super::backprop::classifier_logits;
 use super::constrained::{ConstrainedSettings, Constraint};
-use super::plain::{check_data, TrainableModel};
+use super::plain::{check_data, gather_columns, TrainableModel};
 use super::robust::{robust_loss, RegionMap, RobustLoss};
 use super::validation::{linear_bound_errors, per_sample_cross_entropy};
 use super::TrainError;
@@ -45,7 +46,7 @@ pub struct ProblemFigures {
 }
 
 /// Evaluates the training problem of `settings` at `network` over every row of `train` with the
-/// multipliers `multipliers` (one, or one per class as in the settings' formulation). The robust
+/// multipliers `multipliers` (one per term of [`ConstrainedSettings::terms`]). The robust
 /// loss uses the full budget and, for the mixed loss, the final linear-bound weight.
 pub fn problem_figures(
     trainable: &TrainableModel,
@@ -57,8 +58,8 @@ pub fn problem_figures(
     let model = &trainable.template;
     check_data(model, train, "training")?;
     let classes = model.class_count();
-    let per_class = settings.formulation.per_class();
-    let count = if per_class { classes } else { 1 };
+    let terms = settings.terms(classes);
+    let count = terms.len();
     if multipliers.len() != count {
         return Err(TrainError::Settings(format!(
             "{} multipliers for {count} constraints",
@@ -75,52 +76,59 @@ pub fn problem_figures(
         } => final_linear_weight,
         _ => 0.0,
     };
-    let mut totals = vec![0.0; count];
-    let mut rows = vec![0usize; count];
-    let all: Vec<usize> = (0..train.len()).collect();
-    for (c, chunk) in all.chunks(CHUNK).enumerate() {
-        let regions: Vec<Region> = chunk
-            .iter()
-            .map(|&i| map.region(train.sample(i), &settings.budget))
+    let mut constraint_values = Vec::with_capacity(count);
+    for term in &terms {
+        let rows: Vec<usize> = (0..train.len())
+            .filter(|&i| term.applies_to(train.labels[i]))
             .collect();
-        let labels: Vec<usize> = chunk.iter().map(|&i| train.labels[i]).collect();
-        let targets: Vec<Vec<usize>> = labels
-            .iter()
-            .map(|&y| settings.targets.forbidden_for(y, classes))
-            .collect();
-        let robust = robust_loss(
-            settings.loss,
-            network,
-            &regions,
-            &labels,
-            &targets,
-            &vec![1.0; chunk.len()],
-            beta,
-            settings.train.seed ^ (c as u64),
-        )?;
-        let values: Vec<f64> = match settings.constraint {
-            Constraint::RobustLossLevel { .. } => robust.sample_losses,
-            Constraint::RobustError { .. } => {
-                let errors = if settings.loss.is_certified() {
-                    linear_bound_errors(network, &regions, &labels, &targets)?
-                } else {
-                    robust.errors
-                };
-                errors.iter().map(|&e| if e { 1.0 } else { 0.0 }).collect()
+        let mut total = 0.0;
+        for (c, chunk) in rows.chunks(CHUNK).enumerate() {
+            let labels: Vec<usize> = chunk.iter().map(|&i| train.labels[i]).collect();
+            if let Constraint::CleanError { .. } = term.constraint {
+                let logits =
+                    classifier_logits(&network.forward_batch(&gather_columns(&features, chunk)));
+                total += (0..labels.len())
+                    .filter(|&s| predicted_class(logits.column(s).as_slice()) != labels[s])
+                    .count() as f64;
+                continue;
             }
-        };
-        for (s, value) in values.iter().enumerate() {
-            let k = if per_class { labels[s] } else { 0 };
-            totals[k] += value;
-            rows[k] += 1;
+            let regions: Vec<Region> = chunk
+                .iter()
+                .map(|&i| map.region(train.sample(i), &term.budget))
+                .collect();
+            let targets: Vec<Vec<usize>> = labels
+                .iter()
+                .map(|&y| term.targets.forbidden_for(y, classes))
+                .collect();
+            let robust = robust_loss(
+                settings.loss,
+                network,
+                &regions,
+                &labels,
+                &targets,
+                &vec![1.0; chunk.len()],
+                beta,
+                settings.train.seed ^ (c as u64),
+            )?;
+            total += match term.constraint {
+                Constraint::RobustLossLevel { .. } => robust.sample_losses.iter().sum::<f64>(),
+                _ => {
+                    let errors = if settings.loss.is_certified() {
+                        linear_bound_errors(network, &regions, &labels, &targets)?
+                    } else {
+                        robust.errors
+                    };
+                    errors.iter().filter(|e| **e).count() as f64
+                }
+            };
         }
+        constraint_values.push(if rows.is_empty() {
+            0.0
+        } else {
+            total / rows.len() as f64
+        });
     }
-    let constraint_values: Vec<f64> = totals
-        .iter()
-        .zip(&rows)
-        .map(|(t, &n)| if n > 0 { t / n as f64 } else { 0.0 })
-        .collect();
-    let allowed = vec![settings.constraint.allowed(); count];
+    let allowed: Vec<f64> = terms.iter().map(|t| t.constraint.allowed()).collect();
     let priced: f64 = multipliers
         .iter()
         .zip(constraint_values.iter().zip(&allowed))

@@ -1,8 +1,9 @@
 //! Builds the [`Lineage`] of a retrained model from the retrainer's settings and result and the data it
 //! was given: the settings in words, rounds, epochs, kept epochs, final multipliers, and for each data
 //! set what it decided. A data set "steered" the retraining when it chose among weights: the
-//! validation data when it picks the kept weights or tightens the constraint, the acceptance data when
-//! its check decides whether another round runs (more than one round allowed). It reads the settings as
+//! validation data when it picks the kept weights, tightens the constraint or its check decides whether
+//! another round runs (more than one round allowed); the acceptance data only when it is the validation
+//! data (a separate acceptance set is certified once, after the last round). It reads the settings as
 //! they were used; it never changes them.
 
 use super::constrained::{Constraint, Formulation};
@@ -47,6 +48,16 @@ pub fn describe_settings(settings: &RetrainSettings) -> String {
         Formulation::Penalty { weight } => format!("fixed penalty weight {weight}"),
     };
     let constraint = match c.constraint {
+        Constraint::RobustError { slack, .. } if !settings.lines.is_empty() => format!(
+            "one constraint per requirement line ({}), robust or clean error ≤ 1 − floor − slack (slack {slack}, +{} per further round for a line that failed){}",
+            settings.lines.len(),
+            settings.slack_step,
+            match c.relax {
+                Some(cost) => format!(", relaxed (slack cost {cost})"),
+                None => String::new(),
+            }
+        ),
+        Constraint::CleanError { floor, .. } => format!("clean accuracy ≥ {floor}"),
         Constraint::RobustError { slack, .. } => format!(
             "robust error ≤ 1 − floor − slack (slack {slack}, +{} per further round)",
             settings.slack_step
@@ -99,18 +110,21 @@ pub fn lineage(
     if c.gap_correction {
         validation_decided.push("the generalisation gap that tightens the constraint");
     }
+    let several_rounds = settings.max_rounds > 1;
+    if several_rounds {
+        validation_decided.push("the certify check after each round: whether another round ran");
+    }
     let validation_steered = !validation_decided.is_empty();
     if validation_decided.is_empty() {
         validation_decided.push("nothing (measured only)");
     }
-    let several_rounds = settings.max_rounds > 1;
-    let acceptance_decided = if several_rounds {
-        format!(
-            "the certify check after each round: whether another round ran (at most {}) and the threshold of later rounds",
-            settings.max_rounds
-        )
-    } else {
-        "the final certify check only (one round allowed)".to_string()
+    let acceptance_decided = match &data.acceptance {
+        Some(_) => {
+            "the final certify check only (certified once, after the last round)".to_string()
+        }
+        None => {
+            "the final certify check, on the validation data that steered the rounds".to_string()
+        }
     };
     let use_of = |role, d: &DataSource, decided: String, steered| DataUse {
         role,
@@ -135,8 +149,8 @@ pub fn lineage(
         ),
     ];
     let (acceptance, steered) = match &data.acceptance {
-        Some(a) => (a, several_rounds),
-        None => (&data.validation, several_rounds || validation_steered),
+        Some(a) => (a, false),
+        None => (&data.validation, validation_steered),
     };
     uses.push(use_of(
         Role::Acceptance,

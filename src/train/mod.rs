@@ -34,6 +34,7 @@
 pub mod averaging;
 pub mod backprop;
 pub mod bound_gradient;
+pub mod candidates;
 pub mod cnn;
 pub mod confidence;
 pub mod constrained;
@@ -48,6 +49,8 @@ pub mod plain;
 pub mod price;
 pub mod retrain;
 pub mod robust;
+pub(crate) mod term_batch;
+pub mod terms;
 pub mod validation;
 
 pub use cnn::{new_cnn, CnnArchitecture, ConvBlock};

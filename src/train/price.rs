@@ -9,6 +9,7 @@
 //! estimate; the wording says so. Nothing here judges whether a requirement holds.
 
 use super::dual::Constraint;
+use super::terms::ConstraintTerm;
 
 /// Multipliers at or below this count as 0 (the constraint does not bind).
 pub const BINDING: f64 = 1e-9;
@@ -16,7 +17,7 @@ pub const BINDING: f64 = 1e-9;
 /// One constraint's price.
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct Price {
-    /// Which constraint (e.g. "robust loss ≤ 0.2, all rows" or "floor 0.9, class normal").
+    /// Which constraint (e.g. "robust loss ≤ 0.2, all rows" or a requirement line).
     pub constraint: String,
     /// The multiplier.
     pub multiplier: f64,
@@ -25,38 +26,29 @@ pub struct Price {
     /// About how much the optimal clean loss rises when the requirement is tightened by one unit
     /// step (0.01 of the level or one point of the floor).
     pub cost_per_step: f64,
+    /// The relaxation the constraint ended with (0 when strict or not relaxed): how far training
+    /// loosened it, in the constraint's measure.
+    pub relaxed_by: f64,
     /// The price in words.
     pub meaning: String,
 }
 
-/// The prices of `constraint` at `multipliers` (one, or one per class named by `class_name`).
-pub fn prices(
-    constraint: &Constraint,
-    multipliers: &[f64],
-    class_name: &dyn Fn(usize) -> String,
-) -> Vec<Price> {
-    let per_class = multipliers.len() > 1;
-    multipliers
+/// The prices of `terms` at `multipliers`, with the relaxation `slacks` they ended with (one each).
+pub fn prices(terms: &[ConstraintTerm], multipliers: &[f64], slacks: &[f64]) -> Vec<Price> {
+    terms
         .iter()
+        .zip(multipliers)
         .enumerate()
-        .map(|(k, &multiplier)| {
-            let rows = if per_class {
-                format!("class {}", class_name(k))
-            } else {
-                "all rows".to_string()
-            };
-            let (name, step) = match constraint {
-                Constraint::RobustLossLevel { level } => (
-                    format!("mean robust loss ≤ {level}, {rows}"),
-                    "lowering the level by 0.01",
-                ),
-                Constraint::RobustError { floor, .. } => (
-                    format!("robust fraction ≥ {floor}, {rows}"),
-                    "raising the floor by one point",
-                ),
+        .map(|(k, (term, &multiplier))| {
+            let step = match term.constraint {
+                Constraint::RobustLossLevel { .. } => "lowering the level by 0.01",
+                Constraint::RobustError { .. } | Constraint::CleanError { .. } => {
+                    "raising the floor by one point"
+                }
             };
             let binding = multiplier > BINDING;
             let cost_per_step = 0.01 * multiplier;
+            let relaxed_by = slacks.get(k).copied().unwrap_or(0.0);
             let meaning = if binding {
                 format!(
                     "{step} costs about {cost_per_step:.3e} in clean loss (multiplier {multiplier:.4}; \
@@ -66,10 +58,11 @@ pub fn prices(
                 format!("not binding at the end: {step} costs nothing to first order")
             };
             Price {
-                constraint: name,
+                constraint: term.name.clone(),
                 multiplier,
                 binding,
                 cost_per_step,
+                relaxed_by,
                 meaning,
             }
         })
@@ -79,24 +72,39 @@ pub fn prices(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::threat::{Budget, Norm, Targets};
+
+    fn term(name: &str, constraint: Constraint) -> ConstraintTerm {
+        ConstraintTerm {
+            name: name.into(),
+            constraint,
+            budget: Budget::uniform(Norm::Linf, 0.1, 2),
+            targets: Targets::Any,
+            class: None,
+        }
+    }
 
     #[test]
     fn a_multiplier_is_the_clean_loss_cost_of_one_step() {
-        let level = Constraint::RobustLossLevel { level: 0.2 };
-        let p = prices(&level, &[0.128], &|c| c.to_string());
+        let level = term("robust loss", Constraint::RobustLossLevel { level: 0.2 });
+        let p = prices(&[level], &[0.128], &[0.0]);
         assert_eq!(p.len(), 1);
         assert!(p[0].binding);
         assert!((p[0].cost_per_step - 0.00128).abs() < 1e-15);
         assert!(p[0].meaning.contains("1.280e-3"), "{}", p[0].meaning);
-        assert!(p[0].constraint.contains("all rows"));
+        assert!(p[0].meaning.contains("0.01"));
         let floor = Constraint::RobustError {
             floor: 0.9,
             slack: 0.0,
         };
-        let names = ["normal", "worn"];
-        let p = prices(&floor, &[0.0, 2.5], &|c| names[c].to_string());
+        let p = prices(
+            &[term("a", floor), term("b", floor)],
+            &[0.0, 2.5],
+            &[0.0, 0.04],
+        );
         assert!(!p[0].binding && p[0].meaning.contains("not binding"));
-        assert!(p[1].constraint.contains("class worn") && p[1].meaning.contains("one point"));
+        assert!(p[1].constraint == "b" && p[1].meaning.contains("one point"));
         assert!((p[1].cost_per_step - 0.025).abs() < 1e-15);
+        assert_eq!(p[1].relaxed_by, 0.04);
     }
 }

@@ -21,17 +21,21 @@
 //! [`super::confidence::Plan`] aims at, and the verdict follows the reviewer's rule
 //! ([`super::confidence::Plan::assess`]).
 
-use crate::certify::{certify, CertifyOptions, PipelineOptions, Report, Sources, Verdict};
+use crate::certify::lines::{certify_with_lines, describe_line, with_line_epsilons, LineVerdict};
+use crate::certify::{CertifyOptions, PipelineOptions, Report, Verdict};
 use crate::data::Dataset;
 use crate::model::{Model, Network};
-use crate::threat::requirement::Requirement;
+use crate::threat::requirement::{Requirement, RequirementLine};
 
-use super::confidence::{Assessment, ConfidenceSettings, Plan};
+use super::candidates::{Candidate, Candidates, SelectionThreshold};
+pub use super::candidates::{JudgedNearMiss, NearMisses};
+use super::confidence::{Assessment, ConfidenceSettings, Evidence, Plan};
 use super::constrained::{
     train_constrained_epochs_with_checks, ConstrainedEpoch, ConstrainedSettings, ConstrainedState,
     Constraint, ValidationCheck,
 };
 use super::plain::TrainableModel;
+use super::terms::{terms_for_lines, ConstraintTerm};
 use super::TrainError;
 
 /// Settings of [`retrain`].
@@ -54,26 +58,9 @@ pub struct RetrainSettings {
     pub near_misses: NearMisses,
     /// The reviewer's acceptance size and the wanted pass probability (with a confidence level).
     pub confidence: ConfidenceSettings,
-}
-
-/// Validation checks just below the round's threshold by linear bounds that may still be kept when
-/// the certify pipeline (optimised linear bounds, LP) proves the threshold on the validation data.
-/// The checks use plain linear bounds, which the pipeline can raise by a few points; without this a
-/// candidate whose pipeline figure reaches the floor is passed over for a later, more robust one.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct NearMisses {
-    /// How far below the threshold (a fraction) a check's linear-bound figure may lie; 0 = off.
-    pub margin: f64,
-    /// Most certify-pipeline runs on the validation data per round to judge them.
-    pub tries: usize,
-}
-
-impl NearMisses {
-    /// No near-miss candidates.
-    pub const OFF: NearMisses = NearMisses {
-        margin: 0.0,
-        tries: 0,
-    };
+    /// A requirement list (empty: the requirement's single floor): one constraint per line
+    /// ([`terms_for_lines`]), every round judged by the lines' conjunction as `certify` judges it.
+    pub lines: Vec<RequirementLine>,
 }
 
 /// Which epoch's weights a round hands to the certify check.
@@ -90,192 +77,6 @@ pub enum Keep {
     /// Like [`Keep::BestFeasible`] but read with the one-standard-error rule: the earliest feasible
     /// epoch whose validation clean loss is within one standard error of the lowest.
     EarliestFeasible,
-}
-
-/// What judging a near miss gives: the certify pipeline's report on the validation data (a bare
-/// figure in the unit tests).
-trait Judgement {
-    /// Certified accuracy on the validation data.
-    fn certified(&self) -> f64;
-}
-
-impl Judgement for Report {
-    fn certified(&self) -> f64 {
-        self.summary.certified_accuracy
-    }
-}
-
-/// An epoch's weights kept as a candidate for [`Keep::BestFeasible`].
-#[derive(Debug, Clone)]
-struct Candidate<J = Report> {
-    epoch: f64,
-    /// Validation certified accuracy by the check's linear bounds.
-    certified: f64,
-    clean_loss: f64,
-    loss_error: f64,
-    network: Network,
-    /// The certify pipeline's judgement on the validation data, once a near miss was judged.
-    judged: Option<Box<J>>,
-}
-
-/// Where a candidate stands against a threshold.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-enum Standing {
-    /// Proven to reach it (by the check's linear bounds or by the pipeline).
-    Feasible,
-    /// Below it by linear bounds but within the near-miss margin and not yet judged.
-    Open,
-    /// Cannot be chosen.
-    Out,
-}
-
-impl<J: Judgement> Candidate<J> {
-    /// The best proven validation figure: the pipeline's when judged, else the check's.
-    fn proven(&self) -> f64 {
-        match &self.judged {
-            Some(judgement) => judgement.certified().max(self.certified),
-            None => self.certified,
-        }
-    }
-
-    fn standing(&self, threshold: f64, margin: f64) -> Standing {
-        if self.proven() >= threshold {
-            Standing::Feasible
-        } else if self.judged.is_none() && self.certified >= threshold - margin {
-            Standing::Open
-        } else {
-            Standing::Out
-        }
-    }
-}
-
-/// Feasible epochs, chosen by the lowest validation clean loss or by the one-standard-error rule
-/// (Breiman, Friedman, Olshen & Stone, 1984): the lowest loss sets a window of one standard error
-/// above it, and the earliest epoch inside the window is chosen, the smallest departure from the
-/// parent model that the validation data cannot tell apart from the best.
-#[derive(Debug, Clone)]
-struct Candidates<J = Report> {
-    kept: Vec<Candidate<J>>,
-}
-
-impl<J> Default for Candidates<J> {
-    fn default() -> Self {
-        Self { kept: Vec::new() }
-    }
-}
-
-impl<J: Judgement> Candidates<J> {
-    /// Windows wider than the rule's (in standard errors of the current best) whose candidates are
-    /// kept; beyond it a candidate is dropped to bound memory.
-    const KEEP_WITHIN: f64 = 2.0;
-
-    /// Adds a candidate and drops the ones that can no longer be chosen: those above the window of
-    /// the lowest-loss candidate that is feasible at `threshold` by its check alone (an open near miss
-    /// never drops others, as the pipeline may refute it).
-    fn offer(&mut self, candidate: Candidate<J>, threshold: f64) {
-        self.kept.push(candidate);
-        let best = self
-            .kept
-            .iter()
-            .filter(|c| c.certified >= threshold)
-            .min_by(|a, b| a.clean_loss.total_cmp(&b.clean_loss));
-        if let Some(best) = best {
-            let limit = best.clean_loss + Self::KEEP_WITHIN * best.loss_error;
-            self.kept.retain(|c| c.clean_loss <= limit);
-        }
-    }
-
-    /// The rule's choice among the candidates whose standing passes `admit`: the lowest loss, or
-    /// with `earliest` the one-standard-error rule's. Returns an index into `kept`.
-    fn rule(&self, earliest: bool, admit: impl Fn(&Candidate<J>) -> bool) -> Option<usize> {
-        let admitted = || self.kept.iter().enumerate().filter(|(_, c)| admit(c));
-        let (best_index, best) =
-            admitted().min_by(|a, b| a.1.clean_loss.total_cmp(&b.1.clean_loss))?;
-        if !earliest {
-            return Some(best_index);
-        }
-        let window = best.clean_loss + best.loss_error;
-        admitted()
-            .filter(|(_, c)| c.clean_loss <= window)
-            .min_by(|a, b| a.1.epoch.total_cmp(&b.1.epoch))
-            .map(|(i, _)| i)
-    }
-
-    /// Drops the candidates that cannot reach `threshold` (thresholds only rise) and returns the
-    /// rule's choice among the feasible ones, judging open near misses (`margin` below the
-    /// threshold) with `judge` on the way, at most `tries` times: while the rule would pick an open
-    /// candidate, it is judged, and the choice is made again. `judge` returns the certify
-    /// pipeline's judgement on the validation data. Returns the index and the judgements made.
-    fn choose<E>(
-        &mut self,
-        threshold: f64,
-        near_misses: NearMisses,
-        earliest: bool,
-        judge: &mut dyn FnMut(&Network) -> Result<J, E>,
-    ) -> Result<(Option<usize>, Vec<JudgedNearMiss>), E> {
-        let margin = near_misses.margin;
-        self.kept
-            .retain(|c| c.standing(threshold, margin) != Standing::Out);
-        let mut judged = Vec::new();
-        loop {
-            let open_allowed = judged.len() < near_misses.tries;
-            let pick = self.rule(earliest, |c| match c.standing(threshold, margin) {
-                Standing::Feasible => true,
-                Standing::Open => open_allowed,
-                Standing::Out => false,
-            });
-            let Some(index) = pick else {
-                return Ok((None, judged));
-            };
-            if self.kept[index].standing(threshold, margin) == Standing::Feasible {
-                return Ok((Some(index), judged));
-            }
-            let candidate = &mut self.kept[index];
-            let judgement = judge(&candidate.network)?;
-            judged.push(JudgedNearMiss {
-                epoch: candidate.epoch,
-                linear_certified: candidate.certified,
-                pipeline_certified: judgement.certified(),
-            });
-            candidate.judged = Some(Box::new(judgement));
-            if self.kept[index].standing(threshold, margin) == Standing::Out {
-                self.kept.remove(index);
-            }
-        }
-    }
-}
-
-/// The validation certified accuracy a candidate must reach. It starts at the floor; a round whose
-/// kept weights reached it on validation but failed the acceptance check shows that validation
-/// overstates the acceptance figure, so later rounds demand one more slack step. A round that kept no
-/// such weights has not shown that and leaves the threshold where it was.
-#[derive(Debug, Clone, Copy)]
-struct SelectionThreshold {
-    floor: f64,
-    step: f64,
-    misses: usize,
-}
-
-impl SelectionThreshold {
-    fn new(floor: f64, step: f64) -> Self {
-        Self {
-            floor,
-            step,
-            misses: 0,
-        }
-    }
-
-    fn value(&self) -> f64 {
-        self.floor + self.misses as f64 * self.step
-    }
-
-    /// Accounts for a finished round: whether its kept weights were feasible on validation and
-    /// whether the acceptance check passed.
-    fn record_round(&mut self, feasible_on_validation: bool, met: bool) {
-        if feasible_on_validation && !met {
-            self.misses += 1;
-        }
-    }
 }
 
 /// The final answer of a retraining run.
@@ -316,17 +117,8 @@ pub struct RoundRecord {
     pub verdict: Verdict,
     /// The returned weights against the reviewer's rule (with a confidence level).
     pub confidence: Option<Assessment>,
-}
-
-/// A near miss judged by the certify pipeline (see [`NearMisses`]).
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct JudgedNearMiss {
-    /// The check's position in epochs.
-    pub epoch: f64,
-    /// Validation certified accuracy by the check's linear bounds.
-    pub linear_certified: f64,
-    /// Validation certified accuracy by the certify pipeline.
-    pub pipeline_certified: f64,
+    /// Each line's verdict on the round's check data (a requirement list only).
+    pub requirements: Vec<LineVerdict>,
 }
 
 /// The result of [`retrain`].
@@ -346,6 +138,11 @@ pub struct RetrainResult {
     pub report: Report,
     /// The level aimed at under the reviewer's rule (with a confidence level).
     pub plan: Option<Plan>,
+    /// The constraints trained, one per multiplier, with the slacks of the last round.
+    pub terms: Vec<ConstraintTerm>,
+    /// True when the final verdict comes from data the rounds did not see (the acceptance set,
+    /// certified once after the last round); false when the rounds' own check data gave it.
+    pub verdict_on_unseen_data: bool,
 }
 
 /// Retrains `initial` toward `requirement` (budget, targets and floor, which must be given): constrained
@@ -361,9 +158,17 @@ pub fn retrain(
     settings: &RetrainSettings,
     observer: &mut dyn FnMut(&ConstrainedEpoch),
 ) -> Result<RetrainResult, TrainError> {
-    let floor = requirement
-        .floor
-        .ok_or_else(|| TrainError::Settings("retraining needs a floor".into()))?;
+    let lines = &settings.lines;
+    let floor = match requirement.floor {
+        Some(floor) if lines.is_empty() => floor,
+        None if !lines.is_empty() => 0.0,
+        Some(_) => {
+            return Err(TrainError::Settings(
+                "a requirement list holds its floors in its lines, not at the top level".into(),
+            ))
+        }
+        None => return Err(TrainError::Settings("retraining needs a floor".into())),
+    };
     if settings.max_rounds == 0 {
         return Err(TrainError::Settings(
             "the round limit must be at least 1".into(),
@@ -382,16 +187,37 @@ pub fn retrain(
             near_misses.margin
         )));
     }
-    let plan = Plan::for_run(requirement, &settings.confidence, validation, acceptance)
-        .map_err(|e| TrainError::Settings(e.to_string()))?;
-    // The level training and the choice of weights aim at: the floor, or the reviewer's aimed level.
+    let plan = match lines.is_empty() {
+        true => Plan::for_run(requirement, &settings.confidence, validation, acceptance)
+            .map_err(|e| TrainError::Settings(e.to_string()))?,
+        false => None,
+    };
+    // The level training and the choice of weights aim at: the floor, or the reviewer's aimed level;
+    // with a list, the worst line's margin over its floor (see `ValidationCheck::worst_margin`).
     let aim = plan.map_or(floor, |p| p.aimed_level);
-    let checked = plan.map_or_else(|| requirement.clone(), |p| p.check_requirement(requirement));
+    let checked = match (plan, lines.is_empty()) {
+        (Some(p), _) => p.check_requirement(requirement),
+        (None, true) => requirement.clone(),
+        (None, false) => with_line_epsilons(requirement, lines),
+    };
     let mut constrained = settings.constrained.clone();
     constrained.budget = requirement.budget(requirement.epsilon(), initial.input.dim);
     constrained.targets = requirement.targets.clone();
     if let Constraint::RobustError { slack, .. } = constrained.constraint {
         constrained.constraint = Constraint::RobustError { floor: aim, slack };
+        if !lines.is_empty() {
+            let class_name = |c: usize| initial.class_name(c);
+            constrained.terms =
+                terms_for_lines(requirement, lines, initial.input.dim, slack, &|l| {
+                    describe_line(l, &class_name)
+                });
+        }
+    }
+    if !lines.is_empty() && constrained.terms.is_empty() {
+        return Err(TrainError::Settings(
+            "a requirement list is trained with robust-error constraints (the floors of its lines)"
+                .into(),
+        ));
     }
     constrained.validate()?;
     let trainable = TrainableModel::new(initial);
@@ -405,20 +231,18 @@ pub fn retrain(
     let mut candidates = Candidates::default();
     let mut selection = SelectionThreshold::new(aim, settings.slack_step);
     let mut checks = Vec::new();
+    // A check's figure against the threshold: certified accuracy, or the worst line's margin.
+    let figure = |check: &ValidationCheck| check.worst_margin.unwrap_or(check.certified_accuracy);
     let options = CertifyOptions {
         pipeline: settings.pipeline.clone(),
         label_column: "label".into(),
         ..CertifyOptions::default()
     };
-    let certify_on = |model: &Model, data: &Dataset| {
-        certify(
-            model,
-            data,
-            &checked,
-            &Sources::in_memory(model, data),
-            &options,
-        )
-    };
+    let certify_on =
+        |model: &Model, data: &Dataset| certify_with_lines(model, data, &checked, lines, &options);
+    // Rounds are steered and stopped by the validation data; the acceptance data is certified once,
+    // after the last round, unless it is the validation data itself.
+    let round_data = validation.unwrap_or(acceptance);
     for round in 1..=settings.max_rounds {
         let count = if round == 1 {
             constrained.train.epochs
@@ -432,9 +256,19 @@ pub fn retrain(
                     slack: slack + settings.slack_step,
                 };
             }
+            // With a list, only the lines that failed the last check demand more.
+            let last: &RoundRecord = rounds.last().expect("an earlier round");
+            for (term, line) in constrained.terms.iter_mut().zip(&last.requirements) {
+                if line.verdict != Verdict::Pass {
+                    *term = term.with_slack(term_slack(term) + settings.slack_step);
+                }
+            }
         }
         let slack = match constrained.constraint {
-            Constraint::RobustError { slack, .. } => slack,
+            _ if !constrained.terms.is_empty() => {
+                constrained.terms.iter().map(term_slack).fold(0.0, f64::max)
+            }
+            Constraint::RobustError { slack, .. } | Constraint::CleanError { slack, .. } => slack,
             Constraint::RobustLossLevel { .. } => 0.0,
         };
         let threshold = selection.value();
@@ -448,11 +282,11 @@ pub fn retrain(
             observer,
             &mut |check: &ValidationCheck, network: &Network| {
                 checks.push(*check);
-                if selecting && check.certified_accuracy >= threshold - near_misses.margin {
+                if selecting && figure(check) >= threshold - near_misses.margin {
                     candidates.offer(
                         Candidate {
                             epoch: check.epoch_position,
-                            certified: check.certified_accuracy,
+                            certified: figure(check),
                             clean_loss: check.clean_loss,
                             loss_error: check.clean_loss_error,
                             network: network.clone(),
@@ -465,12 +299,20 @@ pub fn retrain(
         )?);
         let earliest = settings.keep == Keep::EarliestFeasible;
         let (chosen, judged) = match validation {
-            Some(validation) => {
+            Some(validation) if lines.is_empty() => {
                 let mut judge =
                     |network: &Network| certify_on(&trainable.model_with(network), validation);
                 candidates
                     .choose(threshold, near_misses, earliest, &mut judge)
                     .map_err(|e| TrainError::Data(format!("judging a near miss: {e}")))?
+            }
+            Some(_) => {
+                let mut never = |_: &Network| -> Result<Report, TrainError> {
+                    Err(TrainError::Settings(
+                        "near misses are not judged for a list".into(),
+                    ))
+                };
+                candidates.choose(threshold, NearMisses::OFF, earliest, &mut never)?
             }
             None => (None, Vec::new()),
         };
@@ -487,17 +329,18 @@ pub fn retrain(
         };
         let near_miss = chosen.is_some_and(|c| c.certified < threshold);
         let model = trainable.model_with(network);
-        // A judged candidate's validation report is the acceptance verdict when both are the same data.
-        let reusable = chosen
-            .and_then(|c| c.judged.as_deref())
-            .filter(|_| validation == Some(acceptance));
+        // A judged candidate's validation report is the round's check.
+        let reusable = chosen.and_then(|c| c.judged.as_deref());
         let report = match reusable {
             Some(report) => report.clone(),
-            None => certify_on(&model, acceptance)
+            None => certify_on(&model, round_data)
                 .map_err(|e| TrainError::Data(format!("certifying the retrained model: {e}")))?,
         };
         let summary = &report.summary;
+        // The reviewer's rule on acceptance data is assessed once, on the acceptance data after the
+        // last round; a prediction from the validation data is assessed every round.
         let assessment = plan
+            .filter(|p| p.evidence == Evidence::Prediction)
             .map(|p| p.assess(summary, requirement))
             .transpose()
             .map_err(|e| TrainError::Data(format!("the reviewer's rule: {e}")))?;
@@ -513,10 +356,34 @@ pub fn retrain(
             empirical_robust_accuracy: summary.empirical_robust_accuracy,
             verdict: summary.verdict,
             confidence: assessment,
+            requirements: report.requirements.clone(),
         });
         let met = assessment.map_or(summary.verdict == Verdict::Pass, |a| a.met);
+        let last_round = rounds.len() - 1;
         selection.record_round(feasible_on_validation, met);
-        if met || round == settings.max_rounds {
+        // A relaxation that stays open says the constraints cannot all hold under these settings:
+        // further rounds would only demand more of the same.
+        let relaxed = constrained.relax.is_some() && state.slacks.iter().any(|u| *u > RELAXED);
+        if met || relaxed || round == settings.max_rounds {
+            let unseen = round_data != acceptance;
+            let (report, met) = if unseen {
+                let report = certify_on(&model, acceptance).map_err(|e| {
+                    TrainError::Data(format!("certifying the retrained model: {e}"))
+                })?;
+                let met = match plan {
+                    Some(p) => {
+                        let assessment = p
+                            .assess(&report.summary, requirement)
+                            .map_err(|e| TrainError::Data(format!("the reviewer's rule: {e}")))?;
+                        rounds[last_round].confidence = Some(assessment);
+                        assessment.met
+                    }
+                    None => report.summary.verdict == Verdict::Pass,
+                };
+                (report, met)
+            } else {
+                (report, met)
+            };
             return Ok(RetrainResult {
                 model,
                 epochs,
@@ -529,171 +396,22 @@ pub fn retrain(
                 },
                 report,
                 plan,
+                verdict_on_unseen_data: unseen,
+                terms: constrained.terms_named(initial.class_count(), &|c| initial.class_name(c)),
             });
         }
     }
     unreachable!("the loop returns in its last round")
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
+/// A relaxation slack above this (in the constraint's measure, e.g. 0.1% of error rate) counts as
+/// open at the end of a round.
+pub const RELAXED: f64 = 1e-3;
 
-    impl Judgement for f64 {
-        fn certified(&self) -> f64 {
-            *self
-        }
-    }
-
-    fn candidate(epoch: f64, certified: f64, clean_loss: f64, loss_error: f64) -> Candidate<f64> {
-        Candidate {
-            epoch,
-            certified,
-            clean_loss,
-            loss_error,
-            network: Network {
-                layers: Vec::new(),
-                fold_error: Vec::new(),
-            },
-            judged: None,
-        }
-    }
-
-    /// The chosen epoch and the judgements used, with a judge that answers `figures` in turn.
-    fn choose(
-        candidates: &mut Candidates<f64>,
-        threshold: f64,
-        near_misses: NearMisses,
-        earliest: bool,
-        figures: &[f64],
-    ) -> (Option<f64>, usize) {
-        let mut answers = figures.iter().copied();
-        let mut judge = |_: &Network| answers.next().ok_or("judged more often than expected");
-        let (index, judged) = candidates
-            .choose(threshold, near_misses, earliest, &mut judge)
-            .expect("the judge has answers");
-        (index.map(|i| candidates.kept[i].epoch), judged.len())
-    }
-
-    #[test]
-    fn the_threshold_rises_only_after_a_validation_pass_that_failed_acceptance() {
-        let mut threshold = SelectionThreshold::new(0.8, 0.03);
-        assert_eq!(threshold.value(), 0.8);
-        threshold.record_round(false, false); // nothing feasible: training fell short
-        assert_eq!(threshold.value(), 0.8);
-        threshold.record_round(true, false); // validation passed, acceptance did not
-        assert!((threshold.value() - 0.83).abs() < 1e-12);
-        threshold.record_round(true, true);
-        assert!((threshold.value() - 0.83).abs() < 1e-12);
-    }
-
-    #[test]
-    fn feasible_epochs_by_lowest_loss_or_by_the_one_standard_error_rule() {
-        let mut candidates = Candidates::default();
-        let off = NearMisses::OFF;
-        candidates.offer(candidate(3.0, 0.61, 0.50, 0.02), 0.6); // far above the best: dropped
-        candidates.offer(candidate(4.0, 0.62, 0.215, 0.02), 0.6); // within one error of the best
-        candidates.offer(candidate(5.0, 0.70, 0.20, 0.02), 0.6); // the best loss
-        candidates.offer(candidate(6.0, 0.72, 0.23, 0.02), 0.6); // within two errors: kept, not chosen
-        let epochs: Vec<f64> = candidates.kept.iter().map(|c| c.epoch).collect();
-        assert_eq!(epochs, vec![4.0, 5.0, 6.0]);
-        assert_eq!(choose(&mut candidates, 0.6, off, true, &[]), (Some(4.0), 0));
-        assert_eq!(
-            choose(&mut candidates, 0.6, off, false, &[]),
-            (Some(5.0), 0)
-        );
-        // A higher threshold drops epoch 4 for good; 5 is then the earliest in the window.
-        assert_eq!(
-            choose(&mut candidates, 0.65, off, true, &[]),
-            (Some(5.0), 0)
-        );
-        assert_eq!(choose(&mut candidates, 0.6, off, true, &[]), (Some(5.0), 0));
-        assert_eq!(
-            choose(&mut candidates, 0.71, off, false, &[]),
-            (Some(6.0), 0)
-        );
-        assert_eq!(choose(&mut candidates, 0.8, off, true, &[]), (None, 0));
-    }
-
-    #[test]
-    fn a_near_miss_is_kept_only_when_the_pipeline_proves_the_threshold() {
-        let near = NearMisses {
-            margin: 0.03,
-            tries: 3,
-        };
-        let build = || {
-            let mut candidates = Candidates::default();
-            candidates.offer(candidate(2.0, 0.55, 0.19, 0.02), 0.6); // beyond the margin: never kept
-            candidates.offer(candidate(3.0, 0.585, 0.20, 0.02), 0.6); // a near miss, the lowest loss
-            candidates.offer(candidate(4.0, 0.61, 0.26, 0.02), 0.6); // feasible by its check
-            candidates
-        };
-        let epochs = |c: &Candidates<f64>| c.kept.iter().map(|c| c.epoch).collect::<Vec<_>>();
-        // An open near miss never drops others: epoch 4 lies beyond two errors of epoch 3's loss.
-        assert_eq!(epochs(&build()), vec![2.0, 3.0, 4.0]);
-        // Proven by the pipeline: kept, after one judgement.
-        let mut proven = build();
-        assert_eq!(
-            choose(&mut proven, 0.6, near, false, &[0.603]),
-            (Some(3.0), 1)
-        );
-        assert_eq!(epochs(&proven), vec![3.0, 4.0]);
-        // Proven once, it is not judged again; a higher threshold than its figure drops it.
-        assert_eq!(choose(&mut proven, 0.6, near, true, &[]), (Some(3.0), 0));
-        assert_eq!(choose(&mut proven, 0.605, near, true, &[]), (Some(4.0), 0));
-        assert_eq!(epochs(&proven), vec![4.0]);
-        // Refuted by the pipeline: dropped, and the feasible epoch 4 is kept.
-        let mut refuted = build();
-        assert_eq!(
-            choose(&mut refuted, 0.6, near, false, &[0.59]),
-            (Some(4.0), 1)
-        );
-        assert_eq!(epochs(&refuted), vec![4.0]);
-        // Without tries (or without a margin) a near miss is not judged.
-        let no_tries = NearMisses { tries: 0, ..near };
-        assert_eq!(
-            choose(&mut build(), 0.6, no_tries, false, &[]),
-            (Some(4.0), 0)
-        );
-        assert_eq!(
-            choose(&mut build(), 0.6, NearMisses::OFF, false, &[]),
-            (Some(4.0), 0)
-        );
-    }
-
-    #[test]
-    fn near_misses_are_judged_in_the_rules_order_up_to_the_tries() {
-        let near = NearMisses {
-            margin: 0.05,
-            tries: 2,
-        };
-        let build = || {
-            let mut candidates = Candidates::default();
-            candidates.offer(candidate(3.0, 0.58, 0.20, 0.02), 0.6);
-            candidates.offer(candidate(4.0, 0.57, 0.21, 0.02), 0.6);
-            candidates.offer(candidate(5.0, 0.59, 0.22, 0.02), 0.6);
-            candidates.offer(candidate(6.0, 0.62, 0.23, 0.02), 0.6);
-            candidates
-        };
-        // Lowest loss first: 3 and 4 refuted, the tries are spent, 5 stays unjudged, 6 is kept.
-        assert_eq!(
-            choose(&mut build(), 0.6, near, false, &[0.59, 0.595]),
-            (Some(6.0), 2)
-        );
-        // The second try proves epoch 4.
-        assert_eq!(
-            choose(&mut build(), 0.6, near, false, &[0.59, 0.61]),
-            (Some(4.0), 2)
-        );
-        // One-standard-error rule: the window is 0.20 + 0.02; epoch 3 is the earliest in it.
-        assert_eq!(
-            choose(&mut build(), 0.6, near, true, &[0.6]),
-            (Some(3.0), 1)
-        );
-        // Once 3 is refuted the lowest loss is 4's (window 0.23): 4 is judged next, then kept.
-        assert_eq!(
-            choose(&mut build(), 0.6, near, true, &[0.58, 0.6]),
-            (Some(4.0), 2)
-        );
+/// The slack of a floor term (0 for a loss level).
+fn term_slack(term: &ConstraintTerm) -> f64 {
+    match term.constraint {
+        Constraint::RobustError { slack, .. } | Constraint::CleanError { slack, .. } => slack,
+        Constraint::RobustLossLevel { .. } => 0.0,
     }
 }

@@ -15,7 +15,8 @@ use crate::threat::{Budget, Region, Targets};
 
 use super::backprop::{classifier_logits, cross_entropy_one};
 use super::constrained::ConstrainedSettings;
-use super::plain::TrainableModel;
+use super::dual::Constraint;
+use super::plain::{loss_and_accuracy, TrainableModel};
 use super::robust::RegionMap;
 use super::TrainError;
 
@@ -30,6 +31,11 @@ pub struct ValidationCheck {
     pub clean_loss_error: f64,
     /// Certified accuracy on the validation data (sound linear bounds at the full budget).
     pub certified_accuracy: f64,
+    /// With several constraint terms ([`ConstrainedSettings::terms`]): the smallest margin of a
+    /// floor over its requirement on the validation data, `min_k (measured_k − floor_k)` with
+    /// measured_k the term's certified fraction (sound linear bounds) or clean accuracy on its rows;
+    /// ≥ 0 when every floor holds by these bounds. `None` for a single constraint.
+    pub worst_margin: Option<f64>,
 }
 
 /// The validation figures of `network` at `epoch_position` (a check inside an epoch).
@@ -42,6 +48,28 @@ pub(crate) fn validation_check(
 ) -> Result<ValidationCheck, TrainError> {
     let features = trainable.to_network_units(&validation.features);
     let losses = per_sample_cross_entropy(network, &features, &validation.labels);
+    let mut worst_margin: Option<f64> = None;
+    for term in &settings.terms {
+        let Some(floor) = term.floor() else {
+            continue;
+        };
+        let rows: Vec<usize> = (0..validation.len())
+            .filter(|&i| term.applies_to(validation.labels[i]))
+            .collect();
+        if rows.is_empty() {
+            continue;
+        }
+        let subset = validation.subset(&rows);
+        let measured = match term.constraint {
+            Constraint::CleanError { .. } => {
+                let sub = trainable.to_network_units(&subset.features);
+                loss_and_accuracy(network, &sub, &subset.labels).1
+            }
+            _ => certified_accuracy(trainable, network, &subset, &term.budget, &term.targets)?,
+        };
+        let margin = measured - floor;
+        worst_margin = Some(worst_margin.map_or(margin, |w: f64| w.min(margin)));
+    }
     Ok(ValidationCheck {
         epoch_position,
         clean_loss: losses.iter().sum::<f64>() / losses.len().max(1) as f64,
@@ -53,6 +81,7 @@ pub(crate) fn validation_check(
             &settings.budget,
             &settings.targets,
         )?,
+        worst_margin,
     })
 }
 

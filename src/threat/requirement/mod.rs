@@ -12,12 +12,18 @@
 //! feature `i` is `eps × t_i`; the scale defaults to 1. Without tolerances the radius is `eps` for every
 //! feature.
 
+mod list;
+mod tolerances;
+
 use std::path::{Path, PathBuf};
 
-use serde::{Deserialize, Serialize};
+use serde::Deserialize;
 
 use crate::model::Model;
 use crate::threat::{Budget, Norm, Targets};
+pub use list::{parse_line, CertifiedFloor, LineSpec, RequirementLine};
+use tolerances::resolve_tolerances;
+pub use tolerances::{load_tolerances, Tolerances};
 
 /// Why a requirement could not be read or checked.
 #[derive(Debug, thiserror::Error)]
@@ -40,7 +46,7 @@ pub enum RequirementError {
     },
 }
 
-fn invalid(place: impl Into<String>, message: impl Into<String>) -> RequirementError {
+pub(super) fn invalid(place: impl Into<String>, message: impl Into<String>) -> RequirementError {
     RequirementError::Invalid {
         place: place.into(),
         message: message.into(),
@@ -75,6 +81,8 @@ pub struct RequirementSpec {
     pub forbid_into: Option<(Vec<String>, String)>,
     /// True classes the restriction applies to (names or indices).
     pub forbid_from: Option<(Vec<String>, String)>,
+    /// A list of requirements (`[[requirements]]`), each line one rule; empty for a single requirement.
+    pub lines: Vec<LineSpec>,
 }
 
 #[derive(Deserialize)]
@@ -96,6 +104,8 @@ struct RawRequirement {
     forbid_into: Option<Vec<String>>,
     #[serde(default)]
     forbid_from: Option<Vec<String>>,
+    #[serde(default)]
+    requirements: Option<Vec<serde_json::Value>>,
 }
 
 #[derive(Deserialize)]
@@ -180,6 +190,19 @@ impl RequirementSpec {
         spec.confidence = raw.confidence.map(|v| (v, place("confidence")));
         spec.forbid_into = raw.forbid_into.map(|v| (v, place("forbid_into")));
         spec.forbid_from = raw.forbid_from.map(|v| (v, place("forbid_from")));
+        if let Some(entries) = raw.requirements {
+            if entries.is_empty() {
+                return Err(invalid(
+                    place("requirements"),
+                    "empty list, expected at least one requirement",
+                ));
+            }
+            spec.lines = entries
+                .iter()
+                .enumerate()
+                .map(|(k, v)| parse_line(v, &shown, k + 1))
+                .collect::<Result<_, _>>()?;
+        }
         Ok(spec)
     }
 
@@ -194,17 +217,43 @@ impl RequirementSpec {
             confidence: flags.confidence.or(self.confidence),
             forbid_into: flags.forbid_into.or(self.forbid_into),
             forbid_from: flags.forbid_from.or(self.forbid_from),
+            lines: self.lines,
         }
     }
 
-    /// Checks every value against `model` and builds the requirement.
+    /// Checks every line of the requirement list against `model` (empty without a list).
+    pub fn resolve_lines(&self, model: &Model) -> Result<Vec<RequirementLine>, RequirementError> {
+        self.lines.iter().map(|l| l.resolve(model)).collect()
+    }
+
+    /// Checks every value against `model` and builds the requirement. With a requirement list the
+    /// top level holds only the ball (epsilon, norm, tolerances): a floor, clean-accuracy minimum,
+    /// confidence or class restriction there is an error; without a top-level epsilon the run sweeps the
+    /// lines' epsilons.
     pub fn resolve(&self, model: &Model) -> Result<Requirement, RequirementError> {
         let tolerances = match &self.tolerances {
             None => None,
             Some((source, place)) => Some(resolve_tolerances(source, place, model)?),
         };
+        if !self.lines.is_empty() {
+            let rules = [
+                self.floor.as_ref().map(|(_, p)| p),
+                self.min_clean_accuracy.as_ref().map(|(_, p)| p),
+                self.confidence.as_ref().map(|(_, p)| p),
+                self.forbid_into.as_ref().map(|(_, p)| p),
+                self.forbid_from.as_ref().map(|(_, p)| p),
+            ];
+            if let Some(place) = rules.into_iter().flatten().next() {
+                return Err(invalid(
+                    place.as_str(),
+                    "the requirement file holds a list of requirements; state this rule as an entry of the list",
+                ));
+            }
+        }
+        let line_epsilons: Vec<f64> = self.lines.iter().filter_map(|l| l.epsilon).collect();
         let (mut epsilons, eps_place) = match &self.epsilons {
             Some((values, place)) => (values.clone(), place.clone()),
+            None if !line_epsilons.is_empty() => (line_epsilons, "requirements".to_string()),
             None if tolerances.is_some() => (vec![1.0], "epsilon".to_string()),
             None => {
                 return Err(invalid(
@@ -316,7 +365,7 @@ impl RequirementSpec {
     }
 }
 
-fn class_index(model: &Model, name: &str) -> Option<usize> {
+pub(super) fn class_index(model: &Model, name: &str) -> Option<usize> {
     let classes = model.class_count();
     if let Some(names) = &model.classes {
         if let Some(i) = names.iter().position(|n| n == name) {
@@ -372,17 +421,6 @@ pub fn parse_epsilon_list(text: &str, place: &str) -> Result<Vec<f64>, Requireme
     text.split(',').map(number).collect()
 }
 
-/// Reads a per-feature tolerance file for `model`: JSON object `{"feature": tolerance}` or CSV with header
-/// `feature,tolerance`. Every model feature must appear exactly once (give 0 to hold a feature fixed).
-pub fn load_tolerances(path: &Path, model: &Model) -> Result<Vec<f64>, RequirementError> {
-    resolve_tolerances(
-        &ToleranceSource::File(path.to_path_buf()),
-        &path.display().to_string(),
-        model,
-    )
-    .map(|t| t.values)
-}
-
 /// toml's messages span several lines (a source excerpt with a caret); keep the position and the reason
 /// on one line.
 fn one_line_toml_error(error: &toml::de::Error, text: &str) -> String {
@@ -399,161 +437,8 @@ fn one_line_toml_error(error: &toml::de::Error, text: &str) -> String {
     }
 }
 
-fn resolve_tolerances(
-    source: &ToleranceSource,
-    place: &str,
-    model: &Model,
-) -> Result<Tolerances, RequirementError> {
-    let (entries, where_from): (Vec<(String, f64, String)>, String) = match source {
-        ToleranceSource::Inline(list) => (
-            list.iter()
-                .map(|(n, v)| (n.clone(), *v, format!("{place}.{n}")))
-                .collect(),
-            place.to_string(),
-        ),
-        ToleranceSource::File(path) => {
-            let shown = path.display().to_string();
-            let text = crate::limits::read_text_file(path, crate::limits::MAX_SMALL_FILE_BYTES)
-                .map_err(|e| RequirementError::Io {
-                    path: format!("{place}: tolerance file {shown}"),
-                    message: e.to_string(),
-                })?;
-            let is_json = path
-                .extension()
-                .map(|e| e.eq_ignore_ascii_case("json"))
-                .unwrap_or(false)
-                || text.trim_start().starts_with('{');
-            let entries = if is_json {
-                let map: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&text)
-                    .map_err(|e| {
-                    invalid(
-                        &shown,
-                        format!("{e} (expected a JSON object {{\"feature\": tolerance}})"),
-                    )
-                })?;
-                let mut out = Vec::new();
-                for (name, value) in map {
-                    let v = value.as_f64().ok_or_else(|| {
-                        invalid(
-                            format!("{shown}: \"{name}\""),
-                            format!("{value} is not a number"),
-                        )
-                    })?;
-                    out.push((name.clone(), v, format!("{shown}: \"{name}\"")));
-                }
-                out
-            } else {
-                parse_tolerance_csv(&text, &shown)?
-            };
-            (entries, shown)
-        }
-    };
-    let dim = model.input.dim;
-    let mut values = vec![f64::NAN; dim];
-    for (name, value, at) in &entries {
-        let index = (0..dim)
-            .find(|i| model.feature_name(*i) == *name)
-            .ok_or_else(|| invalid(at, unknown_feature(name, model)))?;
-        if !values[index].is_nan() {
-            return Err(invalid(at, format!("feature \"{name}\" is given twice")));
-        }
-        if !value.is_finite() || *value < 0.0 {
-            return Err(invalid(at, format!("{value} is not allowed, expected a finite tolerance ≥ 0 in the feature's raw units")));
-        }
-        values[index] = *value;
-    }
-    if let Some(missing) = (0..dim).find(|i| values[*i].is_nan()) {
-        return Err(invalid(
-            &where_from,
-            format!(
-                "no tolerance for feature \"{}\" (every feature needs one; give 0 to hold it fixed)",
-                model.feature_name(missing)
-            ),
-        ));
-    }
-    let origin = match source {
-        ToleranceSource::File(p) => Some(p.display().to_string()),
-        ToleranceSource::Inline(_) => None,
-    };
-    Ok(Tolerances {
-        names: (0..dim).map(|i| model.feature_name(i)).collect(),
-        values,
-        origin,
-    })
-}
-
-/// The message for a tolerance naming no input of `model`, with what the inputs are called and, when
-/// the model names none (as after importing ONNX without names), how to name them.
-fn unknown_feature(name: &str, model: &Model) -> String {
-    let dim = model.input.dim;
-    match &model.input.names {
-        None => format!(
-            "\"{name}\" is not an input feature of the model: the model names no inputs, so they are \
-             x0 … x{} (an ONNX file imports without names unless its metadata has them); name them with \
-             `ballast import --onnx FILE --input-range-file R.json --out M.json`, R.json holding \
-             lower, upper and names, or key the tolerances by x0 … x{}",
-            dim.saturating_sub(1),
-            dim.saturating_sub(1)
-        ),
-        Some(names) => {
-            let shown: Vec<&str> = names.iter().take(4).map(String::as_str).collect();
-            format!(
-                "\"{name}\" is not an input feature of the model, expected one of its {dim} input names ({}{})",
-                shown.join(", "),
-                if dim > shown.len() { ", …" } else { "" }
-            )
-        }
-    }
-}
-
-fn parse_tolerance_csv(
-    text: &str,
-    shown: &str,
-) -> Result<Vec<(String, f64, String)>, RequirementError> {
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(true)
-        .trim(csv::Trim::All)
-        .from_reader(text.as_bytes());
-    let headers = reader
-        .headers()
-        .map_err(|e| invalid(format!("{shown}: row 1 (header)"), e.to_string()))?
-        .clone();
-    let column = |name: &str| headers.iter().position(|h| h.eq_ignore_ascii_case(name));
-    let (Some(fc), Some(tc)) = (column("feature"), column("tolerance")) else {
-        return Err(invalid(
-            format!("{shown}: row 1 (header)"),
-            "expected the columns \"feature\" and \"tolerance\"",
-        ));
-    };
-    let mut out = Vec::new();
-    for (r, record) in reader.records().enumerate() {
-        let row = r + 2;
-        let record = record.map_err(|e| invalid(format!("{shown}: row {row}"), e.to_string()))?;
-        let (Some(name), Some(value)) = (record.get(fc), record.get(tc)) else {
-            return Err(invalid(
-                format!("{shown}: row {row}"),
-                "missing the feature or tolerance field",
-            ));
-        };
-        let at = format!("{shown}: row {row}, column \"tolerance\"");
-        let v: f64 = value
-            .parse()
-            .map_err(|_| invalid(&at, format!("\"{value}\" is not a number")))?;
-        out.push((name.to_string(), v, at));
-    }
-    Ok(out)
-}
-
-/// Per-feature tolerances in raw input units, in model input order.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct Tolerances {
-    /// Feature names in model input order.
-    pub names: Vec<String>,
-    /// Tolerance per feature (raw units, ≥ 0; 0 holds the feature fixed).
-    pub values: Vec<f64>,
-    /// The file they were read from (absent when given inline).
-    pub origin: Option<String>,
-}
+/// How [`Requirement::describe`] states the release rule when the requirement has no floor.
+pub const NO_FLOOR_RULE: &str = "no floor was set, so the run only reports";
 
 /// A checked requirement for one model.
 #[derive(Debug, Clone, PartialEq)]
@@ -639,7 +524,7 @@ impl Requirement {
             }
         };
         let rule = match self.floor {
-            None => "no floor was set, so the run only reports".to_string(),
+            None => NO_FLOOR_RULE.to_string(),
             Some(f) => match self.confidence {
                 None => format!("at least {:.2}% of the samples must be certified", f * 100.0),
                 Some(c) => format!(

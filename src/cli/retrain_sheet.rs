@@ -1,0 +1,262 @@
+//! The written outputs of `ballast retrain` besides the model: the per-epoch log and the checks as
+//! CSV, the price of each constraint and the retraining sheet (`retrain.md`). They restate the
+//! retrainer's result; nothing here trains or certifies.
+
+use std::fmt::Write as _;
+
+use super::retrain::Args;
+use crate::train::confidence::{self, Assessment};
+use crate::train::price::{prices, Price};
+use crate::train::retrain::{RetrainResult, RetrainVerdict};
+
+/// Each round's assessment under the reviewer's rule (with a confidence level).
+pub fn round_assessments(result: &RetrainResult) -> Vec<Option<Assessment>> {
+    result.rounds.iter().map(|r| r.confidence).collect()
+}
+
+fn option(v: Option<f64>) -> String {
+    v.map(|x| format!("{x:.6}")).unwrap_or_default()
+}
+
+/// The per-epoch log as CSV (epoch, epsilon scale, clean loss, robust loss, robust error, λ, gap
+/// correction, validation clean loss and its standard error, clean and certified accuracy); per-class multipliers are joined with `;`.
+pub fn log_csv(result: &RetrainResult) -> String {
+    let mut text = String::from(
+        "epoch,epsilon_scale,clean_loss,robust_loss,robust_error,lambda,gap_correction,val_clean_loss,val_clean_loss_error,val_clean_accuracy,val_certified_accuracy\n",
+    );
+    for e in &result.epochs {
+        let lambda: Vec<String> = e.multipliers.iter().map(|m| format!("{m:.6}")).collect();
+        let _ = writeln!(
+            text,
+            "{},{:.4},{:.6},{:.6},{:.6},{},{:.6},{},{},{},{}",
+            e.epoch,
+            e.epsilon_scale,
+            e.clean_loss,
+            e.robust_loss,
+            e.robust_error,
+            lambda.join(";"),
+            e.gap_correction,
+            option(e.validation_clean_loss),
+            option(e.validation_clean_loss_error),
+            option(e.validation_clean_accuracy),
+            option(e.validation_certified_accuracy)
+        );
+    }
+    text
+}
+
+/// The validation checks as CSV: position in epochs, validation clean loss and its standard error,
+/// validation certified accuracy (sound linear bounds at the full budget).
+pub fn checks_csv(result: &RetrainResult) -> String {
+    let mut text =
+        String::from("epoch_position,val_clean_loss,val_clean_loss_error,val_certified_accuracy\n");
+    for c in &result.checks {
+        let _ = writeln!(
+            text,
+            "{},{:.6},{:.6},{:.6}",
+            c.epoch_position, c.clean_loss, c.clean_loss_error, c.certified_accuracy
+        );
+    }
+    text
+}
+
+/// The price of every constraint at the last epoch's multipliers, with the relaxation it ended with
+/// (none for a fixed penalty).
+pub fn final_prices(result: &RetrainResult, primal_dual: bool) -> Vec<Price> {
+    match (result.epochs.last(), primal_dual) {
+        (Some(last), true) => prices(&result.terms, &last.multipliers, &last.slacks),
+        _ => Vec::new(),
+    }
+}
+
+/// The retraining sheet (`retrain.md`) without its lineage section.
+pub fn sheet_markdown(
+    args: &Args,
+    requirement: &str,
+    floor: f64,
+    result: &RetrainResult,
+    acceptance: usize,
+    prices: &[Price],
+) -> String {
+    let mut md = String::new();
+    let met = result.verdict == RetrainVerdict::Met;
+    let list = !result.report.requirements.is_empty();
+    let verdict = match &result.plan {
+        Some(plan) => confidence::verdict_text(plan, met),
+        None if met && list => "**met**: the certify pipeline proved every requirement of the list on the acceptance data",
+        None if list => "**not met**: not every requirement of the list was proven on the acceptance data",
+        None if met => "**met**: the certify pipeline proved the floor on the acceptance data",
+        None => "**not met**: the floor was not proven on the acceptance data",
+    };
+    let _ = writeln!(md, "# Retraining sheet\n");
+    let _ = writeln!(md, "- parent model: `{}`", args.model.display());
+    let _ = writeln!(md, "- retrained model: `{}`", args.out.display());
+    if list {
+        let _ = writeln!(
+            md,
+            "- requirement: the list below, every line must hold; ball: {requirement}"
+        );
+    } else {
+        let _ = writeln!(md, "- requirement (floor {floor}): {requirement}");
+    }
+    let formulation = match args.penalty {
+        Some(w) => format!("fixed penalty weight {w}"),
+        None => format!(
+            "primal-dual (dual step {}{})",
+            args.dual_step,
+            if args.per_class { ", per class" } else { "" }
+        ),
+    };
+    let _ = writeln!(md, "- loss: {}, {formulation}", args.loss);
+    let _ = writeln!(md, "- acceptance samples: {acceptance}");
+    let _ = writeln!(md, "- verdict: {verdict}\n");
+    for caution in cautions(args, result) {
+        let _ = writeln!(md, "> **Caution.** {caution}\n");
+    }
+    let _ = writeln!(md, "Each round is checked with the certify pipeline on the validation data (it steers the rounds); the verdict above is {}.\n",
+        if result.verdict_on_unseen_data { "the acceptance data's, certified once after the last round" } else { "the validation data's" });
+    let _ = writeln!(md, "| round | slack | epochs | kept epoch | clean accuracy | certified accuracy | empirical robust accuracy | pipeline verdict |");
+    let _ = writeln!(md, "| --- | --- | --- | --- | --- | --- | --- | --- |");
+    for r in &result.rounds {
+        let _ = writeln!(
+            md,
+            "| {} | {:.3} | {} | {}{} | {:.4} | {:.4} | {:.4} | {:?} |",
+            r.round,
+            r.slack,
+            r.epochs,
+            r.selected_epoch,
+            if r.near_miss { " (near miss)" } else { "" },
+            r.clean_accuracy,
+            r.certified_accuracy,
+            r.empirical_robust_accuracy,
+            r.verdict
+        );
+    }
+    for r in &result.rounds {
+        for j in &r.near_misses_judged {
+            let _ = writeln!(
+                md,
+                "\nRound {}: near miss at epoch {} judged by the certify pipeline on the validation data: {:.4} by linear bounds, {:.4} by the pipeline.",
+                r.round, j.epoch, j.linear_certified, j.pipeline_certified
+            );
+        }
+    }
+    if let Some(table) = crate::sheet::requirement_lines::table(&result.report) {
+        let _ = writeln!(
+            md,
+            "\n## Requirements on the {} data\n",
+            if result.verdict_on_unseen_data {
+                "acceptance"
+            } else {
+                "validation"
+            }
+        );
+        let _ = writeln!(md, "| {} |", table.headers.join(" | "));
+        let _ = writeln!(md, "|{}", " --- |".repeat(table.headers.len()));
+        for row in &table.rows {
+            let _ = writeln!(md, "| {} |", row.join(" | "));
+        }
+        infeasible(&mut md, args, result, prices);
+    }
+    if !prices.is_empty() {
+        let _ = writeln!(
+            md,
+            "\n## Price of {}\n",
+            if prices.len() > 1 {
+                "each requirement"
+            } else {
+                "the requirement"
+            }
+        );
+        let _ = writeln!(md, "The final multipliers read as prices: the sensitivity of the best clean training loss to each constraint's level (Boyd & Vandenberghe, *Convex Optimization*, §5.6). A requirement is active (binding) at the end when its multiplier is above 0.\n");
+        let _ = writeln!(
+            md,
+            "| constraint | multiplier | active | relaxed by | meaning |"
+        );
+        let _ = writeln!(md, "| --- | --- | --- | --- | --- |");
+        for p in prices {
+            let _ = writeln!(
+                md,
+                "| {} | {:.4} | {} | {:.4} | {} |",
+                p.constraint,
+                p.multiplier,
+                if p.binding { "yes" } else { "no" },
+                p.relaxed_by,
+                p.meaning
+            );
+        }
+        if prices.len() > 1 {
+            let _ = writeln!(md, "\n![multiplier of each requirement](multipliers.svg)");
+        }
+    }
+    if let Some(plan) = &result.plan {
+        let _ = writeln!(
+            md,
+            "\n{}",
+            confidence::markdown(plan, &round_assessments(result))
+        );
+    }
+    let _ = writeln!(md, "\nCertified accuracy is a sound lower bound (certify pipeline, bounds only); the training losses are not evidence.\n");
+    let _ = writeln!(
+        md,
+        "![accuracy](accuracy.svg)\n\n![losses and multiplier](loss_and_multiplier.svg)\n"
+    );
+    let _ = writeln!(
+        md,
+        "Per-epoch figures: `log.csv`; every validation check (the candidates for the kept weights): `checks.csv`."
+    );
+    md
+}
+
+/// The cautions of a retraining sheet: a verdict on data that also steered training.
+pub fn cautions(args: &Args, result: &RetrainResult) -> Vec<String> {
+    let mut out = Vec::new();
+    if !result.verdict_on_unseen_data {
+        out.push(match &args.acceptance {
+            Some(a) => format!("the acceptance set {} was also passed as validation data: it steered the rounds and chose the kept weights, so its verdict is optimistic; certify the model on untouched data before release", a.display()),
+            None => "no acceptance set was given: the verdict is on the validation data, which also steered the rounds and chose the kept weights, so it is optimistic; certify the model on an untouched acceptance set before release (`ballast certify`)".to_string(),
+        });
+    }
+    out
+}
+
+/// With a failed list: which lines failed, the closest level the retrained model reached on each,
+/// and, under `--relax`, how far training relaxed it.
+fn infeasible(md: &mut String, args: &Args, result: &RetrainResult, prices: &[Price]) {
+    let failed: Vec<(usize, &crate::certify::lines::LineVerdict)> = result
+        .report
+        .requirements
+        .iter()
+        .enumerate()
+        .filter(|(_, l)| l.verdict != crate::certify::Verdict::Pass)
+        .collect();
+    if failed.is_empty() {
+        return;
+    }
+    let _ = writeln!(
+        md,
+        "\n{} of {} requirements {} not proven; the closest levels reached:\n",
+        failed.len(),
+        result.report.requirements.len(),
+        if failed.len() == 1 { "is" } else { "are" }
+    );
+    for (k, line) in failed {
+        let relaxed = prices.get(k).map_or(0.0, |p| p.relaxed_by);
+        let _ = writeln!(
+            md,
+            "- {}: reached {:.2}% (floor {:.2}%, short by {:.2} points){}",
+            line.requirement,
+            line.measured * 100.0,
+            line.floor * 100.0,
+            (line.floor - line.measured).max(0.0) * 100.0,
+            if args.relax.is_some() {
+                format!("; training relaxed it by {:.2} points", relaxed * 100.0)
+            } else {
+                String::new()
+            }
+        );
+    }
+    if args.relax.is_some() {
+        let _ = writeln!(md, "\nUnder `--relax` these floors could not all hold with this network and these settings: training settled where loosening each further costs more than it saves (resilient constrained learning, Hounie et al., 2023). The verdict stays strict.");
+    }
+}
