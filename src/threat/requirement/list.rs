@@ -9,7 +9,7 @@
 
 use serde_json::Value;
 
-use super::{class_index, invalid, RequirementError};
+use super::{class_indices, invalid, RequirementError};
 use crate::model::Model;
 use crate::threat::Targets;
 
@@ -187,28 +187,7 @@ impl LineSpec {
                 ))
             }
         };
-        let classes = |names: &[String], key: &str| -> Result<Vec<usize>, RequirementError> {
-            let mut out = Vec::new();
-            for name in names {
-                let index = class_index(model, name).ok_or_else(|| {
-                    let known: Vec<String> = (0..model.class_count())
-                        .map(|c| model.class_name(c))
-                        .collect();
-                    invalid(
-                        field(key),
-                        format!(
-                            "\"{name}\" is not a class of the model (classes: {})",
-                            known.join(", ")
-                        ),
-                    )
-                })?;
-                if !out.contains(&index) {
-                    out.push(index);
-                }
-            }
-            out.sort_unstable();
-            Ok(out)
-        };
+        let classes = |names: &[String], key: &str| class_indices(model, names, &field(key));
         let class = match &self.class {
             None => None,
             Some(name) => Some(classes(std::slice::from_ref(name), "class")?[0]),

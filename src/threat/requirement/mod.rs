@@ -306,30 +306,12 @@ impl RequirementSpec {
         let floor = fraction(&self.floor, false)?;
         let min_clean_accuracy = fraction(&self.min_clean_accuracy, false)?;
         let confidence = fraction(&self.confidence, true)?;
-        let classes = model.class_count();
         let resolve_classes =
             |value: &Option<(Vec<String>, String)>| -> Result<Vec<usize>, RequirementError> {
-                let mut out = Vec::new();
-                if let Some((names, place)) = value {
-                    for name in names {
-                        let index = class_index(model, name).ok_or_else(|| {
-                            let known: Vec<String> =
-                                (0..classes).map(|c| model.class_name(c)).collect();
-                            invalid(
-                                place,
-                                format!(
-                                    "\"{name}\" is not a class of the model (classes: {})",
-                                    known.join(", ")
-                                ),
-                            )
-                        })?;
-                        if !out.contains(&index) {
-                            out.push(index);
-                        }
-                    }
+                match value {
+                    Some((names, place)) => class_indices(model, names, place),
+                    None => Ok(Vec::new()),
                 }
-                out.sort_unstable();
-                Ok(out)
             };
         let into = resolve_classes(&self.forbid_into)?;
         let from = resolve_classes(&self.forbid_from)?;
@@ -363,6 +345,35 @@ impl RequirementSpec {
             targets,
         })
     }
+}
+
+/// The sorted, distinct class indices of `names` (class names or indices); an unknown one is an error
+/// at `place` listing the model's classes.
+pub(super) fn class_indices(
+    model: &Model,
+    names: &[String],
+    place: &str,
+) -> Result<Vec<usize>, RequirementError> {
+    let mut out = Vec::new();
+    for name in names {
+        let index = class_index(model, name).ok_or_else(|| {
+            let known: Vec<String> = (0..model.class_count())
+                .map(|c| model.class_name(c))
+                .collect();
+            invalid(
+                place,
+                format!(
+                    "\"{name}\" is not a class of the model (classes: {})",
+                    known.join(", ")
+                ),
+            )
+        })?;
+        if !out.contains(&index) {
+            out.push(index);
+        }
+    }
+    out.sort_unstable();
+    Ok(out)
 }
 
 pub(super) fn class_index(model: &Model, name: &str) -> Option<usize> {
