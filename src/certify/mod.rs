@@ -9,6 +9,7 @@
 //! sound bound or proof, every counterexample is re-validated, and an exhausted search is `unresolved`.
 
 pub mod floor_epsilon;
+pub mod input_record;
 pub mod journal;
 pub mod merge;
 pub mod pipeline;
@@ -315,6 +316,7 @@ fn empty_report(
             parameters: model.parameter_count(),
             arithmetic: Some(model.arithmetic.name().to_string()),
             lineage: crate::model::lineage::Lineage::of(model),
+            input: Some(input_record::InputRecord::of(model)),
         },
         data: DataInfo {
             path: sources.data_path.clone(),

@@ -386,6 +386,9 @@ pub struct ModelInfo {
     /// (copied from the model's `provenance.retrain.lineage`).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub lineage: Option<crate::model::lineage::Lineage>,
+    /// The valid input range and feature units (absent in reports of earlier versions).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub input: Option<super::input_record::InputRecord>,
 }
 
 /// The acceptance set the report is about.

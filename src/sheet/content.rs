@@ -55,8 +55,10 @@ pub struct SheetContent {
     pub incomplete: Option<String>,
     /// The requirement in words.
     pub requirement: String,
-    /// Each feature's tolerance and radius in the input's units (per-feature budgets only).
-    pub budget: Option<Table>,
+    /// The norm, range, class-change rule, release rule and arithmetic, labelled.
+    pub requirement_facts: Vec<(String, String)>,
+    /// Each feature's unit, tolerance, radius at every epsilon and valid range.
+    pub budget: Table,
     /// For a model retrained by ballast: its lineage and which data decided what.
     pub lineage: Option<super::lineage::LineageContent>,
     /// The headline figures.
@@ -355,15 +357,6 @@ pub fn build(report: &Report) -> SheetContent {
     let mut inputs = vec![
         ("Model".to_string(), report.model.path.clone()),
         ("Model SHA-256".to_string(), report.model.sha256.clone()),
-        (
-            "Arithmetic covered".to_string(),
-            match &report.model.arithmetic {
-                Some(a) => format!(
-                    "{a}: the class is kept when the model is evaluated in {a}, in any order of summation"
-                ),
-                None => "exact arithmetic up to a fixed tolerance (report of an earlier version)".into(),
-            },
-        ),
         ("Data".to_string(), report.data.path.clone()),
         ("Data SHA-256".to_string(), report.data.sha256.clone()),
         (
@@ -453,6 +446,7 @@ pub fn build(report: &Report) -> SheetContent {
         rule,
         incomplete,
         requirement: report.requirement.description.clone(),
+        requirement_facts: super::requirement_facts::requirement_facts(report),
         budget: super::budget::budget_table(report),
         lineage,
         figures,

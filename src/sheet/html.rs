@@ -15,7 +15,7 @@ h1{font-size:1.5em;margin-bottom:.3em}h2{font-size:1.15em;margin-top:1.6em;borde
 table{border-collapse:collapse;margin:8px 0}th,td{border:1px solid #ccc;padding:4px 10px;text-align:left;vertical-align:top}\
 th{background:#f2f2f2}td.num{text-align:right;font-variant-numeric:tabular-nums}\
 code,pre{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.9em}pre{background:#f6f6f6;padding:10px;overflow-x:auto;white-space:pre-wrap;word-break:break-all}\
-dl{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px}dt{font-weight:600}dd{margin:0;word-break:break-all}\
+dl{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px}dt{font-weight:600}dd{margin:0;word-break:break-all}.facts dd{word-break:normal}\
 .cautions{background:#f6f6f6;padding:8px 20px;border-radius:6px}.small{color:#555;font-size:.9em}";
 
 /// A cell holding only a number, a percentage, a count list like `289 / 37 / 34`, or `–`.
@@ -28,7 +28,8 @@ fn numeric(cell: &str) -> bool {
             .all(|c| c.is_ascii_digit() || ".,%–-+e /".contains(c))
 }
 
-fn table(t: &Table) -> String {
+/// A table; cells holding only numbers are right-aligned.
+pub fn table(t: &Table) -> String {
     let mut s = String::from("<table>\n<tr>");
     for head in &t.headers {
         s.push_str(&format!("<th>{}</th>", h(head)));
@@ -49,6 +50,25 @@ fn table(t: &Table) -> String {
     s
 }
 
+/// The document head (the sheet's style, a policy forbidding any fetch) and the title as heading.
+pub fn head(title: &str) -> String {
+    format!(
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; style-src 'unsafe-inline'; img-src data:\">\n<title>{}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n<h1>{}</h1>\n",
+        h(title),
+        h(title)
+    )
+}
+
+/// A definition list of labelled texts.
+fn definitions(items: &[(String, String)]) -> String {
+    let mut s = String::from("<dl class=\"facts\">\n");
+    for (k, v) in items {
+        s.push_str(&format!("<dt>{}</dt><dd>{}</dd>\n", h(k), h(v)));
+    }
+    s.push_str("</dl>\n");
+    s
+}
+
 /// Renders the sheet as one self-contained HTML document.
 pub fn render(c: &SheetContent) -> String {
     let class = match c.verdict {
@@ -57,11 +77,7 @@ pub fn render(c: &SheetContent) -> String {
         Verdict::Undecided => "undecided",
         Verdict::None => "none",
     };
-    let mut s = format!(
-        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; style-src 'unsafe-inline'; img-src data:\">\n<title>{}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n<h1>{}</h1>\n",
-        h(&c.title),
-        h(&c.title)
-    );
+    let mut s = head(&c.title);
     s.push_str(&format!(
         "<div class=\"verdict {class}\"><div class=\"word\">{}</div><div>{}</div><div class=\"small\">{}.</div></div>\n",
         h(&c.headline),
@@ -78,10 +94,9 @@ pub fn render(c: &SheetContent) -> String {
         "<h2>Requirement</h2>\n<p>{}</p>\n",
         h(&c.requirement)
     ));
-    if let Some(t) = &c.budget {
-        s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
-        s.push_str(&table(t));
-    }
+    s.push_str(&definitions(&c.requirement_facts));
+    s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
+    s.push_str(&table(&c.budget));
     if let Some(l) = &c.lineage {
         s.push_str(&format!(
             "<h2>Model lineage</h2>\n<p>{}</p>\n<p>{}</p>\n",

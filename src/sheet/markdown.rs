@@ -39,11 +39,12 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&format!("> **Warning:** {}\n\n", md(w)));
     }
     s.push_str(&format!("## Requirement\n\n{}\n\n", md(&c.requirement)));
-    if let Some(t) = &c.budget {
-        s.push_str("Radius of each feature, in the input's own units:\n\n");
-        s.push_str(&table(t));
-        s.push('\n');
+    for (k, v) in &c.requirement_facts {
+        s.push_str(&format!("- **{}**: {}\n", md(k), md(v)));
     }
+    s.push_str("\nRadius of each feature, in the input's own units:\n\n");
+    s.push_str(&table(&c.budget));
+    s.push('\n');
     if let Some(l) = &c.lineage {
         s.push_str(&format!(
             "## Model lineage\n\n{}\n\n{}\n\n",

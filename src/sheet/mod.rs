@@ -15,6 +15,7 @@ pub mod html;
 pub mod lineage;
 pub mod markdown;
 pub mod range_policy;
+pub mod requirement_facts;
 pub mod retrain_plots;
 pub mod svg;
 

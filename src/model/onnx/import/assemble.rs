@@ -203,6 +203,7 @@ pub(super) fn assemble(
             names,
             lower,
             upper,
+            units: None,
         },
         classes,
         layers,
