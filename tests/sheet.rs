@@ -384,7 +384,40 @@ fn plots_have_nice_ticks_axis_names_and_no_label_past_the_edge() {
         s.radius = Some(0.0170121 * (k + 1) as f64);
     }
     let page = html::render(&content::build(&report));
-    let svgs: Vec<&str> = page.split("<svg").skip(1).collect();
+    let all: Vec<&str> = page.split("<svg").skip(1).collect();
+    // The bar chart of the counterexamples' movement: nice ticks along its x axis (drawn as grid lines),
+    // an axis name, and every row label right-aligned inside the picture's left margin.
+    let bars: Vec<&&str> = all
+        .iter()
+        .filter(|s| s.contains("mean change of each feature"))
+        .collect();
+    assert_eq!(bars.len(), 1, "the counterexample movement chart");
+    let (_, grid) = tick_labels(bars[0]);
+    assert_nice(&grid, "bar chart ticks");
+    assert!(
+        bars[0].contains(">mean |δ| / radius over the counterexamples"),
+        "no x-axis name"
+    );
+    let labels: Vec<&str> = bars[0]
+        .lines()
+        .filter(|l| l.contains("text-anchor=\"end\">temp"))
+        .collect();
+    assert_eq!(labels.len(), 1, "the row label of the long feature name");
+    for line in labels {
+        let at: f64 = line
+            .split("<text x=\"")
+            .nth(1)
+            .and_then(|r| r.split('"').next())
+            .unwrap()
+            .parse()
+            .unwrap();
+        let chars = "temp | *hot* [x](http://e)".chars().count() as f64;
+        assert!(
+            at - chars * 6.4 >= 0.0,
+            "row label runs past the left edge: {line}"
+        );
+    }
+    let svgs: Vec<&&str> = all.iter().filter(|s| s.contains("rotate(-90")).collect();
     assert_eq!(svgs.len(), 2, "sweep plot and histogram");
     for (svg, y_name) in svgs.iter().zip(["robust accuracy", "samples"]) {
         let (x, y) = tick_labels(svg);

@@ -12,6 +12,7 @@ pub mod floor_epsilon;
 pub mod input_record;
 pub mod journal;
 pub mod merge;
+pub mod perturbation;
 pub mod pipeline;
 pub mod progress;
 mod radius;
@@ -251,6 +252,7 @@ pub fn certify_run(
     report.samples = done;
     report.seconds = start.elapsed().as_secs_f64();
     report.recompute();
+    report.counterexample_movement = perturbation::movement(&report, data);
     Ok(report)
 }
 
@@ -347,6 +349,7 @@ fn empty_report(
         stages: Vec::new(),
         sweep: Vec::new(),
         floor_epsilons: None,
+        counterexample_movement: None,
         seconds: 0.0,
         counterexamples: None,
         samples: Vec::new(),

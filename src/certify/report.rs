@@ -594,6 +594,9 @@ pub struct Report {
     /// For a sweep with a floor: the largest swept epsilons that meet it, proven and not refuted.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub floor_epsilons: Option<super::floor_epsilon::FloorEpsilons>,
+    /// How far the counterexamples moved each feature, in units of its radius (absent without any).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub counterexample_movement: Option<super::perturbation::CounterexampleMovement>,
     /// Total wall-clock seconds of the run (sum over merged shards).
     pub seconds: f64,
     /// File name of the counterexample CSV beside the report, if one was written.

@@ -71,6 +71,8 @@ pub struct SheetContent {
     pub sweep_table: Option<Table>,
     /// The sweep plot data.
     pub sweep_plot: Option<SweepPlot>,
+    /// How far the counterexamples moved each feature: the explanation, the table and the chart.
+    pub fragility: Option<(String, Table, super::bars::BarChart)>,
     /// Margin or radius histogram.
     pub histogram: Option<Histogram>,
     /// Per-stage counts and times.
@@ -454,6 +456,10 @@ pub fn build(report: &Report) -> SheetContent {
         classes,
         sweep_table,
         sweep_plot,
+        fragility: report
+            .counterexample_movement
+            .as_ref()
+            .map(super::fragility::fragility),
         histogram,
         stages,
         inputs,

@@ -124,6 +124,14 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&super::svg::sweep_plot(p));
         s.push_str(&table(t));
     }
+    if let Some((text, t, chart)) = &c.fragility {
+        s.push_str(&format!(
+            "<h2>Where the counterexamples moved the inputs</h2>\n<p class=\"small\">{}</p>\n",
+            h(text)
+        ));
+        s.push_str(&super::bars::bar_chart(chart));
+        s.push_str(&table(t));
+    }
     if let Some(hist) = &c.histogram {
         s.push_str(&format!("<h2>{}</h2>\n", h(&hist.title)));
         s.push_str(&super::svg::histogram(hist));

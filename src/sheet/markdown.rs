@@ -70,6 +70,13 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str("\n## Robust accuracy against epsilon\n\n");
         s.push_str(&table(t));
     }
+    if let Some((text, t, _)) = &c.fragility {
+        s.push_str(&format!(
+            "\n## Where the counterexamples moved the inputs\n\n{}\n\n",
+            md(text)
+        ));
+        s.push_str(&table(t));
+    }
     if let Some(h) = &c.histogram {
         s.push_str(&format!(
             "\n## {}\n\n| from | to | samples |\n| --- | --- | --- |\n",

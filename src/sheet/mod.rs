@@ -6,10 +6,12 @@
 //! inert. The sheet only restates the report: it never recomputes or rounds a verdict.
 
 pub mod axis;
+pub mod bars;
 pub mod budget;
 pub mod content;
 pub mod escape;
 pub mod finished;
+pub mod fragility;
 pub mod histogram;
 pub mod html;
 pub mod lineage;
