@@ -8,6 +8,7 @@
 //! terminal progress bar). Soundness rules are those of the stages: nothing is certified without a
 //! sound bound or proof, every counterexample is re-validated, and an exhausted search is `unresolved`.
 
+pub mod compare;
 pub mod floor_epsilon;
 pub mod input_record;
 pub mod journal;

@@ -8,6 +8,7 @@
 pub mod axis;
 pub mod bars;
 pub mod budget;
+pub mod compare_sheet;
 pub mod content;
 pub mod escape;
 pub mod finished;
