@@ -100,7 +100,7 @@ fn compare_tables_two_reports_of_the_same_data_and_refuses_other_data() {
             format!("{:+}", ca as i64 - cb as i64)
         ]
     );
-    // Per class on the sheet: certified before → after, as percentages of the class's samples.
+    // Per class on the sheet: certified before → after, in percent of the class's samples.
     let html = std::fs::read_to_string(out.join("sheet.html")).unwrap();
     let md = std::fs::read_to_string(out.join("sheet.md")).unwrap();
     for (k, name) in ["normal", "misalignment", "bearing-wear", "cavitation"]
@@ -114,7 +114,7 @@ fn compare_tables_two_reports_of_the_same_data_and_refuses_other_data() {
             .filter(|s| s["label"] == k as u64)
             .count() as f64;
         let cell = format!(
-            "{:.2}% → {:.2}%",
+            "{:.2} → {:.2}",
             100.0 * count(&before, "certified", Some(k as u64)) as f64 / n,
             100.0 * count(&after, "certified", Some(k as u64)) as f64 / n
         );

@@ -389,13 +389,13 @@ fn plots_have_nice_ticks_axis_names_and_no_label_past_the_edge() {
     // an axis name, and every row label right-aligned inside the picture's left margin.
     let bars: Vec<&&str> = all
         .iter()
-        .filter(|s| s.contains("mean change of each feature"))
+        .filter(|s| s.contains("mean signed change of each feature"))
         .collect();
     assert_eq!(bars.len(), 1, "the counterexample movement chart");
     let (_, grid) = tick_labels(bars[0]);
     assert_nice(&grid, "bar chart ticks");
     assert!(
-        bars[0].contains(">mean |δ| / radius over the counterexamples"),
+        bars[0].contains(">mean δ / radius over the counterexamples"),
         "no x-axis name"
     );
     let labels: Vec<&str> = bars[0]

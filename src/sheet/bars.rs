@@ -12,7 +12,7 @@ pub struct Series {
     pub name: String,
     /// Fill colour (`#rrggbb`).
     pub colour: &'static str,
-    /// One value per row (≥ 0).
+    /// One value per row (negative values draw leftwards from 0).
     pub values: Vec<f64>,
 }
 
@@ -33,8 +33,8 @@ pub struct BarChart {
     pub suffix: String,
     /// The x axis runs at least to this value (e.g. 1 for fractions).
     pub minimum_high: f64,
-    /// A vertical reference line (value, label), e.g. the radius itself.
-    pub marker: Option<(f64, String)>,
+    /// The x axis starts at most at this value (0, or −1 for signed fractions).
+    pub minimum_low: f64,
 }
 
 const WIDTH: f64 = 640.0;
@@ -59,14 +59,12 @@ pub fn bar_chart(chart: &BarChart) -> String {
     let row_h = chart.series.len() as f64 * BAR + GAP;
     let plot_h = chart.rows.len() as f64 * row_h + GAP;
     let height = TOP + plot_h + BOTTOM;
-    let peak = chart
-        .series
-        .iter()
-        .flat_map(|s| s.values.iter().copied())
-        .chain(chart.marker.iter().map(|m| m.0))
-        .fold(chart.minimum_high, f64::max);
-    let ticks = nice_ticks(0.0, peak.max(1e-12), 5);
-    let x = |v: f64| left + v.max(0.0) / ticks.high() * plot_w;
+    let values = || chart.series.iter().flat_map(|s| s.values.iter().copied());
+    let peak = values().fold(chart.minimum_high, f64::max);
+    let low = values().fold(chart.minimum_low.min(0.0), f64::min);
+    let ticks = nice_ticks(low, peak.max(low + 1e-12), 5);
+    let span = (ticks.high() - ticks.low()).max(1e-300);
+    let x = |v: f64| left + (v - ticks.low()) / span * plot_w;
     let mut s = format!(
         "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 {WIDTH} {height:.0}\" width=\"{WIDTH}\" height=\"{height:.0}\" role=\"img\" aria-label=\"{}\">\n<rect x=\"{left:.1}\" y=\"{TOP}\" width=\"{plot_w:.1}\" height=\"{plot_h:.1}\" fill=\"#fafafa\" stroke=\"#999\"/>\n",
         html(&chart.title)
@@ -103,9 +101,10 @@ pub fn bar_chart(chart: &BarChart) -> String {
         for (k, series) in chart.series.iter().enumerate() {
             let v = series.values.get(r).copied().unwrap_or(0.0);
             s.push_str(&format!(
-                "<rect x=\"{left:.1}\" y=\"{:.1}\" width=\"{:.1}\" height=\"{}\" fill=\"{}\"><title>{}: {}</title></rect>\n",
+                "<rect x=\"{:.1}\" y=\"{:.1}\" width=\"{:.1}\" height=\"{}\" fill=\"{}\"><title>{}: {}</title></rect>\n",
+                x(v.min(0.0)),
                 y0 + k as f64 * BAR,
-                (x(v) - left).max(0.5),
+                (x(v.abs().max(0.0)) - x(0.0)).max(0.5),
                 BAR - 1.0,
                 series.colour,
                 html(&series.name),
@@ -113,14 +112,11 @@ pub fn bar_chart(chart: &BarChart) -> String {
             ));
         }
     }
-    if let Some((v, label)) = &chart.marker {
-        let x0 = x(*v);
+    if ticks.low() < 0.0 {
+        let x0 = x(0.0);
         s.push_str(&format!(
-            "<line x1=\"{x0:.1}\" x2=\"{x0:.1}\" y1=\"{TOP}\" y2=\"{:.1}\" stroke=\"#b00\" stroke-width=\"1.5\" stroke-dasharray=\"2 3\"/><text x=\"{x0:.1}\" y=\"{:.1}\" font-size=\"11\" fill=\"#b00\" text-anchor=\"{}\">{}</text>\n",
-            TOP + plot_h,
-            TOP - 6.0,
-            anchor(x0, label.chars().count(), WIDTH),
-            html(label)
+            "<line x1=\"{x0:.1}\" x2=\"{x0:.1}\" y1=\"{TOP}\" y2=\"{:.1}\" stroke=\"#555\"/>\n",
+            TOP + plot_h
         ));
     }
     // Legend in the top margin, left to right.

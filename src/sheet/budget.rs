@@ -1,13 +1,17 @@
 //! The budget the sheet judged, feature by feature: each feature's name, unit (when the model states
 //! it), tolerance (with per-feature tolerances), its radius in the input's own units at every epsilon of
-//! the run, and the valid input range every perturbed input is clipped to. When every feature has the
-//! same row (a uniform budget and range, no units), one row stands for all of them.
+//! the run, and the valid input range every perturbed input is clipped to. Three or more consecutive
+//! features with the same row share one row (`vel_bin_02 … vel_bin_39 (38 features)`; `all N
+//! features` when every feature has the same row).
 //!
 //! It restates the report; it never widens or narrows a radius or a range (values are shown to 6
 //! significant digits; the report keeps them exactly).
 
 use super::content::Table;
 use crate::certify::Report;
+
+/// Consecutive features with identical rows, at least this many, share one row.
+const RUN: usize = 3;
 
 /// `v` to `digits` significant digits, in the shortest form that reads back as the rounded value.
 pub fn significant(v: f64, digits: usize) -> String {
@@ -73,23 +77,32 @@ pub fn budget_table(report: &Report) -> Table {
         row
     };
     let rest: Vec<Vec<String>> = (0..dim).map(cells).collect();
-    let rows = if dim > 1 && rest.iter().all(|row| *row == rest[0]) {
-        let mut row = vec![format!(
-            "all {dim} features ({} … {})",
-            report.model.features[0],
-            report.model.features[dim - 1]
-        )];
-        row.extend(rest[0].clone());
-        vec![row]
-    } else {
-        report
-            .model
-            .features
-            .iter()
-            .zip(rest)
-            .map(|(name, row)| std::iter::once(name.clone()).chain(row).collect())
-            .collect()
-    };
+    let names = &report.model.features;
+    let mut rows = Vec::new();
+    let mut start = 0;
+    while start < dim {
+        let end = (start..dim)
+            .find(|&k| rest[k] != rest[start])
+            .unwrap_or(dim);
+        let run = end - start;
+        let name = if run == dim && dim > 1 {
+            format!("all {dim} features ({} … {})", names[start], names[end - 1])
+        } else if run >= RUN {
+            format!("{} … {} ({run} features)", names[start], names[end - 1])
+        } else {
+            for k in start..end {
+                rows.push(
+                    std::iter::once(names[k].clone())
+                        .chain(rest[k].clone())
+                        .collect(),
+                );
+            }
+            start = end;
+            continue;
+        };
+        rows.push(std::iter::once(name).chain(rest[start].clone()).collect());
+        start = end;
+    }
     Table { headers, rows }
 }
 

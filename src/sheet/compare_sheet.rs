@@ -79,15 +79,17 @@ pub fn overall_table(c: &Comparison) -> Table {
 /// The per-class table: each figure as `before → after`, and the change in the certified fraction.
 pub fn class_table(c: &Comparison) -> Table {
     let arrow = |b: String, a: String| format!("{b} → {a}");
+    // Percentages without the sign (it is in the header), so the table fits the page.
+    let bare = |v: Option<f64>| v.map_or("–".into(), |v| format!("{:.2}", v * 100.0));
     Table {
         headers: [
             "class",
             "samples",
-            "clean",
-            "certified",
+            "clean %",
+            "certified %",
             "certified change",
-            "empirical robust",
-            "counterexamples",
+            "empirical robust %",
+            "counter-examples",
             "unresolved",
         ]
         .map(String::from)
@@ -100,10 +102,10 @@ pub fn class_table(c: &Comparison) -> Table {
                 vec![
                     name.clone(),
                     b.samples.to_string(),
-                    arrow(percent(b.clean), percent(a.clean)),
-                    arrow(percent(b.certified), percent(a.certified)),
+                    arrow(bare(b.clean), bare(a.clean)),
+                    arrow(bare(b.certified), bare(a.certified)),
                     points(b.certified, a.certified),
-                    arrow(percent(b.empirical), percent(a.empirical)),
+                    arrow(bare(b.empirical), bare(a.empirical)),
                     arrow(b.counterexamples.to_string(), a.counterexamples.to_string()),
                     arrow(b.unresolved.to_string(), a.unresolved.to_string()),
                 ]
@@ -170,7 +172,7 @@ fn chart(c: &Comparison) -> BarChart {
         scale: 100.0,
         suffix: "%".into(),
         minimum_high: 1.0,
-        marker: None,
+        minimum_low: 0.0,
     }
 }
 
@@ -263,7 +265,7 @@ pub fn html(c: &Comparison) -> String {
     s.push_str(&super::html::table(&overall_table(c)));
     s.push_str("<h2>Per class</h2>\n");
     s.push_str(&bar_chart(&chart(c)));
-    s.push_str(&super::html::table(&class_table(c)));
+    s.push_str(&super::html::table_of_class(&class_table(c), "compact"));
     s.push_str("<h2>How the samples moved</h2>\n<p class=\"small\">Samples by status in the first report (rows) and the second (columns); the diagonal kept its status.</p>\n");
     s.push_str(&super::html::table(&transition_table(c)));
     s.push_str("<h2>Inputs and digests</h2>\n<dl>\n");

@@ -14,7 +14,7 @@ fn shown(v: Option<f64>) -> String {
 /// The table and the chart of the counterexamples' movement.
 pub fn fragility(m: &CounterexampleMovement) -> (String, Table, BarChart) {
     let text = format!(
-        "How far the {} counterexamples found moved each feature, in units of the feature's radius (1 = the whole radius). A feature moved far in most counterexamples is one the model is fragile in; the sign of the mean signed change is the direction that hurt.",
+        "How far the {} counterexamples found moved each feature, in units of the feature's radius (1 = the whole radius). Attacks in an L-inf ball tend to take every feature to its radius, so the size alone says little there; the chart shows the mean signed change: a bar near −1 or +1 means the counterexamples needed that feature pushed the same way nearly every time (the model is fragile in that direction), a bar near 0 that they pushed it either way.",
         m.counterexamples
     );
     let table = Table {
@@ -45,22 +45,23 @@ pub fn fragility(m: &CounterexampleMovement) -> (String, Table, BarChart) {
             .collect(),
     };
     let chart = BarChart {
-        title: "mean change of each feature in the counterexamples, in units of its radius".into(),
+        title: "mean signed change of each feature in the counterexamples, in units of its radius"
+            .into(),
         rows: m.features.iter().map(|f| f.feature.clone()).collect(),
         series: vec![Series {
-            name: "mean |δ| / radius".into(),
+            name: "mean δ / radius".into(),
             colour: "#c06000",
             values: m
                 .features
                 .iter()
-                .map(|f| f.mean_relative_change.unwrap_or(0.0))
+                .map(|f| f.mean_signed_change.unwrap_or(0.0))
                 .collect(),
         }],
-        axis: "mean |δ| / radius over the counterexamples (1 = the whole radius)".into(),
+        axis: "mean δ / radius over the counterexamples (−1 always down, +1 always up)".into(),
         scale: 1.0,
         suffix: String::new(),
         minimum_high: 1.0,
-        marker: Some((1.0, "radius".into())),
+        minimum_low: -1.0,
     };
     (text, table, chart)
 }

@@ -13,24 +13,36 @@ h1{font-size:1.5em;margin-bottom:.3em}h2{font-size:1.15em;margin-top:1.6em;borde
 .undecided{background:#fff6e0;border-color:#e0a000;color:#7a5200}.none{background:#eef1f5;border-color:#607080;color:#34404c}\
 .warning{background:#fdecea;border-left:5px solid #c62828;padding:8px 12px;margin:12px 0}\
 table{border-collapse:collapse;margin:8px 0}th,td{border:1px solid #ccc;padding:4px 10px;text-align:left;vertical-align:top}\
-th{background:#f2f2f2}td.num{text-align:right;font-variant-numeric:tabular-nums}\
+th{background:#f2f2f2}td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}table.compact{font-size:.86em}\
 code,pre{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.9em}pre{background:#f6f6f6;padding:10px;overflow-x:auto;white-space:pre-wrap;word-break:break-all}\
 dl{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px}dt{font-weight:600}dd{margin:0;word-break:break-all}.facts dd{word-break:normal}\
 .cautions{background:#f6f6f6;padding:8px 20px;border-radius:6px}.small{color:#555;font-size:.9em}";
 
-/// A cell holding only a number, a percentage, a count list like `289 / 37 / 34`, or `–`.
+/// A cell holding only a number (signed or not), a percentage, a change in percentage points
+/// (`+7.22 pp`), a count list like `289 / 37 / 34`, a change `90.00% → 93.33%`, or `–`.
 fn numeric(cell: &str) -> bool {
-    cell.chars()
+    let unsigned = cell.strip_prefix(['+', '-']).unwrap_or(cell);
+    unsigned
+        .chars()
         .next()
         .is_some_and(|c| c.is_ascii_digit() || c == '–')
-        && cell
+        && unsigned
             .chars()
-            .all(|c| c.is_ascii_digit() || ".,%–-+e /".contains(c))
+            .all(|c| c.is_ascii_digit() || ".,%–-+e /p→".contains(c))
 }
 
 /// A table; cells holding only numbers are right-aligned.
 pub fn table(t: &Table) -> String {
-    let mut s = String::from("<table>\n<tr>");
+    table_of_class(t, "")
+}
+
+/// A table with a CSS class (`compact`: a smaller font for wide tables).
+pub fn table_of_class(t: &Table, class: &str) -> String {
+    let mut s = if class.is_empty() {
+        String::from("<table>\n<tr>")
+    } else {
+        format!("<table class=\"{class}\">\n<tr>")
+    };
     for head in &t.headers {
         s.push_str(&format!("<th>{}</th>", h(head)));
     }
