@@ -20,7 +20,7 @@ fn small_model_json() -> serde_json::Value {
     serde_json::json!({
         "format": "ballast.model/1",
         "name": "small",
-        "input": { "dim": 3, "names": ["a", "b", "c"], "lower": 0.0, "upper": [1.0, 1.0, 5.0] },
+        "input": { "dim": 3, "names": ["a", "b", "c"], "units": ["mm/s", "1", "°C"], "lower": 0.0, "upper": [1.0, 1.0, 5.0] },
         "classes": ["normal", "worn"],
         "layers": [
             { "kind": "normalize", "mean": [0.5, 0.5, 2.0], "std": [0.2, 0.2, 1.0] },
@@ -130,6 +130,9 @@ fn malformed_models_name_the_field() {
     let mut names = base.clone();
     names["input"]["names"] = serde_json::json!(["a", "b"]);
     cases.push((names, "input.names: has 2 names, expected 3"));
+    let mut units = base.clone();
+    units["input"]["units"] = serde_json::json!(["A", "bar"]);
+    cases.push((units, "input.units: has 2 units, expected 3"));
     let mut format = base.clone();
     format["format"] = serde_json::json!("other/1");
     cases.push((format, "format"));

@@ -69,11 +69,19 @@ fn hostile_names_are_escaped_in_html_and_markdown() {
     assert!(page.contains("&lt;script&gt;alert(&quot;x&quot;)&lt;/script&gt; &amp; &#39;co&#39;"));
     assert!(page.contains("pump &lt;b&gt;&quot;v2&quot;&lt;/b&gt; &amp; sons"));
     assert!(page.contains("&lt;here&gt;.json") && !page.contains("<here>"));
-    // Self-contained: no scripts, links, external sources or event handlers.
-    for forbidden in [
-        "<script", "<link", " src=", " href=", "onerror=", "@import", "url(",
-    ] {
+    // Self-contained: no scripts, links, external sources or event handlers in any tag (the escaped
+    // names may show such words as text).
+    for forbidden in ["<script", "<link", "<img", "@import", "url("] {
         assert!(!page.contains(forbidden), "found {forbidden}");
+    }
+    for tag in page
+        .split('<')
+        .skip(1)
+        .map(|t| t.split('>').next().unwrap())
+    {
+        for attribute in [" src=", " href=", "onerror="] {
+            assert!(!tag.contains(attribute), "found {attribute} in <{tag}>");
+        }
     }
     let md = markdown::render(&c);
     assert!(!md.contains("<script"), "raw script tag in the Markdown");
@@ -209,7 +217,9 @@ fn sheet_command_rerenders_the_same_files() {
 
 /// The sheet lists every feature's radius, in the input's units, against the tolerance file it judged:
 /// radius = epsilon × tolerance (the tolerance file's definition in docs/requirement-format.md; doubling
-/// is exact in binary floating point, so the expected text is the shortest form of 2 × tolerance).
+/// is exact in binary floating point, so the expected text is the shortest form of 2 × tolerance), with
+/// the unit and valid range the model file states (read here with serde_json, not through ballast), and
+/// the rest of the requirement: norm, class-change rule and arithmetic.
 #[test]
 fn sheet_lists_each_feature_radius_from_the_tolerance_file() {
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
@@ -228,6 +238,8 @@ fn sheet_lists_each_feature_radius_from_the_tolerance_file() {
             "demo-data/tolerances.json",
             "--eps",
             "2",
+            "--forbid-into",
+            "normal",
             "--no-attack",
             "--sheet",
         ])
@@ -249,14 +261,39 @@ fn sheet_lists_each_feature_radius_from_the_tolerance_file() {
         html.contains("radius at epsilon 2"),
         "no budget table header"
     );
+    let model: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(root.join("models/pump-mlp.json")).unwrap())
+            .unwrap();
+    let input = &model["input"];
+    let names = input["names"].as_array().unwrap();
     for (name, value) in &tolerances {
+        let i = names.iter().position(|n| n == name.as_str()).unwrap();
         let t = value.as_f64().unwrap();
+        // Unit "1" marks a quantity of dimension one (SI convention, common practice); the sheet
+        // spells it out.
+        let unit = match input["units"][i].as_str().unwrap() {
+            "1" => "dimensionless",
+            u => u,
+        };
+        let (lower, upper) = (
+            input["lower"][i].as_f64().unwrap(),
+            input["upper"][i].as_f64().unwrap(),
+        );
         let row = format!(
-            "<td>{name}</td><td class=\"num\">{t}</td><td class=\"num\">{}</td>",
+            "<td>{name}</td><td>{unit}</td><td class=\"num\">{t}</td><td class=\"num\">{}</td><td class=\"num\">{lower}</td><td class=\"num\">{upper}</td>",
             2.0 * t
         );
         assert!(html.contains(&row), "missing row {row}");
     }
+    assert!(html.contains("<dt>Norm</dt><dd>L-inf"), "no norm");
+    assert!(
+        html.contains("<dt>Class changes that count</dt><dd>only a change into normal counts"),
+        "no class-change rule"
+    );
+    assert!(
+        html.contains("<dt>Arithmetic covered</dt><dd>float64"),
+        "no arithmetic"
+    );
 }
 
 /// An interrupted run's sheet: the figures are over the finished samples (counted here from the
@@ -347,7 +384,40 @@ fn plots_have_nice_ticks_axis_names_and_no_label_past_the_edge() {
         s.radius = Some(0.0170121 * (k + 1) as f64);
     }
     let page = html::render(&content::build(&report));
-    let svgs: Vec<&str> = page.split("<svg").skip(1).collect();
+    let all: Vec<&str> = page.split("<svg").skip(1).collect();
+    // The bar chart of the counterexamples' movement: nice ticks along its x axis (drawn as grid lines),
+    // an axis name, and every row label right-aligned inside the picture's left margin.
+    let bars: Vec<&&str> = all
+        .iter()
+        .filter(|s| s.contains("mean signed change of each feature"))
+        .collect();
+    assert_eq!(bars.len(), 1, "the counterexample movement chart");
+    let (_, grid) = tick_labels(bars[0]);
+    assert_nice(&grid, "bar chart ticks");
+    assert!(
+        bars[0].contains(">mean δ / radius over the counterexamples"),
+        "no x-axis name"
+    );
+    let labels: Vec<&str> = bars[0]
+        .lines()
+        .filter(|l| l.contains("text-anchor=\"end\">temp"))
+        .collect();
+    assert_eq!(labels.len(), 1, "the row label of the long feature name");
+    for line in labels {
+        let at: f64 = line
+            .split("<text x=\"")
+            .nth(1)
+            .and_then(|r| r.split('"').next())
+            .unwrap()
+            .parse()
+            .unwrap();
+        let chars = "temp | *hot* [x](http://e)".chars().count() as f64;
+        assert!(
+            at - chars * 6.4 >= 0.0,
+            "row label runs past the left edge: {line}"
+        );
+    }
+    let svgs: Vec<&&str> = all.iter().filter(|s| s.contains("rotate(-90")).collect();
     assert_eq!(svgs.len(), 2, "sweep plot and histogram");
     for (svg, y_name) in svgs.iter().zip(["robust accuracy", "samples"]) {
         let (x, y) = tick_labels(svg);

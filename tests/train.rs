@@ -551,6 +551,7 @@ mod primal_dual {
             lower: vec![-3.0; 2],
             upper: vec![3.0; 2],
             shape: None,
+            units: None,
         };
         new_mlp(&input, 3, &[8], data, 4).expect("model")
     }

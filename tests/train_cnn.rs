@@ -321,6 +321,7 @@ mod retraining {
             lower: vec![0.0; LENGTH],
             upper: vec![1.0; LENGTH],
             shape: Some(vec![1, LENGTH]),
+            units: None,
         };
         let block = |pool| ConvBlock {
             channels: 4,

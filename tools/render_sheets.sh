@@ -1,20 +1,24 @@
 #!/bin/sh
 # Renders every kind of sheet ballast writes and takes a screenshot of each with headless Chromium, so a
 # person can look at them before a release: the demo's sheets before and after retraining (the "after"
-# sheet shows the model's lineage), a sweep with a floor (plot, floor epsilons), an interrupted run, a
-# run with --out-of-range clip, and the retraining plots. Run from the project root:
+# sheet shows the model's lineage), the comparison of the two (ballast compare), a sweep with a floor
+# (plot, floor epsilons), an interrupted run, a run with --out-of-range clip, and the retraining plots.
+# Run from the project root:
 #
 #   sh tools/render_sheets.sh [OUT]          # default OUT: target/sheets
 #
 # Needs a release build (cargo build --release) and, for the screenshots, `chromium` on the PATH
-# (Debian: apt-get install chromium). Without Chromium it still writes the sheets.
+# (Debian: apt-get install chromium). Without Chromium it still writes the sheets. Chromium runs headless
+# with a fresh profile and no background network traffic (the sheets fetch nothing).
 set -eu
 OUT=${1:-target/sheets}
 B=target/release/ballast
 mkdir -p "$OUT"
-rm -rf "$OUT/demo" "$OUT/sweep" "$OUT/interrupted" "$OUT/clip" "$OUT/retrained.retrain" "$OUT"/*.png
+rm -rf "$OUT/demo" "$OUT/compare" "$OUT/sweep" "$OUT/interrupted" "$OUT/clip" "$OUT/retrained.retrain" "$OUT"/*.png
 
 $B demo --out "$OUT/demo" > "$OUT/demo.log"
+# Before against after on the same acceptance set.
+$B compare "$OUT/demo/before/report.json" "$OUT/demo/after/report.json" --out "$OUT/compare" > "$OUT/compare.log" || true
 # A sweep with a floor, radii for the histogram.
 $B certify --model models/pump-mlp.json --data demo-data/acceptance.csv --requirement demo-data/requirement.toml \
     --eps 0.5,1,1.5,2 --radius --sheet "$OUT/sweep" > /dev/null || true
@@ -37,13 +41,16 @@ $B retrain --model models/pump-mlp.json --train demo-data/train.csv --acceptance
     --requirement demo-data/requirement.toml --epochs 20 --max-rounds 2 --out "$OUT/retrained.json" > /dev/null 2>&1 || true
 
 if command -v chromium > /dev/null; then
-    shot() { chromium --headless --no-sandbox --disable-gpu --hide-scrollbars --window-size="$3" \
-        --screenshot="$2" "file://$(realpath "$1")" > /dev/null 2>&1; }
-    for kind in demo/before demo/after sweep interrupted clip; do
-        shot "$OUT/$kind/sheet.html" "$OUT/$(echo $kind | tr / -).png" 1000,3200
+    PROFILE=$(mktemp -d)
+    shot() { chromium --headless --no-sandbox --disable-gpu --disable-background-networking \
+        --disable-component-update --disable-sync --no-first-run --user-data-dir="$PROFILE" \
+        --hide-scrollbars --window-size="$3" --screenshot="$2" "file://$(realpath "$1")" > /dev/null 2>&1; }
+    for kind in demo/before demo/after demo/cnn-before compare sweep interrupted clip; do
+        shot "$OUT/$kind/sheet.html" "$OUT/$(echo $kind | tr / -).png" 1000,5200
     done
     shot "$OUT/retrained.retrain/accuracy.svg" "$OUT/retrain-accuracy.png" 660,380
     shot "$OUT/retrained.retrain/loss_and_multiplier.svg" "$OUT/retrain-losses.png" 660,380
+    rm -rf "$PROFILE"
     echo "screenshots in $OUT/*.png"
 else
     echo "chromium not found: sheets written to $OUT, no screenshots"

@@ -104,5 +104,10 @@ pub fn merge(reports: &[Report]) -> Result<Report, CertifyError> {
     merged.counterexamples = None;
     merged.date = super::report::utc_now();
     merged.recompute();
+    let parts: Vec<_> = reports
+        .iter()
+        .filter_map(|r| r.counterexample_movement.as_ref())
+        .collect();
+    merged.counterexample_movement = super::perturbation::combine(&parts);
     Ok(merged)
 }

@@ -8,10 +8,13 @@
 //! terminal progress bar). Soundness rules are those of the stages: nothing is certified without a
 //! sound bound or proof, every counterexample is re-validated, and an exhausted search is `unresolved`.
 
+pub mod compare;
 pub mod floor_epsilon;
+pub mod input_record;
 pub mod journal;
 pub mod lines;
 pub mod merge;
+pub mod perturbation;
 pub mod pipeline;
 pub mod progress;
 mod radius;
@@ -251,6 +254,7 @@ pub fn certify_run(
     report.samples = done;
     report.seconds = start.elapsed().as_secs_f64();
     report.recompute();
+    report.counterexample_movement = perturbation::movement(&report, data);
     Ok(report)
 }
 
@@ -316,6 +320,7 @@ fn empty_report(
             parameters: model.parameter_count(),
             arithmetic: Some(model.arithmetic.name().to_string()),
             lineage: crate::model::lineage::Lineage::of(model),
+            input: Some(input_record::InputRecord::of(model)),
         },
         data: DataInfo {
             path: sources.data_path.clone(),
@@ -346,6 +351,7 @@ fn empty_report(
         stages: Vec::new(),
         sweep: Vec::new(),
         floor_epsilons: None,
+        counterexample_movement: None,
         seconds: 0.0,
         counterexamples: None,
         requirements: Vec::new(),

@@ -388,6 +388,9 @@ pub struct ModelInfo {
     /// (copied from the model's `provenance.retrain.lineage`).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub lineage: Option<crate::model::lineage::Lineage>,
+    /// The valid input range and feature units (absent in reports of earlier versions).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub input: Option<super::input_record::InputRecord>,
 }
 
 /// The acceptance set the report is about.
@@ -593,6 +596,9 @@ pub struct Report {
     /// For a sweep with a floor: the largest swept epsilons that meet it, proven and not refuted.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub floor_epsilons: Option<super::floor_epsilon::FloorEpsilons>,
+    /// How far the counterexamples moved each feature, in units of its radius (absent without any).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub counterexample_movement: Option<super::perturbation::CounterexampleMovement>,
     /// Total wall-clock seconds of the run (sum over merged shards).
     pub seconds: f64,
     /// File name of the counterexample CSV beside the report, if one was written.

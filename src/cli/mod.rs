@@ -4,6 +4,7 @@
 pub mod attack;
 pub mod certify;
 pub mod common;
+pub mod compare;
 pub mod demo;
 pub mod evaluate;
 pub mod export;
@@ -74,6 +75,8 @@ pub enum Command {
     Retrain(Box<retrain::Args>),
     /// Render Markdown and HTML from a saved report.
     Sheet(sheet::Args),
+    /// Before/after table of two reports of the same data.
+    Compare(compare::Args),
     /// Combine the reports of `--shard K/N` runs into one report.
     Merge(merge::Args),
     /// Show a model's layers, parameter count, input range and classes.
@@ -95,6 +98,7 @@ pub fn run(cli: Cli) -> anyhow::Result<Outcome> {
         Command::Attack(a) => attack::run(a),
         Command::Retrain(a) => retrain::run(*a),
         Command::Sheet(a) => sheet::run(a),
+        Command::Compare(a) => compare::run(a),
         Command::Merge(a) => merge::run(a),
         Command::Inspect(a) => inspect::run(a),
         Command::Evaluate(a) => evaluate::run(a),

@@ -68,6 +68,12 @@ pub fn input_spec() -> InputSpec {
         lower: scenario::lower_bounds(),
         upper: scenario::upper_bounds(),
         shape: None,
+        units: Some(
+            scenario::FEATURES
+                .iter()
+                .map(|f| f.unit.to_string())
+                .collect(),
+        ),
     }
 }
 
@@ -79,6 +85,7 @@ pub fn spectrum_input_spec() -> InputSpec {
         lower: vec![0.0; spectrum::BINS],
         upper: vec![spectrum::UPPER; spectrum::BINS],
         shape: Some(vec![1, spectrum::BINS]),
+        units: Some(vec![spectrum::UNIT.to_string(); spectrum::BINS]),
     }
 }
 

@@ -32,6 +32,8 @@ pub struct InputSpec {
     pub upper: Vec<f64>,
     /// The feature shape (`input.shape`: `[C, L]` or `[C, H, W]`, flattened row-major), when stated.
     pub shape: Option<Vec<usize>>,
+    /// Optional physical unit of each feature (`input.units`, e.g. `mm/s`), shown on the sheet.
+    pub units: Option<Vec<String>>,
 }
 
 /// One layer of the layout, validated.
@@ -123,6 +125,8 @@ struct RawInput {
     upper: Option<RawRange>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     shape: Option<Vec<usize>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    units: Option<Vec<String>>,
 }
 
 #[derive(Deserialize, Serialize, Clone)]
@@ -227,6 +231,14 @@ impl Model {
                         format!("\"{n}\" appears twice"),
                     ));
                 }
+            }
+        }
+        if let Some(units) = &raw.input.units {
+            if units.len() != dim {
+                return Err(invalid(
+                    "input.units",
+                    format!("has {} units, expected {dim} (input.dim)", units.len()),
+                ));
             }
         }
         if raw.layers.is_empty() {
@@ -365,6 +377,7 @@ impl Model {
                 lower,
                 upper,
                 shape: raw.input.shape,
+                units: raw.input.units,
             },
             classes: raw.classes,
             layers,
@@ -526,6 +539,7 @@ impl Model {
             lower: compact_range(&self.input.lower),
             upper: compact_range(&self.input.upper),
             shape: self.input.shape.clone(),
+            units: self.input.units.clone(),
         };
         let mut object = serde_json::Map::new();
         object.insert("format".into(), Value::from(MODEL_FORMAT));

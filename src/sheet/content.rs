@@ -55,8 +55,10 @@ pub struct SheetContent {
     pub incomplete: Option<String>,
     /// The requirement in words.
     pub requirement: String,
-    /// Each feature's tolerance and radius in the input's units (per-feature budgets only).
-    pub budget: Option<Table>,
+    /// The norm, range, class-change rule, release rule and arithmetic, labelled.
+    pub requirement_facts: Vec<(String, String)>,
+    /// Each feature's unit, tolerance, radius at every epsilon and valid range.
+    pub budget: Table,
     /// One row per line of a requirement list: requirement, measured, floor, verdict.
     pub requirement_lines: Option<Table>,
     /// For a model retrained by ballast: its lineage and which data decided what.
@@ -71,6 +73,8 @@ pub struct SheetContent {
     pub sweep_table: Option<Table>,
     /// The sweep plot data.
     pub sweep_plot: Option<SweepPlot>,
+    /// How far the counterexamples moved each feature: the explanation, the table and the chart.
+    pub fragility: Option<(String, Table, super::bars::BarChart)>,
     /// Margin or radius histogram.
     pub histogram: Option<Histogram>,
     /// Per-stage counts and times.
@@ -368,15 +372,6 @@ pub fn build(report: &Report) -> SheetContent {
     let mut inputs = vec![
         ("Model".to_string(), report.model.path.clone()),
         ("Model SHA-256".to_string(), report.model.sha256.clone()),
-        (
-            "Arithmetic covered".to_string(),
-            match &report.model.arithmetic {
-                Some(a) => format!(
-                    "{a}: the class is kept when the model is evaluated in {a}, in any order of summation"
-                ),
-                None => "exact arithmetic up to a fixed tolerance (report of an earlier version)".into(),
-            },
-        ),
         ("Data".to_string(), report.data.path.clone()),
         ("Data SHA-256".to_string(), report.data.sha256.clone()),
         (
@@ -466,6 +461,7 @@ pub fn build(report: &Report) -> SheetContent {
         rule,
         incomplete,
         requirement: report.requirement.description.clone(),
+        requirement_facts: super::requirement_facts::requirement_facts(report),
         budget: super::budget::budget_table(report),
         requirement_lines: super::requirement_lines::table(report),
         lineage,
@@ -474,6 +470,10 @@ pub fn build(report: &Report) -> SheetContent {
         classes,
         sweep_table,
         sweep_plot,
+        fragility: report
+            .counterexample_movement
+            .as_ref()
+            .map(super::fragility::fragility),
         histogram,
         stages,
         inputs,

@@ -13,23 +13,36 @@ h1{font-size:1.5em;margin-bottom:.3em}h2{font-size:1.15em;margin-top:1.6em;borde
 .undecided{background:#fff6e0;border-color:#e0a000;color:#7a5200}.none{background:#eef1f5;border-color:#607080;color:#34404c}\
 .warning{background:#fdecea;border-left:5px solid #c62828;padding:8px 12px;margin:12px 0}\
 table{border-collapse:collapse;margin:8px 0}th,td{border:1px solid #ccc;padding:4px 10px;text-align:left;vertical-align:top}\
-th{background:#f2f2f2}td.num{text-align:right;font-variant-numeric:tabular-nums}\
+th{background:#f2f2f2}td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}table.compact{font-size:.86em}\
 code,pre{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.9em}pre{background:#f6f6f6;padding:10px;overflow-x:auto;white-space:pre-wrap;word-break:break-all}\
-dl{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px}dt{font-weight:600}dd{margin:0;word-break:break-all}\
+dl{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px}dt{font-weight:600}dd{margin:0;word-break:break-all}.facts dd{word-break:normal}\
 .cautions{background:#f6f6f6;padding:8px 20px;border-radius:6px}.small{color:#555;font-size:.9em}";
 
-/// A cell holding only a number, a percentage, a count list like `289 / 37 / 34`, or `–`.
+/// A cell holding only a number (signed or not), a percentage, a change in percentage points
+/// (`+7.22 pp`), a count list like `289 / 37 / 34`, a change `90.00% → 93.33%`, or `–`.
 fn numeric(cell: &str) -> bool {
-    cell.chars()
+    let unsigned = cell.strip_prefix(['+', '-']).unwrap_or(cell);
+    unsigned
+        .chars()
         .next()
         .is_some_and(|c| c.is_ascii_digit() || c == '–')
-        && cell
+        && unsigned
             .chars()
-            .all(|c| c.is_ascii_digit() || ".,%–-+e /".contains(c))
+            .all(|c| c.is_ascii_digit() || ".,%–-+e /p→".contains(c))
 }
 
-fn table(t: &Table) -> String {
-    let mut s = String::from("<table>\n<tr>");
+/// A table; cells holding only numbers are right-aligned.
+pub fn table(t: &Table) -> String {
+    table_of_class(t, "")
+}
+
+/// A table with a CSS class (`compact`: a smaller font for wide tables).
+pub fn table_of_class(t: &Table, class: &str) -> String {
+    let mut s = if class.is_empty() {
+        String::from("<table>\n<tr>")
+    } else {
+        format!("<table class=\"{class}\">\n<tr>")
+    };
     for head in &t.headers {
         s.push_str(&format!("<th>{}</th>", h(head)));
     }
@@ -49,6 +62,25 @@ fn table(t: &Table) -> String {
     s
 }
 
+/// The document head (the sheet's style, a policy forbidding any fetch) and the title as heading.
+pub fn head(title: &str) -> String {
+    format!(
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; style-src 'unsafe-inline'; img-src data:\">\n<title>{}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n<h1>{}</h1>\n",
+        h(title),
+        h(title)
+    )
+}
+
+/// A definition list of labelled texts.
+fn definitions(items: &[(String, String)]) -> String {
+    let mut s = String::from("<dl class=\"facts\">\n");
+    for (k, v) in items {
+        s.push_str(&format!("<dt>{}</dt><dd>{}</dd>\n", h(k), h(v)));
+    }
+    s.push_str("</dl>\n");
+    s
+}
+
 /// Renders the sheet as one self-contained HTML document.
 pub fn render(c: &SheetContent) -> String {
     let class = match c.verdict {
@@ -57,11 +89,7 @@ pub fn render(c: &SheetContent) -> String {
         Verdict::Undecided => "undecided",
         Verdict::None => "none",
     };
-    let mut s = format!(
-        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; style-src 'unsafe-inline'; img-src data:\">\n<title>{}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n<h1>{}</h1>\n",
-        h(&c.title),
-        h(&c.title)
-    );
+    let mut s = head(&c.title);
     s.push_str(&format!(
         "<div class=\"verdict {class}\"><div class=\"word\">{}</div><div>{}</div><div class=\"small\">{}.</div></div>\n",
         h(&c.headline),
@@ -78,10 +106,9 @@ pub fn render(c: &SheetContent) -> String {
         "<h2>Requirement</h2>\n<p>{}</p>\n",
         h(&c.requirement)
     ));
-    if let Some(t) = &c.budget {
-        s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
-        s.push_str(&table(t));
-    }
+    s.push_str(&definitions(&c.requirement_facts));
+    s.push_str("<p>Radius of each feature, in the input's own units:</p>\n");
+    s.push_str(&table(&c.budget));
     if let Some(t) = &c.requirement_lines {
         s.push_str("<p>Requirements (every one must pass):</p>\n");
         s.push_str(&table(t));
@@ -111,6 +138,14 @@ pub fn render(c: &SheetContent) -> String {
     if let (Some(t), Some(p)) = (&c.sweep_table, &c.sweep_plot) {
         s.push_str("<h2>Robust accuracy against epsilon</h2>\n<p class=\"small\">The true robust accuracy lies in the shaded band between the certified lower bound and the empirical upper bound.</p>\n");
         s.push_str(&super::svg::sweep_plot(p));
+        s.push_str(&table(t));
+    }
+    if let Some((text, t, chart)) = &c.fragility {
+        s.push_str(&format!(
+            "<h2>Where the counterexamples moved the inputs</h2>\n<p class=\"small\">{}</p>\n",
+            h(text)
+        ));
+        s.push_str(&super::bars::bar_chart(chart));
         s.push_str(&table(t));
     }
     if let Some(hist) = &c.histogram {

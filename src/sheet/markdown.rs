@@ -39,11 +39,12 @@ pub fn render(c: &SheetContent) -> String {
         s.push_str(&format!("> **Warning:** {}\n\n", md(w)));
     }
     s.push_str(&format!("## Requirement\n\n{}\n\n", md(&c.requirement)));
-    if let Some(t) = &c.budget {
-        s.push_str("Radius of each feature, in the input's own units:\n\n");
-        s.push_str(&table(t));
-        s.push('\n');
+    for (k, v) in &c.requirement_facts {
+        s.push_str(&format!("- **{}**: {}\n", md(k), md(v)));
     }
+    s.push_str("\nRadius of each feature, in the input's own units:\n\n");
+    s.push_str(&table(&c.budget));
+    s.push('\n');
     if let Some(t) = &c.requirement_lines {
         s.push_str("Requirements (every one must pass):\n\n");
         s.push_str(&table(t));
@@ -72,6 +73,13 @@ pub fn render(c: &SheetContent) -> String {
     s.push_str(&table(&c.classes));
     if let Some(t) = &c.sweep_table {
         s.push_str("\n## Robust accuracy against epsilon\n\n");
+        s.push_str(&table(t));
+    }
+    if let Some((text, t, _)) = &c.fragility {
+        s.push_str(&format!(
+            "\n## Where the counterexamples moved the inputs\n\n{}\n\n",
+            md(text)
+        ));
         s.push_str(&table(t));
     }
     if let Some(h) = &c.histogram {

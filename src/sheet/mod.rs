@@ -6,15 +6,19 @@
 //! inert. The sheet only restates the report: it never recomputes or rounds a verdict.
 
 pub mod axis;
+pub mod bars;
 pub mod budget;
+pub mod compare_sheet;
 pub mod content;
 pub mod escape;
 pub mod finished;
+pub mod fragility;
 pub mod histogram;
 pub mod html;
 pub mod lineage;
 pub mod markdown;
 pub mod range_policy;
+pub mod requirement_facts;
 pub mod requirement_lines;
 pub mod retrain_plots;
 pub mod svg;

@@ -203,6 +203,7 @@ mod tests {
             lower: vec![0.0; channels * length],
             upper: vec![1.0; channels * length],
             shape: Some(vec![channels, length]),
+            units: None,
         }
     }
 

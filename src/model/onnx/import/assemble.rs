@@ -205,6 +205,7 @@ pub(super) fn assemble(
             names,
             lower,
             upper,
+            units: None,
         },
         classes,
         layers,
