@@ -109,25 +109,28 @@ class Model:
         return cls(_native.Model.from_json(text))
 
     @classmethod
-    def from_sklearn(cls, estimator: Any, *, name: str | None = None, input_range: Any = None) -> "Model":
+    def from_sklearn(cls, estimator: Any, *, name: str | None = None, feature_names: Sequence[str] | None = None,
+                     input_range: Any = None) -> "Model":
         """Converts a fitted ``MLPClassifier`` (ReLU), ``LogisticRegression``, or a ``Pipeline`` of a
         ``StandardScaler``/``MinMaxScaler`` and one of those. The scaler becomes a ``normalize`` layer.
-        Class names are ``str(c)`` of ``estimator.classes_``; ``predict`` returns indices into them."""
+        Class names are ``str(c)`` of ``estimator.classes_``; ``predict`` returns indices into them.
+        Feature names (which tolerance and requirement files refer to): ``feature_names``, else the
+        estimator's ``feature_names_in_`` (fitted on a DataFrame), else ``x0``, ``x1``, …"""
         from ._sklearn import layout_from_sklearn
 
-        model = cls.from_json(layout_from_sklearn(estimator, name))
+        model = cls.from_json(layout_from_sklearn(estimator, name, feature_names))
         if input_range is not None:
             model.input_range = input_range
         return model
 
     @classmethod
     def from_torch(cls, module: Any, input_shape: Sequence[int], *, name: str | None = None,
-                   input_range: Any = None) -> "Model":
+                   feature_names: Sequence[str] | None = None, input_range: Any = None) -> "Model":
         """Converts a ``torch.nn.Sequential`` of ``Linear``, ``ReLU``, ``Flatten`` (first), ``Identity``
         and ``Dropout`` layers, reading the weights directly; ``input_shape`` is one sample's shape."""
         from ._torch import layout_from_torch
 
-        model = cls.from_json(layout_from_torch(module, input_shape, name))
+        model = cls.from_json(layout_from_torch(module, input_shape, name, feature_names))
         if input_range is not None:
             model.input_range = input_range
         return model

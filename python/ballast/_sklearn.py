@@ -105,8 +105,9 @@ def _classifier_layers(estimator: Any) -> tuple[list[dict], int, list]:
     )
 
 
-def layout_from_sklearn(estimator: Any, name: str | None = None) -> str:
-    """The ``ballast.model/1`` JSON text of a fitted estimator or pipeline (see the module docstring)."""
+def layout_from_sklearn(estimator: Any, name: str | None = None, feature_names: Any = None) -> str:
+    """The ``ballast.model/1`` JSON text of a fitted estimator or pipeline (see the module docstring).
+    Feature names: ``feature_names``, else ``feature_names_in_`` (set when fitted on a DataFrame)."""
     steps = [estimator]
     if _kind(estimator) == "Pipeline":
         steps = [step for _, step in estimator.steps if step is not None and step != "passthrough"]
@@ -124,8 +125,10 @@ def layout_from_sklearn(estimator: Any, name: str | None = None) -> str:
     if name is not None:
         layout["name"] = name
     layout["input"] = {"dim": dim}
-    names = getattr(estimator, "feature_names_in_", None)
+    names = feature_names if feature_names is not None else getattr(estimator, "feature_names_in_", None)
     if names is not None:
+        if len(names) != dim:
+            raise _unsupported(f"feature_names: {len(names)} names, expected {dim} (one per input)")
         layout["input"]["names"] = [str(n) for n in names]
     layout["classes"] = labels
     layout["layers"] = layers

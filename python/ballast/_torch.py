@@ -44,7 +44,8 @@ def _modules(module: Any) -> list:
     return list(module)
 
 
-def layout_from_torch(module: Any, input_shape: Sequence[int], name: str | None = None) -> str:
+def layout_from_torch(module: Any, input_shape: Sequence[int], name: str | None = None,
+                      feature_names: Any = None) -> str:
     """The ``ballast.model/1`` JSON text of an ``nn.Sequential`` (see the module docstring)."""
     try:  # optional: confirm it is a torch module when torch is installed
         import torch  # noqa: F401
@@ -96,6 +97,10 @@ def layout_from_torch(module: Any, input_shape: Sequence[int], name: str | None 
     if name is not None:
         layout["name"] = name
     layout["input"] = {"dim": dim}
+    if feature_names is not None:
+        if len(feature_names) != dim:
+            raise _native.InputError(f"feature_names: {len(feature_names)} names, expected {dim} (one per input)")
+        layout["input"]["names"] = [str(n) for n in feature_names]
     layout["layers"] = layers
     layout["provenance"] = {"converted_from": "torch.nn.Sequential", "input_shape": shape}
     return json.dumps(layout)

@@ -10,13 +10,13 @@ use pyo3::exceptions::{PyOSError, PyValueError};
 use pyo3::PyErr;
 
 create_exception!(
-    _native,
+    ballast,
     InputError,
     PyValueError,
     "Bad input or a bad setting (exit code 2 on the command line); the message is the command line's one line."
 );
 create_exception!(
-    _native,
+    ballast,
     FileError,
     PyOSError,
     "A file could not be read or written (exit code 2 on the command line); the message names the file."

@@ -137,3 +137,21 @@ def test_class_names_come_from_classes_():
     # Labels given by name are mapped to indices (certify accepts names as the CSV reader does).
     report = ballast.certify(model, X[:10], names[:10], eps=0.0)
     assert np.array_equal(report.label, [list(clf.classes_).index(n) for n in names[:10]])
+
+
+def test_feature_names_from_a_dataframe_or_given():
+    pd = pytest.importorskip("pandas")
+    X, y = load_iris(return_X_y=True, as_frame=False)
+    names = ["sepal_length", "sepal_width", "petal_length", "petal_width"]
+    clf = fitted(LogisticRegression(max_iter=1000), pd.DataFrame(X, columns=names), y)
+    assert ballast.Model.from_sklearn(clf).feature_names == names
+    plain = fitted(LogisticRegression(max_iter=1000), X, y)
+    assert ballast.Model.from_sklearn(plain).feature_names == ["x0", "x1", "x2", "x3"]
+    named = ballast.Model.from_sklearn(plain, feature_names=names)
+    # Tolerances keyed by name reach the right features: a zero budget on all but the last.
+    by_name = ballast.certify(named, X, y, eps=0.3, tolerances={"sepal_length": 0, "sepal_width": 0,
+                                                                "petal_length": 0, "petal_width": 1})
+    by_order = ballast.certify(named, X, y, eps=0.3, tolerances=[0, 0, 0, 1])
+    assert list(by_name.status) == list(by_order.status)
+    with pytest.raises(ballast.InputError, match="^feature_names: 3 names, expected 4"):
+        ballast.Model.from_sklearn(plain, feature_names=names[:3])
