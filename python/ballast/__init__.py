@@ -509,7 +509,7 @@ def _model(model: Any) -> Model:
     return model
 
 
-def certify(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str = "linf",
+def certify(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str | None = None,
             tolerances: Any = None, floor: float | None = None, budget: float = 0.0,
             forbid_into: Any = None, forbid_from: Any = None, confidence: float | None = None,
             min_clean_accuracy: float | None = None, requirement: PathLike | None = None,
@@ -520,7 +520,7 @@ def certify(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str = "linf"
 
     ``eps``: the budget in raw input units (a number; a list is a sweep), or the scale of
     ``tolerances`` (per-feature radii: an array, a mapping feature → radius, or a tolerance file).
-    ``norm``: ``linf`` or ``l2``. ``floor``: required robust fraction. ``budget``: seconds of branch and
+    ``norm``: ``linf`` (the default) or ``l2``. ``floor``: required robust fraction. ``budget``: seconds of branch and
     bound per sample (0 = bounds only). ``forbid_into``/``forbid_from``: only changes into (from) these
     classes count. ``confidence``: judge the floor by the Clopper–Pearson lower bound at this level.
     ``requirement``: a requirement file whose values the keywords override. ``out_of_range``:
@@ -536,7 +536,7 @@ def certify(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str = "linf"
                                   radius=bool(radius), attack=bool(attack), out_of_range=out_of_range))
 
 
-def attack(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str = "linf", tolerances: Any = None,
+def attack(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str | None = None, tolerances: Any = None,
            forbid_into: Any = None, forbid_from: Any = None, steps: int = 100, restarts: int = 5,
            seed: int = 0, precision: str = "single", out_of_range: str = "error",
            requirement: PathLike | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -571,7 +571,7 @@ _RETRAIN_DEFAULTS: dict = {
 
 def retrain(model: Model, X: Any, y: Any, *, eps: Any = None, floor: float | None = None,
             X_val: Any = None, y_val: Any = None, X_acceptance: Any = None, y_acceptance: Any = None,
-            norm: str = "linf", tolerances: Any = None, forbid_into: Any = None, forbid_from: Any = None,
+            norm: str | None = None, tolerances: Any = None, forbid_into: Any = None, forbid_from: Any = None,
             confidence: float | None = None, requirement: PathLike | None = None,
             out_of_range: str = "error", **settings: Any) -> tuple[Model, RetrainResult]:
     """Constrained (primal-dual) retraining toward the certified floor, as ``ballast retrain`` does;

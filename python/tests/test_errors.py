@@ -182,3 +182,15 @@ def test_unknown_retrain_setting(model, rows):
         ballast.retrain(model, X, y, eps=0.1, floor=0.5, learning_rate=-1.0)
     with pytest.raises(ballast.InputError, match="^floor: retraining needs a floor"):
         ballast.retrain(model, X, y, eps=0.1)
+
+
+def test_requirement_file_values_apply_unless_a_keyword_overrides_them(tmp_path, model, rows):
+    X, y = rows
+    path = tmp_path / "rule.toml"
+    path.write_text('norm = "l2"\nepsilon = 1.5\nfloor = 0.5\n')
+    from_file = ballast.certify(model, X, y, requirement=path)
+    assert from_file.to_json_string().count('"norm": "l2"') >= 1
+    explicit = ballast.certify(model, X, y, eps=1.5, norm="l2", floor=0.5)
+    assert list(from_file.status) == list(explicit.status)
+    overridden = ballast.certify(model, X, y, requirement=path, floor=0.95)
+    assert overridden.to_json_string().count('"floor": 0.95') >= 1
