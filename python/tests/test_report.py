@@ -112,3 +112,38 @@ def test_ctrl_c_raises_keyboard_interrupt_and_writes_nothing(tmp_path, which):
     assert "finished" not in stdout
     assert "panicked" not in stderr
     assert not out.exists()
+
+
+def test_long_runs_release_the_interpreter_lock():
+    """With a switch interval of 100 s, a thread holding the interpreter lock keeps it until it
+    blocks or ends. The main thread sleeps (releasing the lock) while a worker calls certify; when the
+    main thread wakes up, the call must still be running — possible only if certify released the lock."""
+    import json as json_module
+    import threading
+
+    rng = np.random.default_rng(0)
+    layers = [{"kind": "dense", "weights": rng.normal(size=(32, 64)).tolist(), "bias": [0.0] * 32},
+              {"kind": "relu"},
+              {"kind": "dense", "weights": rng.normal(size=(10, 32)).tolist(), "bias": [0.0] * 10}]
+    model = ballast.Model.from_json(json_module.dumps(
+        {"format": "ballast.model/1", "input": {"dim": 64, "lower": 0, "upper": 1}, "layers": layers}))
+    X = rng.uniform(size=(20000, 64))
+    y = model.predict(X)
+    finished = threading.Event()
+
+    def work():
+        ballast.certify(model, X, y, eps=0.01)
+        finished.set()
+
+    previous = sys.getswitchinterval()
+    sys.setswitchinterval(100.0)
+    try:
+        worker = threading.Thread(target=work)
+        worker.start()
+        time.sleep(0.5)
+        running_while_main_ran = not finished.is_set()
+    finally:
+        sys.setswitchinterval(previous)
+        worker.join()
+    assert running_while_main_ran
+    assert finished.is_set()
