@@ -5,7 +5,8 @@ This is the ballast library itself (a compiled extension), not a wrapper around 
 same checks, the same pipeline, the same report, the same one-line error messages (keyword names
 where the command line names its flags). See docs/python.md.
 
-Conventions: ``X`` is samples × features (float64, raw input units); ``y`` holds class indices
+Conventions: ``X`` is samples × features (float64, raw input units; a DataFrame's columns are
+matched by name when the model names its inputs, as CSV columns are); ``y`` holds class indices
 (integers) or class names (strings matching ``model.classes``). Sample indices in results are row
 numbers of ``X``.
 
@@ -42,7 +43,18 @@ __version__: str = _native.__version__
 PathLike = Union[str, "os.PathLike[str]"]
 
 
-def _features(X: Any, name: str = "X") -> np.ndarray:
+def _features(X: Any, name: str = "X", model: "Model | None" = None) -> np.ndarray:
+    if model is not None and hasattr(X, "columns") and model._native.names_inputs:
+        # A DataFrame for a model that names its inputs: columns matched by name, as the CSV reader does.
+        columns = [str(c) for c in X.columns]
+        names = model.feature_names
+        for n in names:
+            if n not in columns:
+                raise InputError(f"{name}: missing feature column \"{n}\"")
+        for c in columns:
+            if c not in names:
+                raise InputError(f"{name}: column \"{c}\" is not an input of the model")
+        X = X[names]
     try:
         array = np.asarray(X, dtype=np.float64)
     except (TypeError, ValueError) as e:
@@ -146,11 +158,11 @@ class Model:
     def predict(self, X: Any) -> np.ndarray:
         """The predicted class index of every row of ``X`` (the largest logit; with one output, class 1
         iff the logit is > 0)."""
-        return self._native.predict(_features(X))
+        return self._native.predict(_features(X, model=self))
 
     def logits(self, X: Any) -> np.ndarray:
         """The output of the network for every row of ``X`` (samples × outputs)."""
-        return self._native.logits(_features(X))
+        return self._native.logits(_features(X, model=self))
 
     @property
     def input_range(self) -> tuple[np.ndarray, np.ndarray]:
@@ -530,7 +542,7 @@ def certify(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str | None =
     req = _requirement(model, eps=eps, norm=norm, tolerances=tolerances, floor=floor,
                        forbid_into=forbid_into, forbid_from=forbid_from, confidence=confidence,
                        min_clean_accuracy=min_clean_accuracy, requirement=requirement, one_epsilon=False)
-    X = _features(X)
+    X = _features(X, model=model)
     y = _labels(model, y)
     return Report(_native.certify(model._native, X, y, req, budget=float(budget), seed=int(seed),
                                   radius=bool(radius), attack=bool(attack), out_of_range=out_of_range))
@@ -548,7 +560,7 @@ def attack(model: Model, X: Any, y: Any, *, eps: Any = None, norm: str | None = 
     req = _requirement(model, eps=eps, norm=norm, tolerances=tolerances, floor=None,
                        forbid_into=forbid_into, forbid_from=forbid_from, confidence=None,
                        min_clean_accuracy=None, requirement=requirement, one_epsilon=True)
-    X = _features(X)
+    X = _features(X, model=model)
     y = _labels(model, y)
     if steps < 1:
         raise InputError(f"steps: {steps} is not allowed, expected at least 1 step")
@@ -604,11 +616,11 @@ def retrain(model: Model, X: Any, y: Any, *, eps: Any = None, floor: float | Non
             return None
         if Xp is None or yp is None:
             raise InputError(f"{xname} and {yname}: give both or neither")
-        return _features(Xp, xname), _labels(model, yp, yname)
+        return _features(Xp, xname, model), _labels(model, yp, yname)
 
     validation = pair(X_val, y_val, "X_val", "y_val")
     acceptance = pair(X_acceptance, y_acceptance, "X_acceptance", "y_acceptance")
     native_model, native_result = _native.retrain(
-        model._native, _features(X), _labels(model, y), req, merged,
+        model._native, _features(X, model=model), _labels(model, y), req, merged,
         validation=validation, acceptance=acceptance, out_of_range=out_of_range)
     return Model(native_model), RetrainResult(native_result)

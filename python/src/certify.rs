@@ -155,7 +155,8 @@ impl PyReport {
 
     /// Renders the sheet (Markdown + self-contained HTML) into `folder`; returns both paths.
     fn sheet(&self, folder: PathBuf) -> PyResult<(PathBuf, PathBuf)> {
-        ballast::sheet::write_sheet(&self.report, &folder).map_err(|e| file(e.to_string()))
+        crate::interrupt::guarded(|| ballast::sheet::write_sheet(&self.report, &folder))?
+            .map_err(|e| file(e.to_string()))
     }
 
     /// The summary as JSON text.

@@ -29,6 +29,24 @@ pub fn stop_if_cancelled(cancel: &AtomicBool) {
     }
 }
 
+/// Runs a short `work` on the calling thread, turning a panic into a `RuntimeError`.
+pub fn guarded<T>(work: impl FnOnce() -> T) -> PyResult<T> {
+    catch_unwind(AssertUnwindSafe(work)).map_err(|payload| panic_error(payload.as_ref()))
+}
+
+/// The exception for a panic's payload.
+fn panic_error(payload: &(dyn std::any::Any + Send)) -> PyErr {
+    if payload.is::<Cancelled>() {
+        return PyRuntimeError::new_err("the run was cancelled");
+    }
+    let text = payload
+        .downcast_ref::<&str>()
+        .map(|s| s.to_string())
+        .or_else(|| payload.downcast_ref::<String>().cloned())
+        .unwrap_or_else(|| "unknown panic".into());
+    PyRuntimeError::new_err(format!("internal error (please report it): {text}"))
+}
+
 /// Runs `work(cancel)` with the interpreter lock released; see the module documentation.
 pub fn run_detached<T, F>(py: Python<'_>, work: F) -> PyResult<T>
 where
@@ -68,16 +86,5 @@ where
     if let Some(e) = interrupt {
         return Err(e);
     }
-    outcome.map_err(|payload| {
-        if payload.is::<Cancelled>() {
-            PyRuntimeError::new_err("the run was cancelled")
-        } else {
-            let text = payload
-                .downcast_ref::<&str>()
-                .map(|s| s.to_string())
-                .or_else(|| payload.downcast_ref::<String>().cloned())
-                .unwrap_or_else(|| "unknown panic".into());
-            PyRuntimeError::new_err(format!("internal error (please report it): {text}"))
-        }
-    })
+    outcome.map_err(|payload| panic_error(payload.as_ref()))
 }

@@ -15,6 +15,7 @@ use ballast::model::{predicted_class, Model};
 
 use crate::arrays;
 use crate::errors::{input, OrPy};
+use crate::interrupt::guarded;
 
 /// A model the library accepted.
 #[pyclass(name = "Model", module = "ballast._native", frozen)]
@@ -42,12 +43,14 @@ impl PyModel {
         unbounded.input.lower = vec![f64::NEG_INFINITY; unbounded.input.dim];
         unbounded.input.upper = vec![f64::INFINITY; unbounded.input.dim];
         let (features, _) = arrays::features("X", x, &unbounded, OutOfRange::Error)?;
-        let network = if classifier {
-            self.model.classifier()
-        } else {
-            self.model.network()
-        };
-        Ok(network.forward_batch(&features))
+        guarded(|| {
+            let network = if classifier {
+                self.model.classifier()
+            } else {
+                self.model.network()
+            };
+            network.forward_batch(&features)
+        })
     }
 }
 
@@ -57,7 +60,7 @@ impl PyModel {
     #[staticmethod]
     #[pyo3(signature = (path, allow_large = false))]
     fn load(path: PathBuf, allow_large: bool) -> PyResult<PyModel> {
-        let model = ballast::cli::common::load_model(&path, allow_large).or_py()?;
+        let model = guarded(|| ballast::cli::common::load_model(&path, allow_large))?.or_py()?;
         let path = (!ballast::model::onnx::is_onnx_path(&path)).then_some(path);
         Ok(PyModel { model, path })
     }
@@ -65,7 +68,9 @@ impl PyModel {
     /// Parses and checks a model from JSON text in the `ballast.model/1` layout.
     #[staticmethod]
     fn from_json(text: &str) -> PyResult<PyModel> {
-        Ok(PyModel::in_memory(Model::from_json_str(text).or_py()?))
+        Ok(PyModel::in_memory(
+            guarded(|| Model::from_json_str(text))?.or_py()?,
+        ))
     }
 
     /// The model in the JSON layout.
@@ -164,6 +169,12 @@ impl PyModel {
         (0..self.model.input.dim)
             .map(|k| self.model.feature_name(k))
             .collect()
+    }
+
+    /// True when the model names its inputs (`input.names`); data columns are then matched by name.
+    #[getter]
+    fn names_inputs(&self) -> bool {
+        self.model.input.names.is_some()
     }
 
     /// The model's name, if it has one.

@@ -155,3 +155,19 @@ def test_feature_names_from_a_dataframe_or_given():
     assert list(by_name.status) == list(by_order.status)
     with pytest.raises(ballast.InputError, match="^feature_names: 3 names, expected 4"):
         ballast.Model.from_sklearn(plain, feature_names=names[:3])
+
+
+def test_dataframe_columns_are_matched_by_name():
+    pd = pytest.importorskip("pandas")
+    X, y = load_iris(return_X_y=True)
+    names = ["sepal_length", "sepal_width", "petal_length", "petal_width"]
+    frame = pd.DataFrame(X, columns=names)
+    clf = fitted(LogisticRegression(max_iter=1000), frame, y)
+    model = ballast.Model.from_sklearn(clf)
+    shuffled = frame[names[::-1]]
+    # Reference: scikit-learn's predict on the DataFrame in its fitted column order.
+    assert np.array_equal(model.predict(shuffled), clf.predict(frame))
+    with pytest.raises(ballast.InputError, match='^X: missing feature column "petal_width"$'):
+        model.predict(frame[names[:3]])
+    with pytest.raises(ballast.InputError, match='^X: column "colour" is not an input of the model$'):
+        model.predict(frame.assign(colour=1.0))
