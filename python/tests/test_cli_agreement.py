@@ -88,3 +88,25 @@ def test_loaded_model_file_is_recorded_with_its_digest(tmp_path, digits_mlp):
     assert document["model"]["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
     again = ballast.Report.load(saved)
     assert list(again.status) == list(report.status)
+
+
+def test_attack_finds_what_the_command_line_finds(tmp_path, ballast_bin, digits_mlp):
+    """Each sample's attack depends only on the seed and its row, so the Python call (in chunks) and
+    `ballast attack` must find counterexamples on the same rows, at the same points."""
+    pipe, X, y = digits_mlp
+    model = ballast.Model.from_sklearn(pipe)
+    model.input_range = (0.0, 16.0)
+    X_test, y_test = X[1000:1300], y[1000:1300]
+    model_path, data_path, out = tmp_path / "m.json", tmp_path / "d.csv", tmp_path / "ce.csv"
+    model.save(model_path)
+    write_csv(data_path, X_test, y_test)
+    code, _, stderr = run_cli(ballast_bin, ["attack", "--model", model_path, "--data", data_path, "--eps", "0.5",
+                                            "--steps", "50", "--restarts", "2", "--seed", "7", "--out", out])
+    assert code == 0, stderr
+    cli = np.loadtxt(out, delimiter=",", skiprows=1, ndmin=2)
+    indices, points = ballast.attack(model, X_test, y_test, eps=0.5, steps=50, restarts=2, seed=7)
+    assert len(indices) > 0
+    assert np.array_equal(indices, cli[:, 0].astype(int))
+    np.testing.assert_array_equal(points, cli[:, 4:])
+    # Reference: scikit-learn's predict on the points — every one changes the answer.
+    assert np.all(pipe.predict(points) != y_test[indices])
