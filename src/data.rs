@@ -171,7 +171,7 @@ fn ulp(x: f64) -> f64 {
 /// `v` placed against `[lower, upper]`: `Ok(v)` inside, `Ok(end)` within [`RANGE_ULPS`] units in the last
 /// place of an end, `Err(nearest end)` beyond. The unit is taken at the range's largest finite magnitude,
 /// so an end at 0 gets the same allowance as the other end (rounding near 0 is not relative to 0).
-fn place_in_range(v: f64, lower: f64, upper: f64) -> Result<f64, f64> {
+pub fn place_in_range(v: f64, lower: f64, upper: f64) -> Result<f64, f64> {
     let scale = [lower, upper]
         .iter()
         .filter(|e| e.is_finite())
