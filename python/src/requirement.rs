@@ -71,12 +71,18 @@ impl PyRequirement {
             confidence: named(confidence, "confidence"),
             forbid_into: named(forbid_into, "forbid_into"),
             forbid_from: named(forbid_from, "forbid_from"),
+            lines: Vec::new(),
         };
         let file = match &requirement {
             Some(p) => RequirementSpec::from_file(p).or_py()?,
             None => RequirementSpec::default(),
         };
         let merged = file.overridden_by(flags);
+        if !merged.lines.is_empty() {
+            return Err(input(
+                "requirement: a list of requirements ([[requirements]]) is not supported from Python yet; judge or retrain against it with `ballast certify` / `ballast retrain`",
+            ));
+        }
         if merged.epsilons.is_none() && merged.tolerances.is_none() {
             return Err(input(
                 "eps: no budget given: pass eps (a number, or a list for a sweep with certify), tolerances, or requirement=FILE with epsilon or tolerances",

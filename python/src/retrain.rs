@@ -205,6 +205,7 @@ impl Settings {
             },
         };
         Ok(RetrainSettings {
+            lines: Vec::new(),
             constrained: ConstrainedSettings {
                 train: TrainSettings {
                     epochs: self.epochs,
@@ -220,6 +221,8 @@ impl Settings {
                 targets: ballast::threat::Targets::Any,
                 loss,
                 constraint,
+                terms: Vec::new(),
+                relax: None,
                 formulation,
                 ramp_epochs: self.ramp_epochs.unwrap_or((self.epochs * 2) / 5),
                 measure_certified: true,

@@ -194,3 +194,12 @@ def test_requirement_file_values_apply_unless_a_keyword_overrides_them(tmp_path,
     assert list(from_file.status) == list(explicit.status)
     overridden = ballast.certify(model, X, y, requirement=path, floor=0.95)
     assert overridden.to_json_string().count('"floor": 0.95') >= 1
+
+
+def test_a_requirement_list_is_refused_with_a_pointer_to_the_command_line(model, rows, tmp_path):
+    X, y = rows
+    path = tmp_path / "list.toml"
+    path.write_text("[[requirements]]\nepsilon = 0.1\nfloor = 0.5\n\n[[requirements]]\nepsilon = 0.2\nfloor = 0.3\n")
+    with pytest.raises(ballast.InputError) as e:
+        ballast.certify(model, X, y, requirement=str(path))
+    assert "not supported from Python yet" in one_line(e)
