@@ -213,6 +213,11 @@ fn inspect_takes_model_as_flag_or_positional() {
     assert!(by_flag.contains("inputs: 12"), "{by_flag}");
     let (code, _, _) = ballast(&["inspect"]);
     assert_eq!(code, Some(2));
+    // A convolutional model names its input shape: models/pump-cnn.json has input.shape [1, 64].
+    let cnn = root().join("models").join("pump-cnn.json");
+    let (code, out, stderr) = ballast(&["inspect", "--model", cnn.to_str().unwrap()]);
+    assert_eq!(code, Some(0), "{stderr}");
+    assert!(out.contains("inputs: 64 of shape [1, 64]"), "{out}");
 }
 
 #[test]

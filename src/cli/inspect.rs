@@ -47,7 +47,17 @@ pub fn describe(model: &Model) -> String {
             model.input.dim.saturating_sub(1)
         ),
     };
-    let _ = writeln!(s, "inputs: {}{unnamed}", model.input.dim);
+    let shape = match &model.input.shape {
+        Some(dims) => format!(
+            " of shape [{}] (channels first, flattened row-major)",
+            dims.iter()
+                .map(usize::to_string)
+                .collect::<Vec<_>>()
+                .join(", ")
+        ),
+        None => String::new(),
+    };
+    let _ = writeln!(s, "inputs: {}{shape}{unnamed}", model.input.dim);
     let mut width = model.input.dim;
     for (i, layer) in model.layers.iter().enumerate() {
         match layer {
