@@ -115,13 +115,15 @@ impl DeployedError {
                     epsilon,
                     positions,
                 } => {
-                    let per = |v: &DVector<f64>| DVector::from_fn(outputs, |r, _| v[r / positions]);
-                    let centre = Sparse::diagonal(&DVector::from_element(outputs, 1.0), -per(mean));
-                    let factor = scale.zip_map(variance, |g, v| g / (v + epsilon).sqrt());
-                    steps.push(linear(Affine::Sparse(centre)));
-                    steps.push(linear(Affine::Sparse(
-                        Sparse::diagonal(&per(&factor), per(shift)).rounded(3),
-                    )));
+                    let maps = Sparse::batch_norm(
+                        [scale, shift, mean, variance],
+                        *epsilon,
+                        *positions,
+                        outputs,
+                    );
+                    for map in maps {
+                        steps.push(linear(Affine::Sparse(map)));
+                    }
                 }
                 Layer::Pool(p) => {
                     outputs = p.output_dim();

@@ -375,13 +375,11 @@ fn fold_layers(input_dim: usize, layers: &[Layer]) -> Network {
                 epsilon,
                 positions,
             } => {
-                let per = |v: &DVector<f64>| DVector::from_fn(width, |r, _| v[r / positions]);
-                // x − mean (exact), then γ/sqrt(var + ε) · y + β (the factor three roundings away).
-                let centre = Sparse::diagonal(&DVector::from_element(width, 1.0), -per(mean));
-                let factor = scale.zip_map(variance, |g, v| g / (v + epsilon).sqrt());
-                let rescale = Sparse::diagonal(&per(&factor), per(shift)).rounded(3);
-                pending.push(Part::Structured(Affine::Sparse(centre)));
-                pending.push(Part::Structured(Affine::Sparse(rescale)));
+                let maps =
+                    Sparse::batch_norm([scale, shift, mean, variance], *epsilon, *positions, width);
+                for map in maps {
+                    pending.push(Part::Structured(Affine::Sparse(map)));
+                }
             }
             Layer::Pool(pool) => match pool.op {
                 PoolOp::Average => {

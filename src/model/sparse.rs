@@ -89,6 +89,22 @@ impl Sparse {
         Sparse::new(scale.len(), rows, shift)
     }
 
+    /// An inference-form batch norm on `width` features (`positions` per channel) as two maps:
+    /// `x − mean` (exact), then `γ/sqrt(var + ε) · y + β`, whose factor is three roundings away from
+    /// the exact one (division, square root, addition), declared with [`Sparse::rounded`].
+    pub fn batch_norm(
+        [scale, shift, mean, variance]: [&DVector<f64>; 4],
+        epsilon: f64,
+        positions: usize,
+        width: usize,
+    ) -> [Sparse; 2] {
+        let per = |v: &DVector<f64>| DVector::from_fn(width, |r, _| v[r / positions]);
+        let centre = Sparse::diagonal(&DVector::from_element(width, 1.0), -per(mean));
+        let factor = scale.zip_map(variance, |g, v| g / (v + epsilon).sqrt());
+        let rescale = Sparse::diagonal(&per(&factor), per(shift)).rounded(3);
+        [centre, rescale]
+    }
+
     /// Output size.
     pub fn output_dim(&self) -> usize {
         self.rows.len()
