@@ -9,6 +9,7 @@
 //! sound bound or proof, every counterexample is re-validated, and an exhausted search is `unresolved`.
 
 pub mod compare;
+pub mod decision;
 pub mod floor_epsilon;
 pub mod input_record;
 pub mod journal;
@@ -19,6 +20,7 @@ pub mod pipeline;
 pub mod progress;
 mod radius;
 pub mod report;
+pub mod sample_record;
 mod search_stage;
 mod stages;
 pub mod statistics;
