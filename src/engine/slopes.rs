@@ -87,6 +87,17 @@ fn split_signs(domains: &Domains, hidden: &HiddenBounds) -> Vec<DMatrix<f64>> {
         .collect()
 }
 
+/// One column's lower slopes and split multipliers, one vector per hidden layer: the choices behind
+/// its best bound, kept to start a related column's ascent from (a sub-domain's from its parent's).
+/// Any values give a sound bound: slopes are clamped to `[0, 1]` and multipliers to `≥ 0` on use.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Warm {
+    /// Lower slope per hidden unit and layer.
+    pub slopes: Vec<DVector<f64>>,
+    /// Split multiplier per hidden unit and layer.
+    pub multipliers: Vec<DVector<f64>>,
+}
+
 /// Optimises slopes and multipliers of the columns of `objectives` (which must be written on the last
 /// layer or any layer above every hidden layer they cross) and returns the best sound bound per column.
 /// A column stops once its bound exceeds `threshold[j]`.
@@ -98,6 +109,30 @@ pub fn optimise(
     threshold: &[f64],
     settings: &SlopeSettings,
 ) -> Backward {
+    optimise_from(
+        engine,
+        hidden,
+        domains,
+        objectives,
+        threshold,
+        settings,
+        &[],
+    )
+    .0
+}
+
+/// [`optimise`], starting column `j` from `start[j]` when given (an empty `start` starts every column
+/// from the adaptive slopes and zero multipliers), and returning each column's choices at its best
+/// bound.
+pub fn optimise_from(
+    engine: &Engine,
+    hidden: &HiddenBounds,
+    domains: &Domains,
+    objectives: &Objectives,
+    threshold: &[f64],
+    settings: &SlopeSettings,
+    start: &[Option<&Warm>],
+) -> (Backward, Vec<Warm>) {
     let columns = objectives.domain.len();
     let layers = objectives.top;
     let signs = split_signs(domains, hidden);
@@ -114,6 +149,23 @@ pub fn optimise(
         .iter()
         .map(|m| DMatrix::zeros(m.nrows(), columns))
         .collect();
+    // The choices behind each column's best bound so far: the adaptive slopes of the first pass.
+    let mut best_warm: Vec<Warm> = (0..columns)
+        .map(|j| column_choices(&slopes, &multipliers, j))
+        .collect();
+    for (j, warm) in start.iter().enumerate() {
+        let Some(warm) = warm else { continue };
+        for k in 0..layers {
+            if warm.slopes.get(k).map(DVector::len) == Some(slopes[k].nrows()) {
+                let column = warm.slopes[k].map(|v| v.clamp(0.0, 1.0));
+                slopes[k].set_column(j, &column);
+            }
+            if has_splits && warm.multipliers.get(k).map(DVector::len) == Some(slopes[k].nrows()) {
+                let column = warm.multipliers[k].map(|v| v.max(0.0));
+                multipliers[k].set_column(j, &column);
+            }
+        }
+    }
     let mut best = backward::run(
         engine,
         hidden,
@@ -126,7 +178,7 @@ pub fn optimise(
         .filter(|&j| best.lower[j] <= threshold[j] && best.lower[j].is_finite())
         .collect();
     if open.is_empty() || layers == 0 || settings.iterations == 0 {
-        return best;
+        return (best, best_warm);
     }
     let mut adam_slopes = Adam::new(&slopes);
     let mut adam_multipliers = Adam::new(&multipliers);
@@ -167,6 +219,7 @@ pub fn optimise(
             if result.lower[c] > best.lower[j] {
                 best.lower[j] = result.lower[c];
                 best.minimiser.set_column(j, &result.minimiser.column(c));
+                best_warm[j] = column_choices(&slopes, &multipliers, j);
             }
         }
         // Relaxed forward pass at the minimisers gives every unit's value.
@@ -206,7 +259,18 @@ pub fn optimise(
             break;
         }
     }
-    best
+    (best, best_warm)
+}
+
+/// Column `j` of every layer's slopes and multipliers.
+fn column_choices(slopes: &[DMatrix<f64>], multipliers: &[DMatrix<f64>], j: usize) -> Warm {
+    Warm {
+        slopes: slopes.iter().map(|m| m.column(j).into_owned()).collect(),
+        multipliers: multipliers
+            .iter()
+            .map(|m| m.column(j).into_owned())
+            .collect(),
+    }
 }
 
 /// Each hidden unit's value in the relaxed network at each column's minimiser (units × columns per

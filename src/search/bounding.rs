@@ -21,7 +21,7 @@ use super::SearchSettings;
 use crate::bound::{LayerBounds, Method, SplitState};
 use crate::engine::backward::{self, Choices, Keep, Objectives};
 use crate::engine::intermediate::{self, Given, HiddenBounds, Tightness};
-use crate::engine::slopes::{self, SlopeSettings};
+use crate::engine::slopes::{self, SlopeSettings, Warm};
 use crate::engine::{Domains, Engine};
 use crate::threat::Region;
 
@@ -36,6 +36,8 @@ pub(crate) struct Job<'a> {
     /// Sound bounds on a domain containing this one (the parent's), and the first hidden layer to
     /// recompute; layers below it are taken as given (clipped by the splits).
     pub given: Option<(&'a [LayerBounds], usize)>,
+    /// Slopes and split multipliers to start the ascent from, one per target (a parent's best).
+    pub warm: Option<&'a [Warm]>,
 }
 
 /// What the margin objectives are: `logit_label − logit_t` for every `t` of `targets`.
@@ -84,6 +86,8 @@ pub(crate) struct Bounded {
     pub bounds: Vec<LayerBounds>,
     /// No region input meets the splits.
     pub empty: bool,
+    /// Per target, the slopes and multipliers of its best optimised bound (`None` unless optimised).
+    pub warm: Vec<Option<Warm>>,
 }
 
 /// Bounds every job on `region` (the network behind `engine` in classifier form, problem validated).
@@ -209,29 +213,40 @@ fn bound_chunk(
     let (domains, hidden) = hidden_bounds(engine, region, jobs, tightness);
     let objectives = margin_objectives(engine, margins, jobs.len());
     let interval = backward::over_last_box(engine, &hidden, &domains, &objectives);
-    let linear = match settings.method {
-        Method::Interval => None,
-        Method::Linear => Some(backward::run(
-            engine,
-            &hidden,
-            &domains,
-            objectives.clone(),
-            Choices::default(),
-            Keep::Minimisers,
-        )),
+    let per = margins.targets.len();
+    let (linear, mut warm) = match settings.method {
+        Method::Interval => (None, Vec::new()),
+        Method::Linear => (
+            Some(backward::run(
+                engine,
+                &hidden,
+                &domains,
+                objectives.clone(),
+                Choices::default(),
+                Keep::Minimisers,
+            )),
+            Vec::new(),
+        ),
         Method::OptimisedLinear => {
             let threshold = vec![settings.threshold; objectives.domain.len()];
-            Some(slopes::optimise(
+            let start: Vec<Option<&Warm>> = (0..objectives.domain.len())
+                .map(|j| jobs[j / per].warm.and_then(|w| w.get(j % per)))
+                .collect();
+            let (result, warm) = slopes::optimise_from(
                 engine,
                 &hidden,
                 &domains,
                 &objectives,
                 &threshold,
                 &settings.slopes,
-            ))
+                &start,
+            );
+            (Some(result), warm.into_iter().map(Some).collect())
         }
     };
-    let per = margins.targets.len();
+    if warm.is_empty() {
+        warm = vec![None; objectives.domain.len()];
+    }
     (0..jobs.len())
         .map(|d| {
             if hidden.empty[d].is_some() {
@@ -240,6 +255,7 @@ fn bound_chunk(
                     minimisers: vec![None; per],
                     bounds: Vec::new(),
                     empty: true,
+                    warm: vec![None; per],
                 };
             }
             let columns = d * per..(d + 1) * per;
@@ -250,6 +266,7 @@ fn bound_chunk(
                     None => interval[j],
                 })
                 .collect();
+            let choices = columns.clone().map(|j| warm[j].take()).collect();
             let minimisers = columns
                 .map(|j| {
                     linear
@@ -262,6 +279,7 @@ fn bound_chunk(
                 minimisers,
                 bounds: hidden.layer_bounds(d),
                 empty: false,
+                warm: choices,
             }
         })
         .collect()

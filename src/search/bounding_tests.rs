@@ -1,9 +1,11 @@
 //! Soundness and batch-independence of the batched sub-domain bounds: random networks of depth 1–6,
-//! L-inf and L2 regions, sub-domains with and without splits, children reusing their parent's bounds.
+//! L-inf and L2 regions, sub-domains with and without splits, children reusing their parent's bounds
+//! and starting from given slopes and multipliers.
 
 use super::*;
 use crate::attack::step::random_start;
 use crate::bound::ReluSplit;
+use crate::engine::slopes::Warm;
 use crate::model::{Dense, Network};
 use crate::threat::{Budget, Norm};
 use rand::{Rng, SeedableRng};
@@ -99,6 +101,7 @@ fn batched_bounds_equal_single_bounds_and_hold_at_sampled_points() {
             .map(|s| Job {
                 splits: Some(s),
                 given: None,
+                warm: None,
             })
             .collect();
         let parents = bound(&engine, &region, margins, &parent_jobs, &settings);
@@ -127,6 +130,22 @@ fn batched_bounds_equal_single_bounds_and_hold_at_sampled_points() {
             }
         }
         children += child_splits.len();
+        // Half the cases start the children's ascent from arbitrary slopes and multipliers (outside
+        // [0, 1] and below 0 too): a warm start may change a bound, never its soundness.
+        let hidden = engine.hidden_sizes();
+        let warm: Vec<Warm> = (0..targets.len())
+            .map(|_| Warm {
+                slopes: hidden
+                    .iter()
+                    .map(|&n| DVector::from_fn(n, |_, _| rng.gen_range(-1.0..2.0)))
+                    .collect(),
+                multipliers: hidden
+                    .iter()
+                    .map(|&n| DVector::from_fn(n, |_, _| rng.gen_range(-1.0..3.0)))
+                    .collect(),
+            })
+            .collect();
+        let warm_start = (case % 2 == 1).then_some(&warm[..]);
         let mut jobs = parent_jobs.clone();
         jobs.extend(
             child_splits
@@ -135,6 +154,7 @@ fn batched_bounds_equal_single_bounds_and_hold_at_sampled_points() {
                 .map(|((s, start), &p)| Job {
                     splits: Some(s),
                     given: Some((&parents[p].bounds[..], *start)),
+                    warm: warm_start,
                 }),
         );
         let batch = bound(&engine, &region, margins, &jobs, &settings);

@@ -52,6 +52,7 @@ pub(crate) fn ranked_units(
         .map(|p| Job {
             splits: Some(p.splits),
             given: Some((p.bounds, layers)),
+            warm: None,
         })
         .collect();
     let (domains, hidden) = hidden_bounds(engine, region, &jobs, Tightness::Interval);
@@ -119,6 +120,7 @@ pub(crate) fn look_ahead(
         .map(|(s, &p)| Job {
             splits: Some(s),
             given: Some((parents[p].bounds, layers)),
+            warm: None,
         })
         .collect();
     let settings = Settings {

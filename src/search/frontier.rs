@@ -9,6 +9,7 @@ use std::cmp::Ordering;
 use std::collections::BinaryHeap;
 
 use crate::bound::{LayerBounds, ReluSplit, SplitState};
+use crate::engine::slopes::Warm;
 
 /// A sub-domain waiting to be processed.
 #[derive(Debug, Clone)]
@@ -21,6 +22,8 @@ pub(crate) struct Node {
     pub lower: f64,
     /// Region point minimising the node's linear bound (a promising start for the attack).
     pub minimiser: Option<Vec<f64>>,
+    /// The slopes and split multipliers of the node's best optimised bound (its children's start).
+    pub warm: Option<Warm>,
 }
 
 impl Node {
@@ -76,12 +79,16 @@ impl Frontier {
         let per_layer = 3 * vector + std::mem::size_of::<LayerBounds>();
         // Two heap slots per node (the heap doubles its capacity), 1 byte per split, 16 per bound pair,
         // and about 16 bytes of allocator overhead for each of the 3 + 3·layers allocations.
+        // The warm start: a slope and a multiplier per unit, 2·layers vectors.
         let node_bytes = 2 * std::mem::size_of::<Entry>()
             + 2 * vector
             + hidden.len() * per_layer
             + units * 17
             + inputs * 8
-            + (3 + 3 * hidden.len()) * 16;
+            + (3 + 3 * hidden.len()) * 16
+            + std::mem::size_of::<Warm>()
+            + 2 * hidden.len() * (vector + 16)
+            + units * 16;
         Frontier {
             queue: BinaryHeap::new(),
             closed_lower: f64::INFINITY,
@@ -163,6 +170,7 @@ mod tests {
             }],
             lower,
             minimiser: None,
+            warm: None,
         }
     }
 

@@ -6,7 +6,8 @@
 //! attack of [`crate::attack`]; each margin not proved then gets its own best-first tree (`tree`) that
 //! splits unstable ReLUs into active / inactive sub-domains a batch at a time, bounds all children of a
 //! batch together with the split constraints enforced (`bounding`: optimised slopes and split
-//! multipliers, the parent's pre-activation bounds reused below the split layer), tries short attacks
+//! multipliers started from the parent's best, the parent's pre-activation bounds reused below the
+//! split layer), tries short attacks
 //! from the bound minimisers (`probe`), and solves fully fixed sub-domains as LPs (`leaf`). One
 //! tree per forbidden class keeps each tree's bound a single number and gives per-class exact minima in
 //! the optimality mode; the most dangerous class (lowest root bound) goes first, so a counterexample

@@ -120,6 +120,7 @@ fn search(
         &[Job {
             splits: None,
             given: None,
+            warm: None,
         }],
         &Settings::of(
             settings,
@@ -207,6 +208,7 @@ fn search(
             bounds: root.bounds.clone(),
             lower: root.lower[t],
             minimiser: root.minimisers[t].clone(),
+            warm: root.warm[t].clone(),
         };
         let mut tree = TargetTree::new(problem, target, root_node);
         let mut points: Vec<Vec<f64>> = best_attack_point.iter().cloned().collect();

@@ -323,6 +323,8 @@ impl<'a> TargetTree<'a> {
                 splits: Some(s),
                 // Layers up to the split layer keep the parent's bounds (clipped by the split).
                 given: Some((&parents[c / 2].bounds, chosen[c / 2].0 + 1)),
+                // The ascent starts from the parent's best slopes and multipliers.
+                warm: parents[c / 2].warm.as_ref().map(std::slice::from_ref),
             })
             .collect();
         let bound_settings = Settings::of(settings, self.threshold());
@@ -344,6 +346,7 @@ impl<'a> TargetTree<'a> {
                 bounds: b.bounds,
                 lower: lower.max(parent.lower),
                 minimiser,
+                warm: b.warm.into_iter().next().flatten(),
             });
         }
         self.consider(&points);

@@ -100,6 +100,7 @@ fn root_bounds(engine: &Engine, region: &Region, label: usize, target: usize) ->
     let job = Job {
         splits: None,
         given: None,
+        warm: None,
     };
     let mut root = bounding::bound(engine, region, margin, &[job], &settings).remove(0);
     Node {
@@ -113,6 +114,7 @@ fn root_bounds(engine: &Engine, region: &Region, label: usize, target: usize) ->
         bounds: root.bounds,
         lower: root.lower[0],
         minimiser: root.minimisers.remove(0),
+        warm: root.warm.remove(0),
     }
 }
 
