@@ -10,7 +10,7 @@ use std::path::PathBuf;
 
 use anyhow::{bail, Context};
 
-use super::common::{load_data, load_model, Epsilons, RequirementArgs};
+use super::common::{load_data, load_model, DataArgs, Epsilons, RequirementArgs};
 use crate::attack::survey::{attack_data_set, counterexamples_csv};
 use crate::attack::{AttackSettings, SearchPrecision};
 
@@ -27,21 +27,9 @@ pub struct Args {
     /// The labelled data (CSV).
     #[arg(long, help_heading = "Inputs")]
     pub data: PathBuf,
-    /// Name of the label column.
-    #[arg(long, default_value = "label", help_heading = "Inputs")]
-    pub label_column: String,
-    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
-    /// Values within a few units in the last place of an end count as on it.
-    #[arg(
-        long,
-        default_value = "error",
-        value_name = "error|clip|skip",
-        help_heading = "Inputs"
-    )]
-    pub out_of_range: String,
-    /// Accept inputs above the size limits.
-    #[arg(long, help_heading = "Inputs")]
-    pub allow_large: bool,
+    /// Label column, input-range policy, size limits.
+    #[command(flatten)]
+    pub input: DataArgs,
     /// Budget, norm, floor, class-change rule, requirement file.
     #[command(flatten)]
     pub requirement: RequirementArgs,
@@ -86,15 +74,9 @@ pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
         crate::atomic::check_writable(out)
             .map_err(|m| anyhow::anyhow!("--out: {}: {m}", out.display()))?;
     }
-    let model = load_model(&args.model, args.allow_large)?;
+    let model = load_model(&args.model, args.input.allow_large)?;
     let requirement = args.requirement.resolve(&model, Epsilons::One, |_| {})?;
-    let data = load_data(
-        &args.data,
-        &model,
-        &args.label_column,
-        &args.out_of_range,
-        args.allow_large,
-    )?;
+    let data = load_data(&args.data, &model, &args.input)?;
     let settings = AttackSettings {
         steps: args.steps,
         restarts: args.restarts,

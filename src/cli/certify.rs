@@ -11,7 +11,7 @@ use std::sync::Arc;
 
 use anyhow::{bail, Context};
 
-use super::common::{load_data_counted, load_model, Epsilons, RequirementArgs};
+use super::common::{load_data_counted, load_model, DataArgs, Epsilons, RequirementArgs};
 use super::Outcome;
 use crate::certify::journal::journal_path;
 use crate::certify::lines::{judge_list, with_line_epsilons};
@@ -34,21 +34,9 @@ pub struct Args {
     /// The acceptance set (CSV with a label column).
     #[arg(long, help_heading = "Inputs")]
     pub data: PathBuf,
-    /// Name of the label column.
-    #[arg(long, default_value = "label", help_heading = "Inputs")]
-    pub label_column: String,
-    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
-    /// Values within a few units in the last place of an end count as on it.
-    #[arg(
-        long,
-        default_value = "error",
-        value_name = "error|clip|skip",
-        help_heading = "Inputs"
-    )]
-    pub out_of_range: String,
-    /// Accept inputs above the size limits.
-    #[arg(long, help_heading = "Inputs")]
-    pub allow_large: bool,
+    /// Label column, input-range policy, size limits.
+    #[command(flatten)]
+    pub input: DataArgs,
     /// Budget, norm, floor, class-change rule, requirement file.
     #[command(flatten)]
     pub requirement: RequirementArgs,
@@ -145,14 +133,8 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
         bail!("--resume needs --report (the journal lives beside the report)");
     }
     let shard = args.shard.as_deref().map(parse_shard).transpose()?;
-    let model = load_model(&args.model, args.allow_large)?;
-    let (data, range) = load_data_counted(
-        &args.data,
-        &model,
-        &args.label_column,
-        &args.out_of_range,
-        args.allow_large,
-    )?;
+    let model = load_model(&args.model, args.input.allow_large)?;
+    let (data, range) = load_data_counted(&args.data, &model, &args.input)?;
     let (requirement, lines) =
         args.requirement
             .resolve_with_lines(&model, Epsilons::Sweep, |spec| {
@@ -190,7 +172,7 @@ pub fn run(args: Args) -> anyhow::Result<Outcome> {
             ..PipelineOptions::default()
         },
         shard,
-        label_column: args.label_column.clone(),
+        label_column: args.input.label_column.clone(),
         command_line: std::env::args().collect(),
     };
     let journal = args.report.as_ref().map(|r| JournalOptions {

@@ -44,10 +44,14 @@ pub fn load_model(path: &Path, allow_large: bool) -> anyhow::Result<Model> {
 pub fn load_data_counted(
     path: &Path,
     model: &Model,
-    label_column: &str,
-    out_of_range: &str,
-    allow_large: bool,
+    input: &DataArgs,
 ) -> anyhow::Result<(Dataset, RangeCounts)> {
+    let DataArgs {
+        label_column,
+        out_of_range,
+        allow_large,
+    } = input;
+    let allow_large = *allow_large;
     let options = DataOptions {
         label_column: label_column.to_owned(),
         out_of_range: out_of_range
@@ -80,14 +84,24 @@ pub fn load_data_counted(
 }
 
 /// [`load_data_counted`] without the record of what the policy did.
-pub fn load_data(
-    path: &Path,
-    model: &Model,
-    label_column: &str,
-    out_of_range: &str,
-    allow_large: bool,
-) -> anyhow::Result<Dataset> {
-    load_data_counted(path, model, label_column, out_of_range, allow_large).map(|(d, _)| d)
+pub fn load_data(path: &Path, model: &Model, input: &DataArgs) -> anyhow::Result<Dataset> {
+    load_data_counted(path, model, input).map(|(d, _)| d)
+}
+
+/// How the data files of `certify`, `attack`, `retrain` and `evaluate` are read: one set of flags.
+#[derive(Debug, Clone, clap::Args)]
+#[command(next_help_heading = "Inputs")]
+pub struct DataArgs {
+    /// Name of the label column.
+    #[arg(long, default_value = "label")]
+    pub label_column: String,
+    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
+    /// Values within a few units in the last place of an end count as on it.
+    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
+    pub out_of_range: String,
+    /// Accept inputs above the size limits.
+    #[arg(long)]
+    pub allow_large: bool,
 }
 
 /// Parses `--norm`.

@@ -2,6 +2,8 @@
 
 use std::path::PathBuf;
 
+use super::common::DataArgs;
+
 use crate::data::Dataset;
 use crate::model::{predicted_class, Model};
 
@@ -17,16 +19,9 @@ pub struct Args {
     /// The labelled data (CSV).
     #[arg(long)]
     pub data: PathBuf,
-    /// Name of the label column.
-    #[arg(long, default_value = "label")]
-    pub label_column: String,
-    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
-    /// Values within a few units in the last place of an end count as on it.
-    #[arg(long, default_value = "error", value_name = "error|clip|skip")]
-    pub out_of_range: String,
-    /// Accept inputs above the size limits.
-    #[arg(long)]
-    pub allow_large: bool,
+    /// Label column, input-range policy, size limits.
+    #[command(flatten)]
+    pub input: DataArgs,
 }
 
 /// Clean accuracy and confusion counts (`matrix[true][predicted]`).
@@ -60,14 +55,8 @@ pub fn evaluate(model: &Model, data: &Dataset) -> Evaluation {
 
 /// Runs `ballast evaluate`.
 pub fn run(args: Args) -> anyhow::Result<super::Outcome> {
-    let model = super::common::load_model(&args.model, args.allow_large)?;
-    let data = super::common::load_data(
-        &args.data,
-        &model,
-        &args.label_column,
-        &args.out_of_range,
-        args.allow_large,
-    )?;
+    let model = super::common::load_model(&args.model, args.input.allow_large)?;
+    let data = super::common::load_data(&args.data, &model, &args.input)?;
     let result = evaluate(&model, &data);
     println!("samples: {}", data.len());
     println!("clean accuracy: {:.4}", result.accuracy);

@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 
-use super::common::{load_data, load_model, Epsilons, RequirementArgs};
+use super::common::{load_data, load_model, DataArgs, Epsilons, RequirementArgs};
 pub use super::retrain_sheet::{checks_csv, log_csv};
 use super::retrain_sheet::{final_prices, round_assessments, sheet_markdown};
 use super::Outcome;
@@ -44,21 +44,9 @@ pub struct Args {
     /// rounds [default: the validation data, with a caution].
     #[arg(long, help_heading = "Inputs")]
     pub acceptance: Option<PathBuf>,
-    /// Name of the label column.
-    #[arg(long, default_value = "label", help_heading = "Inputs")]
-    pub label_column: String,
-    /// Values outside the model's input range: error, clip (to the nearest end) or skip (the row).
-    /// Values within a few units in the last place of an end count as on it.
-    #[arg(
-        long,
-        default_value = "error",
-        value_name = "error|clip|skip",
-        help_heading = "Inputs"
-    )]
-    pub out_of_range: String,
-    /// Accept inputs above the size limits.
-    #[arg(long, help_heading = "Inputs")]
-    pub allow_large: bool,
+    /// Label column, input-range policy, size limits.
+    #[command(flatten)]
+    pub input: DataArgs,
     /// Budget, norm, floor, class-change rule, requirement file.
     #[command(flatten)]
     pub requirement: RequirementArgs,
@@ -355,7 +343,7 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
     let hidden = args.hidden.as_deref().map(parse_hidden).transpose()?;
     check_outputs(&args.out)?;
 
-    let parent = load_model(&args.model, args.allow_large)?;
+    let parent = load_model(&args.model, args.input.allow_large)?;
     let (requirement, lines) =
         args.requirement
             .resolve_with_lines(&parent, Epsilons::One, |spec| {
@@ -375,24 +363,9 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
     };
     let parent_sha256 = crate::digest::sha256_file(&args.model)
         .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
-    let train_all = load_data(
-        &args.train,
-        &parent,
-        &args.label_column,
-        &args.out_of_range,
-        args.allow_large,
-    )?;
+    let train_all = load_data(&args.train, &parent, &args.input)?;
     let (train, validation) = match &args.val {
-        Some(p) => (
-            train_all,
-            load_data(
-                p,
-                &parent,
-                &args.label_column,
-                &args.out_of_range,
-                args.allow_large,
-            )?,
-        ),
+        Some(p) => (train_all, load_data(p, &parent, &args.input)?),
         None => {
             let (t, v) = split_validation(&train_all, 0.2, args.seed);
             match v {
@@ -402,13 +375,7 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
         }
     };
     let acceptance = match &args.acceptance {
-        Some(p) => load_data(
-            p,
-            &parent,
-            &args.label_column,
-            &args.out_of_range,
-            args.allow_large,
-        )?,
+        Some(p) => load_data(p, &parent, &args.input)?,
         None => validation.clone(),
     };
 
