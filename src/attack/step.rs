@@ -23,19 +23,16 @@ pub fn descent_step(region: &Region, x: &mut [f64], gradient: &[f64], step: f64)
     match region.norm {
         Norm::Linf => {
             // Branch-free (so it vectorises): the sign is 0 for a zero gradient, and a zero radius
-            // moves nothing (x − 0 = x exactly).
-            for ((xi, g), r) in x.iter_mut().zip(gradient).zip(&region.radii) {
-                let sign = f64::from(u8::from(*g > 0.0)) - f64::from(u8::from(*g < 0.0));
-                *xi -= step * r * sign;
-            }
-            // The L-inf region is its box: the projection is the clamp of `Region::project`, written
-            // with max/min so it vectorises (the same values for the finite points here).
-            for ((xi, lo), hi) in x
-                .iter_mut()
-                .zip(&region.inner_lower)
-                .zip(&region.inner_upper)
-            {
-                *xi = xi.max(*lo).min(*hi);
+            // moves nothing (x − 0 = x exactly). The L-inf region is its box: the projection is the
+            // clamp of `Region::project`, written with max/min (the same values for the finite points
+            // here).
+            let n = x.len();
+            let (gradient, radii) = (&gradient[..n], &region.radii[..n]);
+            let (lower, upper) = (&region.inner_lower[..n], &region.inner_upper[..n]);
+            for i in 0..n {
+                let g = gradient[i];
+                let sign = f64::from(u8::from(g > 0.0)) - f64::from(u8::from(g < 0.0));
+                x[i] = (x[i] - step * radii[i] * sign).max(lower[i]).min(upper[i]);
             }
         }
         Norm::L2 => {

@@ -9,10 +9,14 @@
 //! before every step and after every evaluation.
 
 use nalgebra::DMatrix;
+use rayon::prelude::*;
 
 use super::Lockstep;
 use crate::attack::evaluate::{evaluate, Against, MarginSpec};
 use crate::attack::step::descent_step;
+
+/// Columns per parallel task of the step update (a step is cheap next to its evaluation).
+const COLUMNS_PER_TASK: usize = 16;
 
 /// One column of a PGD phase.
 struct Run<'a> {
@@ -91,29 +95,35 @@ impl<'a> Lockstep<'a> {
                     return true;
                 }
             }
-            for (j, run) in runs.iter_mut().enumerate() {
-                if margins[j] < run.best_loss {
-                    run.best_loss = margins[j];
-                    column_mut(&mut best_x, j).copy_from_slice(column(&x, j));
-                    column_mut(&mut best_gradient, j).copy_from_slice(column(&gradient, j));
-                    run.stalled = 0;
-                } else {
-                    run.stalled += 1;
-                    if run.stalled >= self.settings.patience {
-                        run.step *= 0.5;
-                        column_mut(&mut x, j).copy_from_slice(column(&best_x, j));
-                        column_mut(&mut gradient, j).copy_from_slice(column(&best_gradient, j));
-                        run.stalled = 0;
-                    }
-                }
-                let region = self.samples[run.sample].region;
-                descent_step(
-                    region,
-                    column_mut(&mut x, j),
-                    column(&gradient, j),
-                    run.step,
+            // Each column's schedule and step, in parallel (columns are independent).
+            let (samples, patience) = (self.samples, self.settings.patience);
+            x.as_mut_slice()
+                .par_chunks_mut(dim)
+                .zip(best_x.as_mut_slice().par_chunks_mut(dim))
+                .zip(gradient.as_mut_slice().par_chunks_mut(dim))
+                .zip(best_gradient.as_mut_slice().par_chunks_mut(dim))
+                .zip(runs.par_iter_mut())
+                .zip(margins.par_iter())
+                .with_min_len(COLUMNS_PER_TASK)
+                .for_each(
+                    |(((((x, best_x), gradient), best_gradient), run), &margin)| {
+                        if margin < run.best_loss {
+                            run.best_loss = margin;
+                            best_x.copy_from_slice(x);
+                            best_gradient.copy_from_slice(gradient);
+                            run.stalled = 0;
+                        } else {
+                            run.stalled += 1;
+                            if run.stalled >= patience {
+                                run.step *= 0.5;
+                                x.copy_from_slice(best_x);
+                                gradient.copy_from_slice(best_gradient);
+                                run.stalled = 0;
+                            }
+                        }
+                        descent_step(samples[run.sample].region, x, gradient, run.step);
+                    },
                 );
-            }
         }
         if self.settings.steps > 0 {
             let specs = self.run_specs(&runs);
