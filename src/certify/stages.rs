@@ -18,12 +18,14 @@ use crate::attack::{self, AttackOutcome, AttackProblem, AttackSettings};
 use crate::bound::batch::{self, Request};
 use crate::bound::{Method, CERTIFY_TOLERANCE};
 use crate::engine::slopes::SlopeSettings;
-use crate::model::deployed::{self, DeployedError};
+use crate::model::deployed::{self, DeployedError, ErrorBox};
 use crate::model::predicted_class;
 use crate::threat::Region;
 
 /// Tasks per engine batch in the bound stages.
 const TASKS_PER_BATCH: usize = 16;
+/// Boxes per deployed-error product (one column each).
+const ERROR_BOXES_PER_BATCH: usize = 32;
 
 /// The outcome of one (sample, epsilon) task once decided, or its state while open.
 #[derive(Debug, Clone)]
@@ -204,18 +206,26 @@ pub(crate) fn bound_stage(
             })
             .collect()
     };
+    // The bounds hold for the exact network; the deployed arithmetic's error is subtracted below so
+    // that the margin kept is a bound on the margin the deployed model computes.
+    let boxes: Vec<ErrorBox> = tasks
+        .iter()
+        .zip(&results)
+        .map(|(task, bounds)| ErrorBox {
+            lower: &task.region.outer_lower,
+            upper: &task.region.outer_upper,
+            hidden: &bounds.pre_activation,
+        })
+        .collect();
+    let all_errors: Vec<Vec<f64>> = boxes
+        .par_chunks(ERROR_BOXES_PER_BATCH)
+        .flat_map_iter(|c| context.deployed.bound_many(c))
+        .collect();
     let stage = stage_of(method);
     share(states, &tasks, stage, start);
     let mut open = Vec::new();
-    for (mut task, mut bounds) in tasks.into_iter().zip(results) {
+    for ((mut task, mut bounds), errors) in tasks.into_iter().zip(results).zip(all_errors) {
         let state = &mut states[task.slot];
-        // The bounds hold for the exact network; subtract the deployed arithmetic's error so that the
-        // margin kept is a bound on the margin the deployed model computes.
-        let errors = context.deployed.bound(
-            &task.region.outer_lower,
-            &task.region.outer_upper,
-            &bounds.pre_activation,
-        );
         let mut largest: f64 = 0.0;
         for (t, &target) in state.forbidden.iter().enumerate() {
             let e = DeployedError::margin_error(&errors, state.label, target);

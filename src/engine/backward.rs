@@ -13,7 +13,7 @@
 use nalgebra::{DMatrix, DVector};
 
 use super::intermediate::HiddenBounds;
-use super::{Domains, Engine};
+use super::{Domains, Engine, LinearLayer};
 use crate::bound::concretise;
 use crate::threat::Norm;
 
@@ -77,6 +77,76 @@ fn weighted_abs(a: &[f64], m: &[f64]) -> f64 {
     a.iter().zip(m).map(|(x, w)| x.abs() * w).sum()
 }
 
+/// Pushes one column of coefficients on a ReLU's output back to its input: each coefficient takes
+/// the lower line (slope from `chosen` for unstable units when given) when ≥ 0 and the upper line when
+/// < 0; returns the constant the upper lines' intercepts add. Branch-free: `max(v, 0)` and `min(v, 0)`
+/// pick the line (the other product is an exact zero), so the values equal the case-by-case ones.
+fn relax_column(
+    column: &mut [f64],
+    lower_slope: &[f64],
+    upper_slope: &[f64],
+    intercept: &[f64],
+    chosen: Option<&[f64]>,
+) -> f64 {
+    let mut add = 0.0;
+    let n = column.len();
+    let (lower_slope, upper_slope, intercept) =
+        (&lower_slope[..n], &upper_slope[..n], &intercept[..n]);
+    match chosen {
+        None => {
+            for i in 0..n {
+                let v = column[i];
+                let negative = v.min(0.0);
+                add += negative * intercept[i];
+                column[i] = v.max(0.0) * lower_slope[i] + negative * upper_slope[i];
+            }
+        }
+        Some(chosen) => {
+            let chosen = &chosen[..n];
+            for i in 0..n {
+                let v = column[i];
+                let t = intercept[i];
+                let slope = if t > 0.0 { chosen[i] } else { lower_slope[i] };
+                let negative = v.min(0.0);
+                add += negative * t;
+                column[i] = v.max(0.0) * slope + negative * upper_slope[i];
+            }
+        }
+    }
+    add
+}
+
+/// `Wᵀ A`, skipping the rows of `A` that are zero in every column (units a ReLU relaxation zeroes,
+/// e.g. inactive ones) when at least an eighth of them are: the same sums without exact-zero terms.
+fn transpose_nonzero(layer: &dyn LinearLayer, a: &DMatrix<f64>) -> DMatrix<f64> {
+    let mut used = vec![false; a.nrows()];
+    for column in a.column_iter() {
+        for (u, v) in used.iter_mut().zip(column.iter()) {
+            *u |= *v != 0.0;
+        }
+    }
+    let rows: Vec<usize> = (0..a.nrows()).filter(|&i| used[i]).collect();
+    if rows.len() * 8 > a.nrows() * 7 {
+        return layer.transpose_apply(a);
+    }
+    layer.transpose_apply_rows(&a.select_rows(&rows), &rows)
+}
+
+/// `(c + min over the box [lo, hi] of wᵀx, Σ |wᵢ| mᵢ)`, summed in index order; branch-free as in
+/// [`relax_column`].
+fn linf_minimum(c: f64, w: &[f64], lo: &[f64], hi: &[f64], m: &[f64]) -> (f64, f64) {
+    let n = w.len();
+    let (lo, hi, m) = (&lo[..n], &hi[..n], &m[..n]);
+    let mut value = c;
+    let mut size = 0.0;
+    for i in 0..n {
+        let x = w[i];
+        value += x.max(0.0) * lo[i] + x.min(0.0) * hi[i];
+        size += x.abs() * m[i];
+    }
+    (value, size)
+}
+
 /// Runs the backward pass for `objectives` on domains with hidden bounds `hidden` (which must cover
 /// every hidden layer below `objectives.top`).
 pub fn run(
@@ -89,22 +159,92 @@ pub fn run(
 ) -> Backward {
     let Objectives {
         top,
-        coefficients: mut a,
-        mut constant,
+        coefficients: a,
+        constant,
         domain,
     } = objectives;
     let columns = a.ncols();
-    let mut magnitude = vec![0.0; columns];
-    let mut fold = vec![0.0; columns];
+    let mut sums = Sums {
+        magnitude: vec![0.0; columns],
+        fold: vec![0.0; columns],
+    };
+    accumulate(&mut sums.magnitude, &a, &hidden.rounding[top], &domain);
+    if let Some(f) = &hidden.fold[top] {
+        accumulate(&mut sums.fold, &a, f, &domain);
+    }
+    let constant = constant + engine.layer(top).bias_dot(&a);
+    let g = transpose_nonzero(engine.layer(top), &a);
+    descend(
+        engine, hidden, domains, top, g, constant, sums, &domain, choices, keep,
+    )
+}
+
+/// [`run`] for unit objectives: column `j` is `signⱼ · z_top,unitⱼ` (`units[j] = (unitⱼ, signⱼ)`,
+/// signs ±1) on domain `domain[j]`. The first product is a selection of the layer's rows
+/// ([`LinearLayer::transpose_units`]); the result equals [`run`]'s on the same unit columns.
+pub fn run_units(
+    engine: &Engine,
+    hidden: &HiddenBounds,
+    domains: &Domains,
+    top: usize,
+    units: &[(usize, f64)],
+    domain: &[usize],
+    keep: Keep,
+) -> Backward {
+    let mut sums = Sums {
+        magnitude: Vec::with_capacity(units.len()),
+        fold: Vec::with_capacity(units.len()),
+    };
+    for (&(i, _), &d) in units.iter().zip(domain) {
+        sums.magnitude.push(hidden.rounding[top][(i, d)]);
+        sums.fold
+            .push(hidden.fold[top].as_ref().map_or(0.0, |f| f[(i, d)]));
+    }
+    let (g, constant) = engine.layer(top).transpose_units(units);
+    descend(
+        engine,
+        hidden,
+        domains,
+        top,
+        g,
+        constant,
+        sums,
+        domain,
+        Choices::default(),
+        keep,
+    )
+}
+
+/// Per column: `Σₖ |Aₖ|ᵀ vₖ` and `Σₖ |Aₖ|ᵀ fₖ` so far.
+struct Sums {
+    magnitude: Vec<f64>,
+    fold: Vec<f64>,
+}
+
+/// The rest of a backward pass from `g = W_topᵀ A_top` (input coefficients of layer `top`) with the
+/// constant and sums taken so far: through the ReLUs and layers below `top`, then the minimum over
+/// each domain's input set.
+#[allow(clippy::too_many_arguments)]
+fn descend(
+    engine: &Engine,
+    hidden: &HiddenBounds,
+    domains: &Domains,
+    top: usize,
+    mut g: DMatrix<f64>,
+    mut constant: DVector<f64>,
+    sums: Sums,
+    domain: &[usize],
+    choices: Choices,
+    keep: Keep,
+) -> Backward {
+    let columns = g.ncols();
+    let Sums {
+        mut magnitude,
+        mut fold,
+    } = sums;
     let mut on_hidden: Vec<DMatrix<f64>> = Vec::new();
     let mut k = top;
-    accumulate(&mut magnitude, &a, &hidden.rounding[k], &domain);
-    if let Some(f) = &hidden.fold[k] {
-        accumulate(&mut fold, &a, f, &domain);
-    }
     let g = loop {
-        constant += engine.layer(k).bias_dot(&a);
-        let g = engine.layer(k).transpose_apply(&a);
         if k == 0 {
             break g;
         }
@@ -120,29 +260,20 @@ pub fn run(
         let (rounding, fold_terms) = (&hidden.rounding[k], hidden.fold[k].as_ref());
         for j in 0..columns {
             let d = domain[j];
-            let lower_slope = relax.lower_slope.column(d);
-            let upper_slope = relax.upper_slope.column(d);
-            let intercept = relax.upper_intercept.column(d);
-            let chosen = choices.slopes.map(|s| s[k].column(j));
-            let extra = choices.multipliers.map(|m| m[k].column(j));
             let mut column = next.column_mut(j);
-            let mut add = 0.0;
-            for i in 0..column.len() {
-                let v = column[i];
-                let t = intercept[i];
-                column[i] = if v >= 0.0 {
-                    let slope = match &chosen {
-                        Some(c) if t > 0.0 => c[i],
-                        _ => lower_slope[i],
-                    };
-                    v * slope
-                } else {
-                    add += v * t;
-                    v * upper_slope[i]
-                };
-                if let Some(e) = &extra {
-                    column[i] += e[i];
-                }
+            let add = relax_column(
+                column.as_mut_slice(),
+                relax.lower_slope.column(d).as_slice(),
+                relax.upper_slope.column(d).as_slice(),
+                relax.upper_intercept.column(d).as_slice(),
+                choices
+                    .slopes
+                    .map(|s| s[k].column(j))
+                    .as_ref()
+                    .map(|c| c.as_slice()),
+            );
+            if let Some(m) = choices.multipliers {
+                column += m[k].column(j);
             }
             constant[j] += add;
             magnitude[j] += weighted_abs(column.as_slice(), rounding.column(d).as_slice());
@@ -153,7 +284,8 @@ pub fn run(
         if let Some(g) = original {
             on_hidden.push(g);
         }
-        a = next;
+        constant += engine.layer(k).bias_dot(&next);
+        g = transpose_nonzero(engine.layer(k), &next);
     };
     on_hidden.reverse();
     // Concretise over each domain's input set.
@@ -167,28 +299,30 @@ pub fn run(
         let coefficients = g.column(j);
         match region.norm {
             Norm::Linf => {
-                let mut value = constant[j];
-                let mut size = 0.0;
-                for i in 0..dim {
-                    let w = coefficients[i];
-                    let (lo, hi) = (domains.lower[(i, d)], domains.upper[(i, d)]);
-                    value += if w > 0.0 { w * lo } else { w * hi };
-                    size += w.abs() * domains.magnitude[(i, d)];
-                    if !minimisers {
-                        continue;
-                    }
-                    let (inner_lo, inner_hi) =
-                        (domains.inner_lower[(i, d)], domains.inner_upper[(i, d)]);
-                    minimiser[(i, j)] = if w > 0.0 {
-                        inner_lo
-                    } else if w < 0.0 {
-                        inner_hi
-                    } else {
-                        region.center[i].max(inner_lo).min(inner_hi)
-                    };
-                }
+                let coefficients = coefficients.as_slice();
+                let (value, size) = linf_minimum(
+                    constant[j],
+                    coefficients,
+                    domains.lower.column(d).as_slice(),
+                    domains.upper.column(d).as_slice(),
+                    domains.magnitude.column(d).as_slice(),
+                );
                 lower[j] = value;
                 magnitude[j] += size;
+                if minimisers {
+                    let inner_lo = domains.inner_lower.column(d);
+                    let inner_hi = domains.inner_upper.column(d);
+                    for i in 0..dim {
+                        let w = coefficients[i];
+                        minimiser[(i, j)] = if w > 0.0 {
+                            inner_lo[i]
+                        } else if w < 0.0 {
+                            inner_hi[i]
+                        } else {
+                            region.center[i].max(inner_lo[i]).min(inner_hi[i])
+                        };
+                    }
+                }
             }
             Norm::L2 => {
                 let row: Vec<f64> = coefficients.iter().copied().collect();

@@ -11,7 +11,7 @@
 use nalgebra::DMatrix;
 use rayon::prelude::*;
 
-use super::backward::{self, Choices, Keep, Objectives};
+use super::backward::{self, Keep};
 use super::{Domains, Engine};
 use crate::bound::LayerBounds;
 
@@ -223,32 +223,28 @@ fn refine(
     if pairs.is_empty() {
         return;
     }
-    let results: Vec<Vec<(usize, usize, f64, f64)>> = pairs
-        .par_chunks(MAX_COLUMNS / 2)
+    // Chunks end at domain boundaries where they can: the units a domain's relaxation zeroes are
+    // then zero rows of the whole chunk, which the backward pass skips.
+    let mut chunks: Vec<&[(usize, usize)]> = Vec::new();
+    let mut rest = &pairs[..];
+    while !rest.is_empty() {
+        let first = rest[0].0;
+        let same = rest.iter().take_while(|p| p.0 == first).count();
+        let take = same.min(MAX_COLUMNS / 2);
+        chunks.push(&rest[..take]);
+        rest = &rest[take..];
+    }
+    let results: Vec<Vec<(usize, usize, f64, f64)>> = chunks
+        .par_iter()
         .map(|chunk| {
-            let columns = 2 * chunk.len();
-            let mut coefficients = DMatrix::zeros(n, columns);
-            let mut domain = Vec::with_capacity(columns);
-            for (c, &(d, i)) in chunk.iter().enumerate() {
-                coefficients[(i, 2 * c)] = 1.0;
-                coefficients[(i, 2 * c + 1)] = -1.0;
-                domain.push(d);
-                domain.push(d);
+            let mut units = Vec::with_capacity(2 * chunk.len());
+            let mut domain = Vec::with_capacity(2 * chunk.len());
+            for &(d, i) in chunk.iter() {
+                units.extend([(i, 1.0), (i, -1.0)]);
+                domain.extend([d, d]);
             }
-            let objectives = Objectives {
-                top: k,
-                coefficients,
-                constant: nalgebra::DVector::zeros(columns),
-                domain,
-            };
-            let result = backward::run(
-                engine,
-                partial,
-                domains,
-                objectives,
-                Choices::default(),
-                Keep::Bounds,
-            );
+            let result =
+                backward::run_units(engine, partial, domains, k, &units, &domain, Keep::Bounds);
             chunk
                 .iter()
                 .enumerate()

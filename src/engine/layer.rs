@@ -23,6 +23,26 @@ pub trait LinearLayer: Send + Sync {
     fn apply(&self, xs: &DMatrix<f64>) -> DMatrix<f64>;
     /// `Wᵀ A`: pulls output coefficients (one column per sub-problem) back to input coefficients.
     fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64>;
+    /// `Wᵀ A` where `A` is zero outside `rows`: `coefficients` holds rows `rows` of `A` (in that
+    /// order). The default writes `A` out in full and calls [`LinearLayer::transpose_apply`]; a layer
+    /// whose product can skip the zero rows overrides it.
+    fn transpose_apply_rows(&self, coefficients: &DMatrix<f64>, rows: &[usize]) -> DMatrix<f64> {
+        let mut full = DMatrix::zeros(self.output_dim(), coefficients.ncols());
+        for (r, &i) in rows.iter().enumerate() {
+            full.row_mut(i).copy_from(&coefficients.row(r));
+        }
+        self.transpose_apply(&full)
+    }
+    /// For unit objectives `(unit, sign)`: the columns `sign · Wᵀ e_unit` and constants `sign · b_unit`
+    /// (what [`LinearLayer::transpose_apply`] and [`LinearLayer::bias_dot`] give on the unit columns,
+    /// which the default computes that way; a layer that can select its rows overrides it).
+    fn transpose_units(&self, units: &[(usize, f64)]) -> (DMatrix<f64>, DVector<f64>) {
+        let mut a = DMatrix::zeros(self.output_dim(), units.len());
+        for (j, &(i, sign)) in units.iter().enumerate() {
+            a[(i, j)] = sign;
+        }
+        (self.transpose_apply(&a), self.bias_dot(&a))
+    }
     /// [`LinearLayer::apply`] in f32 (weights rounded to f32; for searches that re-check in f64).
     fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32>;
     /// [`LinearLayer::transpose_apply`] in f32.
@@ -31,6 +51,8 @@ pub trait LinearLayer: Send + Sync {
     fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64>;
     /// `|W| X + |b| 1ᵀ` for non-negative `X` (magnitudes for error bounds).
     fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64>;
+    /// `|W| X` for non-negative `X` (an error carried through the map, no bias).
+    fn magnitude_linear(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64>;
     /// The box image `W⁺L + W⁻U + b` and `W⁺U + W⁻L + b` of the boxes `[L, U]` (columns), as computed
     /// (no rounding allowance).
     fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>);
@@ -100,6 +122,19 @@ impl LinearLayer for DenseLayer {
         &self.transposed * coefficients
     }
 
+    fn transpose_apply_rows(&self, coefficients: &DMatrix<f64>, rows: &[usize]) -> DMatrix<f64> {
+        self.transposed.select_columns(rows) * coefficients
+    }
+
+    fn transpose_units(&self, units: &[(usize, f64)]) -> (DMatrix<f64>, DVector<f64>) {
+        let columns = DMatrix::from_fn(self.input_dim(), units.len(), |r, j| {
+            units[j].1 * self.transposed[(r, units[j].0)]
+        });
+        let constants =
+            DVector::from_iterator(units.len(), units.iter().map(|&(i, s)| s * self.bias[i]));
+        (columns, constants)
+    }
+
     fn apply_single(&self, xs: &DMatrix<f32>) -> DMatrix<f32> {
         add_bias(&self.single.0 * xs, &self.single.2)
     }
@@ -114,6 +149,10 @@ impl LinearLayer for DenseLayer {
 
     fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
         add_bias(&self.magnitude * magnitudes, &self.bias_magnitude)
+    }
+
+    fn magnitude_linear(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        &self.magnitude * magnitudes
     }
 
     fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {
@@ -149,5 +188,34 @@ mod tests {
         let left = (layer.transpose_apply(&a).transpose() * &x)[0];
         let right = (a.transpose() * (&dense.weights * &x))[0];
         assert!((left - right).abs() < 1e-12);
+    }
+
+    /// Skipping zero rows and selecting rows are the plain products without exact-zero terms.
+    #[test]
+    fn row_products_equal_the_full_products() {
+        let (n, m, c) = (7, 5, 4);
+        let dense = Dense {
+            weights: DMatrix::from_fn(n, m, |i, j| ((i * 5 + j * 3) % 7) as f64 / 3.0 - 1.0),
+            bias: DVector::from_fn(n, |i, _| i as f64 / 10.0 - 0.3),
+        };
+        let layer = DenseLayer::new(&dense);
+        let rows = [1, 2, 5];
+        let mut a = DMatrix::zeros(n, c);
+        for &i in &rows {
+            for j in 0..c {
+                a[(i, j)] = (i as f64 + 1.0) * (j as f64 - 1.5);
+            }
+        }
+        let full = layer.transpose_apply(&a);
+        let skipped = layer.transpose_apply_rows(&a.select_rows(&rows), &rows);
+        assert!((full - skipped).abs().max() <= 1e-12);
+        let units = [(3, 1.0), (3, -1.0), (0, 1.0)];
+        let (columns, constants) = layer.transpose_units(&units);
+        for (j, &(i, s)) in units.iter().enumerate() {
+            for r in 0..m {
+                assert_eq!(columns[(r, j)], s * dense.weights[(i, r)]);
+            }
+            assert_eq!(constants[j], s * dense.bias[i]);
+        }
     }
 }

@@ -96,6 +96,10 @@ impl LinearLayer for ConvLayer {
         )
     }
 
+    fn magnitude_linear(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        self.conv.correlate(&self.magnitude, magnitudes)
+    }
+
     fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {
         let c = &self.conv;
         let low = c.correlate(&self.positive, lower) + c.correlate(&self.negative, upper);
@@ -145,6 +149,10 @@ impl LinearLayer for SparseLayer {
 
     fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
         add_bias(self.0.apply_with(magnitudes, f64::abs), &self.0.bias.abs())
+    }
+
+    fn magnitude_linear(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        self.0.apply_with(magnitudes, f64::abs)
     }
 
     fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {
@@ -208,6 +216,12 @@ impl LinearLayer for ChainLayer {
         self.0
             .iter()
             .fold(magnitudes.clone(), |h, l| l.magnitude_apply(&h))
+    }
+
+    fn magnitude_linear(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
+        self.0
+            .iter()
+            .fold(magnitudes.clone(), |h, l| l.magnitude_linear(&h))
     }
 
     fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>) {

@@ -44,10 +44,7 @@ enum Step {
         std: DVector<f64>,
     },
     /// Any linear layer as written (dense, conv, average pool, batch norm as two diagonal maps).
-    Linear {
-        map: Affine,
-        layer: Box<dyn LinearLayer>,
-    },
+    Linear(Box<dyn LinearLayer>),
     Relu,
     /// Max pooling: exact in any arithmetic; `levels` hidden layers of the folded network stand for it.
     MaxPool {
@@ -72,15 +69,24 @@ impl std::fmt::Debug for DeployedError {
     }
 }
 
-fn max_abs(lo: &DVector<f64>, hi: &DVector<f64>) -> DVector<f64> {
+/// One box for [`DeployedError::bound_many`]: input bounds and the hidden layers' pre-activation
+/// bounds known on it (as for [`DeployedError::bound`]).
+#[derive(Debug, Clone, Copy)]
+pub struct ErrorBox<'a> {
+    /// Lower input bounds.
+    pub lower: &'a [f64],
+    /// Upper input bounds.
+    pub upper: &'a [f64],
+    /// Sound pre-activation bounds per hidden layer (may be shorter or empty).
+    pub hidden: &'a [LayerBounds],
+}
+
+fn max_abs(lo: &DMatrix<f64>, hi: &DMatrix<f64>) -> DMatrix<f64> {
     lo.zip_map(hi, |l, h| l.abs().max(h.abs()))
 }
 
 fn linear(map: Affine) -> Step {
-    Step::Linear {
-        layer: build(&map),
-        map,
-    }
+    Step::Linear(build(&map))
 }
 
 impl DeployedError {
@@ -155,80 +161,100 @@ impl DeployedError {
     /// holds sound pre-activation bounds of the folded network's hidden layers (one per distinct ReLU,
     /// in order; may be shorter or empty).
     pub fn bound(&self, lower: &[f64], upper: &[f64], hidden: &[LayerBounds]) -> Vec<f64> {
+        self.bound_many(&[ErrorBox {
+            lower,
+            upper,
+            hidden,
+        }])
+        .remove(0)
+    }
+
+    /// [`DeployedError::bound`] for several boxes at once (one matrix column per box, so the layers
+    /// run as matrix products); the result for each box is the one `bound` gives alone.
+    pub fn bound_many(&self, boxes: &[ErrorBox]) -> Vec<Vec<f64>> {
+        let count = boxes.len();
+        if count == 0 {
+            return Vec::new();
+        }
         let u = self.arithmetic.unit_roundoff();
         let (stored, tiny, limit) = match self.arithmetic {
             Arithmetic::Float64 => (0.0, f64::MIN_POSITIVE, f64::MAX / 2.0),
             Arithmetic::Float32 => (u, f64::from(f32::MIN_POSITIVE), f64::from(f32::MAX) / 2.0),
         };
-        let overflow = vec![f64::INFINITY; self.outputs];
-        // A NaN counts as too large.
-        let too_large = |v: &DVector<f64>| v.iter().any(|x| x.is_nan() || *x > limit);
+        // Per box: whether some value or partial sum could overflow (a NaN counts as too large).
+        let mut overflow = vec![false; count];
+        let mut check = |m: &DMatrix<f64>| {
+            for (j, column) in m.column_iter().enumerate() {
+                overflow[j] |= column.iter().any(|x| x.is_nan() || *x > limit);
+            }
+        };
         let widen = 1.0 + 8.0 * UNIT_ROUNDOFF_F64;
-        let mut lo = DVector::from_column_slice(lower);
-        let mut hi = DVector::from_column_slice(upper);
-        if too_large(&max_abs(&lo, &hi)) {
-            return overflow;
-        }
+        let dim = boxes[0].lower.len();
+        let mut lo = DMatrix::from_fn(dim, count, |i, j| boxes[j].lower[i]);
+        let mut hi = DMatrix::from_fn(dim, count, |i, j| boxes[j].upper[i]);
+        check(&max_abs(&lo, &hi));
         let input_tiny = if stored > 0.0 { tiny } else { 0.0 };
-        let mut error = max_abs(&lo, &hi) * stored + DVector::from_element(lo.len(), input_tiny);
+        let mut error = (max_abs(&lo, &hi) * stored).add_scalar(input_tiny);
         let mut relu = 0;
         let mut last_was_relu = false;
         for step in &self.steps {
             match step {
                 Step::Normalize { mean, std } => {
                     let g = gamma(4, u);
-                    let new_lo = (&lo - mean).component_div(std);
-                    let new_hi = (&hi - mean).component_div(std);
+                    let per_row = |m: &DMatrix<f64>, f: &dyn Fn(f64, usize) -> f64| {
+                        DMatrix::from_fn(m.nrows(), m.ncols(), |i, j| f(m[(i, j)], i))
+                    };
+                    let new_lo = per_row(&lo, &|v, i| (v - mean[i]) / std[i]);
+                    let new_hi = per_row(&hi, &|v, i| (v - mean[i]) / std[i]);
                     let magnitude = max_abs(&new_lo, &new_hi) * widen;
-                    if too_large(&(max_abs(&lo, &hi) + mean.abs() + &error))
-                        || too_large(&magnitude)
-                    {
-                        return overflow;
-                    }
-                    let carried = (&error + mean.abs() * stored)
-                        .add_scalar(tiny)
-                        .component_div(std)
-                        * (1.0 + g);
+                    check(&(per_row(&max_abs(&lo, &hi), &|v, i| v + mean[i].abs()) + &error));
+                    check(&magnitude);
+                    let carried = per_row(&error, &|e, i| {
+                        (e + mean[i].abs() * stored + tiny) / std[i] * (1.0 + g)
+                    });
                     error = (carried + magnitude * g).add_scalar(tiny);
                     (lo, hi) = (new_lo, new_hi);
                     last_was_relu = false;
                 }
-                Step::Linear { map, layer } => {
+                Step::Linear(layer) => {
                     // The fan-in plus two: Gemm's alpha/beta and a separately added bias.
                     let n = layer.fan_in() + 2;
                     let g = gamma(n, u) + stored;
                     let x = max_abs(&lo, &hi);
-                    let column =
-                        |v: &DVector<f64>| DMatrix::from_column_slice(v.len(), 1, v.as_slice());
-                    let vector = |m: DMatrix<f64>| DVector::from_column_slice(m.as_slice());
-                    let touched = vector(layer.magnitude_apply(&column(&(&x + &error))));
-                    if too_large(&(&touched * (1.0 + g) * widen)) {
-                        return overflow;
-                    }
+                    let reach = &x + &error;
+                    let touched = layer.magnitude_apply(&reach);
+                    check(&(&touched * (1.0 + g) * widen));
                     // Underflow: each of the n operations, and (float32) each stored weight and bias.
-                    let absolute = n as f64 * tiny
-                        + if stored > 0.0 {
-                            tiny * ((&x + &error).sum() + 1.0)
-                        } else {
-                            0.0
-                        };
-                    let carried = vector(map.magnitude_linear(&column(&error)));
-                    let (new_lo, new_hi) = layer.interval(&column(&lo), &column(&hi));
-                    let slack =
-                        vector(layer.magnitude_apply(&column(&x))) * gamma(n, UNIT_ROUNDOFF_F64);
-                    lo = vector(new_lo) - &slack;
-                    hi = vector(new_hi) + &slack;
-                    error = (carried + touched * g).add_scalar(absolute) * widen;
+                    let absolute: Vec<f64> = reach
+                        .column_iter()
+                        .map(|c| {
+                            n as f64 * tiny
+                                + if stored > 0.0 {
+                                    tiny * (c.sum() + 1.0)
+                                } else {
+                                    0.0
+                                }
+                        })
+                        .collect();
+                    let carried = layer.magnitude_linear(&error);
+                    let (new_lo, new_hi) = layer.interval(&lo, &hi);
+                    let slack = layer.magnitude_apply(&x) * gamma(n, UNIT_ROUNDOFF_F64);
+                    lo = new_lo - &slack;
+                    hi = new_hi + &slack;
+                    error = carried + touched * g;
+                    for (j, mut column) in error.column_iter_mut().enumerate() {
+                        column.apply(|e| *e = (*e + absolute[j]) * widen);
+                    }
                     last_was_relu = false;
                 }
                 Step::MaxPool { windows, levels } => {
-                    let pick = |v: &DVector<f64>| {
-                        DVector::from_iterator(
-                            windows.len(),
-                            windows
+                    let pick = |m: &DMatrix<f64>| {
+                        DMatrix::from_fn(windows.len(), m.ncols(), |w, j| {
+                            windows[w]
                                 .iter()
-                                .map(|w| w.iter().map(|i| v[*i]).fold(f64::NEG_INFINITY, f64::max)),
-                        )
+                                .map(|i| m[(*i, j)])
+                                .fold(f64::NEG_INFINITY, f64::max)
+                        })
                     };
                     (lo, hi, error) = (pick(&lo), pick(&hi), pick(&error));
                     relu += levels;
@@ -236,12 +262,17 @@ impl DeployedError {
                 }
                 Step::Relu => {
                     if !last_was_relu {
-                        if let Some(b) = hidden.get(relu).filter(|b| b.len() == lo.len()) {
-                            for i in 0..lo.len() {
-                                let (l, h) = (lo[i].max(b.lower[i]), hi[i].min(b.upper[i]));
+                        for (j, b) in boxes.iter().enumerate() {
+                            let Some(b) = b.hidden.get(relu).filter(|b| b.len() == lo.nrows())
+                            else {
+                                continue;
+                            };
+                            for i in 0..lo.nrows() {
+                                let (l, h) =
+                                    (lo[(i, j)].max(b.lower[i]), hi[(i, j)].min(b.upper[i]));
                                 if l <= h {
-                                    lo[i] = l;
-                                    hi[i] = h;
+                                    lo[(i, j)] = l;
+                                    hi[(i, j)] = h;
                                 }
                             }
                         }
@@ -253,8 +284,16 @@ impl DeployedError {
                 }
             }
         }
-        debug_assert_eq!(error.len(), self.outputs);
-        error.iter().copied().collect()
+        debug_assert_eq!(error.nrows(), self.outputs);
+        (0..count)
+            .map(|j| {
+                if overflow[j] {
+                    vec![f64::INFINITY; self.outputs]
+                } else {
+                    error.column(j).iter().copied().collect()
+                }
+            })
+            .collect()
     }
 
     /// Bound on the deployed error of the margin `logit_label − logit_target` in the classifier form
