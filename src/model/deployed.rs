@@ -473,4 +473,43 @@ mod tests {
         let errors = DeployedError::new(&scaled("float64", 1e38, 1.0)).bound(&[1.0], &[4.0], &[]);
         assert!(errors.iter().all(|e| e.is_finite()));
     }
+
+    #[test]
+    fn boxes_bounded_together_get_their_own_bounds() {
+        // One overflowing box among ordinary ones: only its column is infinite.
+        for arithmetic in ["float32", "float64"] {
+            let bounds = DeployedError::new(&model(arithmetic));
+            let hidden = [LayerBounds {
+                lower: vec![-0.5, 0.0],
+                upper: vec![1.5, 0.5],
+            }];
+            let boxes = [
+                ([0.0, 0.0], [3.0, 9.0], &hidden[..]),
+                ([1.0, 2.0], [1.0, 2.0], &[][..]),
+                ([-1e308, 0.0], [1e308, 1.0], &[][..]),
+                ([0.5, -1.0], [2.0, 5.0], &hidden[..]),
+            ];
+            let many = bounds.bound_many(
+                &boxes
+                    .iter()
+                    .map(|(lower, upper, hidden)| ErrorBox {
+                        lower,
+                        upper,
+                        hidden,
+                    })
+                    .collect::<Vec<_>>(),
+            );
+            for ((lower, upper, hidden), together) in boxes.iter().zip(&many) {
+                let alone = bounds.bound(lower, upper, hidden);
+                for (a, b) in alone.iter().zip(together) {
+                    assert!(
+                        a == b || (a - b).abs() <= 1e-12 * a.abs(),
+                        "{arithmetic}: {a} vs {b}"
+                    );
+                }
+            }
+            assert!(many[2].iter().all(|e| e.is_infinite()), "{arithmetic}");
+            assert!(many[3].iter().all(|e| e.is_finite()), "{arithmetic}");
+        }
+    }
 }
