@@ -1,7 +1,8 @@
 //! The attack schedule of [`super::runner`] executed in lockstep over a batch of samples.
 //!
-//! Each phase of the schedule — the clean points, the FGSM points, the `e`-th extra start, restart `r`,
-//! the `t`-th targeted run — advances every still-open sample together: one PGD step is one batched
+//! Each phase of the schedule — the clean points, the FGSM points, the `e`-th extra start, the restart
+//! from the centre, the random restarts (all of a sample's side by side), the `t`-th targeted run —
+//! advances every still-open sample together: one PGD step is one batched
 //! forward pass and one batched input-gradient pass ([`super::evaluate`]) over the columns of the open
 //! runs. A sample whose counterexample is found (with `stop_at_first`) leaves the batch at once, and the
 //! columns are compacted, so the matrix products shrink as samples drop out.
@@ -139,20 +140,36 @@ impl<'a> Lockstep<'a> {
                 return;
             }
         }
-        for restart in 0..self.settings.restarts {
-            let open = self.open();
-            let mut runs = Vec::with_capacity(open.len());
-            for s in open {
-                let sample = self.samples[s];
-                let mut start = sample.region.center.clone();
-                if restart > 0 {
-                    random_start(sample.region, &mut self.states[s].rng, &mut start);
-                }
-                runs.push((s, start, Against::Strongest(sample.forbidden)));
-            }
+        // Restart 0 from the centre; then the random restarts side by side, as one phase (wider
+        // products; a sample's restarts all stop when one of them finds its counterexample).
+        if self.settings.restarts > 0 {
+            let runs = self
+                .open()
+                .into_iter()
+                .map(|s| {
+                    let sample = self.samples[s];
+                    (
+                        s,
+                        sample.region.center.clone(),
+                        Against::Strongest(sample.forbidden),
+                    )
+                })
+                .collect();
             if !self.pgd_phase(runs) {
                 return;
             }
+        }
+        let mut runs = Vec::new();
+        for s in self.open() {
+            let sample = self.samples[s];
+            for _ in 1..self.settings.restarts {
+                let mut start = sample.region.center.clone();
+                random_start(sample.region, &mut self.states[s].rng, &mut start);
+                runs.push((s, start, Against::Strongest(sample.forbidden)));
+            }
+        }
+        if !self.pgd_phase(runs) {
+            return;
         }
         if !self.settings.targeted {
             return;
