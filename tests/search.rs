@@ -18,6 +18,9 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde_json::Value;
 
+mod common;
+use common::fixtures::random_network;
+
 struct Fixture {
     network: Network,
     model: Model,
@@ -271,17 +274,6 @@ fn planted_counterexamples_are_found_never_certified() {
             }
         }
     }
-}
-
-fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
-    let layers = sizes
-        .windows(2)
-        .map(|w| Dense {
-            weights: DMatrix::from_fn(w[1], w[0], |_, _| rng.gen_range(-1.0..1.0)),
-            bias: DVector::from_fn(w[1], |_, _| rng.gen_range(-0.3..0.3)),
-        })
-        .collect();
-    Network::from_dense(layers)
 }
 
 /// On small random networks the optimality mode equals the big-M MILP (microlp with integer variables,

@@ -4,17 +4,16 @@
 //! (`tests/reference/out/milp_digits_mlp.json`, written by `tests/reference/milp_reference.py` with
 //! scipy 1.17.1's `scipy.optimize.milp`).
 
-use std::path::Path;
-
 use ballast::attack::validate;
-use ballast::data::{load_csv, DataOptions};
-use ballast::model::{predicted_class, Dense, Model, Network};
+use ballast::model::{predicted_class, Network};
 use ballast::search::{verify_batch, SearchOutcome, SearchProblem, SearchSettings, Verdict};
 use ballast::threat::{Budget, Norm};
-use nalgebra::{DMatrix, DVector};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde_json::Value;
+
+mod common;
+use common::fixtures::{digits_mlp, random_network};
 
 /// The outcomes of `problems` on a rayon pool of `threads` threads.
 fn on_threads(
@@ -75,17 +74,6 @@ fn assert_same(
         }
         _ => panic!("verdicts differ or unresolved: {context}"),
     }
-}
-
-fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
-    let layers = sizes
-        .windows(2)
-        .map(|w| Dense {
-            weights: DMatrix::from_fn(w[1], w[0], |_, _| rng.gen_range(-1.0..1.0)),
-            bias: DVector::from_fn(w[1], |_, _| rng.gen_range(-0.3..0.3)),
-        })
-        .collect();
-    Network::from_dense(layers)
 }
 
 /// Random networks of depth 2–4 and budgets from small to large, with the root attack, without it
@@ -153,13 +141,7 @@ fn random_networks_same_verdict_on_one_and_many_threads() {
 /// it is HiGHS's (robust iff every exact minimum margin is > 0).
 #[test]
 fn digits_same_verdict_on_one_and_many_threads_and_equal_to_highs() {
-    let model = Model::load(Path::new("tests/data/digits_mlp.model.json")).unwrap();
-    let data = load_csv(
-        Path::new("tests/data/digits_test.csv"),
-        &model,
-        &DataOptions::default(),
-    )
-    .unwrap();
+    let (model, data) = digits_mlp();
     let network = model.classifier();
     let text = std::fs::read_to_string("tests/reference/out/milp_digits_mlp.json").unwrap();
     let reference: Value = serde_json::from_str(&text).unwrap();
