@@ -4,8 +4,10 @@
 //! ([`super::tree::TargetTree::step`]).
 //!
 //! One [`Engine`] is built per sample and shared by all its trees. Parallelism is rayon's work
-//! stealing at two levels: samples of a batch, and the chunks of sub-domains and the leaf LPs inside
-//! one sample's steps, so a single hard sample keeps every core busy once the easy ones are done.
+//! stealing: samples of a batch; in the decision mode the root attack beside the trees (they do not
+//! depend on it; its counterexample halts them and is the one reported, so the verdict does not depend
+//! on the thread count); and inside the trees' steps (see [`super::tree`]). The optimality mode runs
+//! the attack first, since its trees prune against the attack's best margin.
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;

@@ -2,14 +2,18 @@
 //! explored best first (lowest bound first) over ReLU activation splits (Bunel et al., 2018 and 2020),
 //! a batch of sub-domains per step.
 //!
-//! A node is a [`SplitState`] with the sound bounds of its sub-domain ([`Node`]). [`TargetTree::step`]
-//! takes up to `batch_size` open nodes with the lowest bounds; nodes with no unstable free unit are
-//! leaves, solved as LPs in parallel ([`super::leaf`]); the others are split on their best-scored unit
-//! (or the best of a look-ahead, [`super::branching`]) and all their children are bounded in one batch
-//! ([`super::bounding`]), reusing each parent's pre-activation bounds below the split layer. A child's
-//! bound is raised to its parent's (which holds on the larger domain). Every point the tree meets
+//! A node is a [`crate::bound::SplitState`] with the sound bounds of its sub-domain ([`Node`]).
+//! [`TargetTree::step`] takes up to `batch_size` open nodes with the lowest bounds; nodes with no
+//! unstable free unit are leaves, solved as LPs in parallel ([`super::leaf`]); the others are split on
+//! their best-scored unit (or the best of a look-ahead, [`super::branching`]) and all their children
+//! are bounded in one batch ([`super::bounding`]), reusing each parent's pre-activation bounds below
+//! the split layer. A child's bound is raised to its parent's (which holds on the larger domain).
+//! Every point the tree meets
 //! (bound minimisers, short PGD runs from them, [`super::probe`], leaf LP minimisers) is checked by a
 //! forward pass; a counterexample is reported only after [`crate::attack::validate`] accepts it.
+//! In the decision mode the probe of a step runs beside the branching and bounding of its children
+//! (`rayon::join`); both only read the tree and their results are applied in the sequential order, so
+//! a step ends in the same state on any number of threads.
 //!
 //! Pruning: in the decision mode a node goes once its bound exceeds [`CERTIFY_TOLERANCE`]; in the
 //! optimality mode once its bound reaches the best margin achieved so far (minus the optimality gap).
