@@ -5,19 +5,19 @@
 // Index loops mirror the formulas (units i, targets t) and read more plainly than zipped iterators.
 #![allow(clippy::needless_range_loop)]
 
-use std::path::Path;
-
 use ballast::bound::{
     self, interval, linear, optimised, Domain, LayerBounds, MarginBounds, Method, ReluSplit,
     SplitState, CERTIFY_TOLERANCE,
 };
-use ballast::data::{load_csv, DataOptions};
 use ballast::model::{Dense, Model, Network};
 use ballast::threat::{Budget, Norm, Region};
 use nalgebra::{DMatrix, DVector};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
+
+mod common;
+use common::fixtures::digits_mlp;
 
 // ---------------------------------------------------------------------------------------------------
 // Helpers: random networks and regions, sampling, a simple gradient attack on the margin.
@@ -650,17 +650,6 @@ fn bad_arguments_are_errors() {
 // ---------------------------------------------------------------------------------------------------
 // Digits fixture: batch = single, and the LP against scipy/HiGHS.
 
-fn digits() -> (Model, ballast::data::Dataset) {
-    let model = Model::load(Path::new("tests/data/digits_mlp.model.json")).unwrap();
-    let data = load_csv(
-        Path::new("tests/data/digits_test.csv"),
-        &model,
-        &DataOptions::default(),
-    )
-    .unwrap();
-    (model, data)
-}
-
 fn digits_region(model: &Model, x: &[f64], norm: Norm, epsilon: f64) -> Region {
     Budget::uniform(norm, epsilon, model.input.dim).region(
         x,
@@ -673,7 +662,7 @@ fn digits_region(model: &Model, x: &[f64], norm: Norm, epsilon: f64) -> Region {
 /// the forward pass of the centre (digits fixture, first 40 test rows, both norms).
 #[test]
 fn batch_bounds_agree_with_single_sample_bounds() {
-    let (model, data) = digits();
+    let (model, data) = digits_mlp();
     let network = model.classifier();
     for norm in [Norm::Linf, Norm::L2] {
         let epsilon = if norm == Norm::Linf { 0.03 } else { 0.3 };
@@ -754,11 +743,11 @@ struct LpSample {
 /// layer network its linear bound on the same intermediate bounds is a feasible point of that LP's dual, so
 /// it never exceeds the HiGHS optimum and never certifies more samples.
 #[test]
-fn linear_bounds_stay_below_scipy_highs_lp_on_digits() {
+fn linear_bounds_stay_below_scipy_highs_lp_on_digits_mlp() {
     let text = std::fs::read_to_string("tests/reference/out/lp_digits.json").unwrap();
     let reference: LpReference = serde_json::from_str(&text).unwrap();
     assert!((reference.certify_tolerance - CERTIFY_TOLERANCE).abs() < 1e-15);
-    let (model, data) = digits();
+    let (model, data) = digits_mlp();
     let network = model.classifier();
     assert_eq!(reference.cases.len(), 3);
     for case in &reference.cases {
@@ -821,7 +810,7 @@ fn linear_bounds_stay_below_scipy_highs_lp_on_digits() {
 fn optimised_linear_certifies_at_least_the_interval_lp_count() {
     let text = std::fs::read_to_string("tests/reference/out/lp_digits.json").unwrap();
     let reference: LpReference = serde_json::from_str(&text).unwrap();
-    let (model, data) = digits();
+    let (model, data) = digits_mlp();
     let network = model.classifier();
     for case in reference.cases.iter().filter(|c| c.epsilon > 0.015) {
         let mut counts = [0usize; 3];

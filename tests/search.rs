@@ -5,11 +5,8 @@
 //! [0, 1], computed by `tests/reference/milp_reference.py` with scipy.optimize.milp (HiGHS) on the big-M
 //! encoding; the scipy version is recorded in the file.
 
-use std::path::Path;
-
 use ballast::attack::validate;
 use ballast::bound::CERTIFY_TOLERANCE;
-use ballast::data::{load_csv, DataOptions};
 use ballast::model::{Dense, Model, Network};
 use ballast::search::{milp, verify_batch, verify_sample, SearchProblem, SearchSettings, Verdict};
 use ballast::threat::{Budget, Norm, Region};
@@ -17,6 +14,9 @@ use nalgebra::{DMatrix, DVector};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde_json::Value;
+
+mod common;
+use common::fixtures::{digits_mlp, random_network};
 
 struct Fixture {
     network: Network,
@@ -26,13 +26,7 @@ struct Fixture {
 }
 
 fn fixture() -> Fixture {
-    let model = Model::load(Path::new("tests/data/digits_mlp.model.json")).unwrap();
-    let data = load_csv(
-        Path::new("tests/data/digits_test.csv"),
-        &model,
-        &DataOptions::default(),
-    )
-    .unwrap();
+    let (model, data) = digits_mlp();
     let features = (0..data.len()).map(|i| data.sample(i).to_vec()).collect();
     let text = std::fs::read_to_string("tests/reference/out/milp_digits_mlp.json").unwrap();
     Fixture {
@@ -271,17 +265,6 @@ fn planted_counterexamples_are_found_never_certified() {
             }
         }
     }
-}
-
-fn random_network(rng: &mut ChaCha8Rng, sizes: &[usize]) -> Network {
-    let layers = sizes
-        .windows(2)
-        .map(|w| Dense {
-            weights: DMatrix::from_fn(w[1], w[0], |_, _| rng.gen_range(-1.0..1.0)),
-            bias: DVector::from_fn(w[1], |_, _| rng.gen_range(-0.3..0.3)),
-        })
-        .collect();
-    Network::from_dense(layers)
 }
 
 /// On small random networks the optimality mode equals the big-M MILP (microlp with integer variables,

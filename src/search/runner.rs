@@ -4,14 +4,17 @@
 //! ([`super::tree::TargetTree::step`]).
 //!
 //! One [`Engine`] is built per sample and shared by all its trees. Parallelism is rayon's work
-//! stealing at two levels: samples of a batch, and the chunks of sub-domains and the leaf LPs inside
-//! one sample's steps, so a single hard sample keeps every core busy once the easy ones are done.
+//! stealing: samples of a batch; in the decision mode the root attack beside the trees (they do not
+//! depend on it; its counterexample halts them and is the one reported, so the verdict does not depend
+//! on the thread count); and inside the trees' steps (see [`super::tree`]). The optimality mode runs
+//! the attack first, since its trees prune against the attack's best margin.
 
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
 
 use rayon::prelude::*;
 
-use super::bounding::{self, Job, Margins, Settings};
+use super::bounding::{self, Bounded, Job, Margins, Settings};
 use super::frontier::Node;
 use super::tree::{Problem, Step, TargetTree};
 use super::{
@@ -163,24 +166,6 @@ fn search(
         };
         return Ok(finish(verdict, summaries, nodes));
     }
-    let mut found: Option<Counterexample> = None;
-    let mut best_attack_point: Option<Vec<f64>> = None;
-    if let Some(attack) = &settings.root_attack {
-        let mut attack = attack.clone();
-        attack.deadline = settings.deadline;
-        let starts: Vec<Vec<f64>> = root.minimisers.iter().flatten().cloned().collect();
-        match attack_sample(&network, region, label, targets, &attack, seed, &starts)? {
-            AttackOutcome::Found(c) => {
-                best_attack_point = Some(c.input.clone());
-                found = Some(c);
-            }
-            AttackOutcome::NotFound { best_input, .. } => best_attack_point = Some(best_input),
-        }
-    }
-    if let (Some(c), false) = (&found, settings.optimality) {
-        let verdict = Verdict::Counterexample(c.clone());
-        return Ok(finish(verdict, summaries, nodes));
-    }
     let problem = Problem {
         network: &network,
         engine: &engine,
@@ -189,72 +174,75 @@ fn search(
         forbidden: targets,
         settings,
     };
-    // Most dangerous class first.
-    let mut order: Vec<usize> = (0..targets.len()).collect();
-    order.sort_by(|a, b| root.lower[*a].total_cmp(&root.lower[*b]));
-    let mut stopped: Option<UnresolvedReason> = None;
-    let mut undecided: Option<usize> = None;
-    for t in order {
-        let target = targets[t];
-        if !settings.optimality && root.lower[t] > CERTIFY_TOLERANCE {
-            summaries[t].finished = true;
-            continue;
-        }
-        if stopped.is_some() {
-            continue;
-        }
-        let root_node = Node {
-            splits: SplitState::free(&network),
-            bounds: root.bounds.clone(),
-            lower: root.lower[t],
-            minimiser: root.minimisers[t].clone(),
-            warm: root.warm[t].clone(),
+    let attack = || -> Result<RootAttack, SearchError> {
+        let Some(attack) = &settings.root_attack else {
+            return Ok(RootAttack::default());
         };
-        let mut tree = TargetTree::new(problem, target, root_node);
-        let mut points: Vec<Vec<f64>> = best_attack_point.iter().cloned().collect();
-        points.extend(found.iter().map(|c| c.input.clone()));
-        tree.consider(&points);
-        let mut finished = !tree.has_open_nodes();
-        while !finished {
-            if tree.found.is_some() && !settings.optimality {
-                break;
-            }
-            if past(settings.deadline) {
-                stopped = Some(UnresolvedReason::Deadline);
-                break;
-            }
-            let used = nodes + tree.nodes - 1;
-            if used >= settings.node_limit {
-                stopped = Some(UnresolvedReason::NodeLimit);
-                break;
-            }
-            match tree.step(settings.node_limit - used)? {
-                Step::Finished => finished = true,
-                Step::Stopped(reason) => {
-                    stopped = Some(reason);
-                    break;
+        let mut attack = attack.clone();
+        attack.deadline = settings.deadline;
+        let starts: Vec<Vec<f64>> = root.minimisers.iter().flatten().cloned().collect();
+        Ok(
+            match attack_sample(&network, region, label, targets, &attack, seed, &starts)? {
+                AttackOutcome::Found(c) => RootAttack {
+                    best: Some(c.input.clone()),
+                    found: Some(c),
+                },
+                AttackOutcome::NotFound { best_input, .. } => RootAttack {
+                    best: Some(best_input),
+                    found: None,
+                },
+            },
+        )
+    };
+    let halt = AtomicBool::new(false);
+    let (attack, trees) = if settings.optimality || settings.root_attack.is_none() {
+        // The optimality mode prunes against the attack's best margin: attack first, then the trees.
+        let attack = attack()?;
+        let points: Vec<Vec<f64>> = attack.points().cloned().collect();
+        let mut searched = summaries.clone();
+        let trees = run_trees(problem, &root, &mut searched, &points, &halt);
+        (attack, trees.map(|t| (t, searched)))
+    } else {
+        // The decision mode's trees do not depend on the attack, so both start at once (rayon::join:
+        // an idle core takes the trees; on one thread the attack runs first, as in the optimality
+        // mode). A counterexample from the attack halts the trees and is the one reported, so the
+        // verdict and the point do not depend on the thread count.
+        let (attack, trees) = rayon::join(
+            || {
+                let attack = attack();
+                if matches!(&attack, Ok(RootAttack { found: Some(_), .. })) {
+                    halt.store(true, Ordering::Relaxed);
                 }
-                Step::Continue | Step::Found => {}
-            }
+                attack
+            },
+            || {
+                let mut searched = summaries.clone();
+                run_trees(problem, &root, &mut searched, &[], &halt).map(|t| (t, searched))
+            },
+        );
+        let attack = attack?;
+        let trees = trees.map(|(t, mut searched)| {
+            let points: Vec<Vec<f64>> = attack.points().cloned().collect();
+            note_points(&network, label, &mut searched, &t.searched, &points);
+            (t, searched)
+        });
+        (attack, trees)
+    };
+    if let (Some(c), false) = (&attack.found, settings.optimality) {
+        // Trees halted by the attack still hold sound bounds; a tree error after a counterexample
+        // changes nothing.
+        if let Ok((trees, searched)) = trees {
+            summaries = searched;
+            nodes += trees.nodes;
         }
-        nodes += tree.nodes - 1;
-        let summary = &mut summaries[t];
-        summary.lower = tree.lower();
-        summary.upper = tree.incumbent;
-        summary.upper_point = tree.incumbent_point.clone();
-        summary.finished = finished;
-        summary.nodes = tree.nodes;
-        summary.leaves = tree.leaves;
-        if tree.undecided && finished && undecided.is_none() {
-            undecided = Some(target);
-        }
-        if found.is_none() {
-            found = tree.found.take();
-        }
-        if found.is_some() && !settings.optimality {
-            break;
-        }
+        let verdict = Verdict::Counterexample(c.clone());
+        return Ok(finish(verdict, summaries, nodes));
     }
+    let (trees, searched) = trees?;
+    summaries = searched;
+    nodes += trees.nodes;
+    let found = attack.found.or(trees.found);
+    let (stopped, undecided) = (trees.stopped, trees.undecided);
     let best_lower = summaries
         .iter()
         .map(|s| s.lower)
@@ -280,4 +268,141 @@ fn search(
         }
     };
     Ok(finish(verdict, summaries, nodes))
+}
+
+/// What the root attack left: a validated counterexample and the best point it reached.
+#[derive(Debug, Default)]
+struct RootAttack {
+    found: Option<Counterexample>,
+    best: Option<Vec<f64>>,
+}
+
+impl RootAttack {
+    /// The points the trees check (the best point, then the counterexample).
+    fn points(&self) -> impl Iterator<Item = &Vec<f64>> {
+        self.best.iter().chain(self.found.iter().map(|c| &c.input))
+    }
+}
+
+/// What the trees of one sample left.
+#[derive(Debug)]
+struct Trees {
+    /// Sub-domains bounded beyond the root.
+    nodes: usize,
+    /// Why the trees stopped early (deadline, node limit, memory cap).
+    stopped: Option<UnresolvedReason>,
+    /// The first target whose finished tree kept an undecided leaf.
+    undecided: Option<usize>,
+    /// A validated counterexample found in a tree.
+    found: Option<Counterexample>,
+    /// Positions (in the target order) of the classes that got a tree.
+    searched: Vec<usize>,
+}
+
+/// Runs one tree per forbidden class not proved at the root, most dangerous class first, until every
+/// tree is finished, a counterexample is found, a budget stops the search or `halt` is set (checked
+/// before each step). `points` (region points already seen) are checked by every tree first; each
+/// tree's results go into its class's summary.
+fn run_trees(
+    problem: Problem,
+    root: &Bounded,
+    summaries: &mut [TargetSummary],
+    points: &[Vec<f64>],
+    halt: &AtomicBool,
+) -> Result<Trees, SearchError> {
+    let settings = problem.settings;
+    let targets = problem.forbidden;
+    let mut trees = Trees {
+        nodes: 0,
+        stopped: None,
+        undecided: None,
+        found: None,
+        searched: Vec::new(),
+    };
+    // Most dangerous class first.
+    let mut order: Vec<usize> = (0..targets.len()).collect();
+    order.sort_by(|a, b| root.lower[*a].total_cmp(&root.lower[*b]));
+    for t in order {
+        let target = targets[t];
+        if !settings.optimality && root.lower[t] > CERTIFY_TOLERANCE {
+            summaries[t].finished = true;
+            continue;
+        }
+        if trees.stopped.is_some() || halt.load(Ordering::Relaxed) {
+            continue;
+        }
+        let root_node = Node {
+            splits: SplitState::free(problem.network),
+            bounds: root.bounds.clone(),
+            lower: root.lower[t],
+            minimiser: root.minimisers[t].clone(),
+            warm: root.warm[t].clone(),
+        };
+        let mut tree = TargetTree::new(problem, target, root_node);
+        tree.consider(points);
+        trees.searched.push(t);
+        let mut finished = !tree.has_open_nodes();
+        while !finished {
+            if (tree.found.is_some() && !settings.optimality) || halt.load(Ordering::Relaxed) {
+                break;
+            }
+            if past(settings.deadline) {
+                trees.stopped = Some(UnresolvedReason::Deadline);
+                break;
+            }
+            let used = 1 + trees.nodes + tree.nodes - 1;
+            if used >= settings.node_limit {
+                trees.stopped = Some(UnresolvedReason::NodeLimit);
+                break;
+            }
+            match tree.step(settings.node_limit - used)? {
+                Step::Finished => finished = true,
+                Step::Stopped(reason) => {
+                    trees.stopped = Some(reason);
+                    break;
+                }
+                Step::Continue | Step::Found => {}
+            }
+        }
+        trees.nodes += tree.nodes - 1;
+        let summary = &mut summaries[t];
+        summary.lower = tree.lower();
+        summary.upper = tree.incumbent;
+        summary.upper_point = tree.incumbent_point.clone();
+        summary.finished = finished;
+        summary.nodes = tree.nodes;
+        summary.leaves = tree.leaves;
+        if tree.undecided && finished && trees.undecided.is_none() {
+            trees.undecided = Some(target);
+        }
+        if trees.found.is_none() {
+            trees.found = tree.found.take();
+        }
+        if trees.found.is_some() && !settings.optimality {
+            break;
+        }
+    }
+    Ok(trees)
+}
+
+/// Lowers the achieved margins of the searched classes to those of `points` (plain forward passes;
+/// what the trees would have recorded had they checked the points first).
+fn note_points(
+    network: &Network,
+    label: usize,
+    summaries: &mut [TargetSummary],
+    searched: &[usize],
+    points: &[Vec<f64>],
+) {
+    for point in points {
+        let logits = network.forward(point);
+        for &t in searched {
+            let summary = &mut summaries[t];
+            let margin = logits[label] - logits[summary.target];
+            if margin < summary.upper {
+                summary.upper = margin;
+                summary.upper_point = Some(point.clone());
+            }
+        }
+    }
 }

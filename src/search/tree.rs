@@ -2,14 +2,18 @@
 //! explored best first (lowest bound first) over ReLU activation splits (Bunel et al., 2018 and 2020),
 //! a batch of sub-domains per step.
 //!
-//! A node is a [`SplitState`] with the sound bounds of its sub-domain ([`Node`]). [`TargetTree::step`]
-//! takes up to `batch_size` open nodes with the lowest bounds; nodes with no unstable free unit are
-//! leaves, solved as LPs in parallel ([`super::leaf`]); the others are split on their best-scored unit
-//! (or the best of a look-ahead, [`super::branching`]) and all their children are bounded in one batch
-//! ([`super::bounding`]), reusing each parent's pre-activation bounds below the split layer. A child's
-//! bound is raised to its parent's (which holds on the larger domain). Every point the tree meets
+//! A node is a [`crate::bound::SplitState`] with the sound bounds of its sub-domain ([`Node`]).
+//! [`TargetTree::step`] takes up to `batch_size` open nodes with the lowest bounds; nodes with no
+//! unstable free unit are leaves, solved as LPs in parallel ([`super::leaf`]); the others are split on
+//! their best-scored unit (or the best of a look-ahead, [`super::branching`]) and all their children
+//! are bounded in one batch ([`super::bounding`]), reusing each parent's pre-activation bounds below
+//! the split layer. A child's bound is raised to its parent's (which holds on the larger domain).
+//! Every point the tree meets
 //! (bound minimisers, short PGD runs from them, [`super::probe`], leaf LP minimisers) is checked by a
 //! forward pass; a counterexample is reported only after [`crate::attack::validate`] accepts it.
+//! In the decision mode the probe of a step runs beside the branching and bounding of its children
+//! (`rayon::join`); both only read the tree and their results are applied in the sequential order, so
+//! a step ends in the same state on any number of threads.
 //!
 //! Pruning: in the decision mode a node goes once its bound exceeds [`CERTIFY_TOLERANCE`]; in the
 //! optimality mode once its bound reaches the best margin achieved so far (minus the optimality gap).
@@ -19,15 +23,15 @@
 
 use rayon::prelude::*;
 
-use super::bounding::{self, Job, Margins, Settings};
-use super::branching::{look_ahead, ranked_units, Parent, Unit};
+use super::bounding::{Margins, Settings};
+use super::branching::{children, Branching, Children};
 use super::frontier::{Frontier, Node};
 use super::leaf::{leaf_piece, solve_leaf, LeafDomain, LeafSolution};
 use super::probe::{descend, Descent};
 use super::{SearchError, SearchSettings, UnresolvedReason};
 use crate::attack::validate;
 use crate::attack::Counterexample;
-use crate::bound::{ReluSplit, CERTIFY_TOLERANCE};
+use crate::bound::CERTIFY_TOLERANCE;
 use crate::engine::Engine;
 use crate::model::Network;
 use crate::threat::Region;
@@ -186,11 +190,11 @@ impl<'a> TargetTree<'a> {
         found_now
     }
 
-    /// Short PGD runs from `starts`; true when they found a counterexample.
-    fn probe(&mut self, starts: Vec<Vec<f64>>) -> bool {
+    /// Short PGD runs from `starts` (no tree state changes): the points worth checking.
+    fn descend_from(&self, starts: &[Vec<f64>]) -> Vec<Vec<f64>> {
         let settings = self.problem.settings;
         if settings.node_attack_steps == 0 || starts.is_empty() {
-            return false;
+            return Vec::new();
         }
         // Optimality mode descends this target's margin; the decision mode any forbidden class.
         let single = [self.target];
@@ -205,7 +209,12 @@ impl<'a> TargetTree<'a> {
             steps: settings.node_attack_steps,
             stop_at_flip: !settings.optimality,
         };
-        let points = descend(self.problem.engine, self.problem.region, descent, &starts);
+        descend(self.problem.engine, self.problem.region, descent, starts)
+    }
+
+    /// Short PGD runs from `starts`; true when they found a counterexample.
+    fn probe(&mut self, starts: &[Vec<f64>]) -> bool {
+        let points = self.descend_from(starts);
         self.consider(&points)
     }
 
@@ -255,7 +264,19 @@ impl<'a> TargetTree<'a> {
             .chain(&parents)
             .filter_map(|n| n.minimiser.clone())
             .collect();
-        if self.probe(starts) && self.decided() {
+        // The decision mode's prune threshold never moves, so the children are bounded while the probe
+        // runs (rayon::join: an idle core takes one side); the results are applied in the same order
+        // as the sequential steps of the optimality mode, so the tree ends in the same state.
+        let (points, children) = if settings.optimality {
+            (self.descend_from(&starts), None)
+        } else {
+            let (points, children) = rayon::join(
+                || self.descend_from(&starts),
+                || self.bound_children(&parents),
+            );
+            (points, Some(children))
+        };
+        if self.consider(&points) && self.decided() {
             for node in leaves.into_iter().chain(parents) {
                 self.frontier.push(node);
             }
@@ -268,70 +289,37 @@ impl<'a> TargetTree<'a> {
             }
             return Ok(Step::Found);
         }
-        self.split(parents);
+        let children = children.unwrap_or_else(|| self.bound_children(&parents));
+        self.admit_children(&parents, children);
         if self.decided() {
             return Ok(Step::Found);
         }
         Ok(self.after_step())
     }
 
-    /// Splits every parent on its chosen unit and admits the bounded children.
-    fn split(&mut self, parents: Vec<Node>) {
-        if parents.is_empty() {
-            return;
-        }
-        let Problem {
-            engine,
-            region,
-            label,
-            settings,
-            ..
-        } = self.problem;
+    /// Chooses the split unit of every parent and bounds both children of each (no tree state
+    /// changes; the prune threshold is the current one).
+    fn bound_children(&self, parents: &[Node]) -> Children {
         let targets = [self.target];
         let margin = Margins {
-            label,
+            label: self.problem.label,
             targets: &targets,
         };
-        let views: Vec<Parent> = parents
-            .iter()
-            .map(|p| Parent {
-                splits: &p.splits,
-                bounds: &p.bounds,
-            })
-            .collect();
-        let ranked = ranked_units(engine, region, margin, &views);
-        let k = settings.branching_candidates.max(1);
-        let chosen: Vec<Unit> = if k > 1 {
-            let candidates: Vec<Vec<Unit>> = ranked
-                .iter()
-                .map(|r| r.iter().take(k).map(|(u, _)| *u).collect())
-                .collect();
-            look_ahead(engine, region, margin, &views, &candidates)
-        } else {
-            ranked.iter().map(|r| r[0].0).collect()
+        let settings = Settings::of(self.problem.settings, self.threshold());
+        let branching = Branching {
+            engine: self.problem.engine,
+            region: self.problem.region,
+            margin,
+            candidates: self.problem.settings.branching_candidates,
         };
-        let mut splits = Vec::with_capacity(2 * parents.len());
-        for (parent, &(layer, unit)) in parents.iter().zip(&chosen) {
-            for side in [ReluSplit::Active, ReluSplit::Inactive] {
-                splits.push(parent.splits.with(layer, unit, side));
-            }
-        }
-        let jobs: Vec<Job> = splits
-            .iter()
-            .enumerate()
-            .map(|(c, s)| Job {
-                splits: Some(s),
-                // Layers up to the split layer keep the parent's bounds (clipped by the split).
-                given: Some((&parents[c / 2].bounds, chosen[c / 2].0 + 1)),
-                // The ascent starts from the parent's best slopes and multipliers.
-                warm: parents[c / 2].warm.as_ref().map(std::slice::from_ref),
-            })
-            .collect();
-        let bound_settings = Settings::of(settings, self.threshold());
-        let bounded = bounding::bound(engine, region, margin, &jobs, &bound_settings);
-        self.nodes += bounded.len();
+        children(branching, &settings, parents)
+    }
+
+    /// Admits the bounded children of `parents` (two per parent, in order) and checks their minimisers.
+    fn admit_children(&mut self, parents: &[Node], children: Children) {
+        self.nodes += children.bounded.len();
         let mut points = Vec::new();
-        for ((split, b), c) in splits.into_iter().zip(bounded).zip(0..) {
+        for ((split, b), c) in children.splits.into_iter().zip(children.bounded).zip(0..) {
             let parent = &parents[c / 2];
             if b.empty {
                 continue; // no input reaches this sub-domain
@@ -401,7 +389,7 @@ impl<'a> TargetTree<'a> {
             }
         }
         if !open.is_empty() && self.found.is_none() {
-            self.probe(open);
+            self.probe(&open);
         }
         Ok(())
     }

@@ -2,9 +2,10 @@
 //! per pattern), in both modes and with both branching rules.
 
 use super::*;
-use crate::bound::{Method, SplitState};
+use crate::bound::{Method, ReluSplit, SplitState};
 use crate::engine::slopes::SlopeSettings;
 use crate::model::Dense;
+use crate::search::bounding::{self, Job};
 use crate::search::leaf::affine_piece;
 use crate::search::solver::{minimise, LinearProgram, LpOutcome, Row};
 use crate::threat::{Budget, Norm};

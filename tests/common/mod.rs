@@ -5,6 +5,7 @@
 #![allow(dead_code)] // each test crate uses the part it needs
 
 pub mod exact_model;
+pub mod fixtures;
 pub mod gradient;
 
 use num_rational::BigRational;
