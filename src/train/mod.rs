@@ -44,6 +44,7 @@ pub mod duality;
 pub mod gap_correction;
 pub mod init;
 pub mod lineage;
+pub mod margin;
 pub mod optimizer;
 pub mod plain;
 pub mod price;
