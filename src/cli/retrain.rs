@@ -9,8 +9,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{bail, Context};
 
 use super::common::{load_data, load_model, DataArgs, Epsilons, RequirementArgs};
+use super::retrain_sheet::sheet_markdown;
 pub use super::retrain_sheet::{checks_csv, log_csv};
-use super::retrain_sheet::{final_prices, round_assessments, sheet_markdown};
 use super::Outcome;
 use crate::certify::lines::LineVerdict;
 use crate::certify::PipelineOptions;
@@ -19,6 +19,7 @@ use crate::train::confidence::{self, ConfidenceSettings};
 use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
 use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
+use crate::train::provenance::{final_prices, retrain_provenance, ProvenanceInputs};
 use crate::train::retrain::{retrain, Keep, NearMisses, RetrainSettings, RetrainVerdict};
 use crate::train::robust::RobustLoss;
 use crate::train::{new_mlp, OptimizerKind, TrainSettings};
@@ -31,8 +32,9 @@ use crate::train::{new_mlp, OptimizerKind, TrainSettings};
 )]
 pub struct Args {
     /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
+    /// Required: a requirement file names no model.
     #[arg(long, help_heading = "Inputs")]
-    pub model: PathBuf,
+    pub model: Option<PathBuf>,
     /// Training data (CSV).
     #[arg(long, help_heading = "Inputs")]
     pub train: PathBuf,
@@ -102,20 +104,28 @@ pub struct Args {
     #[arg(long, default_value_t = 0, help_heading = "Training")]
     pub seed: u64,
     /// Robust loss: certified (linear + interval bounds), interval, or adversarial (PGD).
-    #[arg(long, default_value = "certified", help_heading = "Training")]
+    #[arg(
+        long,
+        default_value = "certified",
+        help_heading = "Formulation (advanced)"
+    )]
     pub loss: String,
     /// Constraint: error (robust error rate ≤ 1 − floor − slack) or loss (robust loss ≤ --level).
-    #[arg(long, default_value = "error", help_heading = "Training")]
+    #[arg(long, default_value = "error", help_heading = "Formulation (advanced)")]
     pub constraint: String,
     /// Robust loss level for --constraint loss.
-    #[arg(long, allow_hyphen_values = true, help_heading = "Training")]
+    #[arg(
+        long,
+        allow_hyphen_values = true,
+        help_heading = "Formulation (advanced)"
+    )]
     pub level: Option<f64>,
     /// Extra margin on the robust-error constraint in the first round.
     #[arg(
         long,
         default_value_t = 0.02,
         allow_hyphen_values = true,
-        help_heading = "Training"
+        help_heading = "Formulation (advanced)"
     )]
     pub slack: f64,
     /// Slack added in every further round.
@@ -123,21 +133,25 @@ pub struct Args {
         long,
         default_value_t = 0.03,
         allow_hyphen_values = true,
-        help_heading = "Training"
+        help_heading = "Formulation (advanced)"
     )]
     pub slack_step: f64,
     /// Fixed penalty weight instead of the primal-dual multiplier (for comparison).
-    #[arg(long, allow_hyphen_values = true, help_heading = "Training")]
+    #[arg(
+        long,
+        allow_hyphen_values = true,
+        help_heading = "Formulation (advanced)"
+    )]
     pub penalty: Option<f64>,
     /// One constraint and multiplier per class.
-    #[arg(long, help_heading = "Training")]
+    #[arg(long, help_heading = "Formulation (advanced)")]
     pub per_class: bool,
     /// Dual step size of the multiplier update.
     #[arg(
         long,
         default_value_t = 0.05,
         allow_hyphen_values = true,
-        help_heading = "Training"
+        help_heading = "Formulation (advanced)"
     )]
     pub dual_step: f64,
     /// Which epoch's weights each round returns: best-feasible (lowest validation clean loss among
@@ -168,7 +182,7 @@ pub struct Args {
         long,
         default_value_t = 0.0,
         allow_hyphen_values = true,
-        help_heading = "Training"
+        help_heading = "Formulation (advanced)"
     )]
     pub average_tail: f64,
     /// Resilient relaxation (Hounie et al., 2023): every constraint may loosen by a slack that costs
@@ -341,9 +355,12 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
         ),
     };
     let hidden = args.hidden.as_deref().map(parse_hidden).transpose()?;
+    let Some(model_path) = args.model.clone() else {
+        bail!("--model: missing; retrain fine-tunes a model and a requirement file names none: give --model M.json (with --hidden it supplies only the input range, feature names and classes)");
+    };
     check_outputs(&args.out)?;
 
-    let parent = load_model(&args.model, args.input.allow_large)?;
+    let parent = load_model(&model_path, args.input.allow_large)?;
     let (requirement, lines) =
         args.requirement
             .resolve_with_lines(&parent, Epsilons::One, |spec| {
@@ -361,8 +378,8 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
             "--floor: retraining needs a floor (give --floor or a requirement file with floor)"
         ),
     };
-    let parent_sha256 = crate::digest::sha256_file(&args.model)
-        .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
+    let parent_sha256 = crate::digest::sha256_file(&model_path)
+        .with_context(|| format!("{}: reading for the digest", model_path.display()))?;
     let train_all = load_data(&args.train, &parent, &args.input)?;
     let (train, validation) = match &args.val {
         Some(p) => (train_all, load_data(p, &parent, &args.input)?),
@@ -477,46 +494,21 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
 
     // Outputs: model, then log and sheet in the folder beside it.
     let last = &result.report.summary;
-    let prices = final_prices(&result, settings.constrained.formulation.is_primal_dual());
-    let lineage = lineage(
-        &args.model.display().to_string(),
-        &parent_sha256,
-        &settings,
-        &result,
-        &retrain_data(&args, train.len(), validation.len(), acceptance.len()),
-    );
+    let prices = final_prices(&result, &settings);
+    let parent_path = model_path.display().to_string();
+    let data = retrain_data(&args, train.len(), validation.len(), acceptance.len());
+    let lineage = lineage(&parent_path, &parent_sha256, &settings, &result, &data);
+    let inputs = ProvenanceInputs {
+        parent: &parent,
+        parent_path: &parent_path,
+        parent_sha256: &parent_sha256,
+        hidden: hidden.as_deref(),
+        requirement: &requirement,
+        floor,
+        data: &data,
+    };
     let mut model = result.model.clone();
-    model.provenance = Some(serde_json::json!({
-        "parent": parent.provenance.clone().unwrap_or(serde_json::Value::Null),
-        "retrain": {
-            "parent_sha256": parent_sha256,
-            "parent_path": args.model.display().to_string(),
-            "train_sha256": crate::digest::sha256_file(&args.train).ok(),
-            "from_scratch_hidden": hidden,
-            "settings": {
-                "epsilon": requirement.epsilon(), "norm": requirement.norm, "floor": floor,
-                "per_feature_tolerances": requirement.tolerances.as_ref().map(|t| t.values.clone()),
-                "targets": format!("{:?}", requirement.targets),
-                "constrained": settings.constrained, "round_epochs": settings.round_epochs,
-                "max_rounds": settings.max_rounds, "slack_step": settings.slack_step,
-                "keep": settings.keep, "near_misses": settings.near_misses,
-            },
-            "rounds": result.rounds,
-            "prices": &prices,
-            "multipliers": lineage.multipliers,
-            "lineage": lineage,
-            "final": {
-                "verdict": result.verdict,
-                "clean_accuracy": last.clean_accuracy,
-                "certified_accuracy": last.certified_accuracy,
-                "empirical_robust_accuracy": last.empirical_robust_accuracy,
-                "acceptance_samples": acceptance.len(),
-                "on_unseen_data": result.verdict_on_unseen_data,
-                "requirements": &result.report.requirements,
-            },
-            "confidence": result.plan.map(|plan| confidence::json(&plan, &round_assessments(&result))),
-        }
-    }));
+    model.provenance = Some(retrain_provenance(&inputs, &settings, &result));
     model.save(&args.out)?;
     let folder = sheet_folder(&args.out);
     std::fs::create_dir_all(&folder)

@@ -48,6 +48,7 @@ pub mod margin;
 pub mod optimizer;
 pub mod plain;
 pub mod price;
+pub mod provenance;
 pub mod retrain;
 pub mod robust;
 pub(crate) mod term_batch;
