@@ -4,11 +4,11 @@
 # judged by the same list on the held-out test rows. From the project root:
 #   sh benches/list_tradeoff.sh [OUT_DIR]            # default target/bench-list
 # Environment: FLOORS (pairs "f1:f2" for eps 0.02 and 0.05, space separated, default "0.9:0.7 0.9:0.8"),
-# PENALTIES (default "0.1 0.3 1 3 10"), EPOCHS (default 60), HIDDEN (default 32), BALLAST (a binary to
-# run instead of building one).
+# PENALTIES (default "0.1 0.3 1 3 10"), EPOCHS (default 60), HIDDEN (default 32), SEED (initialisation,
+# split and shuffling, default 0), BALLAST (a binary to run instead of building one).
 # Each run trains a 64-32-10 network from scratch (--hidden; tests/data/digits_mlp.model.json only gives
 # the input range and classes: it was trained on every training row, so a validation split of them
-# would not be held out from it) on tests/data/digits_train.csv (80/20 validation split, seed 0); the
+# would not be held out from it) on tests/data/digits_train.csv (80/20 validation split, seed SEED); the
 # acceptance rows tests/data/digits_test.csv (540) are certified once after the last round. Prints one
 # Markdown table; the results are in docs/benchmarks/train.md ("Two budgets at once").
 set -eu
@@ -17,6 +17,7 @@ FLOORS=${FLOORS:-"0.9:0.7 0.9:0.8"}
 PENALTIES=${PENALTIES:-"0.1 0.3 1 3 10"}
 EPOCHS=${EPOCHS:-60}
 HIDDEN=${HIDDEN:-32}
+SEED=${SEED:-0}
 MODEL=tests/data/digits_mlp.model.json
 mkdir -p "$OUT"
 # BALLAST=path runs a given binary (no build).
@@ -48,7 +49,7 @@ for pair in $FLOORS; do
     req="$OUT/list-$f1-$f2.toml"
     printf 'norm = "linf"\n\n[[requirements]]\nepsilon = 0.02\nfloor = %s\n\n[[requirements]]\nepsilon = 0.05\nfloor = %s\n' "$f1" "$f2" > "$req"
     echo "| **floors $f1 at 0.02, $f2 at 0.05** | | | | |"
-    common="--model $MODEL --train tests/data/digits_train.csv --acceptance tests/data/digits_test.csv --requirement $req --epochs $EPOCHS --hidden $HIDDEN"
+    common="--model $MODEL --train tests/data/digits_train.csv --acceptance tests/data/digits_test.csv --requirement $req --epochs $EPOCHS --hidden $HIDDEN --seed $SEED"
     code=0
     nice -n 10 $BALLAST retrain $common --out "$OUT/pd-$f1-$f2.json" > "$OUT/pd-$f1-$f2.log" 2>&1 || code=$?
     summary "primal-dual (1 run, up to 3 rounds)" "$OUT/pd-$f1-$f2.json" $code

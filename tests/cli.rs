@@ -516,6 +516,45 @@ fn help_is_grouped_and_the_requirement_flags_read_the_same() {
     assert_eq!(requirement_blocks[0], requirement_blocks[2]);
 }
 
+/// `retrain` without `--model`: a requirement file names no model, so the one-line error says what is
+/// missing and what to give (exit 2, nothing written); the advanced formulation flags sit under a
+/// heading of their own, apart from the common training schedule.
+#[test]
+fn retrain_without_a_model_says_what_is_missing() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("m2.json");
+    assert_one_line_error(
+        &[
+            "retrain",
+            "--requirement",
+            "demo-data/requirement.toml",
+            "--train",
+            TRAIN,
+            "--out",
+            out.to_str().unwrap(),
+        ],
+        "error: --model: missing; retrain fine-tunes a model and a requirement file names none: give --model M.json (with --hidden it supplies only the input range, feature names and classes)",
+    );
+    assert!(!out.exists());
+    let (code, help, _) = ballast(&["retrain", "--help"]);
+    assert_eq!(code, Some(0));
+    let advanced = &help[help.find("\nFormulation (advanced):\n").expect("heading")..];
+    let advanced = &advanced[..advanced.find("\nKept weights:\n").expect("next heading")];
+    for flag in [
+        "--loss",
+        "--constraint",
+        "--penalty",
+        "--dual-step",
+        "--slack ",
+    ] {
+        assert!(
+            advanced.contains(flag),
+            "{flag} not under the heading:\n{advanced}"
+        );
+    }
+    assert!(!advanced.contains("--epochs <"), "{advanced}");
+}
+
 /// An ONNX model imported without input names, with a tolerance file keyed by the data's names: the
 /// error says what the inputs are called and how to name them (the ONNX fixture is scikit-learn's
 /// breast-cancer pipeline, 30 inputs, see tests/reference/onnx_fixtures.py).

@@ -13,8 +13,9 @@ use pyo3::prelude::*;
 use ballast::certify::{PipelineOptions, Sources};
 use ballast::train::confidence::ConfidenceSettings;
 use ballast::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
-use ballast::train::lineage::{lineage, DataSource, RetrainData};
+use ballast::train::lineage::{DataSource, RetrainData};
 use ballast::train::plain::split_validation;
+use ballast::train::provenance::{retrain_provenance, ProvenanceInputs};
 use ballast::train::retrain::{
     retrain as run_retrain, Keep, NearMisses, RetrainResult, RetrainSettings, RetrainVerdict,
 };
@@ -359,42 +360,17 @@ pub fn retrain(
         validation: digest(&validation, "validation"),
         acceptance: acceptance_given.then(|| digest(&acceptance, "X_acceptance, y_acceptance")),
     };
-    let record = lineage(
-        &parent_sources.model_path,
-        &parent_sources.model_sha256,
-        &retrain_settings,
-        &result,
-        &data,
-    );
-    let last = result.rounds.last().expect("at least one round");
+    let inputs = ProvenanceInputs {
+        parent,
+        parent_path: &parent_sources.model_path,
+        parent_sha256: &parent_sources.model_sha256,
+        hidden: settings.hidden.as_deref(),
+        requirement,
+        floor,
+        data: &data,
+    };
     let mut retrained = result.model.clone();
-    retrained.provenance = Some(serde_json::json!({
-        "parent": parent.provenance.clone().unwrap_or(serde_json::Value::Null),
-        "retrain": {
-            "parent_sha256": parent_sources.model_sha256,
-            "parent_path": parent_sources.model_path,
-            "train_sha256": data.train.sha256,
-            "from_scratch_hidden": settings.hidden,
-            "settings": {
-                "epsilon": requirement.epsilon(), "norm": requirement.norm, "floor": floor,
-                "per_feature_tolerances": requirement.tolerances.as_ref().map(|t| t.values.clone()),
-                "targets": format!("{:?}", requirement.targets),
-                "constrained": retrain_settings.constrained, "round_epochs": retrain_settings.round_epochs,
-                "max_rounds": retrain_settings.max_rounds, "slack_step": retrain_settings.slack_step,
-                "keep": retrain_settings.keep, "near_misses": retrain_settings.near_misses,
-            },
-            "rounds": result.rounds,
-            "multipliers": record.multipliers,
-            "lineage": record,
-            "final": {
-                "verdict": result.verdict,
-                "clean_accuracy": last.clean_accuracy,
-                "certified_accuracy": last.certified_accuracy,
-                "empirical_robust_accuracy": last.empirical_robust_accuracy,
-                "acceptance_samples": acceptance.len(),
-            },
-        }
-    }));
+    retrained.provenance = Some(retrain_provenance(&inputs, &retrain_settings, &result));
     let mut result = result;
     result.model = retrained.clone();
     Ok((PyModel::in_memory(retrained), PyRetrainResult { result }))

@@ -84,6 +84,12 @@ def test_retrain_reaches_the_floor_and_matches_the_command_line(tmp_path, ballas
     # The returned model carries its retraining record, as the command line's does.
     provenance = json.loads(retrained.to_json())["provenance"]["retrain"]
     assert provenance["lineage"]["parent_sha256"] == provenance["parent_sha256"]
+    # One layout for both: every key the command line's record has (one library function builds both).
+    cli_provenance = json.loads(files["cli.json"].read_text())["provenance"]["retrain"]
+    assert sorted(provenance) == sorted(cli_provenance)
+    assert sorted(provenance["final"]) == sorted(cli_provenance["final"])
+    assert provenance["final"]["on_unseen_data"] == cli_provenance["final"]["on_unseen_data"]
+    assert provenance["prices"] == cli_provenance["prices"]
 
 
 def test_validation_arrays_must_come_in_pairs(case):

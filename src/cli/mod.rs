@@ -13,6 +13,7 @@ pub mod import;
 pub mod inspect;
 pub mod merge;
 pub mod retrain;
+pub mod retrain_args;
 pub mod retrain_sheet;
 pub mod sheet;
 

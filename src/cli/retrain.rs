@@ -8,198 +8,22 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 
-use super::common::{load_data, load_model, DataArgs, Epsilons, RequirementArgs};
+use super::common::{load_data, load_model, Epsilons};
+pub use super::retrain_args::Args;
+use super::retrain_args::{check, Checked};
+use super::retrain_sheet::sheet_markdown;
 pub use super::retrain_sheet::{checks_csv, log_csv};
-use super::retrain_sheet::{final_prices, round_assessments, sheet_markdown};
 use super::Outcome;
 use crate::certify::lines::LineVerdict;
 use crate::certify::PipelineOptions;
 use crate::threat::requirement::RequirementLine;
 use crate::train::confidence::{self, ConfidenceSettings};
-use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Constraint, Formulation};
+use crate::train::constrained::{ConstrainedEpoch, ConstrainedSettings, Formulation};
 use crate::train::lineage::{lineage, DataSource, RetrainData};
 use crate::train::plain::split_validation;
-use crate::train::retrain::{retrain, Keep, NearMisses, RetrainSettings, RetrainVerdict};
-use crate::train::robust::RobustLoss;
+use crate::train::provenance::{final_prices, retrain_provenance, ProvenanceInputs};
+use crate::train::retrain::{retrain, NearMisses, RetrainSettings, RetrainVerdict};
 use crate::train::{new_mlp, OptimizerKind, TrainSettings};
-
-/// Arguments of `ballast retrain`.
-#[derive(Debug, clap::Args)]
-#[command(
-    allow_negative_numbers = true,
-    after_help = "Examples:\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --out m2.json\n  ballast retrain --model m.json --requirement release.toml --train train.csv --acceptance acc.csv --out m2.json\n  ballast retrain --model m.json --requirement release.toml --train train.csv --relax --out m2.json\n  ballast retrain --model m.json --train train.csv --acceptance acc.csv --eps 0.05 --floor 0.8 --hidden 32,32 --out m2.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.8 --penalty 1 --out m-penalty.json\n  ballast retrain --model m.json --train train.csv --eps 0.05 --floor 0.85 --confidence 0.95 --acceptance-size 360 --out m2.json\n\nExit codes: 0 floor proven on the acceptance data (with --confidence: the reviewer's check passed on --acceptance, or is expected to pass on a set of --acceptance-size), 1 not met, 2 usage or input error."
-)]
-pub struct Args {
-    /// The model to fine-tune (with --hidden: only its input range, names and classes are used).
-    #[arg(long, help_heading = "Inputs")]
-    pub model: PathBuf,
-    /// Training data (CSV).
-    #[arg(long, help_heading = "Inputs")]
-    pub train: PathBuf,
-    /// Validation data (CSV): decides which weights each round keeps and, by the certify check after
-    /// each round, whether another round runs [default: 20% of --train held out].
-    #[arg(long, help_heading = "Inputs")]
-    pub val: Option<PathBuf>,
-    /// Acceptance data: certified once, after the last round, for the verdict; it never steers the
-    /// rounds [default: the validation data, with a caution].
-    #[arg(long, help_heading = "Inputs")]
-    pub acceptance: Option<PathBuf>,
-    /// Label column, input-range policy, size limits.
-    #[command(flatten)]
-    pub input: DataArgs,
-    /// Budget, norm, floor, class-change rule, requirement file.
-    #[command(flatten)]
-    pub requirement: RequirementArgs,
-    /// Train from scratch with these hidden layer sizes (e.g. 32,32; "none" for softmax regression).
-    #[arg(long, help_heading = "Training")]
-    pub hidden: Option<String>,
-    /// Judge the floor as a reviewer will: the one-sided Clopper–Pearson lower bound at this level
-    /// (e.g. 0.95) on the acceptance set; training aims at the level that makes that check pass. Needs
-    /// --acceptance or --acceptance-size.
-    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
-    pub confidence: Option<f64>,
-    /// Size of the reviewer's acceptance set, when the set itself stays with the reviewer (with
-    /// --confidence; not with --acceptance).
-    #[arg(long, help_heading = "Requirement")]
-    pub acceptance_size: Option<usize>,
-    /// Wanted probability that the reviewer's check passes (with --confidence) [default: the
-    /// confidence level].
-    #[arg(long, allow_hyphen_values = true, help_heading = "Requirement")]
-    pub pass_probability: Option<f64>,
-    /// Epochs of the first round.
-    #[arg(long, default_value_t = 30, help_heading = "Training")]
-    pub epochs: usize,
-    /// Epochs of every further round [default: half of --epochs].
-    #[arg(long, help_heading = "Training")]
-    pub round_epochs: Option<usize>,
-    /// Largest number of train-then-certify rounds.
-    #[arg(long, default_value_t = 3, help_heading = "Training")]
-    pub max_rounds: usize,
-    /// Epochs over which epsilon ramps up from 0 [default: 40% of --epochs].
-    #[arg(long, help_heading = "Training")]
-    pub ramp_epochs: Option<usize>,
-    /// Adam learning rate.
-    #[arg(
-        long,
-        default_value_t = 0.002,
-        allow_hyphen_values = true,
-        help_heading = "Training"
-    )]
-    pub learning_rate: f64,
-    /// Step-size factor at the end of --epochs: the rate is held through the epsilon ramp, then
-    /// decays linearly to this fraction of --learning-rate (later rounds keep it); 1 = constant.
-    #[arg(
-        long,
-        default_value_t = 1.0,
-        allow_hyphen_values = true,
-        help_heading = "Training"
-    )]
-    pub final_rate: f64,
-    /// Mini-batch size.
-    #[arg(long, default_value_t = 64, help_heading = "Training")]
-    pub batch_size: usize,
-    /// Seed of initialisation, shuffling and attacks.
-    #[arg(long, default_value_t = 0, help_heading = "Training")]
-    pub seed: u64,
-    /// Robust loss: certified (linear + interval bounds), interval, or adversarial (PGD).
-    #[arg(long, default_value = "certified", help_heading = "Training")]
-    pub loss: String,
-    /// Constraint: error (robust error rate ≤ 1 − floor − slack) or loss (robust loss ≤ --level).
-    #[arg(long, default_value = "error", help_heading = "Training")]
-    pub constraint: String,
-    /// Robust loss level for --constraint loss.
-    #[arg(long, allow_hyphen_values = true, help_heading = "Training")]
-    pub level: Option<f64>,
-    /// Extra margin on the robust-error constraint in the first round.
-    #[arg(
-        long,
-        default_value_t = 0.02,
-        allow_hyphen_values = true,
-        help_heading = "Training"
-    )]
-    pub slack: f64,
-    /// Slack added in every further round.
-    #[arg(
-        long,
-        default_value_t = 0.03,
-        allow_hyphen_values = true,
-        help_heading = "Training"
-    )]
-    pub slack_step: f64,
-    /// Fixed penalty weight instead of the primal-dual multiplier (for comparison).
-    #[arg(long, allow_hyphen_values = true, help_heading = "Training")]
-    pub penalty: Option<f64>,
-    /// One constraint and multiplier per class.
-    #[arg(long, help_heading = "Training")]
-    pub per_class: bool,
-    /// Dual step size of the multiplier update.
-    #[arg(
-        long,
-        default_value_t = 0.05,
-        allow_hyphen_values = true,
-        help_heading = "Training"
-    )]
-    pub dual_step: f64,
-    /// Which epoch's weights each round returns: best-feasible (lowest validation clean loss among
-    /// epochs whose validation certified accuracy reaches the floor), earliest-feasible (the earliest
-    /// of them within one standard error of that loss), both primal-dual only; or last.
-    #[arg(long, default_value = "best-feasible", help_heading = "Kept weights")]
-    pub keep: String,
-    /// Validation checks per epoch (≥ 1): each is a candidate for --keep; more checks follow
-    /// certified accuracy more finely at the cost of one linear-bound pass over the validation data
-    /// each.
-    #[arg(long, default_value_t = 4, help_heading = "Kept weights")]
-    pub checks_per_epoch: usize,
-    /// Checks up to this fraction below the floor by linear bounds are candidates for --keep too,
-    /// kept only when the certify pipeline proves the floor for them on the validation data; 0 = off.
-    #[arg(
-        long,
-        default_value_t = 0.0,
-        allow_hyphen_values = true,
-        help_heading = "Kept weights"
-    )]
-    pub near_miss: f64,
-    /// Most certify runs on the validation data per round to judge near misses.
-    #[arg(long, default_value_t = 3, help_heading = "Kept weights")]
-    pub near_miss_tries: usize,
-    /// Average the weights and multipliers over this last fraction of --epochs' steps and use the
-    /// average with --keep last (primal recovery; docs/retrain.md); 0 = off.
-    #[arg(
-        long,
-        default_value_t = 0.0,
-        allow_hyphen_values = true,
-        help_heading = "Training"
-    )]
-    pub average_tail: f64,
-    /// Resilient relaxation (Hounie et al., 2023): every constraint may loosen by a slack that costs
-    /// COST/2 · slack² in the objective, learned with the weights; when the floors cannot all hold,
-    /// training settles on the closest levels it can reach and the result names the lines that fail.
-    /// The verdict stays strict [COST default: 10].
-    #[arg(long, num_args = 0..=1, default_missing_value = "10", value_name = "COST", help_heading = "Requirement")]
-    pub relax: Option<f64>,
-    /// A named group of settings: `landing` = --slack 0 --checks-per-epoch 16 --final-rate 0.1
-    /// --keep earliest-feasible --near-miss 0.03 (lands close to the floor, docs/retrain.md §7);
-    /// flags given explicitly still win.
-    #[arg(long, value_name = "NAME", help_heading = "Training")]
-    pub preset: Option<String>,
-    /// Where to write the retrained model (the log and sheet go to a folder beside it).
-    #[arg(long, help_heading = "Output")]
-    pub out: PathBuf,
-}
-
-fn parse_hidden(text: &str) -> anyhow::Result<Vec<usize>> {
-    if text.trim().eq_ignore_ascii_case("none") || text.trim().is_empty() {
-        return Ok(Vec::new());
-    }
-    text.split(',')
-        .map(|p| match p.trim().parse::<usize>() {
-            Ok(n) if n > 0 => Ok(n),
-            _ => bail!(
-                "--hidden: \"{p}\" is not allowed, expected layer sizes ≥ 1 like 32,32 (or none)"
-            ),
-        })
-        .collect()
-}
 
 /// The folder beside `out` that receives the log and the sheet: `m2.json` → `m2.retrain/`.
 pub fn sheet_folder(out: &Path) -> PathBuf {
@@ -227,123 +51,18 @@ fn check_outputs(out: &Path) -> anyhow::Result<()> {
 
 /// Runs `ballast retrain`.
 pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
-    if let Some(name) = args.preset.clone() {
-        apply_preset(&mut args, &name, &std::env::args().collect::<Vec<_>>())?;
-    }
-    if let Some(cost) = args.relax {
-        if !(cost.is_finite() && cost > 0.0) {
-            bail!("--relax: {cost} is not allowed, expected a slack cost > 0");
-        }
-    }
-    // Validate the plain values first.
-    if let Some(floor) = args.requirement.floor {
-        if !(0.0..=1.0).contains(&floor) {
-            bail!("--floor: {floor} is not allowed, expected a fraction in [0, 1]");
-        }
-    }
-    if args.epochs == 0 {
-        bail!("--epochs: must be at least 1");
-    }
-    if args.max_rounds == 0 {
-        bail!("--max-rounds: must be at least 1");
-    }
-    if args.batch_size == 0 {
-        bail!("--batch-size: must be at least 1");
-    }
-    if !(args.learning_rate.is_finite() && args.learning_rate > 0.0) {
-        bail!(
-            "--learning-rate: {} is not allowed, expected a number > 0",
-            args.learning_rate
-        );
-    }
-    if !(args.slack.is_finite()
-        && args.slack >= 0.0
-        && args.slack_step.is_finite()
-        && args.slack_step >= 0.0)
-    {
-        bail!("--slack / --slack-step: expected finite numbers ≥ 0");
-    }
-    if !(args.final_rate > 0.0 && args.final_rate <= 1.0) {
-        bail!(
-            "--final-rate: {} is not allowed, expected a number in (0, 1]",
-            args.final_rate
-        );
-    }
-    if !(args.near_miss.is_finite() && (0.0..1.0).contains(&args.near_miss)) {
-        bail!(
-            "--near-miss: {} is not allowed, expected a fraction in [0, 1)",
-            args.near_miss
-        );
-    }
-    if args.acceptance_size.is_some() && args.acceptance.is_some() {
-        bail!(
-            "--acceptance-size: not allowed with --acceptance, whose size is the acceptance set's"
-        );
-    }
-    if args.acceptance_size == Some(0) {
-        bail!("--acceptance-size: 0 is not allowed, expected a whole number ≥ 1");
-    }
-    if let Some(q) = args.pass_probability {
-        if !(q > 0.0 && q < 1.0) {
-            bail!("--pass-probability: {q} is not allowed, expected a level strictly between 0 and 1 (e.g. 0.95)");
-        }
-    }
-    if args.checks_per_epoch == 0 {
-        bail!("--checks-per-epoch: 0 is not allowed, expected a whole number ≥ 1");
-    }
-    if !(args.dual_step.is_finite() && args.dual_step > 0.0) {
-        bail!(
-            "--dual-step: {} is not allowed, expected a number > 0",
-            args.dual_step
-        );
-    }
-    if !(0.0..=1.0).contains(&args.average_tail) {
-        bail!(
-            "--average-tail: {} is not allowed, expected a fraction in [0, 1]",
-            args.average_tail
-        );
-    }
-    if let Some(w) = args.penalty {
-        if !(w.is_finite() && w >= 0.0) {
-            bail!("--penalty: {w} is not allowed, expected a weight ≥ 0");
-        }
-    }
-    let loss = match args.loss.as_str() {
-        "certified" => RobustLoss::LinearInterval {
-            final_linear_weight: 0.0,
-        },
-        "interval" => RobustLoss::Interval,
-        "adversarial" => RobustLoss::Adversarial { steps: 7 },
-        other => {
-            bail!("--loss: \"{other}\" is not allowed, expected certified, interval or adversarial")
-        }
+    let Checked {
+        loss,
+        constraint,
+        keep,
+        hidden,
+    } = check(&mut args)?;
+    let Some(model_path) = args.model.clone() else {
+        bail!("--model: missing; retrain fine-tunes a model and a requirement file names none: give --model M.json (with --hidden it supplies only the input range, feature names and classes)");
     };
-    let constraint = match args.constraint.as_str() {
-        "error" => Constraint::RobustError {
-            floor: args.requirement.floor.unwrap_or(0.0),
-            slack: args.slack,
-        },
-        "loss" => match args.level {
-            Some(level) if level.is_finite() && level >= 0.0 => {
-                Constraint::RobustLossLevel { level }
-            }
-            Some(level) => bail!("--level: {level} is not allowed, expected a number ≥ 0"),
-            None => bail!("--constraint loss needs --level (the allowed mean robust loss)"),
-        },
-        other => bail!("--constraint: \"{other}\" is not allowed, expected error or loss"),
-    };
-    let keep = match args.keep.as_str() {
-        "best-feasible" => Keep::BestFeasible,
-        "earliest-feasible" => Keep::EarliestFeasible,
-        "last" => Keep::Last,
-        other => bail!(
-            "--keep: \"{other}\" is not allowed, expected best-feasible, earliest-feasible or last"
-        ),
-    };
-    let hidden = args.hidden.as_deref().map(parse_hidden).transpose()?;
     check_outputs(&args.out)?;
 
-    let parent = load_model(&args.model, args.input.allow_large)?;
+    let parent = load_model(&model_path, args.input.allow_large)?;
     let (requirement, lines) =
         args.requirement
             .resolve_with_lines(&parent, Epsilons::One, |spec| {
@@ -361,8 +80,8 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
             "--floor: retraining needs a floor (give --floor or a requirement file with floor)"
         ),
     };
-    let parent_sha256 = crate::digest::sha256_file(&args.model)
-        .with_context(|| format!("{}: reading for the digest", args.model.display()))?;
+    let parent_sha256 = crate::digest::sha256_file(&model_path)
+        .with_context(|| format!("{}: reading for the digest", model_path.display()))?;
     let train_all = load_data(&args.train, &parent, &args.input)?;
     let (train, validation) = match &args.val {
         Some(p) => (train_all, load_data(p, &parent, &args.input)?),
@@ -477,46 +196,21 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
 
     // Outputs: model, then log and sheet in the folder beside it.
     let last = &result.report.summary;
-    let prices = final_prices(&result, settings.constrained.formulation.is_primal_dual());
-    let lineage = lineage(
-        &args.model.display().to_string(),
-        &parent_sha256,
-        &settings,
-        &result,
-        &retrain_data(&args, train.len(), validation.len(), acceptance.len()),
-    );
+    let prices = final_prices(&result, &settings);
+    let parent_path = model_path.display().to_string();
+    let data = retrain_data(&args, train.len(), validation.len(), acceptance.len());
+    let lineage = lineage(&parent_path, &parent_sha256, &settings, &result, &data);
+    let inputs = ProvenanceInputs {
+        parent: &parent,
+        parent_path: &parent_path,
+        parent_sha256: &parent_sha256,
+        hidden: hidden.as_deref(),
+        requirement: &requirement,
+        floor,
+        data: &data,
+    };
     let mut model = result.model.clone();
-    model.provenance = Some(serde_json::json!({
-        "parent": parent.provenance.clone().unwrap_or(serde_json::Value::Null),
-        "retrain": {
-            "parent_sha256": parent_sha256,
-            "parent_path": args.model.display().to_string(),
-            "train_sha256": crate::digest::sha256_file(&args.train).ok(),
-            "from_scratch_hidden": hidden,
-            "settings": {
-                "epsilon": requirement.epsilon(), "norm": requirement.norm, "floor": floor,
-                "per_feature_tolerances": requirement.tolerances.as_ref().map(|t| t.values.clone()),
-                "targets": format!("{:?}", requirement.targets),
-                "constrained": settings.constrained, "round_epochs": settings.round_epochs,
-                "max_rounds": settings.max_rounds, "slack_step": settings.slack_step,
-                "keep": settings.keep, "near_misses": settings.near_misses,
-            },
-            "rounds": result.rounds,
-            "prices": &prices,
-            "multipliers": lineage.multipliers,
-            "lineage": lineage,
-            "final": {
-                "verdict": result.verdict,
-                "clean_accuracy": last.clean_accuracy,
-                "certified_accuracy": last.certified_accuracy,
-                "empirical_robust_accuracy": last.empirical_robust_accuracy,
-                "acceptance_samples": acceptance.len(),
-                "on_unseen_data": result.verdict_on_unseen_data,
-                "requirements": &result.report.requirements,
-            },
-            "confidence": result.plan.map(|plan| confidence::json(&plan, &round_assessments(&result))),
-        }
-    }));
+    model.provenance = Some(retrain_provenance(&inputs, &settings, &result));
     model.save(&args.out)?;
     let folder = sheet_folder(&args.out);
     std::fs::create_dir_all(&folder)
@@ -628,35 +322,4 @@ fn lowest_floor(lines: &[RequirementLine]) -> f64 {
             RequirementLine::CleanAccuracy { minimum } => *minimum,
         })
         .fold(1.0, f64::min)
-}
-
-/// Applies the named group of settings `name` to `args`, leaving every flag present on
-/// `command_line` as given.
-fn apply_preset(args: &mut Args, name: &str, command_line: &[String]) -> anyhow::Result<()> {
-    let given = |flag: &str| {
-        command_line
-            .iter()
-            .any(|a| a == flag || a.starts_with(&format!("{flag}=")))
-    };
-    match name {
-        "landing" => {
-            if !given("--slack") {
-                args.slack = 0.0;
-            }
-            if !given("--checks-per-epoch") {
-                args.checks_per_epoch = 16;
-            }
-            if !given("--final-rate") {
-                args.final_rate = 0.1;
-            }
-            if !given("--keep") {
-                args.keep = "earliest-feasible".into();
-            }
-            if !given("--near-miss") {
-                args.near_miss = 0.03;
-            }
-            Ok(())
-        }
-        other => bail!("--preset: \"{other}\" is not allowed, expected landing"),
-    }
 }

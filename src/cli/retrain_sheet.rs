@@ -6,7 +6,7 @@ use std::fmt::Write as _;
 
 use super::retrain::Args;
 use crate::train::confidence::{self, Assessment};
-use crate::train::price::{prices, Price};
+use crate::train::price::Price;
 use crate::train::retrain::{RetrainResult, RetrainVerdict};
 
 /// Each round's assessment under the reviewer's rule (with a confidence level).
@@ -60,15 +60,6 @@ pub fn checks_csv(result: &RetrainResult) -> String {
     text
 }
 
-/// The price of every constraint at the last epoch's multipliers, with the relaxation it ended with
-/// (none for a fixed penalty).
-pub fn final_prices(result: &RetrainResult, primal_dual: bool) -> Vec<Price> {
-    match (result.epochs.last(), primal_dual) {
-        (Some(last), true) => prices(&result.terms, &last.multipliers, &last.slacks),
-        _ => Vec::new(),
-    }
-}
-
 /// The retraining sheet (`retrain.md`) without its lineage section.
 pub fn sheet_markdown(
     args: &Args,
@@ -89,7 +80,9 @@ pub fn sheet_markdown(
         None => "**not met**: the floor was not proven on the acceptance data",
     };
     let _ = writeln!(md, "# Retraining sheet\n");
-    let _ = writeln!(md, "- parent model: `{}`", args.model.display());
+    if let Some(model) = &args.model {
+        let _ = writeln!(md, "- parent model: `{}`", model.display());
+    }
     let _ = writeln!(md, "- retrained model: `{}`", args.out.display());
     if list {
         let _ = writeln!(
@@ -109,6 +102,18 @@ pub fn sheet_markdown(
     };
     let _ = writeln!(md, "- loss: {}, {formulation}", args.loss);
     let _ = writeln!(md, "- acceptance samples: {acceptance}");
+    if result.generalisation_margins.iter().any(|m| *m > 0.0) {
+        let margins: Vec<String> = result
+            .generalisation_margins
+            .iter()
+            .map(|m| format!("{:.2}", m * 100.0))
+            .collect();
+        let _ = writeln!(
+            md,
+            "- generalisation margin (points above each floor aimed at on the validation data, one standard error of the validation–acceptance difference): {}",
+            margins.join(" / ")
+        );
+    }
     let _ = writeln!(md, "- verdict: {verdict}\n");
     for caution in cautions(args, result) {
         let _ = writeln!(md, "> **Caution.** {caution}\n");

@@ -173,8 +173,10 @@ pub struct ConstrainedEpoch {
     /// Each constraint's measurement (robust error rate or mean robust loss, on its rows) averaged
     /// over the epoch's batches, in the order of the multipliers (NaN when no batch had its rows).
     pub measured: Vec<f64>,
-    /// The generalisation-gap correction of the allowance after the epoch (0 when not in use).
+    /// The largest generalisation-gap correction of an allowance after the epoch (0 when not in use).
     pub gap_correction: f64,
+    /// Each constraint's gap correction after the epoch, in the order of the multipliers.
+    pub gap_corrections: Vec<f64>,
     /// Mean clean cross-entropy on the validation data (the objective's held-out estimate).
     pub validation_clean_loss: Option<f64>,
     /// Standard error of that mean (sample standard deviation of the per-sample losses / √n).
@@ -198,8 +200,8 @@ pub struct ConstrainedState {
     pub slacks: Vec<f64>,
     /// Epochs run so far.
     pub epochs_done: usize,
-    /// The allowance correction carried across epochs and rounds.
-    pub correction: GapCorrection,
+    /// The allowance corrections carried across epochs and rounds, one per constraint term.
+    pub corrections: Vec<GapCorrection>,
     /// The iterate average (see [`ConstrainedSettings::average_tail`]); `None` until it starts.
     pub average: Option<IterateAverage>,
 }
@@ -223,7 +225,7 @@ impl ConstrainedState {
             multipliers: vec![start; count],
             slacks: vec![0.0; count],
             epochs_done: 0,
-            correction: GapCorrection::default(),
+            corrections: vec![GapCorrection::default(); count],
             average: None,
         }
     }
@@ -349,10 +351,10 @@ pub fn train_constrained_epochs_with_checks(
                     continue;
                 }
                 let allowed = match term.constraint {
-                    Constraint::RobustError { .. } => {
-                        (term.constraint.allowed() - state.correction.gap).max(0.0)
+                    Constraint::RobustError { .. } | Constraint::CleanError { .. } => {
+                        (term.constraint.allowed() - state.corrections[k].gap).max(0.0)
                     }
-                    _ => term.constraint.allowed(),
+                    Constraint::RobustLossLevel { .. } => term.constraint.allowed(),
                 };
                 let measured = term_on_batch(
                     settings,
@@ -403,7 +405,7 @@ pub fn train_constrained_epochs_with_checks(
                     .add(&state.network, &state.multipliers);
             }
             if let (Some(v), true) = (validation, mid_checks.contains(&b)) {
-                let check = validation_check(
+                let (check, _) = validation_check(
                     trainable,
                     &state.network,
                     v,
@@ -430,7 +432,8 @@ pub fn train_constrained_epochs_with_checks(
             multipliers: state.multipliers.clone(),
             slacks: state.slacks.clone(),
             measured,
-            gap_correction: state.correction.gap,
+            gap_correction: largest_gap(&state.corrections),
+            gap_corrections: state.corrections.iter().map(|c| c.gap).collect(),
             validation_clean_loss: None,
             validation_clean_loss_error: None,
             validation_clean_accuracy: None,
@@ -445,21 +448,17 @@ pub fn train_constrained_epochs_with_checks(
             record.validation_clean_loss_error = Some(clean_loss_error);
             record.validation_clean_accuracy = Some(accuracy);
             if settings.measure_certified {
-                let check = validation_check(trainable, &state.network, v, settings, epoch as f64)?;
+                let (check, figures) =
+                    validation_check(trainable, &state.network, v, settings, epoch as f64)?;
                 let certified = check.certified_accuracy;
                 checks(&check, &state.network);
                 record.validation_certified_accuracy = Some(certified);
                 // Only epochs at the full budget throughout measure the gap the floor is stated at.
                 let full_epoch = ramp_steps <= (epoch - 1) * batches_per_epoch;
-                if settings.gap_correction
-                    && settings.terms.is_empty()
-                    && full_epoch
-                    && settings.loss.is_certified()
-                {
-                    state
-                        .correction
-                        .update(1.0 - record.robust_error, certified);
-                    record.gap_correction = state.correction.gap;
+                if settings.gap_correction && full_epoch && settings.loss.is_certified() {
+                    update_corrections(&mut state.corrections, &settings.terms, &record, &figures);
+                    record.gap_correction = largest_gap(&state.corrections);
+                    record.gap_corrections = state.corrections.iter().map(|c| c.gap).collect();
                 }
             }
         }
@@ -467,6 +466,38 @@ pub fn train_constrained_epochs_with_checks(
         records.push(record);
     }
     Ok(records)
+}
+
+/// Folds one full-budget epoch into the gap corrections. A single constraint (or one per class)
+/// compares the training batches' overall certified rate with the validation data's; the terms of a
+/// list each compare their own: the fraction of their training rows meeting them (1 − the epoch's
+/// measured rate) with the fraction of their validation rows (`figures`).
+fn update_corrections(
+    corrections: &mut [GapCorrection],
+    terms: &[ConstraintTerm],
+    record: &ConstrainedEpoch,
+    figures: &[Option<f64>],
+) {
+    if terms.is_empty() {
+        if let Some(certified) = record.validation_certified_accuracy {
+            for correction in corrections.iter_mut() {
+                correction.update(1.0 - record.robust_error, certified);
+            }
+        }
+        return;
+    }
+    for (k, (correction, term)) in corrections.iter_mut().zip(terms).enumerate() {
+        let measured = record.measured[k];
+        if let (Some(validation), true, Some(_)) = (figures[k], measured.is_finite(), term.floor())
+        {
+            correction.update(1.0 - measured, validation);
+        }
+    }
+}
+
+/// The largest of the corrections (0 for none).
+fn largest_gap(corrections: &[GapCorrection]) -> f64 {
+    corrections.iter().map(|c| c.gap).fold(0.0, f64::max)
 }
 
 /// The step-size factor of 1-based `step`: 1 through the ramp's `ramp_steps`, then linear down to

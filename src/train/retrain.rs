@@ -34,6 +34,7 @@ use super::constrained::{
     train_constrained_epochs_with_checks, ConstrainedEpoch, ConstrainedSettings, ConstrainedState,
     Constraint, ValidationCheck,
 };
+use super::margin::generalisation_margin;
 use super::plain::TrainableModel;
 use super::terms::{terms_for_lines, ConstraintTerm};
 use super::TrainError;
@@ -143,6 +144,10 @@ pub struct RetrainResult {
     /// True when the final verdict comes from data the rounds did not see (the acceptance set,
     /// certified once after the last round); false when the rounds' own check data gave it.
     pub verdict_on_unseen_data: bool,
+    /// How far above each floor training and the kept weights aimed on the validation data (one per
+    /// line of a list, one for a single floor; all 0 when the acceptance data is the validation
+    /// data or a confidence level sets the aim): see [`generalisation_margin`].
+    pub generalisation_margins: Vec<f64>,
 }
 
 /// Retrains `initial` toward `requirement` (budget, targets and floor, which must be given): constrained
@@ -192,9 +197,36 @@ pub fn retrain(
             .map_err(|e| TrainError::Settings(e.to_string()))?,
         false => None,
     };
-    // The level training and the choice of weights aim at: the floor, or the reviewer's aimed level;
-    // with a list, the worst line's margin over its floor (see `ValidationCheck::worst_margin`).
-    let aim = plan.map_or(floor, |p| p.aimed_level);
+    // A verdict on a separate acceptance set is a second sample: each floor is aimed at one
+    // standard error of the difference above it on the validation data (not with a confidence
+    // level, whose plan already sizes the aim to the reviewer's set).
+    let separate = validation.is_some_and(|v| v != acceptance) && plan.is_none();
+    let margin_for = |floor: f64, class: Option<usize>| match (separate, validation) {
+        (true, Some(v)) => {
+            let rows = |d: &Dataset| {
+                d.labels
+                    .iter()
+                    .filter(|l| class.is_none_or(|c| **l == c))
+                    .count()
+            };
+            generalisation_margin(floor, rows(v), rows(acceptance))
+        }
+        _ => 0.0,
+    };
+    let margins: Vec<f64> = match lines.is_empty() {
+        true => vec![margin_for(floor, None)],
+        false => lines
+            .iter()
+            .map(|line| match line {
+                RequirementLine::Certified(c) => margin_for(c.floor, c.class),
+                RequirementLine::CleanAccuracy { minimum } => margin_for(*minimum, None),
+            })
+            .collect(),
+    };
+    // The level training and the choice of weights aim at: the floor plus its margin, or the
+    // reviewer's aimed level; with a list, the worst line's margin over its aimed level (see
+    // `ValidationCheck::worst_margin`).
+    let aim = plan.map_or((floor + margins[0]).min(1.0), |p| p.aimed_level);
     let checked = match (plan, lines.is_empty()) {
         (Some(p), _) => p.check_requirement(requirement),
         (None, true) => requirement.clone(),
@@ -210,7 +242,11 @@ pub fn retrain(
             constrained.terms =
                 terms_for_lines(requirement, lines, initial.input.dim, slack, &|l| {
                     describe_line(l, &class_name)
-                });
+                })
+                .iter()
+                .zip(&margins)
+                .map(|(term, margin)| term.with_floor_raised(*margin))
+                .collect();
         }
     }
     if !lines.is_empty() && constrained.terms.is_empty() {
@@ -397,6 +433,7 @@ pub fn retrain(
                 report,
                 plan,
                 verdict_on_unseen_data: unseen,
+                generalisation_margins: margins,
                 terms: constrained.terms_named(initial.class_count(), &|c| initial.class_name(c)),
             });
         }

@@ -47,6 +47,27 @@ impl ConstraintTerm {
         }
     }
 
+    /// The term with its floor raised by `margin` (at most to 1; floors only): the level training
+    /// and the kept weights aim at on the validation data.
+    pub fn with_floor_raised(&self, margin: f64) -> ConstraintTerm {
+        let raise = |floor: f64| (floor + margin).min(1.0);
+        let constraint = match self.constraint {
+            Constraint::RobustError { floor, slack } => Constraint::RobustError {
+                floor: raise(floor),
+                slack,
+            },
+            Constraint::CleanError { floor, slack } => Constraint::CleanError {
+                floor: raise(floor),
+                slack,
+            },
+            other => other,
+        };
+        ConstraintTerm {
+            constraint,
+            ..self.clone()
+        }
+    }
+
     /// The term with its slack set to `slack` (floors only).
     pub fn with_slack(&self, slack: f64) -> ConstraintTerm {
         let constraint = match self.constraint {
@@ -177,5 +198,9 @@ mod tests {
         assert_eq!(terms[2].floor(), Some(0.95));
         let looser = terms[1].with_slack(0.05);
         assert!((looser.constraint.allowed() - 0.25).abs() < 1e-12);
+        let aimed = terms[0].with_floor_raised(0.03);
+        assert!((aimed.floor().unwrap() - 0.93).abs() < 1e-12);
+        assert!((aimed.constraint.allowed() - 0.06).abs() < 1e-12);
+        assert!((terms[0].with_floor_raised(0.5).floor().unwrap() - 1.0).abs() < 1e-12);
     }
 }

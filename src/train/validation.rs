@@ -38,18 +38,20 @@ pub struct ValidationCheck {
     pub worst_margin: Option<f64>,
 }
 
-/// The validation figures of `network` at `epoch_position` (a check inside an epoch).
+/// The validation figures of `network` at `epoch_position` (a check inside an epoch), with each
+/// term's own figure on the validation data (see [`TermFigures`]).
 pub(crate) fn validation_check(
     trainable: &TrainableModel,
     network: &Network,
     validation: &Dataset,
     settings: &ConstrainedSettings,
     epoch_position: f64,
-) -> Result<ValidationCheck, TrainError> {
+) -> Result<(ValidationCheck, TermFigures), TrainError> {
     let features = trainable.to_network_units(&validation.features);
     let losses = per_sample_cross_entropy(network, &features, &validation.labels);
     let mut worst_margin: Option<f64> = None;
-    for term in &settings.terms {
+    let mut figures = vec![None; settings.terms.len()];
+    for (k, term) in settings.terms.iter().enumerate() {
         let Some(floor) = term.floor() else {
             continue;
         };
@@ -67,10 +69,11 @@ pub(crate) fn validation_check(
             }
             _ => certified_accuracy(trainable, network, &subset, &term.budget, &term.targets)?,
         };
+        figures[k] = Some(measured);
         let margin = measured - floor;
         worst_margin = Some(worst_margin.map_or(margin, |w: f64| w.min(margin)));
     }
-    Ok(ValidationCheck {
+    let check = ValidationCheck {
         epoch_position,
         clean_loss: losses.iter().sum::<f64>() / losses.len().max(1) as f64,
         clean_loss_error: mean_standard_error(&losses),
@@ -82,8 +85,14 @@ pub(crate) fn validation_check(
             &settings.targets,
         )?,
         worst_margin,
-    })
+    };
+    Ok((check, figures))
 }
+
+/// Per term of [`ConstrainedSettings::terms`], in order: the fraction of its validation rows that
+/// meets it (certified by sound linear bounds, or classified correctly for a clean-accuracy floor);
+/// `None` for a robust-loss level or a term without validation rows.
+pub(crate) type TermFigures = Vec<Option<f64>>;
 
 /// Cross-entropy of every sample (columns of `features`, network units) under `network`.
 pub(crate) fn per_sample_cross_entropy(
