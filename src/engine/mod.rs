@@ -13,6 +13,7 @@
 //! domain ([`Domains`]), and the per-domain data (bounds, relaxations) are matrices with one column per
 //! domain.
 
+pub mod adjoint;
 pub mod backward;
 pub mod domains;
 pub mod forward;

@@ -243,11 +243,7 @@ impl Affine {
                     c.correlate_transpose(&c.kernel.abs().transpose(), outer)
                 } else {
                     g.kernel += plain;
-                    let positions = c.positions();
-                    let sums = outer.column_sum();
-                    for (r, v) in sums.iter().enumerate() {
-                        g.bias[r / positions] += v;
-                    }
+                    g.bias += c.bias_gradient(outer);
                     c.correlate_transpose(&c.kernel.transpose(), outer)
                 }
             }
@@ -305,7 +301,8 @@ impl Affine {
     }
 }
 
-fn sign(w: f64) -> f64 {
+/// Sign with 0 at 0 (a subgradient of `|w|`: the one-sided choice at the kink).
+pub fn sign(w: f64) -> f64 {
     if w > 0.0 {
         1.0
     } else if w < 0.0 {
