@@ -64,14 +64,7 @@ impl Adjoint {
         let mut d_g = DMatrix::zeros(g.nrows(), g.ncols());
         for (j, &d) in objectives.domain.iter().enumerate() {
             for i in 0..g.nrows() {
-                let (lo, hi) = if top == 0 {
-                    (domains.lower[(i, d)], domains.upper[(i, d)])
-                } else {
-                    (
-                        hidden.lower[top - 1][(i, d)].max(0.0),
-                        hidden.upper[top - 1][(i, d)].max(0.0),
-                    )
-                };
+                let (lo, hi) = hidden.box_entry(domains, top, i, d);
                 // The minimising corner (the centre at a zero coefficient, one-sided).
                 let w = g[(i, j)];
                 d_g[(i, j)] = d_bound[j] * corner(w, lo, hi);

@@ -11,7 +11,6 @@
 
 use nalgebra::{DMatrix, DVector};
 
-use crate::model::affine::sign;
 use crate::model::{Affine, Dense};
 
 /// A possibly inexact affine layer `x ↦ W x + b` as the engine sees it.
@@ -91,9 +90,18 @@ impl IntervalStep {
     }
 }
 
-/// `plain ∘ sign(weights)`: the parameter derivative of a magnitude map from the plain one.
+/// `plain ∘ sign(weights)` (sign 0 at 0, the one-sided choice at the kink of `|w|`): the parameter
+/// derivative of a magnitude map from the plain one.
 pub(crate) fn signed(plain: DMatrix<f64>, weights: &DMatrix<f64>) -> DMatrix<f64> {
-    plain.zip_map(weights, |v, w| v * sign(w))
+    plain.zip_map(weights, |v, w| {
+        if w > 0.0 {
+            v
+        } else if w < 0.0 {
+            -v
+        } else {
+            0.0
+        }
+    })
 }
 
 /// A dense layer with its transpose and its positive, negative and magnitude parts cached.

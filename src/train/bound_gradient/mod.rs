@@ -38,9 +38,6 @@ use crate::threat::{Norm, Region};
 use super::backprop::{add_scaled, zeros_like};
 use super::TrainError;
 
-#[cfg(test)]
-mod previous;
-
 /// Samples per block (fixed, so sums do not depend on the thread count).
 const BLOCK: usize = 16;
 
