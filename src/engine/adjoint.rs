@@ -1,8 +1,8 @@
 //! Reverse-mode derivatives of the engine's bounds, for training: from what a forward bound
 //! computation recorded — the interval bounds of every hidden layer and their ReLU relaxations
-//! ([`intermediate::compute`] with [`Tightness::Interval`](super::intermediate::Tightness)), and for a
-//! backward pass run with [`Keep::Everything`] its coefficients on every hidden layer and its
-//! minimisers — the derivative of `Σⱼ d_boundⱼ · boundⱼ` with respect to every layer's parameters
+//! ([`super::intermediate::compute`] with
+//! [`Tightness::Interval`](super::intermediate::Tightness)), and for a backward pass run with
+//! [`Keep::Everything`] its coefficients on every hidden layer and its minimisers — the derivative of `Σⱼ d_boundⱼ · boundⱼ` with respect to every layer's parameters
 //! and to the interval bounds feeding the relaxations (the dependence of the upper slope
 //! `s = u / (u − l)` and intercept `−s·l` on `l`, `u`), then carried back through the interval
 //! propagation itself.
