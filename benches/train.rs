@@ -1,7 +1,8 @@
 //! Training benchmarks (not tests): `cargo bench --bench train [-- speed|tradeoff]`.
 //!
 //! - speed: certified (linear + interval bound) retraining of the 64-64-32-10 digits fixture on
-//!   1,400 digits samples for 30 epochs, wall-clock time;
+//!   1,400 digits samples for 30 epochs, wall-clock time; the same on a 784-input 784-256-256-10
+//!   network for 2 epochs when its fixtures are in target/bench-fixtures/;
 //! - tradeoff: on the digits data (tests/data/digits_train.csv split 80/20 into training and
 //!   validation rows, which are also the acceptance data; the held-out tests/data/digits_test.csv only
 //!   measured), L-inf eps 0.07 on pixels in [0, 1]: a plain 64-32-10 MLP trained from scratch with
@@ -21,8 +22,10 @@ use ballast::data::{load_csv, DataOptions, Dataset};
 use ballast::model::Model;
 use ballast::threat::requirement::Requirement;
 use ballast::threat::{Budget, Norm, Targets};
+use ballast::train::bound_gradient::certified_cross_entropy;
 use ballast::train::constrained::{
-    train_constrained_epochs, ConstrainedSettings, ConstrainedState, Constraint, Formulation,
+    train_constrained_epochs, ConstrainedEpoch, ConstrainedSettings, ConstrainedState, Constraint,
+    Formulation,
 };
 use ballast::train::curves::{plot_svg, Series};
 use ballast::train::plain::split_validation;
@@ -106,38 +109,119 @@ fn speed() {
         labels.push(source.labels[j]);
     }
     let data = Dataset { features, labels };
-    let settings = constrained_settings(
-        30,
-        1,
-        Budget::uniform(Norm::Linf, 0.01, 64),
-        Targets::Any,
-        Formulation::PrimalDual {
-            dual_step: 0.05,
-            initial_multiplier: 0.0,
-            per_class: false,
-        },
-        0.8,
-        0.0,
-    );
-    let trainable = TrainableModel::new(&model);
-    let mut state = ConstrainedState::new(&trainable, &settings, 10);
-    let start = Instant::now();
-    let epochs = train_constrained_epochs(
-        &trainable,
-        &mut state,
-        &data,
-        None,
-        &settings,
-        30,
-        &mut |_| {},
-    )
-    .expect("training runs");
-    let seconds = start.elapsed().as_secs_f64();
-    let last = epochs.last().expect("epochs");
+    let budget = Budget::uniform(Norm::Linf, 0.01, 64);
+    let (seconds, last) = timed_training(&model, &data, 30, budget, 0.8);
     println!(
         "speed: 64-64-32-10, 1400 samples, 30 epochs, linear+interval certified loss, eps 0.01 linf: {seconds:.1} s \
          (final clean loss {:.4}, robust loss {:.4}, training robust error {:.3}, λ {:.3})",
         last.clean_loss, last.robust_loss, last.robust_error, last.multipliers[0]
+    );
+}
+
+/// Primal-dual certified retraining of `model` on `data` for `epochs` epochs with the speed protocol's
+/// settings (no per-epoch validation): the wall-clock seconds and the last epoch.
+fn timed_training(
+    model: &Model,
+    data: &Dataset,
+    epochs: usize,
+    budget: Budget,
+    floor: f64,
+) -> (f64, ConstrainedEpoch) {
+    let formulation = Formulation::PrimalDual {
+        dual_step: 0.05,
+        initial_multiplier: 0.0,
+        per_class: false,
+    };
+    let settings = constrained_settings(epochs, 1, budget, Targets::Any, formulation, floor, 0.0);
+    let trainable = TrainableModel::new(model);
+    let mut state = ConstrainedState::new(&trainable, &settings, 10);
+    let start = Instant::now();
+    let run = train_constrained_epochs(
+        &trainable,
+        &mut state,
+        data,
+        None,
+        &settings,
+        epochs,
+        &mut |_| {},
+    )
+    .expect("training runs");
+    let seconds = start.elapsed().as_secs_f64();
+    (seconds, run.last().expect("epochs").clone())
+}
+
+/// The certified loss and its gradient alone on the 784-input network (the rest of a training step
+/// — the per-batch constraint measurement by linear bounds — dominates [`speed_wide`]): every row of
+/// `wide_test.csv` in batches of 64, L-inf eps 0.02, β = 1 and β = 0.5, five passes each; skipped
+/// when the fixtures are missing.
+fn loss_wide() {
+    let folder = Path::new("target/bench-fixtures");
+    let Ok(model) = Model::load(&folder.join("wide_256x2.model.json")) else {
+        return;
+    };
+    let data = load_csv(
+        &folder.join("wide_test.csv"),
+        &model,
+        &DataOptions::default(),
+    )
+    .expect("data");
+    let network = model.network();
+    let classes = network.output_dim();
+    let budget = Budget::uniform(Norm::Linf, 0.02, model.input.dim);
+    let regions: Vec<_> = (0..data.len())
+        .map(|s| budget.region(data.sample(s), &model.input.lower, &model.input.upper))
+        .collect();
+    let targets: Vec<Vec<usize>> = data
+        .labels
+        .iter()
+        .map(|&y| (0..classes).filter(|j| *j != y).collect())
+        .collect();
+    for beta in [1.0, 0.5] {
+        let start = Instant::now();
+        for _ in 0..5 {
+            for first in (0..data.len()).step_by(64) {
+                let end = (first + 64).min(data.len());
+                let weights = vec![1.0; end - first];
+                let batch = certified_cross_entropy(
+                    &network,
+                    &regions[first..end],
+                    &data.labels[first..end],
+                    &targets[first..end],
+                    &weights,
+                    beta,
+                )
+                .expect("bounds");
+                assert!(batch.loss.is_finite());
+            }
+        }
+        let seconds = start.elapsed().as_secs_f64() / 5.0;
+        println!(
+            "speed (784 inputs): certified loss and gradient alone, β = {beta}, {} rows in batches \
+             of 64: {seconds:.2} s per pass",
+            data.len()
+        );
+    }
+}
+
+/// The speed protocol on a 784-input network (`target/bench-fixtures/wide_256x2.model.json`,
+/// 784-256-256-10, on the 200 rows of `target/bench-fixtures/wide_test.csv`, L-inf eps 0.02, 2
+/// epochs): skipped when the fixtures are missing.
+fn speed_wide() {
+    let folder = Path::new("target/bench-fixtures");
+    let Ok(model) = Model::load(&folder.join("wide_256x2.model.json")) else {
+        println!("speed (784 inputs): skipped, no target/bench-fixtures/wide_256x2.model.json");
+        return;
+    };
+    let options = DataOptions::default();
+    let data = load_csv(&folder.join("wide_test.csv"), &model, &options).expect("data");
+    let budget = Budget::uniform(Norm::Linf, 0.02, model.input.dim);
+    let (seconds, last) = timed_training(&model, &data, 2, budget, 0.5);
+    println!(
+        "speed (784 inputs): 784-256-256-10, {} samples, 2 epochs, linear+interval certified loss, \
+         eps 0.02 linf: {seconds:.1} s (final clean loss {:.4}, robust loss {:.4})",
+        data.len(),
+        last.clean_loss,
+        last.robust_loss
     );
 }
 
@@ -464,6 +548,8 @@ fn main() {
     let all = which.is_empty();
     if all || which.iter().any(|w| w == "speed") {
         speed();
+        speed_wide();
+        loss_wide();
     }
     if all || which.iter().any(|w| w == "tradeoff") {
         tradeoff();

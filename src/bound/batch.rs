@@ -56,7 +56,7 @@ fn to_matrices(
 }
 
 /// The margin objectives `e_label − e_target` on the logits, one column per (request, target).
-fn margin_objectives(engine: &Engine, requests: &[Request]) -> Objectives {
+pub(crate) fn margin_objectives(engine: &Engine, requests: &[Request]) -> Objectives {
     let classes = engine.output_dim();
     let columns: usize = requests.iter().map(|r| r.targets.len()).sum();
     let mut coefficients = DMatrix::zeros(classes, columns);

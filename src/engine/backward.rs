@@ -393,14 +393,7 @@ pub fn over_last_box(
             let mut value = constant[j];
             let mut size = constant[j].abs();
             for i in 0..g.nrows() {
-                let (lo, hi) = if top == 0 {
-                    (domains.lower[(i, d)], domains.upper[(i, d)])
-                } else {
-                    (
-                        hidden.lower[top - 1][(i, d)].max(0.0),
-                        hidden.upper[top - 1][(i, d)].max(0.0),
-                    )
-                };
+                let (lo, hi) = hidden.box_entry(domains, top, i, d);
                 let w = g[(i, j)];
                 value += if w > 0.0 { w * lo } else { w * hi };
                 size += w.abs() * lo.abs().max(hi.abs());

@@ -58,6 +58,19 @@ pub struct HiddenBounds {
 }
 
 impl HiddenBounds {
+    /// Entry `i` of the box layer `k` reads in domain `d`: the input box for `k = 0`, else the ReLU
+    /// image `[max(l, 0), max(u, 0)]` of hidden layer `k − 1`.
+    pub fn box_entry(&self, domains: &Domains, k: usize, i: usize, d: usize) -> (f64, f64) {
+        if k == 0 {
+            (domains.lower[(i, d)], domains.upper[(i, d)])
+        } else {
+            (
+                self.lower[k - 1][(i, d)].max(0.0),
+                self.upper[k - 1][(i, d)].max(0.0),
+            )
+        }
+    }
+
     /// The bounds of domain `d` as per-layer vectors.
     pub fn layer_bounds(&self, d: usize) -> Vec<LayerBounds> {
         self.lower

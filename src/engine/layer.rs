@@ -2,14 +2,16 @@
 //!
 //! Every algorithm of the engine (forward pass, gradients, interval and linear bounds, rounding
 //! allowances) touches a layer only through [`LinearLayer`]: the map on a batch, its transpose, the
-//! map of the entrywise magnitudes, and the interval image of a box. A new layer kind (a convolution, a
-//! pooling average) implements these operations and no algorithm changes. Batches are matrices with
-//! one column per sub-problem. All operations are plain floating-point products; the engine accounts
-//! for their rounding (see [`super::rounding`]).
+//! map of the entrywise magnitudes, and the interval image of a box — and, for training, the
+//! reverse-mode steps of the map and of the interval image with respect to the layer's parameters
+//! ([`super::adjoint`]). A new layer kind (a convolution, a pooling average) implements these
+//! operations and no algorithm changes. Batches are matrices with one column per sub-problem. All
+//! operations are plain floating-point products; the engine accounts for their rounding (see
+//! [`super::rounding`]); the reverse-mode steps are exact-arithmetic derivatives with no allowance.
 
 use nalgebra::{DMatrix, DVector};
 
-use crate::model::Dense;
+use crate::model::{Affine, Dense};
 
 /// A possibly inexact affine layer `x ↦ W x + b` as the engine sees it.
 pub trait LinearLayer: Send + Sync {
@@ -56,6 +58,72 @@ pub trait LinearLayer: Send + Sync {
     /// The box image `W⁺L + W⁻U + b` and `W⁺U + W⁻L + b` of the boxes `[L, U]` (columns), as computed
     /// (no rounding allowance).
     fn interval(&self, lower: &DMatrix<f64>, upper: &DMatrix<f64>) -> (DMatrix<f64>, DMatrix<f64>);
+    /// Adds to `gradient` (this layer's parameters, in the shape of the model layer it was built
+    /// from) the derivative of `Σⱼ outerⱼᵀ (W xⱼ + b)` with respect to `W` and `b`. Layers without
+    /// trainable parameters (fixed sparse maps) add nothing.
+    fn parameter_gradient(&self, xs: &DMatrix<f64>, outer: &DMatrix<f64>, gradient: &mut Affine);
+    /// The reverse-mode step of [`LinearLayer::interval`] read in exact arithmetic as the centre
+    /// `W c + b` and radius `|W| r` of the box `c ± r`: given the derivatives of a function with
+    /// respect to the image's lower and upper ends, adds its derivative with respect to the
+    /// parameters to `gradient` (the magnitude contributes `sign(w)` times the plain derivative, the
+    /// one-sided 0 at `w = 0`) and returns its derivatives with respect to `lower` and `upper`.
+    fn interval_gradient(
+        &self,
+        boxes: (&DMatrix<f64>, &DMatrix<f64>),
+        d_image: (&DMatrix<f64>, &DMatrix<f64>),
+        gradient: &mut Affine,
+    ) -> (DMatrix<f64>, DMatrix<f64>);
+}
+
+/// A box and the derivatives of its interval image, in centre and radius form (see
+/// [`LinearLayer::interval_gradient`]).
+pub(crate) struct IntervalStep {
+    /// `c = (L + U) / 2`.
+    pub centre: DMatrix<f64>,
+    /// `r = (U − L) / 2`.
+    pub radius: DMatrix<f64>,
+    /// The derivative with respect to the image's centre (`d_lower + d_upper`).
+    pub d_centre: DMatrix<f64>,
+    /// The derivative with respect to the image's radius (`d_upper − d_lower`).
+    pub d_radius: DMatrix<f64>,
+}
+
+impl IntervalStep {
+    /// The step for `boxes = (L, U)` and `d_image = (∂/∂lower, ∂/∂upper)` of the image.
+    pub(crate) fn new(
+        boxes: (&DMatrix<f64>, &DMatrix<f64>),
+        d_image: (&DMatrix<f64>, &DMatrix<f64>),
+    ) -> IntervalStep {
+        IntervalStep {
+            centre: (boxes.0 + boxes.1) * 0.5,
+            radius: (boxes.1 - boxes.0) * 0.5,
+            d_centre: d_image.0 + d_image.1,
+            d_radius: d_image.1 - d_image.0,
+        }
+    }
+
+    /// From the derivatives with respect to the box's centre (`Wᵀ ∂centre`) and radius
+    /// (`|W|ᵀ ∂radius`) to those with respect to its lower and upper corners.
+    pub(crate) fn corners(
+        d_centre: DMatrix<f64>,
+        d_radius: DMatrix<f64>,
+    ) -> (DMatrix<f64>, DMatrix<f64>) {
+        ((&d_centre - &d_radius) * 0.5, (d_centre + d_radius) * 0.5)
+    }
+}
+
+/// `plain ∘ sign(weights)` (sign 0 at 0, the one-sided choice at the kink of `|w|`): the parameter
+/// derivative of a magnitude map from the plain one.
+pub(crate) fn signed(plain: DMatrix<f64>, weights: &DMatrix<f64>) -> DMatrix<f64> {
+    plain.zip_map(weights, |v, w| {
+        if w > 0.0 {
+            v
+        } else if w < 0.0 {
+            -v
+        } else {
+            0.0
+        }
+    })
 }
 
 /// A dense layer with its transpose and its positive, negative and magnitude parts cached.
@@ -159,6 +227,30 @@ impl LinearLayer for DenseLayer {
         let low = &self.positive * lower + &self.negative * upper;
         let high = &self.positive * upper + &self.negative * lower;
         (add_bias(low, &self.bias), add_bias(high, &self.bias))
+    }
+
+    fn parameter_gradient(&self, xs: &DMatrix<f64>, outer: &DMatrix<f64>, gradient: &mut Affine) {
+        let Affine::Dense(g) = gradient else {
+            panic!("a gradient has the shape of its layer")
+        };
+        g.weights += outer * xs.transpose();
+        g.bias += outer.column_sum();
+    }
+
+    fn interval_gradient(
+        &self,
+        boxes: (&DMatrix<f64>, &DMatrix<f64>),
+        d_image: (&DMatrix<f64>, &DMatrix<f64>),
+        gradient: &mut Affine,
+    ) -> (DMatrix<f64>, DMatrix<f64>) {
+        let step = IntervalStep::new(boxes, d_image);
+        self.parameter_gradient(&step.centre, &step.d_centre, gradient);
+        if let Affine::Dense(g) = gradient {
+            g.weights += signed(&step.d_radius * step.radius.transpose(), &self.weights);
+        }
+        // `|W|ᵀ D` as `(Dᵀ |W|)ᵀ`: a blocked product without caching `|W|ᵀ`.
+        let d_radius = (step.d_radius.transpose() * &self.magnitude).transpose();
+        IntervalStep::corners(&self.transposed * &step.d_centre, d_radius)
     }
 }
 

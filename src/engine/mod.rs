@@ -1,6 +1,7 @@
 //! The bound engine: every propagation ballast runs — forward passes, margin gradients, interval
-//! bounds, the backward linear relaxation with optimised slopes and split multipliers — written once,
-//! over a layer-generic network view, on batches of sub-problems stacked as matrix columns.
+//! bounds, the backward linear relaxation with optimised slopes and split multipliers, and the
+//! reverse-mode derivatives of these bounds that training follows ([`adjoint`]) — written once, over a
+//! layer-generic network view, on batches of sub-problems stacked as matrix columns.
 //!
 //! Guarantee: every lower bound the engine returns is a bound on the **real-number** network described
 //! by the model file (not only on its f64 evaluation): each layer's interval and each backward pass
@@ -13,6 +14,7 @@
 //! domain ([`Domains`]), and the per-domain data (bounds, relaxations) are matrices with one column per
 //! domain.
 
+pub mod adjoint;
 pub mod backward;
 pub mod domains;
 pub mod forward;

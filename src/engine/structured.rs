@@ -4,11 +4,12 @@
 //! Guarantee: each kind implements [`LinearLayer`] with the meaning stated there. A chain's interval
 //! image is the parts' images in turn (a superset of the exact image), its magnitude map the parts'
 //! magnitude maps in turn, and its fan-in the sum of its parts' (see [`crate::model::Affine::fan_in`]),
-//! so the rounding allowances of the engine stay sound for it.
+//! so the rounding allowances of the engine stay sound for it. A chain's reverse-mode steps run
+//! through its parts' steps in turn (a sparse part has no parameters and passes derivatives on).
 
 use nalgebra::{DMatrix, DVector};
 
-use super::layer::{DenseLayer, LinearLayer};
+use super::layer::{signed, DenseLayer, IntervalStep, LinearLayer};
 use crate::model::affine::add_bias;
 use crate::model::{Affine, Conv, Sparse};
 
@@ -106,6 +107,32 @@ impl LinearLayer for ConvLayer {
         let high = c.correlate(&self.positive, upper) + c.correlate(&self.negative, lower);
         (add_bias(low, &self.bias), add_bias(high, &self.bias))
     }
+
+    fn parameter_gradient(&self, xs: &DMatrix<f64>, outer: &DMatrix<f64>, gradient: &mut Affine) {
+        let Affine::Conv(g) = gradient else {
+            panic!("a gradient has the shape of its layer")
+        };
+        g.kernel += self.conv.kernel_gradient(outer, xs);
+        g.bias += self.conv.bias_gradient(outer);
+    }
+
+    fn interval_gradient(
+        &self,
+        boxes: (&DMatrix<f64>, &DMatrix<f64>),
+        d_image: (&DMatrix<f64>, &DMatrix<f64>),
+        gradient: &mut Affine,
+    ) -> (DMatrix<f64>, DMatrix<f64>) {
+        let step = IntervalStep::new(boxes, d_image);
+        self.parameter_gradient(&step.centre, &step.d_centre, gradient);
+        let c = &self.conv;
+        if let Affine::Conv(g) = gradient {
+            g.kernel += signed(c.kernel_gradient(&step.d_radius, &step.radius), &c.kernel);
+        }
+        IntervalStep::corners(
+            c.correlate_transpose(&self.transposed, &step.d_centre),
+            c.correlate_transpose(&self.magnitude.transpose(), &step.d_radius),
+        )
+    }
 }
 
 /// A fixed sparse map.
@@ -161,6 +188,21 @@ impl LinearLayer for SparseLayer {
         let high =
             self.0.apply_with(upper, |w| w.max(0.0)) + self.0.apply_with(lower, |w| w.min(0.0));
         (add_bias(low, &self.0.bias), add_bias(high, &self.0.bias))
+    }
+
+    fn parameter_gradient(&self, _: &DMatrix<f64>, _: &DMatrix<f64>, _: &mut Affine) {}
+
+    fn interval_gradient(
+        &self,
+        boxes: (&DMatrix<f64>, &DMatrix<f64>),
+        d_image: (&DMatrix<f64>, &DMatrix<f64>),
+        _: &mut Affine,
+    ) -> (DMatrix<f64>, DMatrix<f64>) {
+        let step = IntervalStep::new(boxes, d_image);
+        IntervalStep::corners(
+            self.0.transpose_apply_with(&step.d_centre, |w| w),
+            self.0.transpose_apply_with(&step.d_radius, f64::abs),
+        )
     }
 }
 
@@ -230,5 +272,46 @@ impl LinearLayer for ChainLayer {
             .fold((lower.clone(), upper.clone()), |(lo, hi), l| {
                 l.interval(&lo, &hi)
             })
+    }
+
+    fn parameter_gradient(&self, xs: &DMatrix<f64>, outer: &DMatrix<f64>, gradient: &mut Affine) {
+        let Affine::Chain(grads) = gradient else {
+            panic!("a gradient has the shape of its layer")
+        };
+        let mut inputs = vec![xs.clone()];
+        for part in &self.0[..self.0.len() - 1] {
+            let next = part.apply(inputs.last().expect("non-empty"));
+            inputs.push(next);
+        }
+        let mut outer = outer.clone();
+        for (k, part) in self.0.iter().enumerate().rev() {
+            part.parameter_gradient(&inputs[k], &outer, &mut grads[k]);
+            if k > 0 {
+                outer = part.transpose_apply(&outer);
+            }
+        }
+    }
+
+    fn interval_gradient(
+        &self,
+        boxes: (&DMatrix<f64>, &DMatrix<f64>),
+        d_image: (&DMatrix<f64>, &DMatrix<f64>),
+        gradient: &mut Affine,
+    ) -> (DMatrix<f64>, DMatrix<f64>) {
+        let Affine::Chain(grads) = gradient else {
+            panic!("a gradient has the shape of its layer")
+        };
+        let mut inputs = vec![(boxes.0.clone(), boxes.1.clone())];
+        for part in &self.0[..self.0.len() - 1] {
+            let (lo, hi) = inputs.last().expect("non-empty");
+            let next = part.interval(lo, hi);
+            inputs.push(next);
+        }
+        let mut d = (d_image.0.clone(), d_image.1.clone());
+        for (k, part) in self.0.iter().enumerate().rev() {
+            let (lo, hi) = &inputs[k];
+            d = part.interval_gradient((lo, hi), (&d.0, &d.1), &mut grads[k]);
+        }
+        d
     }
 }

@@ -2,8 +2,8 @@
 //! map, or a chain of these applied in turn.
 //!
 //! Guarantee: every kind offers the same operations with the same meaning — the map on a batch
-//! ([`Affine::apply_batch`]), its exact adjoint without bias ([`Affine::transpose_apply`]), the map of
-//! entrywise magnitudes (`|W| X + |b|`, for rounding bounds; for a chain the product of its parts'
+//! ([`Affine::apply_batch`]), its linear part ([`Affine::apply_linear`]), the map of entrywise
+//! magnitudes (`|W| X + |b|`, for rounding bounds; for a chain the product of its parts'
 //! magnitudes, which bounds the magnitude of the product and the rounding of evaluating it part by
 //! part), its parameters as flat slices, and the gradient of a linear functional of its output with
 //! respect to its parameters and input. Fixed sparse maps have no trainable parameters.
@@ -134,41 +134,6 @@ impl Affine {
         DVector::from_column_slice(self.apply_batch(&xs).as_slice())
     }
 
-    /// `Wᵀ A` (no bias): the exact adjoint of the linear part.
-    pub fn transpose_apply(&self, coefficients: &DMatrix<f64>) -> DMatrix<f64> {
-        match self {
-            Affine::Dense(d) => d.weights.tr_mul(coefficients),
-            Affine::Conv(c) => c.correlate_transpose(&c.kernel.transpose(), coefficients),
-            Affine::Sparse(s) => s.transpose_apply_with(coefficients, |w| w),
-            Affine::Chain(parts) => {
-                let mut a = parts[parts.len() - 1].transpose_apply(coefficients);
-                for part in parts[..parts.len() - 1].iter().rev() {
-                    a = part.transpose_apply(&a);
-                }
-                a
-            }
-        }
-    }
-
-    /// `bᵀ A` for output coefficients `A`: the constant each column picks up from the biases (for a
-    /// chain, every part's bias pulled back through the parts after it).
-    pub fn bias_dot(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {
-        match self {
-            Affine::Dense(d) => coefficients.tr_mul(&d.bias),
-            Affine::Conv(c) => coefficients.tr_mul(&c.bias_per_output(&c.bias)),
-            Affine::Sparse(s) => coefficients.tr_mul(&s.bias),
-            Affine::Chain(parts) => {
-                let mut a = coefficients.clone();
-                let mut total = DVector::zeros(coefficients.ncols());
-                for part in parts.iter().rev() {
-                    total += part.bias_dot(&a);
-                    a = part.transpose_apply(&a);
-                }
-                total
-            }
-        }
-    }
-
     /// `|W| X + |b| 1ᵀ` for non-negative `X` (a chain: its parts' magnitude maps in turn).
     pub fn magnitude_apply(&self, magnitudes: &DMatrix<f64>) -> DMatrix<f64> {
         match self {
@@ -213,65 +178,35 @@ impl Affine {
         self.parameters().iter().map(|p| p.len()).sum()
     }
 
-    /// Reverse-mode step for `Y = W X + b` (or, with `magnitude`, `Y = |W| X`): given `∂L/∂Y`
-    /// (`outer`) and the input `X`, adds `∂L/∂θ` to `gradient` (same kind and shape as `self`) and
-    /// returns `∂L/∂X`. For the magnitude map the weight derivative is `sign(w)` times the plain one
-    /// (one-sided `0` at `w = 0`) and the bias gets none.
+    /// Reverse-mode step for `Y = W X + b`: given `∂L/∂Y` (`outer`) and the input `X`, adds `∂L/∂θ`
+    /// to `gradient` (same kind and shape as `self`) and returns `∂L/∂X`.
     pub fn backward(
         &self,
         xs: &DMatrix<f64>,
         outer: &DMatrix<f64>,
         gradient: &mut Affine,
-        magnitude: bool,
     ) -> DMatrix<f64> {
         match (self, gradient) {
             (Affine::Dense(d), Affine::Dense(g)) => {
-                let plain = outer * xs.transpose();
-                if magnitude {
-                    g.weights += plain.zip_map(&d.weights, |v, w| v * sign(w));
-                    d.weights.abs().tr_mul(outer)
-                } else {
-                    g.weights += plain;
-                    g.bias += outer.column_sum();
-                    d.weights.tr_mul(outer)
-                }
+                g.weights += outer * xs.transpose();
+                g.bias += outer.column_sum();
+                d.weights.tr_mul(outer)
             }
             (Affine::Conv(c), Affine::Conv(g)) => {
-                let plain = c.kernel_gradient(outer, xs);
-                if magnitude {
-                    g.kernel += plain.zip_map(&c.kernel, |v, w| v * sign(w));
-                    c.correlate_transpose(&c.kernel.abs().transpose(), outer)
-                } else {
-                    g.kernel += plain;
-                    let positions = c.positions();
-                    let sums = outer.column_sum();
-                    for (r, v) in sums.iter().enumerate() {
-                        g.bias[r / positions] += v;
-                    }
-                    c.correlate_transpose(&c.kernel.transpose(), outer)
-                }
+                g.kernel += c.kernel_gradient(outer, xs);
+                g.bias += c.bias_gradient(outer);
+                c.correlate_transpose(&c.kernel.transpose(), outer)
             }
-            (Affine::Sparse(s), Affine::Sparse(_)) => {
-                if magnitude {
-                    s.transpose_apply_with(outer, f64::abs)
-                } else {
-                    s.transpose_apply_with(outer, |w| w)
-                }
-            }
+            (Affine::Sparse(s), Affine::Sparse(_)) => s.transpose_apply_with(outer, |w| w),
             (Affine::Chain(parts), Affine::Chain(grads)) => {
                 let mut inputs = vec![xs.clone()];
                 for part in &parts[..parts.len() - 1] {
-                    let last = inputs.last().expect("non-empty");
-                    let next = if magnitude {
-                        part.magnitude_linear(last)
-                    } else {
-                        part.apply_batch(last)
-                    };
+                    let next = part.apply_batch(inputs.last().expect("non-empty"));
                     inputs.push(next);
                 }
                 let mut g = outer.clone();
                 for (k, part) in parts.iter().enumerate().rev() {
-                    g = part.backward(&inputs[k], &g, &mut grads[k], magnitude);
+                    g = part.backward(&inputs[k], &g, &mut grads[k]);
                 }
                 g
             }
@@ -302,16 +237,6 @@ impl Affine {
             p.fill(0.0);
         }
         zero
-    }
-}
-
-fn sign(w: f64) -> f64 {
-    if w > 0.0 {
-        1.0
-    } else if w < 0.0 {
-        -1.0
-    } else {
-        0.0
     }
 }
 

@@ -316,6 +316,18 @@ impl Conv {
         self.stack(coefficients) * self.unfold(xs).transpose()
     }
 
+    /// The gradient of `Σ_b ⟨A_b, bias pattern⟩` with respect to the per-channel bias: each
+    /// channel's coefficients summed over its positions and the batch.
+    pub fn bias_gradient(&self, coefficients: &DMatrix<f64>) -> DVector<f64> {
+        let positions = self.positions();
+        let sums = coefficients.column_sum();
+        let mut out = DVector::zeros(self.shape.out_channels);
+        for (r, v) in sums.iter().enumerate() {
+            out[r / positions] += v;
+        }
+        out
+    }
+
     /// The bias pattern over the flattened output (each channel's bias at each of its positions).
     pub fn bias_per_output<T: RealField + Copy>(&self, bias: &DVector<T>) -> DVector<T> {
         let positions = self.positions();

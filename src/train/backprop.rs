@@ -87,7 +87,7 @@ pub fn backward_with_input(
     let mut input_gradient = None;
     for k in (0..network.layers.len()).rev() {
         let layer = &network.layers[k];
-        let mut dh = layer.backward(&cache.inputs[k], &dz, &mut gradient.layers[k], false);
+        let mut dh = layer.backward(&cache.inputs[k], &dz, &mut gradient.layers[k]);
         if k > 0 || want_input {
             if k > 0 {
                 dh.zip_apply(&cache.pre_activations[k - 1], |g, z| {
