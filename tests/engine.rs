@@ -226,11 +226,11 @@ fn no_exact_margin_below_a_bound_at_extreme_scales() {
     assert!(informative > 20, "only {informative} finite bounds");
 }
 
-/// Unit objectives by row selection ([`backward::run_units`]) and a product that skips zero rows give
-/// the same bits as the plain backward pass on the same unit columns (the skipped terms are exact
-/// zeros; a selected row is the product with a unit vector, exactly).
+/// Unit objectives by row selection ([`backward::run_units`], with the product below the first ReLU
+/// shared by each ± pair) agree with the plain backward pass on the same unit columns within 1e-12
+/// relative (common practice: the same terms summed in another order), and the minimisers are equal.
 #[test]
-fn unit_objectives_equal_the_plain_backward_pass_bit_for_bit() {
+fn unit_objectives_equal_the_plain_backward_pass() {
     use ballast::engine::backward::{self, Choices, Keep, Objectives};
     use ballast::engine::intermediate::{self, Tightness};
     use ballast::engine::{Domains, Engine};
@@ -287,7 +287,10 @@ fn unit_objectives_equal_the_plain_backward_pass_bit_for_bit() {
                 Keep::Minimisers,
             );
             for (p, s) in plain.lower.iter().zip(&selected.lower) {
-                assert_eq!(p.to_bits(), s.to_bits(), "case {case} top {top}");
+                assert!(
+                    p == s || (p - s).abs() <= 1e-12 * (1.0 + p.abs()),
+                    "case {case} top {top}: {p} vs {s}"
+                );
                 compared += 1;
             }
             assert_eq!(plain.minimiser, selected.minimiser);

@@ -13,7 +13,8 @@
 use nalgebra::{DMatrix, DVector};
 
 use super::intermediate::HiddenBounds;
-use super::{Domains, Engine, LinearLayer};
+use super::products::{transpose_nonzero, transpose_paired};
+use super::{Domains, Engine};
 use crate::bound::concretise;
 use crate::threat::Norm;
 
@@ -116,22 +117,6 @@ fn relax_column(
     add
 }
 
-/// `Wᵀ A`, skipping the rows of `A` that are zero in every column (units a ReLU relaxation zeroes,
-/// e.g. inactive ones) when at least an eighth of them are: the same sums without exact-zero terms.
-fn transpose_nonzero(layer: &dyn LinearLayer, a: &DMatrix<f64>) -> DMatrix<f64> {
-    let mut used = vec![false; a.nrows()];
-    for column in a.column_iter() {
-        for (u, v) in used.iter_mut().zip(column.iter()) {
-            *u |= *v != 0.0;
-        }
-    }
-    let rows: Vec<usize> = (0..a.nrows()).filter(|&i| used[i]).collect();
-    if rows.len() * 8 > a.nrows() * 7 {
-        return layer.transpose_apply(a);
-    }
-    layer.transpose_apply_rows(&a.select_rows(&rows), &rows)
-}
-
 /// `(c + min over the box [lo, hi] of wᵀx, Σ |wᵢ| mᵢ)`, summed in index order; branch-free as in
 /// [`relax_column`].
 fn linf_minimum(c: f64, w: &[f64], lo: &[f64], hi: &[f64], m: &[f64]) -> (f64, f64) {
@@ -175,7 +160,7 @@ pub fn run(
     let constant = constant + engine.layer(top).bias_dot(&a);
     let g = transpose_nonzero(engine.layer(top), &a);
     descend(
-        engine, hidden, domains, top, g, constant, sums, &domain, choices, keep,
+        engine, hidden, domains, top, g, constant, sums, &domain, choices, keep, false,
     )
 }
 
@@ -201,6 +186,13 @@ pub fn run_units(
             .push(hidden.fold[top].as_ref().map_or(0.0, |f| f[(i, d)]));
     }
     let (g, constant) = engine.layer(top).transpose_units(units);
+    // Columns (2c, 2c + 1) the same unit with opposite signs on the same domain (as intermediate
+    // bounds ask for them): their first product below is shared where they agree up to sign.
+    let paired = units.len().is_multiple_of(2)
+        && units
+            .chunks(2)
+            .zip(domain.chunks(2))
+            .all(|(u, d)| u[0].0 == u[1].0 && u[0].1 == -u[1].1 && d[0] == d[1]);
     descend(
         engine,
         hidden,
@@ -212,6 +204,7 @@ pub fn run_units(
         domain,
         Choices::default(),
         keep,
+        paired,
     )
 }
 
@@ -236,6 +229,7 @@ fn descend(
     domain: &[usize],
     choices: Choices,
     keep: Keep,
+    paired: bool,
 ) -> Backward {
     let columns = g.ncols();
     let Sums {
@@ -285,7 +279,12 @@ fn descend(
             on_hidden.push(g);
         }
         constant += engine.layer(k).bias_dot(&next);
-        g = transpose_nonzero(engine.layer(k), &next);
+        // Below the first ReLU, paired columns are the same up to sign on the stable units only.
+        g = if paired && k + 1 == top {
+            transpose_paired(engine.layer(k), &next)
+        } else {
+            transpose_nonzero(engine.layer(k), &next)
+        };
     };
     on_hidden.reverse();
     // Concretise over each domain's input set.

@@ -20,6 +20,7 @@ pub mod domains;
 pub mod forward;
 pub mod intermediate;
 pub mod layer;
+mod products;
 pub mod rounding;
 pub mod slopes;
 pub mod structured;
