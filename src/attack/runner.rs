@@ -1,6 +1,6 @@
 //! The attack runner: owns the schedule of starts and runs, the step-size schedule, seeds, the time
 //! limit and the stop on the first validated counterexample, for one sample ([`attack_sample`]) or many
-//! stepped together as one batch ([`attack_batch`], executed by [`super::lockstep`]).
+//! stepped together as one batch ([`attack_batch`], executed by `attack::lockstep`).
 //!
 //! Schedule per sample (each PGD run is `steps` gradient steps of [`super::step::descent_step`] on the
 //! margin loss of Carlini & Wagner, 2017):
@@ -224,7 +224,7 @@ pub fn attack_sample(
     Ok(outcomes.pop().expect("one outcome per sample"))
 }
 
-/// Attacks every problem together, in lockstep ([`super::lockstep`]): each phase of the schedule steps
+/// Attacks every problem together, in lockstep (`attack::lockstep`): each phase of the schedule steps
 /// all still-open samples as one batch of matrix products (parallel over column blocks). Sample `p`
 /// uses `sample_seed(settings.seed, p.index)` and its result is the one [`attack_sample`] gives it
 /// alone, whatever the order, the batch or the thread count.

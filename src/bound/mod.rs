@@ -16,8 +16,8 @@
 //! Methods, from loosest and cheapest to tightest and dearest:
 //! [`interval`] (Gowal et al., 2018), [`linear`] (backward linear-bound propagation, Zhang et al., 2018;
 //! the dual view of Wong & Kolter, 2018), [`optimised`] (slopes optimised by projected gradient ascent,
-//! Xu et al., 2021) and [`lp`] (triangle relaxation, Ehlers, 2017). Minimising a linear function over a
-//! region lives in [`concretise`]; the LP solver sits behind the narrow seam in `solver`.
+//! Xu et al., 2021); the tighter LP and MILP leaves of branch and bound are in [`crate::search`].
+//! Minimising a linear function over a region lives in [`concretise`].
 
 pub(crate) mod batch;
 pub mod concretise;

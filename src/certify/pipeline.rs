@@ -1,5 +1,5 @@
 //! The pipeline: every (sample, epsilon) task goes through the stages cheapest first and stops at the
-//! first that decides it. Each stage runs on all open tasks at once ([`super::stages`]): the bounds as
+//! first that decides it. Each stage runs on all open tasks at once (`certify::stages`): the bounds as
 //! engine batches (matrix products over many sub-problems), the attack as one batch.
 //!
 //! Order per epsilon (ascending): clean forward pass (misclassified, or nothing forbidden) → a smaller

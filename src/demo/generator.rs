@@ -6,7 +6,7 @@
 //! platform** for a given seed: random numbers come from ChaCha8 (`rand_chacha`), turned into floats by
 //! integer arithmetic only, Gaussian noise is the sum of twelve uniforms (Irwin–Hall, mean 0, variance
 //! 1, no `exp`/`ln`), only `+ − ×` are used on floats, and values are written rounded to
-//! [`DECIMALS`](super::scenario::DECIMALS) decimals. It never reads or writes files.
+//! [`super::scenario::DECIMALS`] decimals. It never reads or writes files.
 
 use nalgebra::DMatrix;
 use rand_chacha::rand_core::{RngCore, SeedableRng};

@@ -166,7 +166,7 @@ pub fn run(
 
 /// [`run`] for unit objectives: column `j` is `signⱼ · z_top,unitⱼ` (`units[j] = (unitⱼ, signⱼ)`,
 /// signs ±1) on domain `domain[j]`. The first product is a selection of the layer's rows
-/// ([`LinearLayer::transpose_units`]); the result equals [`run`]'s on the same unit columns.
+/// ([`crate::engine::LinearLayer::transpose_units`]); the result equals [`run`]'s on the same unit columns.
 pub fn run_units(
     engine: &Engine,
     hidden: &HiddenBounds,

@@ -2,7 +2,7 @@
 //! that write a max pool as ReLUs, per-channel scale and shift), stored by rows.
 //!
 //! Guarantee: [`Sparse::apply`] computes `W x + b` with `W` the matrix whose non-zeros are the stored
-//! entries, each output a dot product over its row's entries; [`Sparse::transpose_apply`] is the exact
+//! entries, each output a dot product over its row's entries; [`Sparse::transpose_apply_with`] is the exact
 //! adjoint `Wᵀ A`. A map may store values that are themselves rounded (a `1/std`, a batch-norm scale):
 //! `roundings = r` says every stored weight and bias is within relative `γ_r` of the exact value the
 //! model file describes, and [`Sparse::fan_in`] counts those `r` roundings like `r` more steps of the

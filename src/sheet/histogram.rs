@@ -21,7 +21,7 @@ pub struct Histogram {
 /// Most bins used by the histogram.
 const MAX_BINS: usize = 20;
 
-/// Counts `values` (finite) in at most [`MAX_BINS`] bins of a nice width covering `[min(values, 0),
+/// Counts `values` (finite) in at most `MAX_BINS` bins of a nice width covering `[min(values, 0),
 /// max(values)]`. A value on an inner edge goes to the bin above it.
 pub fn bin(values: &[f64]) -> (Vec<f64>, Vec<usize>) {
     let low = values.iter().copied().fold(0.0, f64::min);

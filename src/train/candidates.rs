@@ -1,8 +1,8 @@
 //! The candidates for a round's kept weights: the training states at the validation checks, chosen
 //! by the lowest validation clean loss or by the one-standard-error rule among those that reach the
-//! round's threshold ([`Candidates`]), near misses judged by the certify pipeline ([`NearMisses`]), and
+//! round's threshold (`Candidates`), near misses judged by the certify pipeline ([`NearMisses`]), and
 //! the threshold that rises after a validation pass that failed the round's check
-//! ([`SelectionThreshold`]). Nothing here trains or certifies; the pipeline's judgement comes in as a
+//! (`SelectionThreshold`). Nothing here trains or certifies; the pipeline's judgement comes in as a
 //! closure.
 
 use crate::certify::Report;
