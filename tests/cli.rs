@@ -3,25 +3,9 @@
 //! input-range policy, and the consistency of the subcommands' flags. Each case runs the built binary.
 
 use std::path::{Path, PathBuf};
-use std::process::Command;
 
-fn root() -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-}
-
-/// Runs the binary; returns (exit code, stdout, stderr).
-fn ballast(args: &[&str]) -> (Option<i32>, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_ballast"))
-        .args(args)
-        .current_dir(root())
-        .output()
-        .expect("the binary runs");
-    (
-        out.status.code(),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
-}
+mod common;
+use common::cli::{ballast, root};
 
 /// Asserts exit 2 and exactly one stderr line, equal to `expected`.
 fn assert_one_line_error(args: &[&str], expected: &str) {

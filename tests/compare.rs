@@ -1,48 +1,10 @@
 //! `ballast compare`, checked from outside the library: the reports are read as plain JSON
 //! (serde_json) and every expected figure is counted here by hand from their per-sample statuses.
 
-use std::path::{Path, PathBuf};
-use std::process::Command;
-
 use serde_json::Value;
 
-fn root() -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-}
-
-fn ballast(args: &[&str]) -> (Option<i32>, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_ballast"))
-        .current_dir(root())
-        .args(args)
-        .output()
-        .expect("the binary runs");
-    (
-        out.status.code(),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
-}
-
-/// Certifies `model` on the demo acceptance set with `tolerances` at epsilon 2, bounds only.
-fn certify(model: &str, tolerances: &Path, report: &Path) -> Value {
-    let (code, _, err) = ballast(&[
-        "certify",
-        "--model",
-        model,
-        "--data",
-        "demo-data/acceptance.csv",
-        "--tolerances",
-        tolerances.to_str().unwrap(),
-        "--eps",
-        "2",
-        "--floor",
-        "0.5",
-        "--report",
-        report.to_str().unwrap(),
-    ]);
-    assert!(matches!(code, Some(0 | 1 | 3)), "{err}");
-    serde_json::from_str(&std::fs::read_to_string(report).unwrap()).unwrap()
-}
+mod common;
+use common::cli::{ballast, certify_demo_acceptance, root};
 
 fn exit_of(verdict: &str) -> i32 {
     // design.md §4: pass 0, fail 1, undecided 3.
@@ -67,8 +29,8 @@ fn compare_tables_two_reports_of_the_same_data_and_refuses_other_data() {
     let dir = tempfile::tempdir().unwrap();
     let tolerances = root().join("demo-data/tolerances.json");
     let (a, b) = (dir.path().join("a.json"), dir.path().join("b.json"));
-    let before = certify("models/pump-linear.json", &tolerances, &a);
-    let after = certify("models/pump-mlp.json", &tolerances, &b);
+    let before = certify_demo_acceptance("models/pump-linear.json", &tolerances, &a);
+    let after = certify_demo_acceptance("models/pump-mlp.json", &tolerances, &b);
     let out = dir.path().join("cmp");
     let (code, stdout, err) = ballast(&[
         "compare",

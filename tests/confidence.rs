@@ -9,15 +9,13 @@
 //! into the model's provenance on the demo data.
 
 use std::path::{Path, PathBuf};
-use std::process::Command;
 
 use approx::assert_abs_diff_eq;
 use ballast::train::confidence::{ConfidenceError, Evidence, Plan, Predictive, ReviewerRule};
 use serde_json::Value;
 
-fn root() -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-}
+mod common;
+use common::cli::{ballast, root};
 
 fn reference() -> Value {
     let path = root().join("tests/reference/out/retrain_confidence.json");
@@ -98,20 +96,6 @@ fn the_predictive_matches_scipy_betabinom() {
         let mean = d.mean_of(|k| Ok::<_, ()>(k as f64)).expect("finite");
         assert_abs_diff_eq!(mean, number(&s["mean"]), epsilon = 1e-8);
     }
-}
-
-/// Runs the binary from the project root; returns (exit code, stdout, stderr).
-fn ballast(args: &[&str]) -> (Option<i32>, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_ballast"))
-        .args(args)
-        .current_dir(root())
-        .output()
-        .expect("the binary runs");
-    (
-        out.status.code(),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
 }
 
 fn folder(name: &str) -> PathBuf {

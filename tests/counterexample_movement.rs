@@ -2,48 +2,10 @@
 //! `counterexample_movement`), recomputed outside the library from the report read as plain JSON
 //! (serde_json) and the data rows read from the CSV text.
 
-use std::path::{Path, PathBuf};
-use std::process::Command;
-
 use serde_json::Value;
 
-fn root() -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-}
-
-fn ballast(args: &[&str]) -> (Option<i32>, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_ballast"))
-        .current_dir(root())
-        .args(args)
-        .output()
-        .expect("the binary runs");
-    (
-        out.status.code(),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
-}
-
-/// Certifies `model` on the demo acceptance set with `tolerances` at epsilon 2, bounds only.
-fn certify(model: &str, tolerances: &Path, report: &Path) -> Value {
-    let (code, _, err) = ballast(&[
-        "certify",
-        "--model",
-        model,
-        "--data",
-        "demo-data/acceptance.csv",
-        "--tolerances",
-        tolerances.to_str().unwrap(),
-        "--eps",
-        "2",
-        "--floor",
-        "0.5",
-        "--report",
-        report.to_str().unwrap(),
-    ]);
-    assert!(matches!(code, Some(0 | 1 | 3)), "{err}");
-    serde_json::from_str(&std::fs::read_to_string(report).unwrap()).unwrap()
-}
+mod common;
+use common::cli::{certify_demo_acceptance, root};
 
 /// The statistics of how far counterexamples moved each feature, recomputed here from the saved
 /// perturbed inputs and the CSV rows: mean and largest |δ| / radius, share at the radius (|δ| ≥ 0.999 ×
@@ -58,7 +20,7 @@ fn counterexample_movement_matches_the_saved_counterexamples() {
     tolerances.insert("flow_m3_h".into(), Value::from(0.0));
     let file = dir.path().join("tol.json");
     std::fs::write(&file, Value::Object(tolerances.clone()).to_string()).unwrap();
-    let report = certify("models/pump-mlp.json", &file, &dir.path().join("r.json"));
+    let report = certify_demo_acceptance("models/pump-mlp.json", &file, &dir.path().join("r.json"));
     let movement = &report["counterexample_movement"];
     let csv = std::fs::read_to_string(root().join("demo-data/acceptance.csv")).unwrap();
     let mut lines = csv.lines();

@@ -4,6 +4,7 @@
 
 #![allow(dead_code)] // each test crate uses the part it needs
 
+pub mod cli;
 pub mod exact_model;
 pub mod fixtures;
 pub mod gradient;
