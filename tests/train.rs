@@ -567,30 +567,13 @@ mod retraining {
 
 mod primal_dual {
     use super::*;
-    use ballast::model::InputSpec;
     use ballast::threat::{Budget, Norm, Targets};
     use ballast::train::constrained::{
         train_constrained_epochs, ConstrainedSettings, ConstrainedState, Constraint, Formulation,
     };
     use ballast::train::plain::TrainableModel;
     use ballast::train::robust::RobustLoss;
-    use nalgebra::DMatrix;
-    use rand::{Rng, SeedableRng};
-
-    /// Three overlapping classes in 2-D (class means on a line, std 0.6).
-    fn three_classes(samples: usize) -> Dataset {
-        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
-        let normal = rand_distr::Normal::new(0.0, 0.6).expect("normal");
-        let mut features = DMatrix::zeros(2, samples);
-        let mut labels = Vec::with_capacity(samples);
-        for i in 0..samples {
-            let y = i % 3;
-            features[(0, i)] = (y as f64 - 1.0 + rng.sample::<f64, _>(normal)).clamp(-3.0, 3.0);
-            features[(1, i)] = rng.sample::<f64, _>(normal).clamp(-3.0, 3.0);
-            labels.push(y);
-        }
-        Dataset { features, labels }
-    }
+    use common::fixtures::{three_class_mlp as small_mlp, three_classes};
 
     fn settings(
         loss: RobustLoss,
@@ -619,19 +602,6 @@ mod primal_dual {
             final_rate_factor: 1.0,
             average_tail: 0.0,
         }
-    }
-
-    /// The 2-8-3 MLP (normalize layer fitted to `data`, seed 4) every primal-dual test starts from.
-    fn small_mlp(data: &Dataset) -> Model {
-        let input = InputSpec {
-            dim: 2,
-            names: None,
-            lower: vec![-3.0; 2],
-            upper: vec![3.0; 2],
-            shape: None,
-            units: None,
-        };
-        new_mlp(&input, 3, &[8], data, 4).expect("model")
     }
 
     /// Interval loss, robust-error floor 0.5 without slack, primal-dual with dual step 0.1.

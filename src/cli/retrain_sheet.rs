@@ -137,11 +137,16 @@ pub fn sheet_markdown(
             r.verdict
         );
     }
+    // With a list the judged figure is the worst line's margin over its aimed floor.
+    let figure = match result.report.requirements.is_empty() {
+        true => "certified",
+        false => "worst line margin over its aimed floor",
+    };
     for r in &result.rounds {
         for j in &r.near_misses_judged {
             let _ = writeln!(
                 md,
-                "\nRound {}: near miss at epoch {} judged by the certify pipeline on the validation data: {:.4} by linear bounds, {:.4} by the pipeline.",
+                "\nRound {}: near miss at epoch {} judged by the certify pipeline on the validation data ({figure}): {:.4} by linear bounds, {:.4} by the pipeline.",
                 r.round, j.epoch, j.linear_certified, j.pipeline_certified
             );
         }

@@ -31,19 +31,28 @@ impl NearMisses {
 /// What judging a near miss gives: the certify pipeline's report on the validation data (a bare
 /// figure in the unit tests).
 pub(super) trait Judgement {
-    /// Certified accuracy on the validation data.
+    /// The figure compared with the threshold: certified accuracy on the validation data, or with a
+    /// requirement list the worst line's margin over its aimed floor.
     fn certified(&self) -> f64;
 }
 
-impl Judgement for Report {
+/// The certify pipeline's report on the validation data with the figure it gives against the
+/// round's threshold (see [`Judgement::certified`]).
+#[derive(Debug, Clone)]
+pub(super) struct PipelineJudgement {
+    pub(super) report: Report,
+    pub(super) figure: f64,
+}
+
+impl Judgement for PipelineJudgement {
     fn certified(&self) -> f64 {
-        self.summary.certified_accuracy
+        self.figure
     }
 }
 
 /// An epoch's weights kept as a candidate for [`Keep::BestFeasible`].
 #[derive(Debug, Clone)]
-pub(super) struct Candidate<J = Report> {
+pub(super) struct Candidate<J = PipelineJudgement> {
     pub(super) epoch: f64,
     /// Validation certified accuracy by the check's linear bounds.
     pub(super) certified: f64,
@@ -90,7 +99,7 @@ impl<J: Judgement> Candidate<J> {
 /// above it, and the earliest epoch inside the window is chosen, the smallest departure from the
 /// parent model that the validation data cannot tell apart from the best.
 #[derive(Debug, Clone)]
-pub(super) struct Candidates<J = Report> {
+pub(super) struct Candidates<J = PipelineJudgement> {
     pub(super) kept: Vec<Candidate<J>>,
 }
 
@@ -219,9 +228,10 @@ impl SelectionThreshold {
 pub struct JudgedNearMiss {
     /// The check's position in epochs.
     pub epoch: f64,
-    /// Validation certified accuracy by the check's linear bounds.
+    /// Validation certified accuracy by the check's linear bounds (with a requirement list: the
+    /// worst line's margin over its aimed floor, negative below it).
     pub linear_certified: f64,
-    /// Validation certified accuracy by the certify pipeline.
+    /// Validation certified accuracy by the certify pipeline (with a list: the worst line's margin).
     pub pipeline_certified: f64,
 }
 

@@ -27,7 +27,7 @@ use crate::data::Dataset;
 use crate::model::{Model, Network};
 use crate::threat::requirement::{Requirement, RequirementLine};
 
-use super::candidates::{Candidate, Candidates, SelectionThreshold};
+use super::candidates::{Candidate, Candidates, PipelineJudgement, SelectionThreshold};
 pub use super::candidates::{JudgedNearMiss, NearMisses};
 use super::confidence::{Assessment, ConfidenceSettings, Evidence, Plan};
 use super::constrained::{
@@ -224,9 +224,14 @@ pub fn retrain(
             .collect(),
     };
     // The level training and the choice of weights aim at: the floor plus its margin, or the
-    // reviewer's aimed level; with a list, the worst line's margin over its aimed level (see
-    // `ValidationCheck::worst_margin`).
-    let aim = plan.map_or((floor + margins[0]).min(1.0), |p| p.aimed_level);
+    // reviewer's aimed level. A list's candidates are judged by the worst line's margin over its
+    // own aimed level (`ValidationCheck::worst_margin`, the terms' floors already raised by their
+    // margins), so its threshold is 0.
+    let aim = match (plan, lines.is_empty()) {
+        (Some(p), _) => p.aimed_level,
+        (None, true) => (floor + margins[0]).min(1.0),
+        (None, false) => 0.0,
+    };
     let checked = match (plan, lines.is_empty()) {
         (Some(p), _) => p.check_requirement(requirement),
         (None, true) => requirement.clone(),
@@ -335,20 +340,18 @@ pub fn retrain(
         )?);
         let earliest = settings.keep == Keep::EarliestFeasible;
         let (chosen, judged) = match validation {
-            Some(validation) if lines.is_empty() => {
-                let mut judge =
-                    |network: &Network| certify_on(&trainable.model_with(network), validation);
+            Some(validation) => {
+                let mut judge = |network: &Network| {
+                    let report = certify_on(&trainable.model_with(network), validation)?;
+                    let figure = match lines.is_empty() {
+                        true => report.summary.certified_accuracy,
+                        false => worst_line_margin(&report, &constrained.terms),
+                    };
+                    Ok::<_, crate::certify::CertifyError>(PipelineJudgement { report, figure })
+                };
                 candidates
                     .choose(threshold, near_misses, earliest, &mut judge)
                     .map_err(|e| TrainError::Data(format!("judging a near miss: {e}")))?
-            }
-            Some(_) => {
-                let mut never = |_: &Network| -> Result<Report, TrainError> {
-                    Err(TrainError::Settings(
-                        "near misses are not judged for a list".into(),
-                    ))
-                };
-                candidates.choose(threshold, NearMisses::OFF, earliest, &mut never)?
             }
             None => (None, Vec::new()),
         };
@@ -366,7 +369,7 @@ pub fn retrain(
         let near_miss = chosen.is_some_and(|c| c.certified < threshold);
         let model = trainable.model_with(network);
         // A judged candidate's validation report is the round's check.
-        let reusable = chosen.and_then(|c| c.judged.as_deref());
+        let reusable = chosen.and_then(|c| c.judged.as_deref()).map(|j| &j.report);
         let report = match reusable {
             Some(report) => report.clone(),
             None => certify_on(&model, round_data)
@@ -444,6 +447,18 @@ pub fn retrain(
 /// A relaxation slack above this (in the constraint's measure, e.g. 0.1% of error rate) counts as
 /// open at the end of a round.
 pub const RELAXED: f64 = 1e-3;
+
+/// The smallest margin of a list's lines in the certify pipeline's `report` over the floors its
+/// `terms` aim at (one term per line, in order): the pipeline's counterpart of
+/// `ValidationCheck::worst_margin`.
+fn worst_line_margin(report: &Report, terms: &[ConstraintTerm]) -> f64 {
+    report
+        .requirements
+        .iter()
+        .zip(terms)
+        .filter_map(|(line, term)| term.floor().map(|aim| line.measured - aim))
+        .fold(f64::INFINITY, f64::min)
+}
 
 /// The slack of a floor term (0 for a loss level).
 fn term_slack(term: &ConstraintTerm) -> f64 {

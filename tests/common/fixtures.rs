@@ -6,7 +6,7 @@ use std::path::Path;
 use ballast::data::{load_csv, DataOptions, Dataset};
 use ballast::model::{Dense, Model, Network};
 use nalgebra::{DMatrix, DVector};
-use rand::Rng;
+use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
 /// A dense ReLU network with layer sizes `sizes`, weights uniform in [−1, 1) and biases in [−0.3, 0.3).
@@ -31,4 +31,34 @@ pub fn digits_mlp() -> (Model, Dataset) {
     )
     .unwrap();
     (model, data)
+}
+
+/// Three overlapping classes in 2-D (class means −1, 0, 1 on the first axis, std 0.6, clamped to
+/// [−3, 3]; row i has class i mod 3; seeded, so a longer set extends a shorter one).
+pub fn three_classes(samples: usize) -> Dataset {
+    let mut rng = ChaCha8Rng::seed_from_u64(11);
+    let normal = rand_distr::Normal::new(0.0, 0.6).expect("normal");
+    let mut features = DMatrix::zeros(2, samples);
+    let mut labels = Vec::with_capacity(samples);
+    for i in 0..samples {
+        let y = i % 3;
+        features[(0, i)] = (y as f64 - 1.0 + rng.sample::<f64, _>(normal)).clamp(-3.0, 3.0);
+        features[(1, i)] = rng.sample::<f64, _>(normal).clamp(-3.0, 3.0);
+        labels.push(y);
+    }
+    Dataset { features, labels }
+}
+
+/// The 2-8-3 MLP over [−3, 3]² (normalize layer fitted to `data`, seed 4) that the primal-dual
+/// tests start from.
+pub fn three_class_mlp(data: &Dataset) -> Model {
+    let input = ballast::model::InputSpec {
+        dim: 2,
+        names: None,
+        lower: vec![-3.0; 2],
+        upper: vec![3.0; 2],
+        shape: None,
+        units: None,
+    };
+    ballast::train::new_mlp(&input, 3, &[8], data, 4).expect("model")
 }
