@@ -178,19 +178,20 @@ pub fn sheet_markdown(
                 "the requirement"
             }
         );
-        let _ = writeln!(md, "The final multipliers read as prices: the sensitivity of the best clean training loss to each constraint's level (Boyd & Vandenberghe, *Convex Optimization*, §5.6). A requirement is active (binding) at the end when its multiplier is above 0.\n");
+        let _ = writeln!(md, "The final multipliers read as prices: the sensitivity of the best clean training loss to each constraint's level (Boyd & Vandenberghe, *Convex Optimization*, §5.6). A requirement is active (binding) at the end when its multiplier is above 0 and the last epoch held it within two standard errors of its allowance (room: the allowance left on the training batches; a constraint with more room than that should have multiplier 0, so a multiplier still above 0 there had not settled).\n");
         let _ = writeln!(
             md,
-            "| constraint | multiplier | active | relaxed by | meaning |"
+            "| constraint | multiplier | active | room in the last epoch | relaxed by | meaning |"
         );
-        let _ = writeln!(md, "| --- | --- | --- | --- | --- |");
+        let _ = writeln!(md, "| --- | --- | --- | --- | --- | --- |");
         for p in prices {
             let _ = writeln!(
                 md,
-                "| {} | {:.4} | {} | {:.4} | {} |",
+                "| {} | {:.4} | {} | {} | {:.4} | {} |",
                 p.constraint,
                 p.multiplier,
                 if p.binding { "yes" } else { "no" },
+                p.room.map_or("—".into(), |r| format!("{r:.4}")),
                 p.relaxed_by,
                 p.meaning
             );

@@ -10,8 +10,9 @@ use crate::model::Model;
 use crate::threat::requirement::Requirement;
 
 use super::confidence;
+use super::dual::Constraint;
 use super::lineage::{lineage, RetrainData};
-use super::price::{prices, Price};
+use super::price::{prices, Price, Standing};
 use super::retrain::{RetrainResult, RetrainSettings};
 
 /// What the record describes besides the retraining's own settings and result.
@@ -33,11 +34,29 @@ pub struct ProvenanceInputs<'a> {
     pub data: &'a RetrainData,
 }
 
-/// The final multipliers read as prices (primal-dual runs; empty for a fixed penalty).
+/// The final multipliers read as prices (primal-dual runs; empty for a fixed penalty), each with how
+/// its constraint stood in the last epoch.
 pub fn final_prices(result: &RetrainResult, settings: &RetrainSettings) -> Vec<Price> {
     match result.epochs.last() {
         Some(last) if settings.constrained.formulation.is_primal_dual() => {
-            prices(&result.terms, &last.multipliers, &last.slacks)
+            let standings: Vec<Option<Standing>> = result
+                .terms
+                .iter()
+                .enumerate()
+                .map(|(k, term)| {
+                    let gap = match term.constraint {
+                        Constraint::RobustLossLevel { .. } => 0.0,
+                        _ => last.gap_corrections.get(k).copied().unwrap_or(0.0),
+                    };
+                    Some(Standing {
+                        measured: *last.measured.get(k)?,
+                        allowed: (term.constraint.allowed() - gap).max(0.0)
+                            + last.slacks.get(k).copied().unwrap_or(0.0),
+                        rows: *result.term_rows.get(k)?,
+                    })
+                })
+                .collect();
+            prices(&result.terms, &last.multipliers, &last.slacks, &standings)
         }
         _ => Vec::new(),
     }

@@ -141,6 +141,8 @@ pub struct RetrainResult {
     pub plan: Option<Plan>,
     /// The constraints trained, one per multiplier, with the slacks of the last round.
     pub terms: Vec<ConstraintTerm>,
+    /// The training rows each constraint is measured on in an epoch (one per term).
+    pub term_rows: Vec<usize>,
     /// True when the final verdict comes from data the rounds did not see (the acceptance set,
     /// certified once after the last round); false when the rounds' own check data gave it.
     pub verdict_on_unseen_data: bool,
@@ -423,6 +425,7 @@ pub fn retrain(
             } else {
                 (report, met)
             };
+            let terms = constrained.terms_named(initial.class_count(), &|c| initial.class_name(c));
             return Ok(RetrainResult {
                 model,
                 epochs,
@@ -437,7 +440,11 @@ pub fn retrain(
                 plan,
                 verdict_on_unseen_data: unseen,
                 generalisation_margins: margins,
-                terms: constrained.terms_named(initial.class_count(), &|c| initial.class_name(c)),
+                term_rows: terms
+                    .iter()
+                    .map(|t| train.labels.iter().filter(|l| t.applies_to(**l)).count())
+                    .collect(),
+                terms,
             });
         }
     }
