@@ -8,7 +8,8 @@
 //! batch together with the split constraints enforced (`bounding`: optimised slopes and split
 //! multipliers started from the parent's best, the parent's pre-activation bounds reused below the
 //! split layer), tries short attacks
-//! from the bound minimisers (`probe`), and solves fully fixed sub-domains as LPs (`leaf`). One
+//! from the bound minimisers (`probe`), and solves fully fixed sub-domains as LPs (`leaf`, with the affine
+//! piece of `piece` and the multipliers of `multipliers`). One
 //! tree per forbidden class keeps each tree's bound a single number and gives per-class exact minima in
 //! the optimality mode; the most dangerous class (lowest root bound) goes first, so a counterexample
 //! ends the search early.
@@ -31,6 +32,8 @@ mod branching;
 mod frontier;
 mod leaf;
 pub mod milp;
+mod multipliers;
+mod piece;
 mod probe;
 mod runner;
 mod solver;

@@ -6,7 +6,7 @@ use crate::bound::{Method, ReluSplit, SplitState};
 use crate::engine::slopes::SlopeSettings;
 use crate::model::Dense;
 use crate::search::bounding::{self, Job};
-use crate::search::leaf::affine_piece;
+use crate::search::piece::affine_piece;
 use crate::search::solver::{minimise, LinearProgram, LpOutcome, Row};
 use crate::threat::{Budget, Norm};
 use nalgebra::{DMatrix, DVector};

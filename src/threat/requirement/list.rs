@@ -9,7 +9,8 @@
 
 use serde_json::Value;
 
-use super::{class_indices, invalid, RequirementError};
+use super::resolve::class_indices;
+use super::{invalid, RequirementError};
 use crate::model::Model;
 use crate::threat::Targets;
 

@@ -23,6 +23,12 @@
 //!
 //! The loop never claims the constraint holds: its figures are training measurements; the floor is
 //! checked afterwards with sound bounds ([`super::retrain`]).
+//!
+//! The settings and their check are in `settings`; the per-epoch record and the state carried across
+//! calls in `state`.
+
+mod settings;
+mod state;
 
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
@@ -30,206 +36,23 @@ use rand_chacha::ChaCha8Rng;
 
 use crate::data::Dataset;
 use crate::model::Network;
-use crate::threat::{Budget, Targets};
 
 pub use super::dual::{Constraint, Formulation};
 pub use super::gap_correction::GapCorrection;
 pub use super::validation::{certified_accuracy, ValidationCheck};
+pub use settings::ConstrainedSettings;
+pub use state::{ConstrainedEpoch, ConstrainedState};
 
 use super::averaging::IterateAverage;
 use super::backprop::add_scaled;
-use super::optimizer::Optimizer;
 use super::plain::{
-    check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainSettings,
-    TrainableModel,
+    check_data, cross_entropy_gradient, gather_columns, loss_and_accuracy, TrainableModel,
 };
 use super::robust::{RegionMap, RobustLoss};
 use super::term_batch::term_on_batch;
 use super::terms::ConstraintTerm;
 use super::validation::{mean_standard_error, per_sample_cross_entropy, validation_check};
 use super::TrainError;
-
-/// Settings of the constrained trainer.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
-pub struct ConstrainedSettings {
-    /// Epochs, batch size, optimiser, weight decay, seed (the validation fields are not used here).
-    pub train: TrainSettings,
-    /// The perturbation budget in raw input units.
-    #[serde(skip)]
-    pub budget: Budget,
-    /// Which class changes count (forbidden targets per sample).
-    #[serde(skip)]
-    pub targets: Targets,
-    /// The robust loss.
-    pub loss: RobustLoss,
-    /// The constraint (when `terms` is empty).
-    pub constraint: Constraint,
-    /// Several constraints, one multiplier each (e.g. one per line of a requirement list); when
-    /// given they replace `constraint`, `budget`, `targets` and the per-class split
-    /// ([`ConstrainedSettings::terms`]).
-    pub terms: Vec<ConstraintTerm>,
-    /// Resilient relaxation: each constraint gets a slack paying `cost/2 · slack²`, learned with the
-    /// weights ([`Formulation::relaxed_slack`]); `None` keeps every constraint strict.
-    pub relax: Option<f64>,
-    /// Multipliers or a fixed penalty.
-    pub formulation: Formulation,
-    /// Epochs over which epsilon ramps from 0 to the full budget (0 = full from the start).
-    pub ramp_epochs: usize,
-    /// Measure certified accuracy on the validation data after every epoch (sound linear bounds).
-    pub measure_certified: bool,
-    /// Tighten the robust-error allowance by the measured generalisation gap (see [`GapCorrection`]);
-    /// needs validation data and `measure_certified`.
-    pub gap_correction: bool,
-    /// Validation checks per epoch (≥ 1, the last at the epoch's end) reported to the check sink of
-    /// [`train_constrained_epochs_with_checks`]; more checks give the selection of a best feasible
-    /// iterate a finer choice.
-    pub checks_per_epoch: usize,
-    /// Step-size factor at the end of the first `train.epochs` epochs, in (0, 1]: the optimiser's
-    /// rate is held through the epsilon ramp, then decays linearly to this fraction of the configured
-    /// rate by the last of those epochs and stays there (later rounds); 1 keeps it constant.
-    pub final_rate_factor: f64,
-    /// Fraction of the first `train.epochs` epochs, counted back from their end, over which the
-    /// weights and multipliers after every step are averaged ([`IterateAverage`], kept in
-    /// [`ConstrainedState::average`] and continued through later calls); 0 = off.
-    pub average_tail: f64,
-}
-
-impl ConstrainedSettings {
-    /// Checks the fields, naming the bad one.
-    pub fn validate(&self) -> Result<(), TrainError> {
-        self.train.validate()?;
-        let bad = |m: String| Err(TrainError::Settings(m));
-        if self.checks_per_epoch == 0 {
-            return bad("validation checks per epoch must be at least 1".into());
-        }
-        if !(self.final_rate_factor > 0.0 && self.final_rate_factor <= 1.0) {
-            return bad(format!(
-                "final rate factor {} must lie in (0, 1]",
-                self.final_rate_factor
-            ));
-        }
-        if let Some(r) = self
-            .budget
-            .radii
-            .iter()
-            .find(|r| !(r.is_finite() && **r >= 0.0))
-        {
-            return bad(format!("budget radius {r} must be a finite number ≥ 0"));
-        }
-        self.constraint.validate()?;
-        for term in &self.terms {
-            term.constraint.validate()?;
-        }
-        self.formulation.validate()?;
-        if let Some(cost) = self.relax {
-            if !(cost.is_finite() && cost > 0.0) {
-                return bad(format!(
-                    "relaxation cost {cost} must be a finite number > 0"
-                ));
-            }
-        }
-        if !(0.0..=1.0).contains(&self.average_tail) {
-            return bad(format!(
-                "averaged tail {} must be a fraction in [0, 1]",
-                self.average_tail
-            ));
-        }
-        if let RobustLoss::Adversarial { steps } = self.loss {
-            if steps == 0 {
-                return bad("PGD steps must be at least 1".into());
-            }
-        }
-        if let RobustLoss::LinearInterval {
-            final_linear_weight,
-        } = self.loss
-        {
-            if !(0.0..=1.0).contains(&final_linear_weight) {
-                return bad(format!(
-                    "final linear weight {final_linear_weight} must lie in [0, 1]"
-                ));
-            }
-        }
-        Ok(())
-    }
-}
-
-/// What one epoch of constrained training measured.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
-pub struct ConstrainedEpoch {
-    /// 1-based epoch number (counting across rounds).
-    pub epoch: usize,
-    /// Fraction of the full budget used at the end of the epoch.
-    pub epsilon_scale: f64,
-    /// Mean clean cross-entropy over the epoch's batches.
-    pub clean_loss: f64,
-    /// Mean robust loss over the epoch's batches.
-    pub robust_loss: f64,
-    /// Robust error rate measured on the training batches (the constraint's measure).
-    pub robust_error: f64,
-    /// The multipliers at the end of the epoch (one per constraint term).
-    pub multipliers: Vec<f64>,
-    /// The relaxation slacks at the end of the epoch (all 0 without relaxation).
-    pub slacks: Vec<f64>,
-    /// Each constraint's measurement (robust error rate or mean robust loss, on its rows) averaged
-    /// over the epoch's batches, in the order of the multipliers (NaN when no batch had its rows).
-    pub measured: Vec<f64>,
-    /// The largest generalisation-gap correction of an allowance after the epoch (0 when not in use).
-    pub gap_correction: f64,
-    /// Each constraint's gap correction after the epoch, in the order of the multipliers.
-    pub gap_corrections: Vec<f64>,
-    /// Mean clean cross-entropy on the validation data (the objective's held-out estimate).
-    pub validation_clean_loss: Option<f64>,
-    /// Standard error of that mean (sample standard deviation of the per-sample losses / √n).
-    pub validation_clean_loss_error: Option<f64>,
-    /// Clean accuracy on the validation data.
-    pub validation_clean_accuracy: Option<f64>,
-    /// Certified accuracy on the validation data by sound linear bounds at the full budget.
-    pub validation_certified_accuracy: Option<f64>,
-}
-
-/// State carried across calls (so rounds can continue where the last one stopped).
-#[derive(Debug, Clone)]
-pub struct ConstrainedState {
-    /// The trainable network.
-    pub network: Network,
-    /// The optimiser's state.
-    pub optimizer: Optimizer,
-    /// The multipliers.
-    pub multipliers: Vec<f64>,
-    /// The relaxation slacks, one per multiplier (0 without relaxation).
-    pub slacks: Vec<f64>,
-    /// Epochs run so far.
-    pub epochs_done: usize,
-    /// The allowance corrections carried across epochs and rounds, one per constraint term.
-    pub corrections: Vec<GapCorrection>,
-    /// The iterate average (see [`ConstrainedSettings::average_tail`]); `None` until it starts.
-    pub average: Option<IterateAverage>,
-}
-
-impl ConstrainedState {
-    /// A fresh state for `trainable` under `settings`.
-    pub fn new(
-        trainable: &TrainableModel,
-        settings: &ConstrainedSettings,
-        classes: usize,
-    ) -> ConstrainedState {
-        let count = settings.terms(classes).len();
-        let start = settings.formulation.initial_multipliers(1)[0];
-        ConstrainedState {
-            network: trainable.network.clone(),
-            optimizer: Optimizer::new(
-                settings.train.optimizer,
-                settings.train.weight_decay,
-                &trainable.network,
-            ),
-            multipliers: vec![start; count],
-            slacks: vec![0.0; count],
-            epochs_done: 0,
-            corrections: vec![GapCorrection::default(); count],
-            average: None,
-        }
-    }
-}
 
 /// Runs `epochs` epochs of constrained training from `state` on `train` (validating on `validation`).
 /// `observer` sees every epoch's record.
