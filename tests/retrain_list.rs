@@ -131,6 +131,12 @@ fn two_budgets_and_a_class_floor_are_met_or_the_shortfall_is_named() {
         assert!(price["multiplier"].as_f64().unwrap() >= 0.0);
     }
     assert!(dir.path().join("m2.retrain/multipliers.svg").is_file());
+    // models/pump-mlp.json was trained on demo-data/train.csv (its provenance names that file's
+    // SHA-256), so validation rows held out of it are not new to the model: the sheet says so.
+    assert!(
+        sheet.contains("not new to the model") && sheet.contains(TRAIN),
+        "{sheet}"
+    );
 }
 
 #[test]

@@ -200,6 +200,8 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
     let parent_path = model_path.display().to_string();
     let data = retrain_data(&args, train.len(), validation.len(), acceptance.len());
     let lineage = lineage(&parent_path, &parent_sha256, &settings, &result, &data);
+    let seen_by_parent =
+        crate::train::lineage::validation_seen_by_parent(parent.provenance.as_ref(), &data);
     let inputs = ProvenanceInputs {
         parent: &parent,
         parent_path: &parent_path,
@@ -229,7 +231,15 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
         &folder.join("retrain.md"),
         &format!(
             "{}\n{}",
-            sheet_markdown(&args, &described, floor, &result, acceptance.len(), &prices),
+            sheet_markdown(
+                &args,
+                &described,
+                floor,
+                &result,
+                acceptance.len(),
+                &prices,
+                seen_by_parent
+            ),
             crate::sheet::lineage::retrain_sheet_section(&lineage)
         ),
     )?;
@@ -251,7 +261,7 @@ pub fn run(mut args: Args) -> anyhow::Result<Outcome> {
         println!("{}", confidence::summary_line(plan, assessment));
     }
     print_lines(&result.report.requirements, &prices);
-    for caution in super::retrain_sheet::cautions(&args, &result) {
+    for caution in super::retrain_sheet::cautions(&args, &result, seen_by_parent) {
         eprintln!("caution: {caution}");
     }
     Ok(match result.verdict {

@@ -68,6 +68,7 @@ pub fn sheet_markdown(
     result: &RetrainResult,
     acceptance: usize,
     prices: &[Price],
+    seen_by_parent: bool,
 ) -> String {
     let mut md = String::new();
     let met = result.verdict == RetrainVerdict::Met;
@@ -115,7 +116,7 @@ pub fn sheet_markdown(
         );
     }
     let _ = writeln!(md, "- verdict: {verdict}\n");
-    for caution in cautions(args, result) {
+    for caution in cautions(args, result, seen_by_parent) {
         let _ = writeln!(md, "> **Caution.** {caution}\n");
     }
     let _ = writeln!(md, "Each round is checked with the certify pipeline on the validation data (it steers the rounds); the verdict above is {}.\n",
@@ -178,7 +179,7 @@ pub fn sheet_markdown(
                 "the requirement"
             }
         );
-        let _ = writeln!(md, "The final multipliers read as prices: the sensitivity of the best clean training loss to each constraint's level (Boyd & Vandenberghe, *Convex Optimization*, §5.6). A requirement is active (binding) at the end when its multiplier is above 0 and the last epoch held it within two standard errors of its allowance (room: the allowance left on the training batches; a constraint with more room than that should have multiplier 0, so a multiplier still above 0 there had not settled).\n");
+        let _ = writeln!(md, "The final multipliers read as prices: the sensitivity of the best clean training loss to each constraint's level (Boyd & Vandenberghe, *Convex Optimization*, §5.6). A requirement is active (binding) at the end when its multiplier is above 0 and the last epoch held it within two standard errors of its allowance (room: the allowance left on the training batches). A constraint with more room than that should have multiplier 0 at an optimum (complementary slackness), so one whose multiplier is still above 0 is \"not settled\" and its price is an upper estimate.\n");
         let _ = writeln!(
             md,
             "| constraint | multiplier | active | room in the last epoch | relaxed by | meaning |"
@@ -190,7 +191,11 @@ pub fn sheet_markdown(
                 "| {} | {:.4} | {} | {} | {:.4} | {} |",
                 p.constraint,
                 p.multiplier,
-                if p.binding { "yes" } else { "no" },
+                match (p.binding, p.settled) {
+                    (true, _) => "yes",
+                    (false, true) => "no",
+                    (false, false) => "not settled",
+                },
                 p.room.map_or("—".into(), |r| format!("{r:.4}")),
                 p.relaxed_by,
                 p.meaning
@@ -219,9 +224,16 @@ pub fn sheet_markdown(
     md
 }
 
-/// The cautions of a retraining sheet: a verdict on data that also steered training.
-pub fn cautions(args: &Args, result: &RetrainResult) -> Vec<String> {
+/// The cautions of a retraining sheet: a verdict on data that also steered training, and validation
+/// rows the parent model was trained on (`seen_by_parent`).
+pub fn cautions(args: &Args, result: &RetrainResult, seen_by_parent: bool) -> Vec<String> {
     let mut out = Vec::new();
+    if seen_by_parent {
+        out.push(format!("the validation rows come from {}, which the parent model's provenance names as its training data (same SHA-256): they are not new to the model, so the validation figures that chose the kept weights and ended the rounds overstate unseen data, and the generalisation margin does not cover that; give --val with rows the parent never saw", match &args.val {
+            Some(v) => v.display().to_string(),
+            None => args.train.display().to_string(),
+        }));
+    }
     if !result.verdict_on_unseen_data {
         out.push(match &args.acceptance {
             Some(a) => format!("the acceptance set {} was also passed as validation data: it steered the rounds and chose the kept weights, so its verdict is optimistic; certify the model on untouched data before release", a.display()),

@@ -33,6 +33,33 @@ pub struct RetrainData {
     pub acceptance: Option<DataSource>,
 }
 
+/// The SHA-256 digests of the data a model was trained on, as its provenance records them: the
+/// demo's `training_data_sha256`, a retrained model's `retrain.train_sha256`, and the same of every
+/// `parent` it was retrained from.
+pub fn training_digests(provenance: &serde_json::Value) -> Vec<String> {
+    let mut digests = Vec::new();
+    let mut node = Some(provenance);
+    while let Some(p) = node {
+        for digest in [&p["training_data_sha256"], &p["retrain"]["train_sha256"]] {
+            if let Some(d) = digest.as_str() {
+                digests.push(d.to_string());
+            }
+        }
+        node = p.get("parent");
+    }
+    digests
+}
+
+/// True when the validation rows come from a file whose SHA-256 the parent's provenance names as
+/// training data (see [`training_digests`]): the rows are then not new to the model, so its validation
+/// figures overstate unseen data, and no generalisation margin covers that.
+pub fn validation_seen_by_parent(parent: Option<&serde_json::Value>, data: &RetrainData) -> bool {
+    match (parent, &data.validation.sha256) {
+        (Some(provenance), Some(digest)) => training_digests(provenance).contains(digest),
+        _ => false,
+    }
+}
+
 /// The settings in one line of words.
 pub fn describe_settings(settings: &RetrainSettings) -> String {
     let c = &settings.constrained;
@@ -178,5 +205,50 @@ pub fn lineage(
         }
         .into(),
         data: uses,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn source(sha256: Option<&str>) -> DataSource {
+        DataSource {
+            source: "rows".into(),
+            sha256: sha256.map(String::from),
+            rows: 10,
+        }
+    }
+
+    // A retrained model's provenance nests its parent's: the digests of every generation count.
+    #[test]
+    fn validation_rows_the_parent_was_trained_on_are_found_through_the_generations() {
+        let provenance = serde_json::json!({
+            "parent": {
+                "parent": { "training_data_sha256": "aa" },
+                "retrain": { "train_sha256": "bb" }
+            },
+            "retrain": { "train_sha256": "cc" }
+        });
+        assert_eq!(training_digests(&provenance), vec!["cc", "bb", "aa"]);
+        let data = |validation: Option<&str>| RetrainData {
+            train: source(Some("zz")),
+            validation: source(validation),
+            acceptance: None,
+        };
+        assert!(validation_seen_by_parent(
+            Some(&provenance),
+            &data(Some("aa"))
+        ));
+        assert!(validation_seen_by_parent(
+            Some(&provenance),
+            &data(Some("cc"))
+        ));
+        assert!(!validation_seen_by_parent(
+            Some(&provenance),
+            &data(Some("zz"))
+        ));
+        assert!(!validation_seen_by_parent(Some(&provenance), &data(None)));
+        assert!(!validation_seen_by_parent(None, &data(Some("aa"))));
     }
 }

@@ -11,9 +11,9 @@
 //! Complementary slackness (Boyd & Vandenberghe, §5.5.2: `λ_k (g_k − a_k) = 0` at an optimum) says
 //! a constraint with room to spare has multiplier 0. A rate constraint whose last epoch held it with
 //! more than two standard errors of that epoch's measurement to spare (`√(m (1 − m) / n)` over its
-//! `n` rows, the binomial standard error, common practice) is therefore reported as not binding even
-//! when its multiplier is still above 0: that multiplier had not settled (it is still falling, e.g.
-//! from the epsilon ramp), and its price is an upper estimate.
+//! `n` rows, the binomial standard error, common practice) while its multiplier is above 0 is
+//! therefore reported as **not settled**, not as binding: the multiplier was still falling (e.g. from
+//! the epsilon ramp), and its price is an upper estimate.
 
 use super::dual::Constraint;
 use super::terms::ConstraintTerm;
@@ -39,9 +39,11 @@ pub struct Price {
     pub constraint: String,
     /// The multiplier.
     pub multiplier: f64,
-    /// True when the multiplier is above [`BINDING`] and, for a rate constraint, the last epoch held
-    /// it within two standard errors of its allowance (see the module documentation).
+    /// True when the multiplier is above [`BINDING`] and the constraint is settled.
     pub binding: bool,
+    /// False when the multiplier is above [`BINDING`] while the last epoch held a rate constraint
+    /// with more than two standard errors of room (see the module documentation).
+    pub settled: bool,
     /// The allowance left in the last epoch, `allowed − measured`, in the constraint's measure
     /// (negative when over it); `None` without a measurement.
     pub room: Option<f64>,
@@ -84,7 +86,8 @@ pub fn prices(
                 let m = s.measured.clamp(0.0, 1.0);
                 rate && s.allowed - s.measured > 2.0 * (m * (1.0 - m) / s.rows as f64).sqrt()
             });
-            let binding = multiplier > BINDING && spare.is_none();
+            let settled = !(multiplier > BINDING && spare.is_some());
+            let binding = multiplier > BINDING && settled;
             let cost_per_step = 0.01 * multiplier;
             let relaxed_by = slacks.get(k).copied().unwrap_or(0.0);
             let meaning = match (binding, spare) {
@@ -92,10 +95,10 @@ pub fn prices(
                     "{step} costs about {cost_per_step:.3e} in clean loss (multiplier {multiplier:.4}; \
                      exact to first order for a convex model at its optimum, a local estimate for a network)"
                 ),
-                (false, Some(s)) if multiplier > BINDING => format!(
-                    "not binding at the end: the last epoch held it with {:.1} points to spare (more \
-                     than two standard errors), so its multiplier ({multiplier:.4}) was still falling; \
-                     {step} costs nothing to first order, and {cost_per_step:.3e} is an upper estimate",
+                (false, Some(s)) if !settled => format!(
+                    "not settled: the last epoch held it with {:.1} points to spare (more than two \
+                     standard errors) while its multiplier ({multiplier:.4}) was still falling; {step} \
+                     costs about {cost_per_step:.3e} in clean loss or less (an upper estimate)",
                     100.0 * (s.allowed - s.measured)
                 ),
                 _ => format!("not binding at the end: {step} costs nothing to first order"),
@@ -104,6 +107,7 @@ pub fn prices(
                 constraint: term.name.clone(),
                 multiplier,
                 binding,
+                settled,
                 room,
                 cost_per_step,
                 relaxed_by,
@@ -147,15 +151,15 @@ mod tests {
             &[0.0, 0.04],
             &[None, None],
         );
-        assert!(!p[0].binding && p[0].meaning.contains("not binding"));
+        assert!(!p[0].binding && p[0].settled && p[0].meaning.contains("not binding"));
         assert!(p[1].constraint == "b" && p[1].meaning.contains("one point"));
         assert!((p[1].cost_per_step - 0.025).abs() < 1e-15);
         assert_eq!(p[1].relaxed_by, 0.04);
     }
 
     // Complementary slackness (Boyd & Vandenberghe, §5.5.2): a rate constraint held with more room
-    // than two binomial standard errors of its epoch's measurement is not binding, whatever its
-    // multiplier; within them it is. Here the standard error at a measured rate of 0.08 over 1 000
+    // than two binomial standard errors of its epoch's measurement while its multiplier is above 0
+    // is not settled and not binding; within them it binds. Here the standard error at a measured rate of 0.08 over 1 000
     // rows is √(0.08 · 0.92 / 1000) = 0.00858, so the boundary is 0.01716 of room.
     #[test]
     fn a_constraint_with_room_to_spare_does_not_bind() {
@@ -179,8 +183,8 @@ mod tests {
             &[0.0; 3],
             &[Some(at(0.0171)), Some(at(0.0172)), Some(at(-0.01))],
         );
-        assert!(p[0].binding, "{:?}", p[0]);
-        assert!(!p[1].binding, "{:?}", p[1]);
+        assert!(p[0].binding && p[0].settled, "{:?}", p[0]);
+        assert!(!p[1].binding && !p[1].settled, "{:?}", p[1]);
         assert!(
             p[1].meaning.contains("1.7 points to spare"),
             "{}",
