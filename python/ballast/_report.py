@@ -204,6 +204,12 @@ class RetrainResult:
         return self._native.exit_code
 
     @property
+    def cautions(self) -> list[str]:
+        """Cautions about the verdict, as ``ballast retrain`` prints them: e.g. without an acceptance
+        set the verdict is on the validation data, which also steered the rounds (optimistic)."""
+        return list(self._native.cautions)
+
+    @property
     def rounds(self) -> list[dict]:
         """One record per train-then-certify round."""
         return [dict(r) for r in self._rounds]

@@ -33,6 +33,8 @@ use crate::requirement::PyRequirement;
 #[pyclass(name = "RetrainResult", module = "ballast._native", frozen)]
 pub struct PyRetrainResult {
     result: RetrainResult,
+    /// X_acceptance, y_acceptance were given.
+    acceptance_given: bool,
 }
 
 /// The training settings, named as `ballast retrain`'s flags (with `_` for `-`), with its defaults.
@@ -373,7 +375,13 @@ pub fn retrain(
     retrained.provenance = Some(retrain_provenance(&inputs, &retrain_settings, &result));
     let mut result = result;
     result.model = retrained.clone();
-    Ok((PyModel::in_memory(retrained), PyRetrainResult { result }))
+    Ok((
+        PyModel::in_memory(retrained),
+        PyRetrainResult {
+            result,
+            acceptance_given,
+        },
+    ))
 }
 
 #[pymethods]
@@ -394,6 +402,18 @@ impl PyRetrainResult {
             RetrainVerdict::Met => 0,
             RetrainVerdict::NotMet => 1,
         }
+    }
+
+    /// Cautions about the verdict, as `ballast retrain` prints them (e.g. a verdict on the validation
+    /// data, which also steered the rounds, when no acceptance set was given).
+    #[getter]
+    fn cautions(&self) -> Vec<String> {
+        ballast::train::lineage::cautions(
+            &self.result,
+            self.acceptance_given
+                .then_some("X_acceptance, y_acceptance"),
+            None,
+        )
     }
 
     /// Every epoch of every round as JSON (numbers that are not finite are null).

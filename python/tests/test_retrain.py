@@ -90,6 +90,28 @@ def test_retrain_reaches_the_floor_and_matches_the_command_line(tmp_path, ballas
     assert sorted(provenance["final"]) == sorted(cli_provenance["final"])
     assert provenance["final"]["on_unseen_data"] == cli_provenance["final"]["on_unseen_data"]
     assert provenance["prices"] == cli_provenance["prices"]
+    # A separate acceptance set gave the verdict: no caution, as the command line printed none.
+    assert result.cautions == []
+    assert "caution:" not in done.stderr
+
+
+def test_a_verdict_on_steering_data_carries_the_command_lines_caution(tmp_path, ballast_bin, case):
+    # Without an acceptance set the verdict is on the validation rows that also steered the rounds:
+    # Python returns the caution the command line prints for the same run.
+    model, X, y, tolerances = case
+    _, result = ballast.retrain(model, X[::2], y[::2], eps=1.0, tolerances=tolerances, floor=FLOOR,
+                                epochs=2, max_rounds=1, seed=4)
+    assert len(result.cautions) == 1 and "optimistic" in result.cautions[0]
+    model.save(tmp_path / "m.json")
+    write_csv(tmp_path / "train.csv", X[::2], y[::2])
+    (tmp_path / "tol.json").write_text(json.dumps({f"x{k}": float(v) for k, v in enumerate(tolerances)}))
+    done = subprocess.run(
+        [str(ballast_bin), "retrain", "--model", tmp_path / "m.json", "--train", tmp_path / "train.csv",
+         "--eps", "1", "--tolerances", tmp_path / "tol.json", "--floor", str(FLOOR), "--epochs", "2",
+         "--max-rounds", "1", "--seed", "4", "--out", tmp_path / "cli.json"],
+        capture_output=True, text=True, timeout=600)
+    assert done.returncode in (0, 1), done.stderr
+    assert f"caution: {result.cautions[0]}" in done.stderr
 
 
 def test_validation_arrays_must_come_in_pairs(case):

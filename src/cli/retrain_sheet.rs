@@ -224,23 +224,22 @@ pub fn sheet_markdown(
     md
 }
 
-/// The cautions of a retraining sheet: a verdict on data that also steered training, and validation
-/// rows the parent model was trained on (`seen_by_parent`).
+/// The cautions of a retraining sheet ([`crate::train::lineage::cautions`]) with the files named as
+/// given: validation rows the parent model was trained on (`seen_by_parent`), a verdict on data that
+/// also steered training.
 pub fn cautions(args: &Args, result: &RetrainResult, seen_by_parent: bool) -> Vec<String> {
-    let mut out = Vec::new();
-    if seen_by_parent {
-        out.push(format!("the validation rows come from {}, which the parent model's provenance names as its training data (same SHA-256): they are not new to the model, so the validation figures that chose the kept weights and ended the rounds overstate unseen data, and the generalisation margin does not cover that; give --val with rows the parent never saw", match &args.val {
-            Some(v) => v.display().to_string(),
-            None => args.train.display().to_string(),
-        }));
-    }
-    if !result.verdict_on_unseen_data {
-        out.push(match &args.acceptance {
-            Some(a) => format!("the acceptance set {} was also passed as validation data: it steered the rounds and chose the kept weights, so its verdict is optimistic; certify the model on untouched data before release", a.display()),
-            None => "no acceptance set was given: the verdict is on the validation data, which also steered the rounds and chose the kept weights, so it is optimistic; certify the model on an untouched acceptance set before release (`ballast certify`)".to_string(),
-        });
-    }
-    out
+    let validation = args
+        .val
+        .as_ref()
+        .unwrap_or(&args.train)
+        .display()
+        .to_string();
+    let acceptance = args.acceptance.as_ref().map(|a| a.display().to_string());
+    crate::train::lineage::cautions(
+        result,
+        acceptance.as_deref(),
+        seen_by_parent.then_some(validation.as_str()),
+    )
 }
 
 /// With a failed list: which lines failed, the closest level the retrained model reached on each,

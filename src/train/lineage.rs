@@ -60,6 +60,29 @@ pub fn validation_seen_by_parent(parent: Option<&serde_json::Value>, data: &Retr
     }
 }
 
+/// Cautions about a retraining verdict, in words (the command line prints them and writes them into
+/// `retrain.md`; the Python bindings return them): validation rows the parent model was trained on
+/// (`seen_by_parent`: how the caller names their source; see [`validation_seen_by_parent`]), and a
+/// verdict on data that also steered the rounds (`acceptance`: how the caller names the acceptance
+/// set when one was given, which was then the validation data too).
+pub fn cautions(
+    result: &RetrainResult,
+    acceptance: Option<&str>,
+    seen_by_parent: Option<&str>,
+) -> Vec<String> {
+    let mut out = Vec::new();
+    if let Some(source) = seen_by_parent {
+        out.push(format!("the validation rows come from {source}, which the parent model's provenance names as its training data (same SHA-256): they are not new to the model, so the validation figures that chose the kept weights and ended the rounds overstate unseen data, and the generalisation margin does not cover that; give validation rows the parent never saw (--val)"));
+    }
+    if !result.verdict_on_unseen_data {
+        out.push(match acceptance {
+            Some(a) => format!("the acceptance set {a} was also passed as validation data: it steered the rounds and chose the kept weights, so its verdict is optimistic; certify the model on untouched data before release"),
+            None => "no acceptance set was given: the verdict is on the validation data, which also steered the rounds and chose the kept weights, so it is optimistic; certify the model on an untouched acceptance set before release".to_string(),
+        });
+    }
+    out
+}
+
 /// The settings in one line of words.
 pub fn describe_settings(settings: &RetrainSettings) -> String {
     let c = &settings.constrained;
