@@ -7,7 +7,8 @@
 //! runs with validation data) it is the *best feasible iterate*: among the epochs whose validation
 //! certified accuracy (sound linear bounds at the full budget) reaches the round's threshold (the
 //! floor, plus one slack step for each earlier round whose kept weights reached it on validation but
-//! failed the acceptance check), the one with the lowest validation clean loss. The
+//! failed the acceptance check; with a requirement list, every line's aimed floor, i.e. a worst line
+//! margin of at least 0), the one with the lowest validation clean loss. The
 //! last iterate of a primal-dual loop is not itself the constrained optimum; a best feasible iterate
 //! is the usual answer (e.g. Cotter, Jiang & Sridharan, 2019). [`Keep::EarliestFeasible`] reads the
 //! same candidates with the one-standard-error rule (the earliest epoch whose loss is within one
