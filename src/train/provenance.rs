@@ -10,7 +10,6 @@ use crate::model::Model;
 use crate::threat::requirement::Requirement;
 
 use super::confidence;
-use super::dual::Constraint;
 use super::lineage::{lineage, RetrainData};
 use super::price::{prices, Price, Standing};
 use super::retrain::{RetrainResult, RetrainSettings};
@@ -44,14 +43,10 @@ pub fn final_prices(result: &RetrainResult, settings: &RetrainSettings) -> Vec<P
                 .iter()
                 .enumerate()
                 .map(|(k, term)| {
-                    let gap = match term.constraint {
-                        Constraint::RobustLossLevel { .. } => 0.0,
-                        _ => last.gap_corrections.get(k).copied().unwrap_or(0.0),
-                    };
+                    let gap = last.gap_corrections.get(k).copied().unwrap_or(0.0);
                     Some(Standing {
                         measured: *last.measured.get(k)?,
-                        allowed: (term.constraint.allowed() - gap).max(0.0)
-                            + last.slacks.get(k).copied().unwrap_or(0.0),
+                        allowed: term.allowance(gap) + last.slacks.get(k).copied().unwrap_or(0.0),
                         rows: *result.term_rows.get(k)?,
                     })
                 })

@@ -36,6 +36,17 @@ impl ConstraintTerm {
         self.class.is_none_or(|c| c == label)
     }
 
+    /// The allowance the term's batch measurement is held to, with the generalisation-gap correction
+    /// `gap` (a rate is tightened by it, not below 0; a robust-loss level is not corrected).
+    pub fn allowance(&self, gap: f64) -> f64 {
+        match self.constraint {
+            Constraint::RobustError { .. } | Constraint::CleanError { .. } => {
+                (self.constraint.allowed() - gap).max(0.0)
+            }
+            Constraint::RobustLossLevel { .. } => self.constraint.allowed(),
+        }
+    }
+
     /// The required level the term's validation figure is compared with: the floor of a robust or
     /// clean fraction (`None` for a robust-loss level).
     pub fn floor(&self) -> Option<f64> {

@@ -173,12 +173,7 @@ pub fn train_constrained_epochs_with_checks(
                 if rows.is_empty() {
                     continue;
                 }
-                let allowed = match term.constraint {
-                    Constraint::RobustError { .. } | Constraint::CleanError { .. } => {
-                        (term.constraint.allowed() - state.corrections[k].gap).max(0.0)
-                    }
-                    Constraint::RobustLossLevel { .. } => term.constraint.allowed(),
-                };
+                let allowed = term.allowance(state.corrections[k].gap);
                 let measured = term_on_batch(
                     settings,
                     &state.network,
